@@ -1,0 +1,107 @@
+"""Extended class-K functions used by the barriers (METHOD section 2).
+
+``alpha1`` shapes the velocity barrier ``b = gamma * alpha1(h) - v`` from the position
+margin ``h`` [rad or m]; ``alpha2`` shapes the ZCBF rate condition
+``db/dt >= -beta * alpha2(b)``. Each family is odd, strictly increasing and zero at zero.
+A ``scale`` sets where the saturating families (atan, tanh) bend, in the units of their
+argument; the linear and cubic families ignore it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from safety_filter.errors import SafetyFilterError
+
+ALPHA_KINDS = ('linear', 'atan', 'tanh', 'cubic')
+ALPHA1_KINDS = ('linear', 'atan', 'tanh')  # concave on [0, inf): the gamma* formula applies
+ALPHA2_KINDS = ('linear', 'cubic', 'atan', 'tanh')
+
+
+@dataclass(frozen=True)
+class ClassK:
+    """One extended class-K function ``alpha(x)`` with its first two derivatives."""
+
+    kind: str = 'linear'
+    scale: float = 1.0
+
+    def __post_init__(self) -> None:
+        if self.kind not in ALPHA_KINDS:
+            raise SafetyFilterError(f'unknown class-K family {self.kind!r}; '
+                                    f'choose one of {ALPHA_KINDS}')
+        if not (np.isfinite(self.scale) and self.scale > 0.0):
+            raise SafetyFilterError(f'class-K scale must be positive, got {self.scale}')
+
+    def value(self, x: np.ndarray | float) -> np.ndarray:
+        """``alpha(x)``."""
+        x = np.asarray(x, dtype=float)
+        s = self.scale
+        if self.kind == 'linear':
+            return x.copy()
+        if self.kind == 'atan':
+            return s * np.arctan(x / s)
+        if self.kind == 'tanh':
+            return s * np.tanh(x / s)
+        return x ** 3
+
+    def derivative(self, x: np.ndarray | float) -> np.ndarray:
+        """``alpha'(x)``."""
+        x = np.asarray(x, dtype=float)
+        s = self.scale
+        if self.kind == 'linear':
+            return np.ones_like(x)
+        if self.kind == 'atan':
+            return 1.0 / (1.0 + (x / s) ** 2)
+        if self.kind == 'tanh':
+            return 1.0 - np.tanh(x / s) ** 2
+        return 3.0 * x ** 2
+
+    def second_derivative(self, x: np.ndarray | float) -> np.ndarray:
+        """``alpha''(x)``."""
+        x = np.asarray(x, dtype=float)
+        s = self.scale
+        if self.kind == 'linear':
+            return np.zeros_like(x)
+        if self.kind == 'atan':
+            return -2.0 * x / s ** 2 / (1.0 + (x / s) ** 2) ** 2
+        if self.kind == 'tanh':
+            t = np.tanh(x / s)
+            return -2.0 / s * t * (1.0 - t ** 2)
+        return 6.0 * x
+
+    def max_value_times_slope(self, upper: float, samples: int = 4001) -> float:
+        """``max_{0 <= x <= upper} alpha'(x) alpha(x)``, the quantity behind gamma*.
+
+        Closed form for the linear family (= upper); a dense grid plus golden-section polish
+        otherwise (the product is smooth and unimodal on [0, upper] for atan and tanh).
+        """
+        if self.kind == 'linear':
+            return float(upper)
+        grid = np.linspace(0.0, upper, samples)
+        product = self.derivative(grid) * self.value(grid)
+        k = int(np.argmax(product))
+        lo, hi = grid[max(k - 1, 0)], grid[min(k + 1, samples - 1)]
+        ratio = (np.sqrt(5.0) - 1.0) / 2.0
+        for _ in range(60):
+            a = hi - ratio * (hi - lo)
+            b = lo + ratio * (hi - lo)
+            fa = float(self.derivative(a) * self.value(a))
+            fb = float(self.derivative(b) * self.value(b))
+            if fa < fb:
+                lo = a
+            else:
+                hi = b
+        x = 0.5 * (lo + hi)
+        return max(float(product[k]), float(self.derivative(x) * self.value(x)))
+
+    def max_ratio_to_identity(self, upper: float) -> float:
+        """``sup_{0 < x <= upper} alpha(x) / x``: the slope that the sampled-data cap uses."""
+        if self.kind in ('linear', 'atan', 'tanh'):
+            return 1.0  # concave through the origin with slope 1 there
+        return float(upper) ** 2  # cubic: x^3 / x = x^2, largest at the upper end
+
+    def to_dict(self) -> dict[str, float | str]:
+        """Plain form for files."""
+        return {'kind': self.kind, 'scale': float(self.scale)}

@@ -1,0 +1,273 @@
+"""The certificate: certified gains and everything needed to trust them, as a parameter file.
+
+A :class:`Certificate` is what :func:`safety_filter.certify` produces and what the filter
+loads. On disk it is a ROS 2 parameter file (the YAML that ``--params-file`` takes), keyed by
+the filter node's name, so the node reads its safety parameters straight from it.
+
+The certificate is tied to one robot model by :meth:`RobotModel.content_hash`; loading it
+for a model with another hash raises :class:`CertificateMismatch`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import yaml
+
+from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
+from safety_filter.errors import SafetyFilterError
+from safety_filter.model import RobotModel
+
+FILTER_NODE_NAME = 'safety_filter'
+CERTIFICATE_FORMAT = 'safety_filter/certificate-1'
+CONDITIONS = ('acceleration_authority', 'torque_coupling')
+
+
+class CertificateError(SafetyFilterError):
+    """A certificate file that is missing, malformed or inconsistent."""
+
+
+class CertificateMismatch(CertificateError):
+    """A certificate used with a robot model it was not computed for."""
+
+    def __init__(self, expected: str, found: str, detail: str = '') -> None:
+        self.expected = expected
+        self.found = found
+        super().__init__(
+            f'the certificate was computed for model hash {expected[:16]}..., but the model in '
+            f'use has hash {found[:16]}...{detail}; certify this model again')
+
+
+_VECTOR_FIELDS = (
+    'position_lower', 'position_upper', 'velocity_limit', 'effort_limit', 'velocity_bound',
+    'gamma', 'gamma_star', 'beta', 'beta_star', 'beta_floor', 'beta_cap', 'authority',
+    'sampling_margin', 'viscous_friction', 'coulomb_friction')
+
+
+@dataclass
+class Certificate:
+    """Certified per-joint gains with their provenance. Vectors are in joint order.
+
+    Attributes (units: rad, rad/s, rad/s^2, N m; m, m/s, m/s^2, N for prismatic joints):
+        joint_names: the chain's joints, base to tip.
+        position_lower, position_upper, velocity_limit, effort_limit: the model's limits.
+        velocity_bound: certified velocity box; the velocity lemma bound
+            ``gamma * alpha1(range)`` is inside it and inside ``velocity_limit``.
+        gamma, beta: the gains the filter uses; gamma_star, beta_star the certified bounds
+            (``gamma <= gamma_star``, ``beta >= beta_star``); beta_floor, beta_cap the
+            practical range for beta (METHOD 4.3).
+        authority: acceleration authority ``e`` per joint (METHOD 4.2), before the
+            sampling margin; sampling_margin: acceleration reserved for one hold period.
+        condition: which sufficient condition certified the gains.
+        alpha1, alpha2: the class-K families.
+        control_rate_hz: the control rate the sampling margin was derived for.
+        sampling_factor: the margin covers hold periods up to this many control periods.
+        payload_mass_range, payload_point: payload range covered [kg], point on tip [m].
+        model_hash: content hash of the model; package_version, created: provenance.
+        settings: sampling and refinement settings of the bounds; falsifier: its summary.
+        certified: whether every check passed; reasons: per-joint findings when not.
+    """
+
+    joint_names: list[str]
+    position_lower: np.ndarray
+    position_upper: np.ndarray
+    velocity_limit: np.ndarray
+    effort_limit: np.ndarray
+    velocity_bound: np.ndarray
+    gamma: np.ndarray
+    gamma_star: np.ndarray
+    beta: np.ndarray
+    beta_star: np.ndarray
+    beta_floor: np.ndarray
+    beta_cap: np.ndarray
+    authority: np.ndarray
+    sampling_margin: np.ndarray
+    viscous_friction: np.ndarray
+    coulomb_friction: np.ndarray
+    condition: str
+    alpha1: ClassK
+    alpha2: ClassK
+    control_rate_hz: float
+    sampling_factor: float
+    payload_mass_range: tuple[float, float]
+    payload_point: tuple[float, float, float]
+    model_hash: str
+    package_version: str
+    created: str
+    settings: dict[str, Any] = field(default_factory=dict)
+    falsifier: dict[str, Any] = field(default_factory=dict)
+    certified: bool = True
+    reasons: list[str] = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        n = len(self.joint_names)
+        for name in _VECTOR_FIELDS:
+            array = np.array(getattr(self, name), dtype=float).reshape(-1)
+            if array.shape != (n,):
+                raise CertificateError(f'{name} must have {n} entries, got {array.shape[0]}')
+            array.flags.writeable = False
+            setattr(self, name, array)
+        if self.condition not in CONDITIONS:
+            raise CertificateError(f'unknown condition {self.condition!r}; expected {CONDITIONS}')
+        if isinstance(self.alpha1, dict):
+            self.alpha1 = ClassK(**self.alpha1)
+        if isinstance(self.alpha2, dict):
+            self.alpha2 = ClassK(**self.alpha2)
+        if self.alpha1.kind not in ALPHA1_KINDS:
+            raise CertificateError(f'alpha1 must be one of {ALPHA1_KINDS}')
+        if self.alpha2.kind not in ALPHA2_KINDS:
+            raise CertificateError(f'alpha2 must be one of {ALPHA2_KINDS}')
+        if not (math.isfinite(self.control_rate_hz) and self.control_rate_hz > 0):
+            raise CertificateError(f'control_rate_hz must be positive, got {self.control_rate_hz}')
+        if self.certified:
+            bad = [self.joint_names[i] for i in range(n)
+                   if not (self.gamma[i] > 0 and self.beta[i] > 0 and self.authority[i] > 0
+                           and np.isfinite(self.gamma[i]) and np.isfinite(self.beta[i]))]
+            if bad:
+                raise CertificateError(f'a certified certificate needs positive finite gains '
+                                       f'and authority; not so for joints {bad}')
+
+    # ------------------------------------------------------------------ identity
+    @property
+    def n_joints(self) -> int:
+        """Number of joints."""
+        return len(self.joint_names)
+
+    @property
+    def control_period_s(self) -> float:
+        """Control period [s]."""
+        return 1.0 / self.control_rate_hz
+
+    @property
+    def certificate_id(self) -> str:
+        """Short id of the certificate content (first 12 hex digits of its SHA-256)."""
+        text = json.dumps(self._plain(), sort_keys=True, separators=(',', ':'))
+        return hashlib.sha256(text.encode()).hexdigest()[:12]
+
+    def check_model(self, model: RobotModel) -> None:
+        """Raise :class:`CertificateMismatch` unless the certificate belongs to ``model``."""
+        found = model.content_hash()
+        if found != self.model_hash:
+            detail = ''
+            if list(model.joint_names) != list(self.joint_names):
+                detail = (f' (joints {list(model.joint_names)} vs certificate '
+                          f'{list(self.joint_names)})')
+            raise CertificateMismatch(self.model_hash, found, detail)
+
+    # ------------------------------------------------------------------ files
+    def _plain(self) -> dict[str, Any]:
+        plain: dict[str, Any] = {}
+        for item in fields(self):
+            value = getattr(self, item.name)
+            if isinstance(value, np.ndarray):
+                value = [float(x) for x in value]
+            elif isinstance(value, ClassK):
+                value = value.to_dict()
+            elif isinstance(value, tuple):
+                value = [float(x) for x in value]
+            plain[item.name] = value
+        return plain
+
+    def to_parameters(self) -> dict[str, Any]:
+        """The parameter dictionary (flat names, ROS 2 parameter types only)."""
+        plain = self._plain()
+        params: dict[str, Any] = {'certificate_format': CERTIFICATE_FORMAT}
+        for name in ('joint_names', *_VECTOR_FIELDS, 'condition', 'control_rate_hz',
+                     'sampling_factor', 'model_hash', 'package_version', 'created',
+                     'certified'):
+            params[name] = plain[name]
+        params['alpha1_kind'] = self.alpha1.kind
+        params['alpha1_scale'] = float(self.alpha1.scale)
+        params['alpha2_kind'] = self.alpha2.kind
+        params['alpha2_scale'] = float(self.alpha2.scale)
+        params['payload_mass_range'] = plain['payload_mass_range']
+        params['payload_point'] = plain['payload_point']
+        # Nested provenance stays a JSON string: ROS parameters have no maps of lists.
+        params['settings_json'] = json.dumps(self.settings, sort_keys=True)
+        params['falsifier_json'] = json.dumps(self.falsifier, sort_keys=True)
+        params['reasons'] = list(self.reasons) or ['']
+        params['certificate_id'] = self.certificate_id
+        return params
+
+    @classmethod
+    def from_parameters(cls, params: dict[str, Any]) -> Certificate:
+        """Rebuild a certificate from :meth:`to_parameters` output (or node parameters)."""
+        if params.get('certificate_format') != CERTIFICATE_FORMAT:
+            raise CertificateError(
+                f'not a certificate of format {CERTIFICATE_FORMAT!r} '
+                f'(found {params.get("certificate_format")!r})')
+        try:
+            kwargs: dict[str, Any] = {name: params[name] for name in (
+                'joint_names', *_VECTOR_FIELDS, 'condition', 'control_rate_hz',
+                'sampling_factor', 'model_hash', 'package_version', 'created', 'certified')}
+            kwargs['joint_names'] = [str(x) for x in kwargs['joint_names']]
+            kwargs['control_rate_hz'] = float(kwargs['control_rate_hz'])
+            kwargs['sampling_factor'] = float(kwargs['sampling_factor'])
+            kwargs['certified'] = bool(kwargs['certified'])
+            kwargs['alpha1'] = ClassK(str(params['alpha1_kind']), float(params['alpha1_scale']))
+            kwargs['alpha2'] = ClassK(str(params['alpha2_kind']), float(params['alpha2_scale']))
+            low, high = (float(x) for x in params['payload_mass_range'])
+            kwargs['payload_mass_range'] = (low, high)
+            kwargs['payload_point'] = tuple(float(x) for x in params['payload_point'])
+            kwargs['settings'] = json.loads(params.get('settings_json', '{}'))
+            kwargs['falsifier'] = json.loads(params.get('falsifier_json', '{}'))
+            kwargs['reasons'] = [str(r) for r in params.get('reasons', []) if str(r)]
+        except KeyError as err:
+            raise CertificateError(f'the certificate lacks the entry {err.args[0]!r}') from err
+        except (TypeError, ValueError) as err:
+            raise CertificateError(f'malformed certificate entry: {err}') from err
+        certificate = cls(**kwargs)
+        stored_id = params.get('certificate_id')
+        if stored_id is not None and stored_id != certificate.certificate_id:
+            raise CertificateError(
+                f'certificate id {stored_id} does not match its content '
+                f'({certificate.certificate_id}): the file was edited after certification')
+        return certificate
+
+    def save(self, path: str | Path, node_name: str = FILTER_NODE_NAME) -> Path:
+        """Write the parameter file (``--params-file`` YAML keyed by ``node_name``)."""
+        path = Path(path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        header = (
+            '# safety_filter certificate: ROS 2 parameter file for the filter node.\n'
+            '# Generated by `safety-filter certify`; do not edit by hand (the certificate id\n'
+            '# covers the content and the node refuses an edited file).\n')
+        document = {node_name: {'ros__parameters': self.to_parameters()}}
+        path.write_text(header + yaml.safe_dump(document, sort_keys=False, width=100),
+                        encoding='utf-8')
+        return path
+
+    @classmethod
+    def load(cls, path: str | Path, model: RobotModel | None = None) -> Certificate:
+        """Read a parameter file written by :meth:`save`; checks ``model`` when given."""
+        path = Path(path)
+        if not path.is_file():
+            raise CertificateError(f'certificate file not found: {path}')
+        try:
+            document = yaml.safe_load(path.read_text(encoding='utf-8'))
+        except yaml.YAMLError as err:
+            raise CertificateError(f'{path}: not valid YAML: {err}') from err
+        if not isinstance(document, dict) or not document:
+            raise CertificateError(f'{path}: not a parameter file')
+        # Accept any node key (the user may have renamed the node) but only one.
+        sections = [v for v in document.values()
+                    if isinstance(v, dict) and 'ros__parameters' in v]
+        if len(sections) != 1:
+            raise CertificateError(f'{path}: expected one node section with ros__parameters')
+        certificate = cls.from_parameters(sections[0]['ros__parameters'])
+        if model is not None:
+            certificate.check_model(model)
+        return certificate
+
+    def summary(self) -> dict[str, Any]:
+        """JSON-ready content (for reports)."""
+        plain = self._plain()
+        plain['certificate_id'] = self.certificate_id
+        return plain
+

@@ -1,0 +1,618 @@
+"""The online filter step: from measured state and nominal torque to a safe torque.
+
+:class:`SafetyFilter` is the numeric core that the ROS node, the simulator and replay all
+call (no ROS imports here). One :meth:`SafetyFilter.step` (METHOD sections 3, 4.4 and 5):
+
+1. **Validate** ``q``, ``v``, ``u_nom`` (shape ``(n,)``, finite) and reject positions more than
+   ``rejection_distance`` beyond a limit (a sensor fault or a state the model cannot recover
+   from). Rejected steps send the *hold* command: gravity compensation at the measured (or
+   last valid) position plus damping toward rest, ``g(q) - hold_damping * v``, clipped to the
+   torque box.
+2. **Convert** the nominal to full torque: with ``gravity_convention='driver_compensated'``
+   the driver adds ``g(q)`` itself, so ``u_full = u_nom + g(q)`` here and the output is
+   ``u* - g(q)``. The torque box ``|u| <= umax`` always applies to the full torque.
+3. **Barriers** at ``(q, v)`` with the certificate's gains give the acceleration bounds
+   ``An <= a <= Ap`` (tightened by the certificate's sampling margin).
+4. **Outside the safe set S** (some barrier negative) the QP may be infeasible: the
+   constructive recovery ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))`` pushes
+   back toward S within the usable authority ``e = authority - sampling_margin``; mode
+   ``'recovering'``. The nominal is never passed through.
+5. **Inside S** the QP (:mod:`safety_filter.qp`) is solved; its answer is used only if OSQP
+   says solved and the answer passes an explicit constraint check. Otherwise the same
+   constructive formula (feasible by construction under the acceleration-authority
+   certificate, METHOD 4.4) is used; mode ``'fallback'`` with the reason.
+6. The torque is clipped to the box (in full-torque terms) and converted to the driver's
+   convention.
+
+Units: [rad], [rad/s], [rad/s^2], [N m] (prismatic joints: [m], [m/s], [m/s^2], [N]).
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from dataclasses import dataclass
+from enum import Enum
+from typing import Any
+
+import numpy as np
+
+from safety_filter.barriers import BarrierState, evaluate_barriers
+from safety_filter.certificate import Certificate, CertificateError
+from safety_filter.dynamics import Dynamics
+from safety_filter.errors import SafetyFilterError
+from safety_filter.model import RobotModel
+from safety_filter.qp import DEFAULT_EPS, DEFAULT_MAX_ITER, AccelerationQP
+
+GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
+HOLD_TIME_CONSTANT_PERIODS = 20.0  # default hold damping: velocity time constant [periods]
+CHECK_TOLERANCE = 1e-6  # relative tolerance of the answer check (times max(1, scale))
+
+
+class FilterMode(str, Enum):
+    """What produced the torque of a step (the string values are what diagnostics show)."""
+
+    FILTERED = 'filtered'  # the QP answer, checked
+    FALLBACK = 'fallback'  # constructive fallback: the solver failed or its answer did not check
+    RECOVERING = 'recovering'  # state outside S: pushing back toward S
+    REJECTED = 'rejected'  # invalid input: hold command
+
+    def __str__(self) -> str:
+        return self.value
+
+
+@dataclass(slots=True)
+class FilterOutput:
+    """Result of one filter step. Arrays have shape (n,), in the model's joint order.
+
+    Attributes:
+        torque: torque to send, in the driver's convention [N m]; its full-torque form is
+            always inside the torque box.
+        mode: which branch produced it (:class:`FilterMode`).
+        intervention: ``|u* - u_nom|`` (2-norm, full-torque terms) [N m]; NaN when the
+            nominal was invalid.
+        barrier_margin: smallest of ``hp, hn, bp, bn`` per joint (negative: outside S);
+            NaN when the state was invalid.
+        active_upper, active_lower: the acceleration bound ``Ap`` / ``An`` is active.
+        torque_saturated: the full torque is at the box.
+        solve_time_s: time spent in the QP update and solve [s] (0 when not run).
+        solver_status: the solver's status text; ``'nominal feasible'`` when the nominal
+            met every constraint (it is then the QP's minimiser and is sent unchanged, no
+            solve needed); ``'not run'`` when recovering or rejected.
+        reason: why the step was not ``'filtered'``; empty when it was.
+    """
+
+    torque: np.ndarray
+    mode: FilterMode
+    intervention: float
+    barrier_margin: np.ndarray
+    active_upper: np.ndarray
+    active_lower: np.ndarray
+    torque_saturated: np.ndarray
+    solve_time_s: float
+    solver_status: str
+    reason: str
+
+
+class _StepDynamics:
+    """``M(q)`` and ``h(q, v)`` written into preallocated arrays (private).
+
+    With Pinocchio behind :class:`Dynamics` it calls CRBA and the nonlinear effects directly:
+    :meth:`Dynamics.mass_and_bias` returns new arrays and symmetrises with ``np.triu`` twice,
+    which costs several times the dynamics themselves at a 7-joint step. The tests check
+    that both give the same numbers.
+    """
+
+    def __init__(self, dynamics: Dynamics) -> None:
+        self.dynamics = dynamics
+        n = dynamics.n
+        self._viscous = np.array(dynamics.model.viscous_friction)
+        self._coulomb = np.array(dynamics.model.coulomb_friction)
+        self._has_viscous = bool(np.any(self._viscous != 0.0))
+        self._has_coulomb = bool(np.any(self._coulomb != 0.0))
+        rows, cols = np.tril_indices(n, -1)
+        self._lower_flat = rows * n + cols
+        self._upper_flat = cols * n + rows
+        self._scratch = np.empty(n)
+        chain = getattr(dynamics, '_pin', None)
+        self._pin: Any = None
+        if chain is not None and all(hasattr(chain, name) for name in ('_pin', 'model', 'data')):
+            self._pin = chain._pin
+            self._pin_model = chain.model
+            self._pin_data = chain.data
+
+    @property
+    def accelerated(self) -> bool:
+        """True when the direct Pinocchio path is used."""
+        return self._pin is not None
+
+    def mass_and_bias(self, q: np.ndarray, v: np.ndarray, mass_out: np.ndarray,
+                      bias_out: np.ndarray) -> None:
+        if self._pin is None:
+            mass, bias = self.dynamics.mass_and_bias(q, v)
+            mass_out[...] = mass
+            bias_out[...] = bias
+            return
+        mass_out[...] = self._pin.crba(self._pin_model, self._pin_data, q)
+        flat = mass_out.reshape(-1)
+        flat[self._lower_flat] = flat[self._upper_flat]  # CRBA fills the upper triangle
+        bias_out[...] = self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v)
+        if self._has_viscous:
+            np.multiply(self._viscous, v, out=self._scratch)
+            bias_out += self._scratch
+        if self._has_coulomb:
+            np.sign(v, out=self._scratch)
+            self._scratch *= self._coulomb
+            bias_out += self._scratch
+
+    def gravity(self, q: np.ndarray) -> np.ndarray:
+        if self._pin is None:
+            return self.dynamics.gravity_torque(q)
+        return np.array(self._pin.computeGeneralizedGravity(self._pin_model, self._pin_data, q))
+
+
+def constructive_acceleration(
+    acceleration_nominal: np.ndarray,
+    accel_lower: np.ndarray,
+    accel_upper: np.ndarray,
+    authority: np.ndarray,
+    upper_side_worse: np.ndarray | None = None,
+) -> np.ndarray:
+    """The constructive command of METHOD 4.4 (and the recovery outside S).
+
+    ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))``. Where the interval is empty
+    (only possible outside S, or with a wrong certificate) the end that pushes back toward S
+    is taken, within the authority: ``max(min(Ap_i, e_i), -e_i)`` when the upper side's
+    barrier is the more negative one (``upper_side_worse``), ``min(max(An_i, -e_i), e_i)``
+    otherwise (and when ``upper_side_worse`` is None).
+
+    Args:
+        acceleration_nominal: ``a_nom = M^-1 (u_nom - h)`` [rad/s^2], shape (n,).
+        accel_lower, accel_upper: ``An``, ``Ap`` [rad/s^2].
+        authority: usable authority ``e`` [rad/s^2], positive.
+        upper_side_worse: bool per joint, see above.
+    """
+    low = np.maximum(accel_lower, -authority)
+    high = np.minimum(accel_upper, authority)
+    acceleration = np.minimum(np.maximum(acceleration_nominal, low), high)
+    empty = low > high
+    if empty.any():
+        push_down = np.maximum(high, -authority)
+        push_up = np.minimum(low, authority)
+        side = (np.zeros_like(empty) if upper_side_worse is None
+                else np.asarray(upper_side_worse, dtype=bool))
+        acceleration = np.where(empty, np.where(side, push_down, push_up), acceleration)
+    return acceleration
+
+
+class SafetyFilter:
+    """The certified barrier filter for one arm (METHOD section 3).
+
+    Args:
+        model: the robot model; must be the one the certificate was computed for.
+        certificate: a certified :class:`Certificate` for ``model``.
+        gravity_convention: ``'full'`` if the driver takes the full torque,
+            ``'driver_compensated'`` if it adds ``g(q)`` itself (nominal and output are then
+            torques on top of gravity).
+        torque_weights: weights ``w > 0`` of ``(u - u_nom)^T diag(w) (u - u_nom)``, shape (n,);
+            default ones.
+        payload_mass: payload used for ``M`` and ``h`` [kg]; default the middle of the
+            certificate's payload range (the certificate covers the whole range, so the
+            constraints hold for any payload in it; the middle keeps the model error of the
+            nominal dynamics smallest in the worst case).
+        backend: dynamics backend of :class:`Dynamics` (``'auto'``, ``'numpy'``,
+            ``'pinocchio'``).
+        solver_time_limit_s: OSQP time limit per solve [s]; None: only the iteration cap.
+        rejection_distance: positions farther than this beyond a limit [rad or m] are
+            rejected as a sensor fault.
+        hold_damping: damping of the hold command [N m s/rad], scalar or shape (n,);
+            default ``M_ii(q_mid) / (20 T)``: a velocity time constant of twenty control
+            periods ``T`` at the mid-range configuration (stable for the sampled loop as
+            long as ``M_ii(q)`` stays above a tenth of its mid-range value).
+        solver_max_iter, solver_eps: OSQP's iteration cap and tolerance.
+
+    Raises:
+        CertificateMismatch: the certificate belongs to another model.
+        CertificateError: the certificate is not certified or unusable.
+        SafetyFilterError: an invalid option.
+    """
+
+    def __init__(
+        self,
+        model: RobotModel,
+        certificate: Certificate,
+        *,
+        gravity_convention: str = 'full',
+        torque_weights: np.ndarray | None = None,
+        payload_mass: float | None = None,
+        backend: str = 'auto',
+        solver_time_limit_s: float | None = None,
+        rejection_distance: float = 0.2,
+        hold_damping: float | np.ndarray | None = None,
+        solver_max_iter: int = DEFAULT_MAX_ITER,
+        solver_eps: float = DEFAULT_EPS,
+    ) -> None:
+        certificate.check_model(model)
+        if not certificate.certified:
+            reasons = '; '.join(certificate.reasons) or 'no reason recorded'
+            raise CertificateError(f'the certificate is not certified ({reasons}); the filter '
+                                   'refuses to run on it')
+        if gravity_convention not in GRAVITY_CONVENTIONS:
+            raise SafetyFilterError(f'gravity_convention must be one of {GRAVITY_CONVENTIONS}, '
+                                    f'got {gravity_convention!r}')
+        if not (math.isfinite(rejection_distance) and rejection_distance >= 0.0):
+            raise SafetyFilterError(
+                f'rejection_distance must be finite and >= 0, got {rejection_distance}')
+        n = model.n_joints
+        low, high = certificate.payload_mass_range
+        if payload_mass is None:
+            payload_mass = 0.5 * (float(low) + float(high))
+        if not (math.isfinite(payload_mass) and payload_mass >= 0.0):
+            raise SafetyFilterError(f'payload_mass must be finite and >= 0, got {payload_mass}')
+        usable = np.array(certificate.authority - certificate.sampling_margin)
+        if not np.all(usable > 0.0):
+            raise CertificateError('the certificate leaves no usable authority '
+                                   '(authority <= sampling_margin) at some joint')
+
+        self.model = model
+        self.certificate = certificate
+        self.n = n
+        self.gravity_convention = gravity_convention
+        self.payload_mass = float(payload_mass)
+        self.rejection_distance = float(rejection_distance)
+        self.dynamics = Dynamics(model, self.payload_mass, backend=backend)
+        self._dyn = _StepDynamics(self.dynamics)
+        self._driver = gravity_convention == 'driver_compensated'
+
+        def frozen(values: Any) -> np.ndarray:
+            array = np.array(values, dtype=float)
+            array.flags.writeable = False
+            return array
+
+        self.torque_limit = frozen(certificate.effort_limit)
+        self.usable_authority = frozen(usable)
+        self._lower = frozen(certificate.position_lower)
+        self._upper = frozen(certificate.position_upper)
+        self._gamma = frozen(certificate.gamma)
+        self._beta = frozen(certificate.beta)
+        self._margin = frozen(certificate.sampling_margin)
+        self._alpha1 = certificate.alpha1
+        self._alpha2 = certificate.alpha2
+        self._linear = certificate.alpha1.kind == 'linear' and certificate.alpha2.kind == 'linear'
+        self._accel_tol = frozen(CHECK_TOLERANCE * np.maximum(1.0, usable))
+        self._neg_accel_tol = frozen(-self._accel_tol)
+        self._torque_tol = frozen(CHECK_TOLERANCE * np.maximum(1.0, self.torque_limit))
+        self._torque_check_bound = frozen(self.torque_limit + self._torque_tol)
+        self._torque_saturation = frozen(self.torque_limit - self._torque_tol)
+        self._neg_torque_limit = frozen(-self.torque_limit)
+
+        q_mid = 0.5 * (self._lower + self._upper)
+        mass_mid = self.dynamics.mass_matrix(q_mid)
+        if hold_damping is None:
+            damping = np.diag(mass_mid) * certificate.control_rate_hz \
+                / HOLD_TIME_CONSTANT_PERIODS
+        else:
+            damping = np.broadcast_to(np.asarray(hold_damping, dtype=float), (n,)).copy()
+        if not (np.all(np.isfinite(damping)) and np.all(damping >= 0.0)):
+            raise SafetyFilterError(f'hold_damping must be finite and >= 0, got {hold_damping}')
+        self.hold_damping = frozen(damping)
+
+        self._qp = AccelerationQP(self.torque_limit, usable, torque_weights, eps=solver_eps,
+                                  max_iter=solver_max_iter, time_limit_s=solver_time_limit_s,
+                                  mass_hint=mass_mid)
+        self.torque_weights = self._qp.weights
+
+        # Preallocated per-step buffers. Rows of the (2, n) arrays: [upper side, lower side].
+        self._inputs = np.empty((3, n))
+        self._inputs_flat = self._inputs.reshape(-1)
+        self._gaps = np.empty((2, n))  # [a - Ap; An - a]
+        self._finite = np.empty((3, n), dtype=bool)
+        # Barrier rows [hp; hn; bp; bn; Ap; An] = A q + B v + C for linear alpha1, alpha2:
+        #   hp = upper - q, hn = q - lower, bp = gamma hp - v, bn = gamma hn + v,
+        #   Ap = beta bp - gamma v - mu, An = -beta bn - gamma v + mu.
+        g, b, mu = self._gamma, self._beta, self._margin
+        ones = np.ones(n)
+        self._row_q = np.stack([-ones, ones, -g, g, -b * g, -b * g])
+        self._row_v = np.stack([0 * ones, 0 * ones, -ones, ones, -(b + g), -(b + g)])
+        self._row_const = np.stack([self._upper, -self._lower, g * self._upper,
+                                    -g * self._lower, b * g * self._upper - mu,
+                                    b * g * self._lower + mu])
+        self._rows = np.empty((6, n))
+        self._rows_work = np.empty((6, n))
+        self._margins = self._rows[:4]  # hp, hn, bp, bn
+        self._positions = self._rows[:2]  # hp, hn
+        self._accel_upper = self._rows[4]
+        self._accel_lower = self._rows[5]
+        self._mass = np.empty((n, n))
+        self._bias = np.empty(n)
+        self._torque_full = np.empty(n)
+        self._work = np.empty(n)
+        self._a_nom: np.ndarray | None = None
+        self._last_q = np.zeros(n)
+        self._has_last_q = False
+        self._shape = (n,)
+        self.mode_counts: dict[FilterMode, int] = {}
+        self.reason_counts: Counter[str] = Counter()
+        self.reset()
+
+    # ------------------------------------------------------------------ diagnostics
+    def reset(self) -> None:
+        """Forget the warm start, the last valid position and the counters."""
+        self._qp.reset_warm_start()
+        self._has_last_q = False
+        self.mode_counts = {mode: 0 for mode in FilterMode}
+        self.reason_counts = Counter()
+        self.steps = 0
+
+    def statistics(self) -> dict[str, Any]:
+        """Counts of steps per mode and of the reasons for non-filtered steps."""
+        return {'steps': self.steps,
+                'modes': {mode.value: count for mode, count in self.mode_counts.items()},
+                'reasons': dict(self.reason_counts)}
+
+    def constraint_bounds(self, q: np.ndarray, v: np.ndarray) -> BarrierState:
+        """Barrier values and acceleration bounds at ``(q, v)`` with the certificate's gains
+        and sampling margin (METHOD section 2); batches of shape (..., n) allowed."""
+        c = self.certificate
+        return evaluate_barriers(np.asarray(q, dtype=float), np.asarray(v, dtype=float),
+                                 c.position_lower, c.position_upper, c.gamma, c.beta,
+                                 c.alpha1, c.alpha2, c.sampling_margin)
+
+    # ------------------------------------------------------------------ the step
+    def _evaluate_barriers(self, q: np.ndarray, v: np.ndarray) -> None:
+        """Fill ``_rows = [hp; hn; bp; bn; Ap; An]`` (shape (6, n)) at one state.
+
+        With linear alpha1 and alpha2 every row is affine in ``(q, v)`` joint by joint
+        (METHOD 2), ``row = A q + B v + C`` with constant ``A, B, C``: four ufunc calls for
+        all six rows. Other families go through :func:`evaluate_barriers`.
+        """
+        rows = self._rows
+        if self._linear:
+            np.multiply(self._row_q, q, out=rows)
+            rows += self._row_const
+            np.multiply(self._row_v, v, out=self._rows_work)
+            rows += self._rows_work
+        else:
+            state = evaluate_barriers(q, v, self._lower, self._upper, self._gamma, self._beta,
+                                      self._alpha1, self._alpha2, self._margin)
+            rows[0], rows[1] = state.margin_upper, state.margin_lower
+            rows[2], rows[3] = state.barrier_upper, state.barrier_lower
+            rows[4], rows[5] = state.accel_upper, state.accel_lower
+
+    def step(self, q: Any, v: Any, u_nom: Any) -> FilterOutput:
+        """Filter one nominal torque at the measured state.
+
+        Args:
+            q: joint positions [rad or m], shape (n,).
+            v: joint velocities [rad/s or m/s], shape (n,).
+            u_nom: nominal torque [N m or N] in the driver's convention, shape (n,).
+
+        Returns:
+            A :class:`FilterOutput`; invalid input gives mode ``'rejected'``, never an
+            exception.
+        """
+        # The body is written for speed (it runs at the control rate): preallocated
+        # buffers, in-place ufuncs, few reductions. See benchmarks/bench_filter_step.py.
+        try:
+            q_in = np.asarray(q, dtype=float)
+            v_in = np.asarray(v, dtype=float)
+            u_in = np.asarray(u_nom, dtype=float)
+        except (TypeError, ValueError) as err:
+            return self._reject(q, v, f'input is not numeric: {err}', 'input not numeric')
+        shape = self._shape
+        if q_in.shape != shape or v_in.shape != shape or u_in.shape != shape:
+            return self._reject(q, v, f'expected arrays of shape {shape}, got q {q_in.shape}, '
+                                f'v {v_in.shape}, u_nom {u_in.shape}', 'wrong shape')
+        inputs = self._inputs
+        inputs[0] = q_in
+        inputs[1] = v_in
+        inputs[2] = u_in
+        flat = self._inputs_flat
+        if not math.isfinite(flat @ flat):  # NaN, inf, or absurd values (beyond ~1e150)
+            np.isfinite(inputs, out=self._finite)
+            names = [name for name, row in zip(('q', 'v', 'u_nom'), self._finite)
+                     if not row.all()]
+            if names:
+                return self._reject(q_in, v_in, f'non-finite values in {", ".join(names)}',
+                                    'non-finite input')
+            return self._reject(q_in, v_in, 'values beyond 1e150 in the input',
+                                'non-finite input')
+        q, v, u_nom_in = inputs[0], inputs[1], inputs[2]
+
+        self._evaluate_barriers(q, v)
+        barrier_margin = self._margins.min(axis=0)
+        worst = min(barrier_margin.tolist())  # no NaN: inputs are below ~1e154 here
+        if worst < 0.0 and float(self._positions.min()) < -self.rejection_distance:
+            far = [self.model.joint_names[i] for i in range(self.n)
+                   if self._positions[:, i].min() < -self.rejection_distance]
+            return self._reject(q, v, f'position more than {self.rejection_distance:g} beyond '
+                                f'a limit at {", ".join(far)}', 'position far outside limits',
+                                position=q, barrier_margin=barrier_margin, u_nom=u_nom_in)
+        self._last_q[:] = q
+        self._has_last_q = True
+
+        mass, bias = self._mass, self._bias
+        self._dyn.mass_and_bias(q, v, mass, bias)
+        gravity = None
+        if self._driver:
+            gravity = self._dyn.gravity(q)
+            u_full = np.add(u_nom_in, gravity, out=self._torque_full)
+        else:
+            u_full = u_nom_in
+        accel_upper = self._accel_upper
+        accel_lower = self._accel_lower
+        self._a_nom = None
+
+        solve_time = 0.0
+        status = 'not run'
+        acceleration = None
+        torque = None
+        key = reason = ''
+        if worst < 0.0:
+            mode = FilterMode.RECOVERING
+            outside = [self.model.joint_names[i] for i in range(self.n)
+                       if barrier_margin[i] < 0.0]
+            reason = f'state outside the safe set at {", ".join(outside)}'
+            key = 'outside the safe set'
+        elif self._nominal_feasible(u_full):
+            # The nominal meets every constraint, so it is the QP's unique minimiser.
+            mode = FilterMode.FILTERED
+            status = 'nominal feasible'
+            acceleration = self._a_nom
+            torque = u_full.copy()  # passed through exactly
+        else:
+            result = self._qp.solve(mass, bias, u_full, accel_lower, accel_upper)
+            solve_time = result.solve_time_s
+            status = result.status
+            mode = FilterMode.FILTERED
+            if result.solved:
+                acceleration = result.acceleration
+                torque = mass @ acceleration
+                torque += bias
+                key = self._check(acceleration, torque)
+            else:
+                key = f'solver status: {status}'
+            if key:
+                acceleration = torque = None
+                self._qp.reset_warm_start()
+                mode = FilterMode.FALLBACK
+                reason = key
+        if acceleration is None:
+            acceleration = self._constructive(u_full)
+        if torque is None:
+            torque = mass @ acceleration
+            torque += bias
+            if not math.isfinite(torque @ torque):  # only with a broken model: never send NaN
+                return self._reject(q, v, 'the dynamics gave non-finite numbers',
+                                    'non-finite dynamics', position=q,
+                                    barrier_margin=barrier_margin)
+        np.minimum(torque, self.torque_limit, out=torque)  # faster than np.clip
+        np.maximum(torque, self._neg_torque_limit, out=torque)
+        difference = np.subtract(torque, u_full, out=self._work)
+        intervention = math.sqrt(difference @ difference)
+        # Active bounds from a - Ap and An - a (the check wrote them for the QP answer).
+        upper_gap, lower_gap = self._gaps[0], self._gaps[1]
+        if mode is not FilterMode.FILTERED or status == 'nominal feasible':
+            np.subtract(acceleration, accel_upper, out=upper_gap)
+            np.subtract(accel_lower, acceleration, out=lower_gap)
+        active = self._gaps >= self._neg_accel_tol
+        saturated = np.abs(torque) >= self._torque_saturation
+        if gravity is not None:
+            torque -= gravity
+        self.steps += 1
+        self.mode_counts[mode] += 1
+        if key:
+            self.reason_counts[key] += 1
+        return FilterOutput(torque, mode, intervention, barrier_margin, active[0], active[1],
+                            saturated, solve_time, status, reason)
+
+    def _check(self, acceleration: np.ndarray, torque: np.ndarray) -> str:
+        """'' if the QP answer meets every constraint (with tolerance), else the reason.
+
+        ``torque`` is ``M a + h``. Leaves ``a - Ap`` and ``An - a`` in ``_gaps``.
+        """
+        np.abs(torque, out=self._work)
+        if not (self._work <= self._torque_check_bound).all():  # NaN fails too
+            return 'answer failed the check: torque outside the box'
+        gaps = self._gaps
+        np.subtract(acceleration, self._accel_upper, out=gaps[0])
+        np.subtract(self._accel_lower, acceleration, out=gaps[1])
+        if not (gaps <= self._accel_tol).all():
+            return 'answer failed the check: acceleration bound violated'
+        return ''
+
+    def _nominal_feasible(self, u_full: np.ndarray) -> bool:
+        """Whether the nominal (full torque) meets the box and the acceleration bounds.
+
+        Checks the box first, which rules out far-off nominals without a linear solve. Sets
+        ``_a_nom`` when it gets to compute it.
+        """
+        np.abs(u_full, out=self._work)
+        if not (self._work <= self.torque_limit).all():
+            return False
+        a_nom = self._nominal_acceleration(u_full)
+        gaps = self._gaps
+        np.subtract(a_nom, self._accel_upper, out=gaps[0])
+        np.subtract(self._accel_lower, a_nom, out=gaps[1])
+        return bool((gaps <= 0.0).all())
+
+    def _nominal_acceleration(self, u_full: np.ndarray) -> np.ndarray:
+        """``a_nom = M^-1 (u_nom - h)`` at the current state (cached per step)."""
+        if self._a_nom is None:
+            try:
+                self._a_nom = np.linalg.solve(self._mass, u_full - self._bias)
+            except np.linalg.LinAlgError:
+                self._a_nom = np.zeros(self.n)
+        return self._a_nom
+
+    def _constructive(self, u_full: np.ndarray) -> np.ndarray:
+        """Constructive acceleration (METHOD 4.4) for the current state's buffers."""
+        a_nom = self._nominal_acceleration(u_full)
+        rows = self._rows
+        upper_worse = np.minimum(rows[0], rows[2]) < np.minimum(rows[1], rows[3])
+        return constructive_acceleration(a_nom, self._accel_lower, self._accel_upper,
+                                         self.usable_authority, upper_worse)
+
+    def _valid_position(self, q: Any) -> np.ndarray | None:
+        try:
+            position = np.array(q, dtype=float)
+        except (TypeError, ValueError):
+            return None
+        if position.shape != self._shape or not np.all(np.isfinite(position)):
+            return None
+        distance = self.rejection_distance
+        if np.any(position < self._lower - distance) or np.any(position > self._upper + distance):
+            return None
+        return position
+
+    def _reject(
+        self,
+        q: Any,
+        v: Any,
+        reason: str,
+        key: str,
+        *,
+        position: np.ndarray | None = None,
+        barrier_margin: np.ndarray | None = None,
+        u_nom: np.ndarray | None = None,
+    ) -> FilterOutput:
+        """The hold command for an invalid input.
+
+        Its position: ``position`` if given, else the measured ``q`` if it is itself valid
+        (shape (n,), finite, within the rejection distance; it then becomes the last valid
+        position), else the last valid position, else none (zero torque).
+        """
+        n = self.n
+        if position is None:
+            position = self._valid_position(q)
+            if position is not None:
+                self._last_q[:] = position
+                self._has_last_q = True
+        if position is None and self._has_last_q:
+            position = self._last_q
+        torque = np.zeros(n)
+        saturated = np.zeros(n, dtype=bool)
+        intervention = math.nan
+        if position is not None:
+            gravity = self._dyn.gravity(np.array(position, dtype=float))
+            damping = np.zeros(n)
+            try:
+                velocity = np.asarray(v, dtype=float)
+                if velocity.shape == (n,):
+                    damping = np.where(np.isfinite(velocity), -self.hold_damping * velocity, 0.0)
+            except (TypeError, ValueError):
+                pass
+            full = np.clip(gravity + damping, -self.torque_limit, self.torque_limit)
+            if u_nom is not None:
+                nominal_full = u_nom + gravity if self._driver else u_nom
+                intervention = float(np.linalg.norm(full - nominal_full))
+            saturated = np.abs(full) >= self.torque_limit - self._torque_tol
+            torque = full - gravity if self._driver else full
+        if barrier_margin is None:
+            barrier_margin = np.full(n, math.nan)
+        false = np.zeros(n, dtype=bool)
+        self.steps += 1
+        self.mode_counts[FilterMode.REJECTED] += 1
+        self.reason_counts[key] += 1
+        return FilterOutput(torque, FilterMode.REJECTED, intervention, barrier_margin,
+                            false, false.copy(), saturated, 0.0, 'not run', reason)

@@ -1,0 +1,191 @@
+"""The sampled-data margin: acceleration reserved for what happens within one hold period.
+
+The filter computes a torque at each control step and the driver holds it until the next
+one. Over that hold period the acceleration the held torque produces drifts (``M`` and ``h``
+change with the state) and so do the barrier bounds ``An``, ``Ap``. The continuous-time
+argument of METHOD section 2 needs ``An <= a(t) <= Ap(t)`` at every instant, not only at
+the sample. So the filter enforces the bounds tightened by a margin ``delta`` [rad/s^2]::
+
+    An + delta <= a(t_k) <= Ap - delta
+
+and ``delta`` must cover the drift ``|a(t) - a(t_k)| + |A(t) - A(t_k)|`` over the hold
+period. Then the ZCBF inequality holds throughout the period and the safe set stays
+invariant under the sampled filter, exactly as in continuous time.
+
+A worst-case analytic bound on the drift is far too conservative (METHOD 5.1), so it is
+estimated from one-period rollouts of the model: states sampled in the safe set (half of
+them on the barrier boundary), accelerations the filter could command there (inside the
+tightened bounds, with the torque inside its box), the torque held while the model is
+integrated with RK4, the largest drift per joint kept, and an inflation factor applied.
+The margin is derived for ``sampling_factor`` control periods so that a controller that runs
+that much slower (missed deadlines, a slower driver) is still covered.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from safety_filter.alphas import ClassK
+from safety_filter.barriers import evaluate_barriers
+from safety_filter.dynamics import mass_matrix_batch, rnea_batch
+from safety_filter.model import RobotModel
+
+
+@dataclass(frozen=True)
+class Gains:
+    """Per-joint barrier gains and the class-K families (arrays of shape (n,))."""
+
+    gamma: np.ndarray
+    beta: np.ndarray
+    alpha1: ClassK
+    alpha2: ClassK
+
+
+class BatchPlant:
+    """Batched forward dynamics with a per-sample payload mass.
+
+    With a few distinct payload masses, each group is evaluated with its own model; with
+    many, ``M`` and ``h`` are evaluated at zero and unit payload and combined (both are
+    affine in the payload mass).
+    """
+
+    def __init__(self, model: RobotModel, payload_mass: np.ndarray) -> None:
+        self.model = model
+        self.mass = np.asarray(payload_mass, dtype=float)
+        self.viscous = np.array(model.viscous_friction)
+        self.coulomb = np.array(model.coulomb_friction)
+        levels = np.unique(self.mass)
+        self._groups = ([(level, self.mass == level) for level in levels]
+                        if len(levels) <= 4 else None)
+
+    def _evaluate(self, function, *args: np.ndarray) -> np.ndarray:  # noqa: ANN001
+        if self._groups is not None:
+            out = None
+            for level, mask in self._groups:
+                part = function(self.model, *(x[mask] for x in args), payload_mass=level)
+                if out is None:
+                    out = np.empty((len(self.mass),) + part.shape[1:])
+                out[mask] = part
+            return out
+        base = function(self.model, *args, payload_mass=0.0)
+        unit = function(self.model, *args, payload_mass=1.0) - base
+        return base + self.mass.reshape(self.mass.shape + (1,) * (base.ndim - 1)) * unit
+
+    def mass_matrix(self, q: np.ndarray) -> np.ndarray:
+        """``M(q)`` per sample, shape (N, n, n)."""
+        return self._evaluate(mass_matrix_batch, q)
+
+    def bias(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """``h(q, v)`` per sample, shape (N, n)."""
+        rigid = self._evaluate(lambda model, x, y, payload_mass: rnea_batch(
+            model, x, y, payload_mass=payload_mass), q, v)
+        return rigid + self.viscous * v + self.coulomb * np.sign(v)
+
+    def acceleration(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """``M^-1 (u - h)`` per sample."""
+        return np.linalg.solve(self.mass_matrix(q), (u - self.bias(q, v))[..., None])[..., 0]
+
+
+def sample_safe_states(
+    model: RobotModel, gains: Gains, count: int, rng: np.random.Generator,
+    boundary_fraction: float = 0.5,
+) -> tuple[np.ndarray, np.ndarray]:
+    """States in the safe set S; ``boundary_fraction`` of the joints' velocities on b = 0.
+
+    Positions: uniform over the joint box, with a third drawn close to a limit.
+    Velocities: inside each joint's slice of S, either uniform or on one of its two edges.
+    """
+    n = model.n_joints
+    lower, upper = np.array(model.position_lower), np.array(model.position_upper)
+    span = upper - lower
+    u = rng.random((count, n))
+    near = rng.random((count, n)) < 1.0 / 3.0
+    edge = np.where(rng.random((count, n)) < 0.5, 0.0, 1.0)
+    closeness = rng.random((count, n)) ** 4
+    fraction = np.where(near, np.abs(edge - closeness), u)
+    q = lower + fraction * span
+    v_hi = gains.gamma * gains.alpha1.value(upper - q)
+    v_lo = -gains.gamma * gains.alpha1.value(q - lower)
+    t = rng.random((count, n))
+    on_edge = rng.random((count, n)) < boundary_fraction
+    t = np.where(on_edge, np.where(rng.random((count, n)) < 0.5, 0.0, 1.0), t)
+    v = v_lo + t * (v_hi - v_lo)
+    return q, v
+
+
+def estimate_sampling_margin(
+    model: RobotModel,
+    gains: Gains,
+    hold_period_s: float,
+    samples: int = 2000,
+    substeps: int = 2,
+    inflation: float = 1.5,
+    current_margin: np.ndarray | None = None,
+    acceleration_envelope: np.ndarray | None = None,
+    seed: int = 0,
+) -> np.ndarray:
+    """Acceleration margin ``delta`` [rad/s^2] per joint covering one hold period.
+
+    Args:
+        model: the robot model (payload masses are sampled over its payload range).
+        gains: the barrier gains the filter will use.
+        hold_period_s: the longest hold period to cover [s].
+        samples: rolled-out states.
+        substeps: RK4 steps per hold period (the drift is tracked at each step's end).
+        inflation: factor applied to the largest drift found (>= 1).
+        current_margin: margin the commanded accelerations already respect.
+        acceleration_envelope: per-joint bound on the commanded acceleration that the
+            filter enforces, if any [rad/s^2].
+        seed: random seed.
+    """
+    rng = np.random.default_rng(seed)
+    n = model.n_joints
+    umax = np.array(model.effort_limit)
+    margin = np.zeros(n) if current_margin is None else np.asarray(current_margin, float)
+    q, v = sample_safe_states(model, gains, samples, rng)
+    # Three payload levels (both ends and the middle) keep the rollouts to one model
+    # evaluation per sample; the drift is smooth in the payload mass.
+    levels = np.linspace(model.payload.mass_min, model.payload.mass_max, 3)
+    payload = levels[rng.integers(0, 3, samples)]
+    plant = BatchPlant(model, payload)
+    start = evaluate_barriers(q, v, model.position_lower, model.position_upper, gains.gamma,
+                              gains.beta, gains.alpha1, gains.alpha2, margin)
+    mass = plant.mass_matrix(q)
+    bias = plant.bias(q, v)
+    # Accelerations the filter may command: inside the bounds, torque inside the box. Draw
+    # from the bounds' corners and interior, then pull the torque into the box.
+    lo = np.minimum(start.accel_lower, start.accel_upper)
+    hi = np.maximum(start.accel_lower, start.accel_upper)
+    if acceleration_envelope is not None:
+        lo = np.clip(lo, -acceleration_envelope, acceleration_envelope)
+        hi = np.clip(hi, -acceleration_envelope, acceleration_envelope)
+    pick = rng.random((samples, n))
+    corner = rng.random((samples, n)) < 0.5
+    pick = np.where(corner, np.round(pick), pick)
+    accel = lo + pick * (hi - lo)
+    torque = np.einsum('nij,nj->ni', mass, accel) + bias
+    torque = np.clip(torque, -umax, umax)
+    accel0 = np.linalg.solve(mass, (torque - bias)[..., None])[..., 0]
+    drift = np.zeros(n)
+    dt = hold_period_s / substeps
+    qk, vk = q, v
+    k1v = accel0
+    for _ in range(substeps):
+        k1q = vk
+        k2v = plant.acceleration(qk + 0.5 * dt * k1q, vk + 0.5 * dt * k1v, torque)
+        k2q = vk + 0.5 * dt * k1v
+        k3v = plant.acceleration(qk + 0.5 * dt * k2q, vk + 0.5 * dt * k2v, torque)
+        k3q = vk + 0.5 * dt * k2v
+        k4v = plant.acceleration(qk + dt * k3q, vk + dt * k3v, torque)
+        k4q = vk + dt * k3v
+        qk = qk + dt / 6.0 * (k1q + 2 * k2q + 2 * k3q + k4q)
+        vk = vk + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v)
+        now = evaluate_barriers(qk, vk, model.position_lower, model.position_upper,
+                                gains.gamma, gains.beta, gains.alpha1, gains.alpha2, margin)
+        k1v = plant.acceleration(qk, vk, torque)  # the acceleration now; next step's k1
+        bound_drift = np.maximum(np.abs(now.accel_upper - start.accel_upper),
+                                 np.abs(now.accel_lower - start.accel_lower))
+        drift = np.maximum(drift, np.max(np.abs(k1v - accel0) + bound_drift, axis=0))
+    return inflation * drift

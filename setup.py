@@ -1,0 +1,63 @@
+"""Packaging for the safety_filter ROS 2 package (ament_python)."""
+
+from glob import glob
+
+from setuptools import find_packages, setup
+
+PACKAGE_NAME = 'safety_filter'
+DESCRIPTION = 'A certified control-barrier-function safety filter for torque-controlled arms.'
+
+setup(
+    name=PACKAGE_NAME,
+    # Keep in step with <version> in package.xml.
+    version='0.1.0',
+    description=DESCRIPTION,
+    maintainer='Safety Filter Maintainers',
+    maintainer_email='maintainers@safety-filter.invalid',
+    license='Apache-2.0',
+    packages=find_packages(exclude=['test']),
+    package_data={
+        PACKAGE_NAME: ['robots/*.urdf', 'robots/*.yaml', 'py.typed'],
+    },
+    data_files=[
+        ('share/ament_index/resource_index/packages', ['resource/' + PACKAGE_NAME]),
+        ('share/' + PACKAGE_NAME, ['package.xml']),
+        ('share/' + PACKAGE_NAME + '/launch', glob('launch/*.launch.py')),
+        ('share/' + PACKAGE_NAME + '/config', glob('config/*.yaml')),
+    ],
+    python_requires='>=3.10',
+    install_requires=[
+        'numpy>=1.24',
+        'scipy>=1.10',
+        'osqp>=0.6.3',
+        'pyyaml>=6',
+        'urdf-parser-py>=0.0.4',
+        'matplotlib>=3.7',
+        'tqdm>=4.60',
+        'rosbags>=0.9.20',
+    ],
+    extras_require={
+        # ROS 2 Jazzy client libraries as wheels (published for CPython 3.11 only);
+        # not needed when the package is built inside a sourced ROS 2 install.
+        'ros': [
+            'ros-jazzy-rclpy',
+            'ros-jazzy-sensor-msgs',
+            'ros-jazzy-std-msgs',
+            'ros-jazzy-diagnostic-msgs',
+            'ros-jazzy-std-srvs',
+            'ros-jazzy-lifecycle-msgs',
+            'ros-jazzy-rcl-interfaces',
+            'ros-jazzy-rmw-fastrtps-cpp',
+        ],
+        # Optional faster rigid-body dynamics backend.
+        'fast': ['pin>=2.7'],
+        # Test tooling and the reference implementations the tests compare against.
+        'test': ['pytest>=7', 'pin>=2.7', 'highspy>=1.5', 'cvxpy>=1.4', 'ruff'],
+    },
+    zip_safe=False,
+    entry_points={
+        'console_scripts': [
+            'safety-filter = safety_filter.cli:main',
+        ],
+    },
+)

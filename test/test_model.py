@@ -1,0 +1,557 @@
+"""Tests of the robot model loader: every validation with a bad input, and the good paths.
+
+Fixtures: ``test/urdf/gripper3.urdf`` (a three-joint arm with a fixed tool frame and two
+independent gripper fingers, written for these tests), mutated inline per case, and the
+demo arms. Expected values are read from the URDF files with ``xml.etree`` and from the
+limits files with ``yaml.safe_load``, not through the loader under test.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+import yaml
+from conftest import (
+    STANDARD_GRAVITY,
+    TEST_URDF,
+    demo_limits_path,
+    demo_limits_spec,
+    demo_urdf_path,
+    origin_of,
+    pinocchio_reference,
+    relative_error,
+    rpy_matrix,
+    urdf_tree,
+)
+
+from safety_filter import (
+    Dynamics,
+    InvalidInertia,
+    InvalidLimits,
+    RobotDescriptionError,
+    RobotModel,
+    SafetyFilterError,
+    UnknownJoint,
+    UnknownLink,
+    UnsupportedChain,
+)
+
+GRIPPER3 = TEST_URDF / 'gripper3.urdf'
+GRIPPER3_TEXT = GRIPPER3.read_text(encoding='utf-8')
+ARM_ONLY = {'tip_link': 'tool'}  # the serial arm yaw, pitch, slide; fingers locked at 0
+
+PITCH_LIMIT = '<limit lower="-1.5" upper="1.5" velocity="2" effort="40"/>'
+ARM_INERTIA = '<inertia ixx="0.0009" ixy="0" ixz="0" iyy="0.02045" iyz="0" izz="0.02045"/>'
+RIGHT_FINGER_END = ('<limit lower="0" upper="0.03" velocity="0.1" effort="10"/>\n  </joint>\n'
+                    '  <link name="finger_right_link">')
+
+
+def mutated(old: str, new: str, text: str = GRIPPER3_TEXT) -> str:
+    """The fixture text with one exact substring replaced (which must occur once)."""
+    assert text.count(old) == 1, old
+    return text.replace(old, new)
+
+
+def with_right_finger_mimic(target: str) -> str:
+    """gripper3 whose right finger mimics ``target``."""
+    return mutated(RIGHT_FINGER_END, RIGHT_FINGER_END.replace(
+        '</joint>', f'<mimic joint="{target}" multiplier="1" offset="0"/>\n  </joint>'))
+
+
+def write(tmp_path: Path, name: str, text: str) -> Path:
+    path = tmp_path / name
+    path.write_text(text, encoding='utf-8')
+    return path
+
+
+# ---------------------------------------------------------------------- bad URDFs
+# (id, URDF text, keyword arguments of from_urdf, exception type, fragments of its message)
+BAD_URDFS = [
+    ('malformed-xml', GRIPPER3_TEXT.replace('</robot>', ''), ARM_ONLY,
+     RobotDescriptionError, ['does not parse']),
+    ('not-xml-at-all', '<robot name="x"><link name="a"></robot>', {},
+     RobotDescriptionError, ['does not parse']),
+    ('no-links', '<robot name="empty"/>', {}, RobotDescriptionError, ['no links']),
+    ('two-roots', mutated('<link name="tool"/>', '<link name="tool"/><link name="orphan"/>'),
+     ARM_ONLY, RobotDescriptionError, ['root', 'orphan']),
+    ('joint-parent-unknown', mutated('<parent link="arm"/>', '<parent link="arm_x"/>'),
+     ARM_ONLY, UnknownLink, ['arm_x']),
+    ('limit-without-velocity', mutated(PITCH_LIMIT, PITCH_LIMIT.replace('velocity="2" ', '')),
+     ARM_ONLY, RobotDescriptionError, ['velocity']),
+    ('limit-without-effort', mutated(PITCH_LIMIT, PITCH_LIMIT.replace('effort="40"', '')),
+     ARM_ONLY, RobotDescriptionError, ['effort']),
+    ('revolute-without-limit', mutated(PITCH_LIMIT, ''), ARM_ONLY,
+     InvalidLimits, ["'pitch'", 'position limits']),
+    ('revolute-lower-equals-upper', mutated(PITCH_LIMIT, PITCH_LIMIT.replace('-1.5', '1.5')),
+     ARM_ONLY, InvalidLimits, ["'pitch'", 'not below']),
+    ('revolute-lower-above-upper', mutated(PITCH_LIMIT, PITCH_LIMIT.replace('-1.5', '1.6')),
+     ARM_ONLY, InvalidLimits, ["'pitch'", 'not below']),
+    ('zero-velocity', mutated(PITCH_LIMIT, PITCH_LIMIT.replace('velocity="2"', 'velocity="0"')),
+     ARM_ONLY, InvalidLimits, ["'pitch'", 'velocity']),
+    ('negative-velocity',
+     mutated(PITCH_LIMIT, PITCH_LIMIT.replace('velocity="2"', 'velocity="-2"')),
+     ARM_ONLY, InvalidLimits, ["'pitch'", 'velocity']),
+    ('zero-effort', mutated(PITCH_LIMIT, PITCH_LIMIT.replace('effort="40"', 'effort="0"')),
+     ARM_ONLY, InvalidLimits, ["'pitch'", 'effort']),
+    ('negative-effort', mutated(PITCH_LIMIT, PITCH_LIMIT.replace('effort="40"', 'effort="-1"')),
+     ARM_ONLY, InvalidLimits, ["'pitch'", 'effort']),
+    ('negative-damping', mutated('damping="0.2"', 'damping="-0.2"'), ARM_ONLY,
+     InvalidLimits, ["'yaw'", 'viscous']),
+    ('negative-friction', mutated('friction="0.1"', 'friction="-0.1"'), ARM_ONLY,
+     InvalidLimits, ["'yaw'", 'Coulomb']),
+    ('zero-axis', mutated('<axis xyz="0 1 0"/>\n    ' + PITCH_LIMIT,
+                          '<axis xyz="0 0 0"/>\n    ' + PITCH_LIMIT),
+     ARM_ONLY, RobotDescriptionError, ["'pitch'", 'axis']),
+    ('moving-link-without-inertial',
+     mutated('<link name="arm">\n    <inertial>\n      <origin xyz="0.2 0 0"/>\n'
+             '      <mass value="1.5"/>\n      ' + ARM_INERTIA + '\n    </inertial>',
+             '<link name="arm">'),
+     ARM_ONLY, InvalidInertia, ["'arm'", 'pitch']),
+    ('inertial-without-mass', mutated('<mass value="1.5"/>', ''), ARM_ONLY,
+     RobotDescriptionError, ['mass']),
+    ('inertial-without-inertia', mutated(ARM_INERTIA, ''), ARM_ONLY,
+     InvalidInertia, ["'arm'", 'inertia']),
+    ('zero-mass', mutated('<mass value="1.5"/>', '<mass value="0"/>'), ARM_ONLY,
+     InvalidInertia, ["'arm'", 'mass']),
+    ('negative-mass', mutated('<mass value="1.5"/>', '<mass value="-1.5"/>'), ARM_ONLY,
+     InvalidInertia, ["'arm'", 'mass']),
+    ('nan-mass', mutated('<mass value="1.5"/>', '<mass value="nan"/>'), ARM_ONLY,
+     InvalidInertia, ["'arm'", 'mass']),
+    ('nan-inertia', mutated(ARM_INERTIA, ARM_INERTIA.replace('iyy="0.02045"', 'iyy="nan"')),
+     ARM_ONLY, InvalidInertia, ["'arm'", 'non-finite']),
+    ('inertia-negative-moment',
+     mutated(ARM_INERTIA, ARM_INERTIA.replace('ixx="0.0009"', 'ixx="-0.0009"')),
+     ARM_ONLY, InvalidInertia, ["'arm'", 'positive definite']),
+    # Positive diagonal but indefinite: principal moments of [[1, 2], [2, 1]] are -1, 3.
+    ('inertia-indefinite', mutated(ARM_INERTIA, '<inertia ixx="1" ixy="2" ixz="0" iyy="1" '
+                                                'iyz="0" izz="1"/>'),
+     ARM_ONLY, InvalidInertia, ["'arm'", 'positive definite']),
+    # Principal moments 0.1, 0.1, 1: 0.1 + 0.1 < 1 breaks I1 + I2 >= I3 (a real body has
+    # non-negative second moments along each axis -- a standard fact of rigid bodies).
+    ('inertia-triangle-inequality',
+     mutated(ARM_INERTIA, '<inertia ixx="0.1" ixy="0" ixz="0" iyy="0.1" iyz="0" izz="1"/>'),
+     ARM_ONLY, InvalidInertia, ["'arm'", 'triangle']),
+]
+
+
+@pytest.mark.parametrize('text, kwargs, error, fragments',
+                         [pytest.param(*case[1:], id=case[0]) for case in BAD_URDFS])
+def test_bad_urdf_is_rejected(text: str, kwargs: dict[str, Any], error: type,
+                              fragments: list[str]) -> None:
+    with pytest.raises(error) as info:
+        RobotModel.from_urdf(text, **kwargs)
+    for fragment in fragments:
+        assert fragment in str(info.value)
+    assert isinstance(info.value, SafetyFilterError)
+
+
+def test_triangle_inequality_accepts_the_equality_case() -> None:
+    """A thin plate has principal moments a, b, a + b (perpendicular-axis theorem, a common
+    textbook fact): the equality case of I1 + I2 >= I3 is physical and must be accepted."""
+    plate = '<inertia ixx="0.01" ixy="0" ixz="0" iyy="0.03" iyz="0" izz="0.04"/>'
+    model = RobotModel.from_urdf(mutated(ARM_INERTIA, plate), **ARM_ONLY)
+    assert model.body_inertia[1][2, 2] == pytest.approx(0.04)
+
+
+def test_missing_urdf_file(tmp_path: Path) -> None:
+    for missing in (tmp_path / 'nope.urdf', str(tmp_path / 'nope.urdf')):
+        with pytest.raises(RobotDescriptionError, match='not found'):
+            RobotModel.from_urdf(missing)
+
+
+def test_unknown_joint_names_the_joint() -> None:
+    with pytest.raises(UnknownJoint) as info:
+        RobotModel.from_urdf(GRIPPER3, joints=['yaw', 'elbow_x'])
+    assert info.value.joint == 'elbow_x'
+    assert 'elbow_x' in str(info.value) and 'pitch' in info.value.known
+    with pytest.raises(UnknownJoint, match='finger_x'):
+        RobotModel.from_urdf(GRIPPER3, tip_link='tool', locked_positions={'finger_x': 0.0})
+    with pytest.raises(UnknownJoint, match='finger_y'):
+        RobotModel.from_urdf(GRIPPER3, limits={'locked_joints': {'finger_y': 0.0}},
+                             tip_link='tool')
+
+
+@pytest.mark.parametrize('kwargs', [{'tip_link': 'hand'}, {'base_link': 'hand'},
+                                    {'base_link': 'hand', 'tip_link': 'tool'}])
+def test_unknown_link_names_the_link(kwargs: dict[str, str]) -> None:
+    with pytest.raises(UnknownLink) as info:
+        RobotModel.from_urdf(GRIPPER3, **kwargs)
+    assert info.value.link == 'hand' and 'hand' in str(info.value)
+
+
+# ---------------------------------------------------------------------- bad chain selections
+BAD_SELECTIONS = [
+    ('mimic-joint-in-chain', with_right_finger_mimic('finger_left'),
+     {'joints': ['yaw', 'pitch', 'slide', 'finger_right']}, UnsupportedChain,
+     ["'finger_right'", 'mimic']),
+    ('mimic-follows-a-chain-joint', with_right_finger_mimic('slide'), ARM_ONLY,
+     UnsupportedChain, ["'finger_right'", "'slide'"]),
+    ('mimic-of-unknown-joint', with_right_finger_mimic('nosuch'), ARM_ONLY,
+     UnsupportedChain, ["'finger_right'", 'mimic']),
+    ('two-sibling-fingers', GRIPPER3_TEXT,
+     {'joints': ['yaw', 'pitch', 'slide', 'finger_left', 'finger_right']}, UnsupportedChain,
+     ['finger_left', 'finger_right', 'branches']),
+    ('default-selection-branches', GRIPPER3_TEXT, {}, UnsupportedChain, ['branches']),
+    ('joints-out-of-order', GRIPPER3_TEXT, {'joints': ['pitch', 'yaw']}, UnsupportedChain,
+     ["'pitch'", "'yaw'"]),
+    ('floating-joint-selected',
+     mutated('name="finger_left" type="prismatic"', 'name="finger_left" type="floating"'),
+     {'joints': ['yaw', 'pitch', 'slide', 'finger_left']}, UnsupportedChain,
+     ["'finger_left'", 'floating']),
+    ('floating-joint-on-tip-path',
+     mutated('name="finger_left" type="prismatic"', 'name="finger_left" type="floating"'),
+     {'tip_link': 'finger_left_link'}, UnsupportedChain, ["'finger_left'", 'floating']),
+    ('planar-joint-as-rigid-load',
+     mutated('name="finger_left" type="prismatic"', 'name="finger_left" type="planar"'),
+     ARM_ONLY, UnsupportedChain, ["'finger_left'", 'planar']),
+    ('empty-joint-list', GRIPPER3_TEXT, {'joints': []}, UnsupportedChain, ['empty']),
+    ('only-fixed-joints', GRIPPER3_TEXT, {'tip_link': 'base_link'}, UnsupportedChain,
+     ['no movable joint']),
+    ('tip-not-below-base', GRIPPER3_TEXT, {'base_link': 'arm', 'tip_link': 'column'},
+     UnsupportedChain, ["'column'", "'arm'"]),
+    ('joints-not-below-base', GRIPPER3_TEXT, {'base_link': 'arm', 'joints': ['yaw', 'pitch']},
+     UnsupportedChain, ["'yaw'", "'arm'"]),
+    ('tip-not-on-last-joint', GRIPPER3_TEXT, {'joints': ['yaw', 'pitch'], 'tip_link': 'column'},
+     UnsupportedChain, ["'column'"]),
+    ('locked-joint-also-in-chain', GRIPPER3_TEXT,
+     {'tip_link': 'tool', 'locked_positions': {'slide': 0.1}}, InvalidLimits, ["'slide'"]),
+    ('locked-position-outside-limits', GRIPPER3_TEXT,
+     {'tip_link': 'tool', 'locked_positions': {'finger_left': 0.1}}, InvalidLimits,
+     ["'finger_left'", 'outside']),
+    ('locked-position-not-finite', GRIPPER3_TEXT,
+     {'tip_link': 'tool', 'locked_positions': {'finger_left': math.inf}}, InvalidLimits,
+     ["'finger_left'", 'finite']),
+]
+
+
+@pytest.mark.parametrize('text, kwargs, error, fragments',
+                         [pytest.param(*case[1:], id=case[0]) for case in BAD_SELECTIONS])
+def test_bad_chain_selection_is_rejected(text: str, kwargs: dict[str, Any], error: type,
+                                         fragments: list[str]) -> None:
+    with pytest.raises(error) as info:
+        RobotModel.from_urdf(text, **kwargs)
+    for fragment in fragments:
+        assert fragment in str(info.value)
+
+
+# ---------------------------------------------------------------------- bad limits
+def joint_limits(**entry: Any) -> dict[str, Any]:
+    return {'chain': {'tip_link': 'tool'}, 'joints': {'pitch': entry}}
+
+
+# (id, URDF text, limits mapping, fragments of the InvalidLimits message)
+BAD_LIMITS = [
+    ('unknown-top-level-key', GRIPPER3_TEXT, {'chain': {'tip_link': 'tool'}, 'speed': 1},
+     ['unknown keys', 'speed']),
+    ('wrong-format', GRIPPER3_TEXT, {'format': 'safety_filter/limits-0'}, ['format']),
+    ('unknown-chain-key', GRIPPER3_TEXT, {'chain': {'tip': 'tool'}}, ['chain']),
+    ('joints-not-a-mapping', GRIPPER3_TEXT, {'joints': ['pitch']}, ['joints']),
+    ('locked-not-a-mapping', GRIPPER3_TEXT, {'locked_joints': [1]}, ['locked_joints']),
+    ('unknown-joint-entry-key', GRIPPER3_TEXT, joint_limits(speed=1.0), ["'pitch'"]),
+    ('joint-not-in-chain', GRIPPER3_TEXT,
+     {'chain': {'tip_link': 'tool'}, 'joints': {'finger_left': {'velocity': 1.0}}},
+     ['finger_left', 'not in the chain']),
+    ('position-not-a-pair', GRIPPER3_TEXT, joint_limits(position=[0.0]), ["'pitch'"]),
+    ('position-lower-above-upper', GRIPPER3_TEXT, joint_limits(position=[1.0, -1.0]),
+     ["'pitch'", 'not below']),
+    ('position-not-a-number', GRIPPER3_TEXT, joint_limits(position=['a', 1.0]),
+     ["'pitch'", 'number']),
+    ('velocity-not-finite', GRIPPER3_TEXT, joint_limits(velocity=math.inf),
+     ["'pitch'", 'finite']),
+    ('velocity-zero', GRIPPER3_TEXT, joint_limits(velocity=0.0), ["'pitch'", 'positive']),
+    ('effort-negative', GRIPPER3_TEXT, joint_limits(effort=-3.0), ["'pitch'", 'positive']),
+    ('velocity-range-not-around-zero', GRIPPER3_TEXT, joint_limits(velocity=[0.5, 2.0]),
+     ["'pitch'", 'range']),
+    ('friction-negative', GRIPPER3_TEXT, joint_limits(viscous_friction=-0.1),
+     ["'pitch'", '>= 0']),
+    ('continuous-without-position-limits',
+     mutated('name="yaw" type="revolute"', 'name="yaw" type="continuous"'),
+     {'chain': {'tip_link': 'tool'}}, ["'yaw'", 'position limits']),
+    ('no-limit-and-no-velocity', mutated(PITCH_LIMIT, ''),
+     joint_limits(position=[-1.0, 1.0], effort=10.0), ["'pitch'", 'velocity']),
+    ('no-limit-and-no-effort', mutated(PITCH_LIMIT, ''),
+     joint_limits(position=[-1.0, 1.0], velocity=1.0), ["'pitch'", 'effort']),
+    ('payload-negative-mass', GRIPPER3_TEXT,
+     {'chain': {'tip_link': 'tool'}, 'payload': {'mass': [-1.0, 1.0]}}, ['payload']),
+    ('payload-min-above-max', GRIPPER3_TEXT,
+     {'chain': {'tip_link': 'tool'}, 'payload': {'mass': [2.0, 1.0]}}, ['payload']),
+    ('payload-point-two-numbers', GRIPPER3_TEXT,
+     {'chain': {'tip_link': 'tool'}, 'payload': {'point': [0.0, 1.0]}}, ['payload point']),
+    ('payload-unknown-key', GRIPPER3_TEXT,
+     {'chain': {'tip_link': 'tool'}, 'payload': {'inertia': 1.0}}, ['payload']),
+    ('payload-mass-not-numbers', GRIPPER3_TEXT,
+     {'chain': {'tip_link': 'tool'}, 'payload': {'mass': 'heavy'}}, ['payload']),
+    ('gravity-two-numbers', GRIPPER3_TEXT,
+     {'chain': {'tip_link': 'tool'}, 'gravity': [0.0, -9.81]}, ['gravity']),
+]
+
+
+@pytest.mark.parametrize('text, limits, fragments',
+                         [pytest.param(*case[1:], id=case[0]) for case in BAD_LIMITS])
+def test_bad_limits_are_rejected(text: str, limits: dict[str, Any], fragments: list[str]
+                                 ) -> None:
+    with pytest.raises(InvalidLimits) as info:
+        RobotModel.from_urdf(text, limits=limits)
+    for fragment in fragments:
+        assert fragment in str(info.value)
+
+
+def test_limits_file_errors(tmp_path: Path) -> None:
+    with pytest.raises(InvalidLimits, match='not found'):
+        RobotModel.from_urdf(GRIPPER3, limits=tmp_path / 'missing.yaml')
+    malformed = write(tmp_path, 'bad.yaml', 'chain: {tip_link: tool\njoints: [\n')
+    with pytest.raises(InvalidLimits, match='not valid YAML'):
+        RobotModel.from_urdf(GRIPPER3, limits=malformed)
+    unknown = write(tmp_path, 'unknown.yaml', 'chain:\n  tip_link: tool\nspeeds: 3\n')
+    with pytest.raises(InvalidLimits, match='speeds'):
+        RobotModel.from_urdf(GRIPPER3, limits=unknown)
+    not_mapping = write(tmp_path, 'list.yaml', '- 1\n- 2\n')
+    with pytest.raises(InvalidLimits, match='mapping'):
+        RobotModel.from_urdf(GRIPPER3, limits=not_mapping)
+    empty = write(tmp_path, 'empty.yaml', '# nothing\n')
+    assert RobotModel.from_urdf(GRIPPER3, limits=empty, tip_link='tool').n_joints == 3
+
+
+def test_negative_payload_mass_for_the_inertials() -> None:
+    model = RobotModel.from_urdf(GRIPPER3, **ARM_ONLY)
+    with pytest.raises(InvalidLimits, match='payload'):
+        model.body_inertials(-0.5)
+    with pytest.raises(InvalidLimits, match='payload'):
+        model.body_inertials(math.nan)
+
+
+def test_asymmetric_velocity_limit_becomes_tighter_symmetric_bound_with_a_note() -> None:
+    """METHOD section 1: an asymmetric bound is replaced by its tighter symmetric bound and
+    the report says so."""
+    model = RobotModel.from_urdf(GRIPPER3, limits=joint_limits(velocity=[-1.25, 2.0],
+                                                               effort=[-40.0, 30.0]))
+    assert model.velocity_limit[1] == 1.25
+    assert model.effort_limit[1] == 30.0
+    assert any('pitch' in note and 'velocity' in note and '1.25' in note for note in model.notes)
+    assert any('pitch' in note and 'effort' in note for note in model.notes)
+    assert 'note:' in model.describe()
+    symmetric = RobotModel.from_urdf(GRIPPER3, limits=joint_limits(velocity=[-1.5, 1.5]))
+    assert symmetric.velocity_limit[1] == 1.5 and symmetric.notes == ()
+
+
+# ---------------------------------------------------------------------- good paths
+def chain_joint_names_from_xml(urdf: Path | str, tip: str) -> list[str]:
+    """Movable joints from the root to ``tip``, in order (xml.etree)."""
+    root = urdf_tree(urdf)
+    joint_into = {j.find('child').get('link'): j for j in root.iter('joint')}
+    names, link = [], tip
+    while link in joint_into:
+        joint = joint_into[link]
+        if joint.get('type') != 'fixed':
+            names.append(joint.get('name'))
+        link = joint.find('parent').get('link')
+    return names[::-1]
+
+
+def test_chain_by_base_and_tip_by_joints_and_default() -> None:
+    by_tip = RobotModel.from_urdf(GRIPPER3, tip_link='tool')
+    assert by_tip.joint_names == tuple(chain_joint_names_from_xml(GRIPPER3, 'tool'))
+    assert by_tip.joint_names == ('yaw', 'pitch', 'slide')
+    assert by_tip.joint_kinds == ('revolute', 'revolute', 'prismatic')
+    assert list(by_tip.is_prismatic) == [False, False, True]
+    assert by_tip.base_link == 'base_link' and by_tip.tip_link == 'tool'
+    assert by_tip.locked_positions == {'finger_left': 0.0, 'finger_right': 0.0}
+
+    by_base = RobotModel.from_urdf(GRIPPER3, base_link='column', tip_link='finger_left_link')
+    assert by_base.joint_names == ('pitch', 'slide', 'finger_left')
+    assert by_base.base_link == 'column'
+
+    by_joints = RobotModel.from_urdf(GRIPPER3, joints=['yaw', 'pitch', 'slide'])
+    assert by_joints.joint_names == by_tip.joint_names
+    assert by_joints.tip_link == 'carriage'  # default tip: child of the last joint
+    by_carriage = RobotModel.from_urdf(GRIPPER3, tip_link='carriage')
+    assert by_joints.content_hash() == by_carriage.content_hash()
+    # The tool is a massless frame 0.1 m along x of the carriage: only the payload point
+    # (default: tip frame origin) differs between the two tips.
+    assert np.array_equal(by_tip.body_mass, by_carriage.body_mass)
+    assert np.allclose(by_tip.payload_point_in_body, [0.1, 0.0, 0.0])
+    assert np.allclose(by_carriage.payload_point_in_body, 0.0)
+
+    # Default: every movable joint of a URDF without branches (planar2, no limits file).
+    planar = RobotModel.from_urdf(demo_urdf_path('planar2'))
+    assert planar.joint_names == tuple(chain_joint_names_from_xml(demo_urdf_path('planar2'),
+                                                                  'tool'))
+    assert planar.tip_link == 'fore'
+    assert np.array_equal(planar.gravity, STANDARD_GRAVITY)
+
+
+def test_chain_selection_via_limits_mapping_and_keyword_precedence() -> None:
+    from_spec = RobotModel.from_urdf(GRIPPER3, limits={'chain': {'joints': ['yaw', 'pitch']}})
+    assert from_spec.joint_names == ('yaw', 'pitch')
+    assert from_spec.locked_positions['slide'] == 0.0  # the slide rides along, locked
+    keyword = RobotModel.from_urdf(GRIPPER3, limits={'chain': {'joints': ['yaw', 'pitch']}},
+                                   tip_link='tool')
+    assert keyword.joint_names == ('yaw', 'pitch', 'slide')
+
+
+def test_base_below_root_rotates_gravity_and_matches_pinocchio() -> None:
+    """Chain from base_link 'column' (yaw locked at 0.7 rad): gravity is expressed in the
+    column frame, g_column = Rz(0.7)^T g_root, and the dynamics of the two remaining joints
+    equal Pinocchio's reduced model (yaw and fingers locked)."""
+    yaw = 0.7
+    model = RobotModel.from_urdf(GRIPPER3, base_link='column', tip_link='tool',
+                                 locked_positions={'yaw': yaw})
+    assert model.joint_names == ('pitch', 'slide')
+    rotation = rpy_matrix([0.0, 0.0, yaw])  # yaw axis is +z, origin without rotation
+    assert np.allclose(model.gravity, rotation.T @ np.array(STANDARD_GRAVITY), atol=1e-15)
+    reference = pinocchio_reference(GRIPPER3, locked={'yaw': yaw, 'finger_left': 0.0,
+                                                      'finger_right': 0.0})
+    dynamics = Dynamics(model, backend='numpy')
+    for q in ([0.3, 0.1], [-1.2, 0.05], [1.4, 0.19]):
+        q = np.array(q)
+        assert relative_error(dynamics.mass_matrix(q), reference.mass_matrix(q)) < 1e-9
+        assert relative_error(dynamics.gravity_torque(q), reference.gravity(q)) < 1e-9
+
+
+def test_mounted_base_rotates_gravity() -> None:
+    """A URDF whose chain base hangs below the root through a rotated fixed joint (a
+    wall-mounted arm): gravity in base_link is R^T g_root, R from the origin rpy."""
+    mount = ('<robot name="wall">\n  <link name="world"/>\n'
+             '  <joint name="wall_mount" type="fixed">\n    <parent link="world"/>\n'
+             '    <child link="base_link"/>\n'
+             '    <origin xyz="0.1 0.2 1.0" rpy="1.5707963267948966 0.2 -0.4"/>\n  </joint>\n')
+    text = GRIPPER3_TEXT.replace('<robot name="gripper3">\n', mount)
+    model = RobotModel.from_urdf(text, base_link='base_link', tip_link='tool')
+    rotation, _ = origin_of(urdf_tree(text).find("joint[@name='wall_mount']"))
+    assert np.allclose(model.gravity, rotation.T @ np.array(STANDARD_GRAVITY), atol=1e-14)
+    reference = pinocchio_reference(text, locked={'finger_left': 0.0, 'finger_right': 0.0})
+    dynamics = Dynamics(model, backend='numpy')
+    q = np.array([0.4, -0.6, 0.12])
+    assert relative_error(dynamics.gravity_torque(q), reference.gravity(q)) < 1e-9
+
+
+def link_masses_below(urdf: Path, joint_name: str) -> float:
+    """Sum of the <mass> of every link at or below the child of a joint (xml.etree)."""
+    root = urdf_tree(urdf)
+    children: dict[str, list[str]] = {}
+    child_of = {}
+    for joint in root.iter('joint'):
+        children.setdefault(joint.find('parent').get('link'), []).append(
+            joint.find('child').get('link'))
+        child_of[joint.get('name')] = joint.find('child').get('link')
+    masses = {link.get('name'): float(link.find('inertial/mass').get('value'))
+              for link in root.iter('link') if link.find('inertial') is not None}
+    total, stack = 0.0, [child_of[joint_name]]
+    while stack:
+        link = stack.pop()
+        total += masses.get(link, 0.0)
+        stack.extend(children.get(link, []))
+    return total
+
+
+def test_bench6_with_locked_fingers() -> None:
+    urdf = demo_urdf_path('bench6')
+    spec = demo_limits_spec('bench6')
+    model = RobotModel.from_urdf(urdf, limits=demo_limits_path('bench6'))
+    tip = spec['chain']['tip_link']
+    expected_joints = chain_joint_names_from_xml(urdf, tip)
+    assert model.joint_names == tuple(expected_joints)
+    assert model.n_joints == 6
+    # Everything downstream of the first joint moves, the locked gripper included.
+    assert float(np.sum(model.body_mass)) == pytest.approx(
+        link_masses_below(urdf, expected_joints[0]), rel=1e-12)
+    assert model.locked_positions == pytest.approx({'finger_left': 0.02, 'finger_right': 0.02})
+    # Limits: URDF values unless the limits file overrides them.
+    joints = {j.get('name'): j for j in urdf_tree(urdf).iter('joint')}
+    overrides = spec.get('joints') or {}
+    for i, name in enumerate(model.joint_names):
+        limit = joints[name].find('limit')
+        entry = overrides.get(name, {})
+        assert model.position_lower[i] == float(entry.get('position', [limit.get('lower')])[0])
+        assert model.position_upper[i] == float(entry.get('position', [0, limit.get('upper')])[1])
+        assert model.velocity_limit[i] == float(entry.get('velocity', limit.get('velocity')))
+        assert model.effort_limit[i] == float(entry.get('effort', limit.get('effort')))
+        damping = float(joints[name].find('dynamics').get('damping'))
+        assert model.viscous_friction[i] == float(entry.get('viscous_friction', damping))
+    assert overrides, 'bench6_limits.yaml is expected to override at least one limit'
+    assert np.array_equal(model.gravity, spec['gravity'])
+    assert model.payload.mass_min == spec['payload']['mass'][0]
+    assert model.payload.mass_max == spec['payload']['mass'][1]
+    assert model.payload.point == tuple(spec['payload']['point'])
+
+
+def test_limits_overrides_from_a_yaml_file(tmp_path: Path) -> None:
+    spec = {
+        'format': 'safety_filter/limits-1',
+        'chain': {'base_link': 'base_link', 'tip_link': 'tool'},
+        'locked_joints': {'finger_left': 0.01, 'finger_right': 0.02},
+        'joints': {'yaw': {'position': [-1.0, 0.5], 'velocity': 0.7, 'effort': 12.0,
+                           'viscous_friction': 0.3, 'coulomb_friction': 0.4},
+                   'slide': {'position': [0.05, 0.1]}},
+        'payload': {'mass': [0.1, 0.9], 'point': [0.01, 0.0, 0.02]},
+        'gravity': [0.0, 0.0, -9.81],
+    }
+    path = write(tmp_path, 'limits.yaml', yaml.safe_dump(spec))
+    model = RobotModel.from_urdf(GRIPPER3, limits=path)
+    assert list(model.position_lower) == [-1.0, -1.5, 0.05]
+    assert list(model.position_upper) == [0.5, 1.5, 0.1]
+    assert list(model.velocity_limit) == [0.7, 2.0, 0.5]
+    assert list(model.effort_limit) == [12.0, 40.0, 100.0]
+    assert list(model.viscous_friction) == [0.3, 0.0, 0.0]
+    assert list(model.coulomb_friction) == [0.4, 0.0, 0.0]
+    assert model.locked_positions == {'finger_left': 0.01, 'finger_right': 0.02}
+    assert model.payload.mass_min == 0.1 and model.payload.mass_max == 0.9
+    # The payload point is given in the tool frame, 0.1 m along x of the carriage.
+    assert np.allclose(model.payload_point_in_body, [0.11, 0.0, 0.02])
+    assert list(model.gravity) == [0.0, 0.0, -9.81]
+    # URDF friction of yaw (damping 0.2, friction 0.1) applies when not overridden.
+    plain = RobotModel.from_urdf(GRIPPER3, tip_link='tool')
+    assert plain.viscous_friction[0] == 0.2 and plain.coulomb_friction[0] == 0.1
+
+
+def test_model_arrays_are_read_only() -> None:
+    model = RobotModel.from_urdf(GRIPPER3, tip_link='tool')
+    arrays = {name: value for name, value in vars(model).items()
+              if isinstance(value, np.ndarray)}
+    assert {'position_lower', 'velocity_limit', 'effort_limit', 'body_mass', 'body_inertia',
+            'joint_axis', 'gravity', 'is_prismatic'} <= set(arrays)
+    for name, array in arrays.items():
+        with pytest.raises(ValueError):
+            array[(0,) * array.ndim] = 1.0
+    # Views and copies handed out keep the model intact.
+    lower = np.array(model.position_lower)
+    lower[0] = 99.0
+    assert model.position_lower[0] == -2.5
+    mass, _, _ = model.body_inertials(0.5)
+    mass[0] = 99.0
+    assert model.body_mass[0] == 2.0
+
+
+def test_content_hash_is_stable_and_sees_every_limit(tmp_path: Path) -> None:
+    first = RobotModel.from_urdf(GRIPPER3, tip_link='tool')
+    second = RobotModel.from_urdf(GRIPPER3_TEXT, tip_link='tool')
+    assert first.content_hash() == second.content_hash()
+    assert len(first.content_hash()) == 64
+    changed_effort = RobotModel.from_urdf(GRIPPER3, limits=joint_limits(effort=39.0))
+    assert changed_effort.content_hash() != first.content_hash()
+    changed_urdf = RobotModel.from_urdf(
+        mutated(PITCH_LIMIT, PITCH_LIMIT.replace('upper="1.5"', 'upper="1.4"')), **ARM_ONLY)
+    assert changed_urdf.content_hash() != first.content_hash()
+    for entry in ({'velocity': 1.9}, {'viscous_friction': 0.01}, {'coulomb_friction': 0.01},
+                  {'position': [-1.5, 1.49]}):
+        other = RobotModel.from_urdf(GRIPPER3, limits=joint_limits(**entry))
+        assert other.content_hash() != first.content_hash(), entry
+    payload = RobotModel.from_urdf(GRIPPER3, limits={'chain': {'tip_link': 'tool'},
+                                                     'payload': {'mass': [0.0, 0.1]}})
+    assert payload.content_hash() != first.content_hash()
+    locked = RobotModel.from_urdf(GRIPPER3, tip_link='tool',
+                                  locked_positions={'finger_left': 0.03})
+    assert locked.content_hash() != first.content_hash()  # the rigid load moved
+
+
+def test_describe_lists_every_joint() -> None:
+    model = RobotModel.from_urdf(GRIPPER3, tip_link='tool')
+    text = model.describe()
+    for name in model.joint_names:
+        assert name in text
+    assert 'finger_left=0' in text
+    assert repr(model) == "RobotModel('gripper3', joints=['yaw', 'pitch', 'slide'])"

@@ -1,0 +1,244 @@
+"""The filter QP (safety_filter.qp) against an independent solver.
+
+Outside source for the answers: the same QP written in *torque* variables (``u`` directly,
+the acceleration bounds through ``M^-1`` from numpy's ``inv``) and solved by Clarabel, an
+interior-point solver, through CVXPY (METHOD 6: "a second, independent solver as reference
+for the QP"). Our code solves the acceleration form with OSQP (ADMM with polishing) after
+its own scaling, so the two share no formulation code.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from filter_fixtures import demo_arm_and_certificate, random_nominal, random_state_in_safe_set
+
+from safety_filter.errors import SafetyFilterError
+from safety_filter.filter import FilterMode, SafetyFilter
+from safety_filter.qp import (
+    STATUS_SOLVED,
+    STATUS_SOLVED_INACCURATE,
+    AccelerationQP,
+    QPResult,
+    check_acceleration,
+)
+
+cp = pytest.importorskip('cvxpy', reason='reference solver missing: pip install cvxpy clarabel')
+if 'CLARABEL' not in cp.installed_solvers():
+    pytest.skip('Clarabel missing: pip install clarabel', allow_module_level=True)
+
+ARMS = ('planar2', 'bench6', 'reach7')
+STATES_PER_ARM = 40
+AGREEMENT = 1e-6  # max |u - u_ref| / umax
+
+
+class TorqueFormReference:
+    """``min (u - u_nom)^T W (u - u_nom)  s.t.  |u| <= umax, An <= M^-1 (u - h) <= Ap``
+    in CVXPY (parameters, so the problem is compiled once), solved by Clarabel."""
+
+    def __init__(self, n: int, umax: np.ndarray, weights: np.ndarray | None = None) -> None:
+        weights = np.ones(n) if weights is None else np.asarray(weights, dtype=float)
+        self.u = cp.Variable(n)
+        self.inverse = cp.Parameter((n, n))
+        self.offset = cp.Parameter(n)
+        self.lower = cp.Parameter(n)
+        self.upper = cp.Parameter(n)
+        self.nominal = cp.Parameter(n)
+        acceleration = self.inverse @ self.u - self.offset
+        cost = cp.sum(cp.multiply(weights, cp.square(self.u - self.nominal)))
+        self.problem = cp.Problem(cp.Minimize(cost), [
+            self.u <= umax, self.u >= -umax,
+            acceleration <= self.upper, acceleration >= self.lower])
+
+    def solve(self, mass: np.ndarray, bias: np.ndarray, nominal: np.ndarray,
+              lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
+        inverse = np.linalg.inv(mass)
+        self.inverse.value = inverse
+        self.offset.value = inverse @ bias
+        self.lower.value = lower
+        self.upper.value = upper
+        self.nominal.value = nominal
+        self.problem.solve(solver=cp.CLARABEL, tol_gap_abs=1e-12, tol_gap_rel=1e-12,
+                           tol_feas=1e-12, tol_ktratio=1e-10, max_iter=500)
+        assert self.problem.status == cp.OPTIMAL, self.problem.status
+        return np.array(self.u.value)
+
+
+def state_data(filt: SafetyFilter, q: np.ndarray, v: np.ndarray
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``M, h`` from the public Dynamics API and ``An, Ap`` from evaluate_barriers."""
+    mass, bias = filt.dynamics.mass_and_bias(q, v)
+    bounds = filt.constraint_bounds(q, v)
+    return mass, bias, np.array(bounds.accel_lower), np.array(bounds.accel_upper)
+
+
+@pytest.mark.parametrize('arm', ARMS)
+def test_qp_matches_reference_solver(arm: str) -> None:
+    """OSQP's answer equals Clarabel's (torque form) to 1e-6 of the torque limit, on random
+    states in S with nominals inside, 5x and 1000x outside the box."""
+    model, certificate = demo_arm_and_certificate(arm)
+    filt = SafetyFilter(model, certificate)
+    qp = AccelerationQP(filt.torque_limit, filt.usable_authority)
+    reference = TorqueFormReference(filt.n, filt.torque_limit)
+    rng = np.random.default_rng(11)
+    worst = 0.0
+    for _ in range(STATES_PER_ARM):
+        q, v = random_state_in_safe_set(rng, certificate)
+        nominal = random_nominal(rng, certificate)
+        mass, bias, lower, upper = state_data(filt, q, v)
+        result = qp.solve(mass, bias, nominal, lower, upper)
+        assert result.solved, result
+        torque = mass @ result.acceleration + bias
+        expected = reference.solve(mass, bias, nominal, lower, upper)
+        worst = max(worst, float(np.max(np.abs(torque - expected) / filt.torque_limit)))
+    assert worst <= AGREEMENT, f'{arm}: worst relative torque difference {worst:.2e}'
+
+
+@pytest.mark.parametrize('arm', ARMS)
+def test_filter_step_matches_reference_solver(arm: str) -> None:
+    """Through SafetyFilter.step (warm-started sequence): every step inside S is 'filtered'
+    and its torque equals Clarabel's answer to 1e-6 of the torque limit."""
+    model, certificate = demo_arm_and_certificate(arm)
+    filt = SafetyFilter(model, certificate)
+    reference = TorqueFormReference(filt.n, filt.torque_limit)
+    rng = np.random.default_rng(12)
+    for _ in range(STATES_PER_ARM):
+        q, v = random_state_in_safe_set(rng, certificate)
+        nominal = random_nominal(rng, certificate)
+        out = filt.step(q, v, nominal)
+        assert out.mode is FilterMode.FILTERED, (out.mode, out.reason)
+        mass, bias, lower, upper = state_data(filt, q, v)
+        expected = reference.solve(mass, bias, nominal, lower, upper)
+        error = np.max(np.abs(out.torque - expected) / filt.torque_limit)
+        assert error <= AGREEMENT, (arm, error, out.solver_status)
+        assert out.intervention == pytest.approx(np.linalg.norm(expected - nominal),
+                                                 rel=1e-6, abs=1e-6 * filt.torque_limit.max())
+
+
+def test_weighted_qp_matches_reference_solver() -> None:
+    """Non-uniform torque weights: Clarabel with the same weights agrees to 1e-6."""
+    model, certificate = demo_arm_and_certificate('reach7')
+    weights = np.linspace(0.2, 5.0, model.n_joints)
+    filt = SafetyFilter(model, certificate, torque_weights=weights)
+    reference = TorqueFormReference(filt.n, filt.torque_limit, weights)
+    rng = np.random.default_rng(13)
+    for _ in range(20):
+        q, v = random_state_in_safe_set(rng, certificate)
+        nominal = random_nominal(rng, certificate)
+        out = filt.step(q, v, nominal)
+        assert out.mode is FilterMode.FILTERED
+        mass, bias, lower, upper = state_data(filt, q, v)
+        expected = reference.solve(mass, bias, nominal, lower, upper)
+        assert np.max(np.abs(out.torque - expected) / filt.torque_limit) <= AGREEMENT
+
+
+def test_matrix_data_reproduce_the_scaled_problem() -> None:
+    """The CSC data written per step (P's upper triangle, A = [I; U^-1 M D]) rebuild, via
+    scipy.sparse, the dense matrices of the docstring's scaled problem."""
+    import scipy.sparse as sparse
+
+    model, certificate = demo_arm_and_certificate('reach7')
+    filt = SafetyFilter(model, certificate)
+    n = filt.n
+    weights = np.linspace(0.5, 2.0, n)
+    qp = AccelerationQP(filt.torque_limit, filt.usable_authority, weights)
+    rng = np.random.default_rng(3)
+    q, v = random_state_in_safe_set(rng, certificate)
+    mass, bias, lower, upper = state_data(filt, q, v)
+    nominal = random_nominal(rng, certificate)
+    qp.solve(mass, bias, nominal, lower, upper)
+    scale = np.diag(filt.usable_authority)
+    p_dense = scale @ mass @ np.diag(weights) @ mass @ scale
+    c_dense = scale @ mass @ np.diag(weights) @ (bias - nominal)
+    cost_scale = max(p_dense.max(), np.abs(c_dense).max())
+    rows = np.concatenate([np.arange(j + 1) for j in range(n)])
+    indptr = np.concatenate([[0], np.cumsum(np.arange(1, n + 1))])
+    p_rebuilt = sparse.csc_matrix((qp._px, rows, indptr), shape=(n, n)).toarray()
+    np.testing.assert_allclose(p_rebuilt, np.triu(p_dense) / cost_scale, rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(qp._c, c_dense / cost_scale, rtol=1e-12, atol=1e-15)
+    a_indices = np.concatenate([[j, *range(n, 2 * n)] for j in range(n)])
+    a_rebuilt = sparse.csc_matrix((qp._ax, a_indices, np.arange(0, n * (n + 1) + 1, n + 1)),
+                                  shape=(2 * n, n)).toarray()
+    expected = np.vstack([np.eye(n), np.diag(1 / filt.torque_limit) @ mass @ scale])
+    np.testing.assert_allclose(a_rebuilt, expected, rtol=1e-12, atol=1e-15)
+
+
+def test_answer_is_independent_of_warm_start() -> None:
+    """The same problem solved cold and after unrelated solves gives the same answer (to the
+    agreement tolerance): warm starting changes the path, not the minimiser."""
+    model, certificate = demo_arm_and_certificate('bench6')
+    filt = SafetyFilter(model, certificate)
+    rng = np.random.default_rng(4)
+    q, v = random_state_in_safe_set(rng, certificate)
+    data = state_data(filt, q, v)
+    nominal = 1000.0 * filt.torque_limit
+    qp = AccelerationQP(filt.torque_limit, filt.usable_authority)
+    cold = qp.solve(data[0], data[1], nominal, data[2], data[3]).acceleration
+    for _ in range(5):
+        q2, v2 = random_state_in_safe_set(rng, certificate)
+        other = state_data(filt, q2, v2)
+        qp.solve(other[0], other[1], random_nominal(rng, certificate), other[2], other[3])
+    warm = qp.solve(data[0], data[1], nominal, data[2], data[3]).acceleration
+    qp.reset_warm_start()
+    reset = qp.solve(data[0], data[1], nominal, data[2], data[3]).acceleration
+    torque = [data[0] @ a + data[1] for a in (cold, warm, reset)]
+    for other in torque[1:]:
+        assert np.max(np.abs(other - torque[0]) / filt.torque_limit) <= AGREEMENT
+
+
+def test_solver_failure_is_a_status() -> None:
+    """An iteration cap of 1 (OSQP cannot converge in one iteration) gives a result whose
+    status says so and which is not 'solved'; nothing is raised (STYLE: a solve returns a
+    result object)."""
+    model, certificate = demo_arm_and_certificate('reach7')
+    filt = SafetyFilter(model, certificate)
+    qp = AccelerationQP(filt.torque_limit, filt.usable_authority, max_iter=1)
+    rng = np.random.default_rng(5)
+    q, v = random_state_in_safe_set(rng, certificate)
+    mass, bias, lower, upper = state_data(filt, q, v)
+    result = qp.solve(mass, bias, 1000.0 * filt.torque_limit, lower, upper)
+    assert not result.solved
+    assert 'iter' in result.status
+    assert result.acceleration.shape == (filt.n,)
+
+
+def test_status_codes() -> None:
+    """OSQP's documented codes: 1 solved and 2 solved inaccurate (0.6 and 1.x) count as
+    solved; e.g. -2 (0.6) / 7 (1.x), maximum iterations, does not."""
+    a = np.zeros(2)
+    assert QPResult(a, 'solved', STATUS_SOLVED, 10, 0.0).solved
+    assert QPResult(a, 'solved inaccurate', STATUS_SOLVED_INACCURATE, 10, 0.0).solved
+    for code in (-2, 7, 3, -3, 8, -6):
+        assert not QPResult(a, 'x', code, 10, 0.0).solved
+
+
+def test_check_acceleration() -> None:
+    """Hand-made 2-joint cases: inside passes, each violated row is named, NaN fails."""
+    mass = np.array([[2.0, 0.5], [0.5, 1.0]])
+    bias = np.array([1.0, -1.0])
+    lower, upper = np.array([-1.0, -1.0]), np.array([1.0, 1.0])
+    umax = np.array([10.0, 10.0])
+    tol = 1e-9
+    assert check_acceleration(mass, bias, np.array([0.5, -0.5]), lower, upper, umax,
+                              tol, tol) == ''
+    assert 'acceleration' in check_acceleration(mass, bias, np.array([1.1, 0.0]), lower,
+                                                upper, umax, tol, tol)
+    assert 'torque' in check_acceleration(mass, bias, np.array([0.9, 0.9]), lower, upper,
+                                          np.array([1.0, 1.0]), tol, tol)
+    assert check_acceleration(mass, bias, np.array([np.nan, 0.0]), lower, upper, umax,
+                              tol, tol) != ''
+
+
+@pytest.mark.parametrize('kwargs', [
+    {'torque_limit': [1.0, -1.0], 'accel_scale': [1.0, 1.0]},
+    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 0.0]},
+    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 1.0], 'torque_weights': [1.0, -2.0]},
+    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 1.0], 'torque_weights': [1.0]},
+    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 1.0], 'time_limit_s': 0.0},
+    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 1.0], 'max_iter': 0},
+    {'torque_limit': [], 'accel_scale': []},
+])
+def test_invalid_setup_raises(kwargs: dict) -> None:
+    """Configuration errors are exceptions of the package (STYLE: errors)."""
+    with pytest.raises(SafetyFilterError):
+        AccelerationQP(**kwargs)
