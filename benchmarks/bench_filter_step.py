@@ -22,13 +22,15 @@ ratio of the medians. It needs ``pip install cvxpy``; without it that column is 
 The certificates are the hand-built ones of ``test/filter_fixtures.py`` (a crude recipe,
 independent of the certification code). The states are independent draws, so the warm start
 helps less than on a real trajectory: these are pessimistic figures. Timings depend on the
-machine and its load (printed); there are no timed assertions. The issue's target: 7-joint
-step p99 <= 200 us.
+machine and its load (printed, with a yardstick: the time of one small numpy call); there
+are no timed assertions. The issue's target: 7-joint step p99 <= 200 us. A second table
+times the step along a closed-loop run toward the limits, where the warm start helps.
 """
 
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import sys
 import time
@@ -89,6 +91,19 @@ class CvxpyRebuilt:
         return np.clip(mass @ a.value + bias, -filt.torque_limit, filt.torque_limit)
 
 
+def ufunc_call_us() -> float:
+    """Time of one small numpy ufunc call [us]: a yardstick for comparing machines (the
+    step is dominated by a few dozen such calls)."""
+    x, y, out = np.ones(7), np.ones(7), np.empty(7)
+    best = math.inf
+    for _ in range(5):
+        start = time.perf_counter()
+        for _ in range(20000):
+            np.add(x, y, out=out)
+        best = min(best, (time.perf_counter() - start) / 20000)
+    return best * 1e6
+
+
 def bench_arm(name: str, steps: int, cvxpy_steps: int, seed: int) -> dict[str, Any]:
     model, certificate = demo_arm_and_certificate(name)
     filt = SafetyFilter(model, certificate)
@@ -146,6 +161,32 @@ def bench_arm(name: str, steps: int, cvxpy_steps: int, seed: int) -> dict[str, A
     return result
 
 
+def bench_closed_loop(name: str, steps: int) -> dict[str, Any]:
+    """Step times along a closed-loop run (consecutive states, so the warm start helps):
+    the model integrated with the held torque, started next to the limits and heading for
+    them, with a nominal pushing outward at 3x the torque limit (as in test_filter)."""
+    model, certificate = demo_arm_and_certificate(name)
+    filt = SafetyFilter(model, certificate)
+    plant = filt.dynamics
+    period = 1.0 / certificate.control_rate_hz
+    sign = np.where(np.arange(filt.n) % 2 == 0, 1.0, -1.0)
+    q = np.where(sign > 0, certificate.position_upper - 0.3, certificate.position_lower + 0.3)
+    v = sign * certificate.gamma * 0.3 * 0.99
+    nominal = 3.0 * sign * filt.torque_limit
+    totals = []
+    for _ in range(steps):
+        start = time.perf_counter()
+        out = filt.step(q, v, nominal)
+        totals.append(time.perf_counter() - start)
+        for _ in range(2):
+            v = v + plant.forward_dynamics(q, v, out.torque) * period / 2
+            q = q + v * period / 2
+    stats = filt.statistics()
+    return {'n': filt.n, 'median': percentile_us(totals, 50), 'p99': percentile_us(totals, 99),
+            'max': percentile_us(totals, 100),
+            'modes': {k: v for k, v in stats['modes'].items() if v}}
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split('\n')[0])
     parser.add_argument('--quick', action='store_true', help='few steps (a smoke run)')
@@ -164,6 +205,7 @@ def main(argv: list[str] | None = None) -> int:
     print(f'filter step, {steps} random states in S per arm (nominals up to 1000x the box); '
           f'CVXPY rebuilt per step on the first {cvxpy_steps}; load average {load}; '
           f'times in microseconds')
+    print(f'yardstick: one small numpy ufunc call takes {ufunc_call_us():.2f} us here')
     print('dyn: M and h alone (median); solve: QP update + OSQP solve (median over all steps, '
           '0 where no solve was needed); rest = median - dyn - solve')
     print(HEADER)
@@ -182,6 +224,15 @@ def main(argv: list[str] | None = None) -> int:
         if r['n'] == 7:
             verdict = 'met' if r['p99'] <= 200.0 else 'missed'
             print(f'{"":<12}target 7-joint p99 <= 200 us: {verdict} ({r["p99"]:.0f} us)')
+    loop_steps = 300 if args.quick else 2000
+    print(f'\nclosed loop, {loop_steps} steps per arm: the model driven by the filtered torque '
+          'toward the limits (consecutive states: the warm start helps)')
+    print(f'{"arm":<8} {"n":>2} {"median":>8} {"p99":>8} {"max":>8}  modes')
+    for name in args.arms:
+        r = bench_closed_loop(name, loop_steps)
+        modes = ' '.join(f'{k}={v}' for k, v in r['modes'].items())
+        print(f'{name:<8} {r["n"]:>2} {r["median"]:8.0f} {r["p99"]:8.0f} {r["max"]:8.0f}  '
+              f'{modes}')
     return 0
 
 

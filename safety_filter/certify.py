@@ -69,7 +69,7 @@ class CertifySettings:
     beta_margin: float = 1.2
     beta_sampling_limit: float = 0.1
     control_rate_hz: float = 1000.0
-    sampling_factor: float = 4.0
+    sampling_factor: float = 1.0
     margin_samples: int = 1000
     margin_inflation: float = 1.5
     velocity_scales: int = 40
@@ -484,7 +484,8 @@ def _choose_beta(design: _Design, margin: np.ndarray, r: np.ndarray, settings: C
     b_star = np.zeros(n)
     b_cap = np.zeros(n)
     mid = settings.alpha2.value(design.gamma * settings.alpha1.value(0.5 * r))
-    b_floor = design.authority / np.maximum(mid, 1e-300)
+    # At rest mid-range the upper bound is beta alpha2(b) - margin: make it reach e.
+    b_floor = (design.authority + margin) / np.maximum(mid, 1e-300)
     for i in range(n):
         b_star[i], _, _ = beta_star(r[i], usable[i], design.gamma[i], margin[i],
                                     settings.alpha1, settings.alpha2)

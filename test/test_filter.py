@@ -110,7 +110,8 @@ def test_defaults() -> None:
 # ---------------------------------------------------------------------- internals vs public API
 @pytest.mark.parametrize('arm', ARMS)
 def test_step_dynamics_and_barriers_match_public_api(arm: str) -> None:
-    """The step's preallocated fast paths give the numbers of Dynamics.mass_and_bias and of
+    """The step's preallocated fast paths give the numbers of Dynamics.mass_and_bias, of
+    numpy's linear solve for M^-1 (u - h) (the fast path uses Pinocchio's ABA) and of
     evaluate_barriers (METHOD 2), to rounding."""
     filt = make_filter(arm)
     rng = np.random.default_rng(21)
@@ -122,6 +123,11 @@ def test_step_dynamics_and_barriers_match_public_api(arm: str) -> None:
         mass, bias = filt.dynamics.mass_and_bias(q, v)
         np.testing.assert_allclose(filt._mass, mass, rtol=1e-12, atol=1e-14)
         np.testing.assert_allclose(filt._bias, bias, rtol=1e-12, atol=1e-12)
+        torque = random_nominal(rng, filt.certificate)
+        np.testing.assert_allclose(
+            filt._dyn.nominal_acceleration(q, v, torque, filt._mass, filt._bias),
+            np.linalg.solve(mass, torque - bias), rtol=1e-9,
+            atol=1e-9 * np.abs(np.linalg.solve(mass, torque - bias)).max())
         state = filt.constraint_bounds(q, v)
         expected = [state.margin_upper, state.margin_lower, state.barrier_upper,
                     state.barrier_lower, state.accel_upper, state.accel_lower]
@@ -491,3 +497,34 @@ def test_generic_alpha_families() -> None:
         assert full_torque_in_box(filt, out, q)
         np.testing.assert_allclose(out.barrier_margin,
                                    filt.constraint_bounds(q, v).smallest, atol=1e-13)
+
+
+# ---------------------------------------------------------------------- closed loop
+@pytest.mark.parametrize('arm', ['planar2', 'reach7'])
+def test_closed_loop_keeps_the_position_limits(arm: str) -> None:
+    """End to end (METHOD 2: S is invariant, so the position limits hold): the filter at its
+    certified rate on the model (Dynamics, semi-implicit Euler with 4 substeps per held
+    torque), started next to the limits and moving toward them with a nominal that pushes
+    outward at 3x the torque limit. The limits hold (to 1e-3 of the range: the sampled
+    loop may slip slightly outside S, METHOD 5.1) and the filter mostly solves its QP."""
+    filt = make_filter(arm)
+    c = filt.certificate
+    plant = Dynamics(filt.model, filt.payload_mass)
+    period = 1.0 / c.control_rate_hz
+    sign = np.where(np.arange(filt.n) % 2 == 0, 1.0, -1.0)
+    q = np.where(sign > 0, c.position_upper - 0.02, c.position_lower + 0.02)
+    v = sign * c.gamma * 0.02 * 0.99  # just inside S, 0.02 from the limit, heading for it
+    nominal = 3.0 * sign * filt.torque_limit
+    worst = -np.inf
+    for _ in range(600):
+        out = filt.step(q, v, nominal)
+        assert full_torque_in_box(filt, out, q)
+        for _ in range(4):
+            v = v + plant.forward_dynamics(q, v, out.torque) * period / 4
+            q = q + v * period / 4
+        beyond = np.maximum(q - c.position_upper, c.position_lower - q)
+        worst = max(worst, float(np.max(beyond / filt.model.position_range)))
+    assert worst <= 1e-3, worst
+    modes = filt.statistics()['modes']
+    assert modes['filtered'] >= 0.95 * filt.steps, modes
+    assert modes['rejected'] == 0

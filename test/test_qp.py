@@ -78,7 +78,7 @@ def test_qp_matches_reference_solver(arm: str) -> None:
     states in S with nominals inside, 5x and 1000x outside the box."""
     model, certificate = demo_arm_and_certificate(arm)
     filt = SafetyFilter(model, certificate)
-    qp = AccelerationQP(filt.torque_limit, filt.usable_authority)
+    qp = AccelerationQP(filt.torque_limit)
     reference = TorqueFormReference(filt.n, filt.torque_limit)
     rng = np.random.default_rng(11)
     worst = 0.0
@@ -134,33 +134,40 @@ def test_weighted_qp_matches_reference_solver() -> None:
 
 def test_matrix_data_reproduce_the_scaled_problem() -> None:
     """The CSC data written per step (P's upper triangle, A = [I; U^-1 M D]) rebuild, via
-    scipy.sparse, the dense matrices of the docstring's scaled problem."""
+    scipy.sparse, the dense matrices of the class docstring's scaled problem, with the
+    Jacobi scaling d_j = 1 / sqrt((M W M)_jj) written out here from its definition."""
     import scipy.sparse as sparse
 
     model, certificate = demo_arm_and_certificate('reach7')
     filt = SafetyFilter(model, certificate)
     n = filt.n
     weights = np.linspace(0.5, 2.0, n)
-    qp = AccelerationQP(filt.torque_limit, filt.usable_authority, weights)
+    qp = AccelerationQP(filt.torque_limit, weights)
     rng = np.random.default_rng(3)
     q, v = random_state_in_safe_set(rng, certificate)
     mass, bias, lower, upper = state_data(filt, q, v)
     nominal = random_nominal(rng, certificate)
     qp.solve(mass, bias, nominal, lower, upper)
-    scale = np.diag(filt.usable_authority)
-    p_dense = scale @ mass @ np.diag(weights) @ mass @ scale
+    mwm = mass @ np.diag(weights) @ mass
+    scale = np.diag(1.0 / np.sqrt(np.diag(mwm)))
+    p_dense = scale @ mwm @ scale
+    np.testing.assert_allclose(np.diag(p_dense), 1.0, rtol=1e-12)
     c_dense = scale @ mass @ np.diag(weights) @ (bias - nominal)
-    cost_scale = max(p_dense.max(), np.abs(c_dense).max())
+    cost_scale = max(1.0, np.abs(c_dense).max())
     rows = np.concatenate([np.arange(j + 1) for j in range(n)])
     indptr = np.concatenate([[0], np.cumsum(np.arange(1, n + 1))])
     p_rebuilt = sparse.csc_matrix((qp._px, rows, indptr), shape=(n, n)).toarray()
-    np.testing.assert_allclose(p_rebuilt, np.triu(p_dense) / cost_scale, rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(p_rebuilt, np.triu(p_dense) / cost_scale, rtol=1e-12,
+                               atol=1e-15)
     np.testing.assert_allclose(qp._c, c_dense / cost_scale, rtol=1e-12, atol=1e-15)
     a_indices = np.concatenate([[j, *range(n, 2 * n)] for j in range(n)])
     a_rebuilt = sparse.csc_matrix((qp._ax, a_indices, np.arange(0, n * (n + 1) + 1, n + 1)),
                                   shape=(2 * n, n)).toarray()
     expected = np.vstack([np.eye(n), np.diag(1 / filt.torque_limit) @ mass @ scale])
     np.testing.assert_allclose(a_rebuilt, expected, rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(qp._lower[:n], lower / np.diag(scale), rtol=1e-12)
+    np.testing.assert_allclose(qp._upper[n:], (filt.torque_limit - bias) / filt.torque_limit,
+                               rtol=1e-12)
 
 
 def test_answer_is_independent_of_warm_start() -> None:
@@ -172,7 +179,7 @@ def test_answer_is_independent_of_warm_start() -> None:
     q, v = random_state_in_safe_set(rng, certificate)
     data = state_data(filt, q, v)
     nominal = 1000.0 * filt.torque_limit
-    qp = AccelerationQP(filt.torque_limit, filt.usable_authority)
+    qp = AccelerationQP(filt.torque_limit)
     cold = qp.solve(data[0], data[1], nominal, data[2], data[3]).acceleration
     for _ in range(5):
         q2, v2 = random_state_in_safe_set(rng, certificate)
@@ -192,7 +199,7 @@ def test_solver_failure_is_a_status() -> None:
     result object)."""
     model, certificate = demo_arm_and_certificate('reach7')
     filt = SafetyFilter(model, certificate)
-    qp = AccelerationQP(filt.torque_limit, filt.usable_authority, max_iter=1)
+    qp = AccelerationQP(filt.torque_limit, max_iter=1)
     rng = np.random.default_rng(5)
     q, v = random_state_in_safe_set(rng, certificate)
     mass, bias, lower, upper = state_data(filt, q, v)
@@ -230,13 +237,13 @@ def test_check_acceleration() -> None:
 
 
 @pytest.mark.parametrize('kwargs', [
-    {'torque_limit': [1.0, -1.0], 'accel_scale': [1.0, 1.0]},
-    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 0.0]},
-    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 1.0], 'torque_weights': [1.0, -2.0]},
-    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 1.0], 'torque_weights': [1.0]},
-    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 1.0], 'time_limit_s': 0.0},
-    {'torque_limit': [1.0, 1.0], 'accel_scale': [1.0, 1.0], 'max_iter': 0},
-    {'torque_limit': [], 'accel_scale': []},
+    {'torque_limit': [1.0, -1.0]},
+    {'torque_limit': [1.0, np.inf]},
+    {'torque_limit': [1.0, 1.0], 'torque_weights': [1.0, -2.0]},
+    {'torque_limit': [1.0, 1.0], 'torque_weights': [1.0]},
+    {'torque_limit': [1.0, 1.0], 'time_limit_s': 0.0},
+    {'torque_limit': [1.0, 1.0], 'max_iter': 0},
+    {'torque_limit': []},
 ])
 def test_invalid_setup_raises(kwargs: dict) -> None:
     """Configuration errors are exceptions of the package (STYLE: errors)."""
