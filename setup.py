@@ -35,6 +35,9 @@ setup(
         'matplotlib>=3.7',
         'tqdm>=4.60',
         'rosbags>=0.9.20',
+        # Rigid-body dynamics backend for the per-step path (the numpy recursion stays as
+        # the reference and fallback).
+        'pin>=2.7',
     ],
     extras_require={
         # ROS 2 Jazzy client libraries as wheels (published for CPython 3.11 only);
@@ -49,10 +52,8 @@ setup(
             'ros-jazzy-rcl-interfaces',
             'ros-jazzy-rmw-fastrtps-cpp',
         ],
-        # Optional faster rigid-body dynamics backend.
-        'fast': ['pin>=2.7'],
         # Test tooling and the reference implementations the tests compare against.
-        'test': ['pytest>=7', 'pin>=2.7', 'highspy>=1.5', 'cvxpy>=1.4', 'ruff'],
+        'test': ['pytest>=7', 'highspy>=1.5', 'cvxpy>=1.4', 'ruff'],
     },
     zip_safe=False,
     entry_points={

@@ -160,7 +160,7 @@ def _resolve_backend(backend: str) -> str:
         return 'pinocchio' if _pinocchio_available() else 'numpy'
     if backend == 'pinocchio' and not _pinocchio_available():
         raise ImportError('the pinocchio backend needs the package pin '
-                          '(pip install "safety_filter[fast]")')
+                          '(python3 -m pip install pin)')
     return backend
 
 

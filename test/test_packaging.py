@@ -1,0 +1,85 @@
+"""The package's own promises about itself: commands, versions, installed files."""
+
+from __future__ import annotations
+
+import ast
+import re
+import xml.etree.ElementTree as ElementTree
+from pathlib import Path
+
+import safety_filter
+
+REPO = Path(__file__).resolve().parent.parent
+
+
+def _readme_commands() -> list[str]:
+    text = (REPO / 'README.md').read_text(encoding='utf-8')
+    return [line.strip() for line in text.splitlines() if line.startswith('    python3 -m pip')]
+
+
+def test_readme_test_command_is_what_ci_runs() -> None:
+    commands = _readme_commands()
+    tests = [c for c in commands if 'pytest' in c]
+    assert len(tests) == 1, commands
+    ci = (REPO / '.ci' / 'run').read_text(encoding='utf-8').splitlines()
+    assert tests[0] in [line.strip() for line in ci]
+
+
+def test_readme_main_job_command_uses_an_existing_cli_command() -> None:
+    from safety_filter.cli import build_parser
+
+    main_jobs = [c for c in _readme_commands() if 'safety-filter' in c]
+    assert main_jobs, 'README must give the main-job command'
+    command = main_jobs[0].split('&&', 1)[1].split()
+    assert command[0] == 'safety-filter'
+    build_parser().parse_args(command[1:])  # exits (fails the test) on unknown options
+
+
+def test_readme_opens_with_the_job_and_carries_the_cautions() -> None:
+    text = (REPO / 'README.md').read_text(encoding='utf-8')
+    first = text.split('\n\n')[1]
+    assert 'torque-controlled' in first and 'limits' in first
+    for phrase in ('not a certified safety function', 'emergency stop', 'risk assessment',
+                   'qualified safety'):
+        assert phrase in text
+
+
+def test_versions_agree() -> None:
+    package_xml = ElementTree.parse(REPO / 'package.xml').getroot()
+    xml_version = package_xml.findtext('version')
+    setup_tree = ast.parse((REPO / 'setup.py').read_text(encoding='utf-8'))
+    setup_version = next(
+        keyword.value.value for node in ast.walk(setup_tree) if isinstance(node, ast.Call)
+        for keyword in node.keywords if keyword.arg == 'version')
+    assert xml_version == setup_version == safety_filter.__version__
+
+
+def test_package_xml_declares_ros_dependencies_and_build_type() -> None:
+    root = ElementTree.parse(REPO / 'package.xml').getroot()
+    assert root.get('format') == '3'
+    depends = {e.text for e in root.findall('exec_depend')}
+    for name in ('rclpy', 'sensor_msgs', 'std_msgs', 'diagnostic_msgs', 'std_srvs',
+                 'lifecycle_msgs', 'python3-numpy', 'python3-yaml'):
+        assert name in depends
+    assert root.find('export/build_type').text == 'ament_python'
+
+
+def test_ros_run_finds_executables_in_lib() -> None:
+    # `ros2 run` looks in lib/<package>; setup.cfg must put console scripts there.
+    text = (REPO / 'setup.cfg').read_text(encoding='utf-8')
+    assert re.search(r'install_scripts\s*=\s*\$base/lib/safety_filter', text)
+    assert re.search(r'script_dir\s*=\s*\$base/lib/safety_filter', text)
+    assert (REPO / 'resource' / 'safety_filter').is_file()
+
+
+def test_numeric_core_imports_no_ros() -> None:
+    core = ['model', 'dynamics', 'alphas', 'barriers', 'bounds', 'sampling', 'certify',
+            'falsify', 'certificate', 'qp', 'filter', 'simulate', 'nominal']
+    for name in core:
+        source = (REPO / 'safety_filter' / f'{name}.py').read_text(encoding='utf-8')
+        tree = ast.parse(source)
+        imported = {alias.name.split('.')[0] for node in ast.walk(tree)
+                    if isinstance(node, ast.Import) for alias in node.names}
+        imported |= {node.module.split('.')[0] for node in ast.walk(tree)
+                     if isinstance(node, ast.ImportFrom) and node.module}
+        assert not imported & {'rclpy', 'sensor_msgs', 'std_msgs', 'diagnostic_msgs'}, name
