@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 import yaml
 
+from safety_filter._files import read_yaml_file
 from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
@@ -246,13 +247,7 @@ class Certificate:
     @classmethod
     def load(cls, path: str | Path, model: RobotModel | None = None) -> Certificate:
         """Read a parameter file written by :meth:`save`; checks ``model`` when given."""
-        path = Path(path)
-        if not path.is_file():
-            raise CertificateError(f'certificate file not found: {path}')
-        try:
-            document = yaml.safe_load(path.read_text(encoding='utf-8'))
-        except yaml.YAMLError as err:
-            raise CertificateError(f'{path}: not valid YAML: {err}') from err
+        document = read_yaml_file(path, CertificateError, 'certificate file')
         if not isinstance(document, dict) or not document:
             raise CertificateError(f'{path}: not a parameter file')
         # Accept any node key (the user may have renamed the node) but only one.

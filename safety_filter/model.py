@@ -25,8 +25,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import yaml
 
+from safety_filter._files import read_yaml_file
 from safety_filter._spatial import axis_angle_matrix, combine_inertias, rpy_to_matrix
 from safety_filter.errors import (
     InvalidInertia,
@@ -173,7 +173,8 @@ class RobotModel:
         """``position_upper - position_lower`` per joint [rad or m]."""
         return self.position_upper - self.position_lower
 
-    def body_inertials(self, payload_mass: float = 0.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def body_inertials(self, payload_mass: float = 0.0
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Mass [kg], centre of mass [m] and inertia about it [kg m^2] of each moving body,
         with a point payload of ``payload_mass`` added to the last body."""
         mass = np.array(self.body_mass)
@@ -586,14 +587,8 @@ def _read_limits(limits: str | Path | Mapping[str, Any] | None) -> dict[str, Any
         spec = dict(limits)
         source = '<limits mapping>'
     else:
-        path = Path(limits)
-        if not path.is_file():
-            raise InvalidLimits(f'limits file not found: {path}')
-        try:
-            spec = yaml.safe_load(path.read_text(encoding='utf-8'))
-        except yaml.YAMLError as err:
-            raise InvalidLimits(f'{path}: not valid YAML: {err}') from err
-        source = str(path)
+        spec = read_yaml_file(limits, InvalidLimits, 'limits file')
+        source = str(limits)
         if spec is None:
             spec = {}
     if not isinstance(spec, Mapping):

@@ -83,3 +83,18 @@ def test_numeric_core_imports_no_ros() -> None:
         imported |= {node.module.split('.')[0] for node in ast.walk(tree)
                      if isinstance(node, ast.ImportFrom) and node.module}
         assert not imported & {'rclpy', 'sensor_msgs', 'std_msgs', 'diagnostic_msgs'}, name
+
+
+def test_code_style_is_clean() -> None:
+    # The ROS 2 linters' defaults (99 columns, single quotes, ordered imports), via ruff.
+    import shutil
+    import subprocess
+    import sys
+
+    import pytest
+
+    if shutil.which('ruff') is None:
+        pytest.skip('ruff is not installed (python3 -m pip install ruff)')
+    result = subprocess.run([sys.executable, '-m', 'ruff', 'check', 'safety_filter', 'test',
+                             'benchmarks'], cwd=REPO, capture_output=True, text=True)
+    assert result.returncode == 0, result.stdout + result.stderr
