@@ -3,15 +3,26 @@
 The numeric core (model, dynamics, barriers, certification, the filter step) imports no ROS;
 the ROS 2 nodes are thin adapters around it. Public API::
 
-    from safety_filter import RobotModel, Dynamics
+    from safety_filter import RobotModel, Certificate, SafetyFilter, certify
     model = RobotModel.from_urdf('arm.urdf', limits='arm_limits.yaml')
-    dyn = Dynamics(model)
-    M, h = dyn.mass_and_bias(q, v)
+    cert = certify(model)                  # cert.certified; cert.save('cert.yaml')
+    filt = SafetyFilter(model, cert)
+    out = filt.step(q, v, u_nom)           # out.torque, out.mode, out.barrier_margin
 
 This software is not a certified safety function. It does not replace hardware emergency
 stops, safety-rated monitoring or a risk assessment.
 """
 
+from safety_filter._version import __version__
+from safety_filter.alphas import ClassK
+from safety_filter.bounds import BoundSettings
+from safety_filter.certificate import Certificate, CertificateError, CertificateMismatch
+from safety_filter.certify import (
+    CertificationOutcome,
+    CertifySettings,
+    certify,
+    certify_with_evidence,
+)
 from safety_filter.demo_arms import DEMO_ARMS, demo_arm_files, load_demo_arm
 from safety_filter.dynamics import (
     Dynamics,
@@ -29,12 +40,24 @@ from safety_filter.errors import (
     UnknownLink,
     UnsupportedChain,
 )
+from safety_filter.falsify import FalsifierResult, falsify
+from safety_filter.filter import FilterMode, FilterOutput, SafetyFilter
 from safety_filter.model import PayloadRange, RobotModel
 
-__version__ = '0.1.0'
 
 __all__ = [
+    'BoundSettings',
+    'Certificate',
+    'CertificateError',
+    'CertificateMismatch',
+    'CertificationOutcome',
+    'CertifySettings',
+    'ClassK',
     'DEMO_ARMS',
+    'FalsifierResult',
+    'FilterMode',
+    'FilterOutput',
+    'SafetyFilter',
     'Dynamics',
     'InvalidInertia',
     'InvalidLimits',
@@ -46,8 +69,11 @@ __all__ = [
     'UnknownLink',
     'UnsupportedChain',
     '__version__',
+    'certify',
+    'certify_with_evidence',
     'christoffel_batch',
     'demo_arm_files',
+    'falsify',
     'gravity_torque_batch',
     'load_demo_arm',
     'mass_matrix_batch',

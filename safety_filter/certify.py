@@ -29,6 +29,7 @@ from typing import Any
 import numpy as np
 from scipy.optimize import linprog, minimize
 
+from safety_filter._version import __version__
 from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
 from safety_filter.bounds import BoundSettings, DynamicsBounds, estimate_bounds
 from safety_filter.certificate import Certificate
@@ -37,7 +38,6 @@ from safety_filter.model import RobotModel
 from safety_filter.sampling import Gains, estimate_sampling_margin
 
 ProgressCallback = Callable[[str, float], None]
-_VERSION = '0.1.0'
 
 
 @dataclass(frozen=True)
@@ -433,7 +433,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         payload_mass_range=(model.payload.mass_min, model.payload.mass_max),
         payload_point=model.payload.point,
         model_hash=model.content_hash(),
-        package_version=_VERSION,
+        package_version=__version__,
         created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec='seconds'),
         settings=provenance,
         certified=certified,

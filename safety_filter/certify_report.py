@@ -294,13 +294,23 @@ def _plot_ratio(outcome: CertificationOutcome, model: RobotModel, i: int, path: 
                            shading='auto')
     colorbar = figure.colorbar(mesh, ax=axes)
     colorbar.set_label('psi / alpha2(b)  (clipped below at the 5th percentile)', fontsize=8)
+    flat = bool(values.size) and float(np.ptp(values)) <= 1e-6 * max(1.0, abs(high))
+    if flat:
+        axes.text(0.03, 0.04, 'the ratio is the same at every state of S:\nbeta* is set by '
+                  'keeping An + margin <= Ap - margin', transform=axes.transAxes, fontsize=8,
+                  bbox={'facecolor': 'white', 'edgecolor': '#999999', 'alpha': 0.9})
     if values.size and np.min(values) < 0.0 < np.max(values):
         axes.contour(qs, vs, np.ma.masked_array(ratio, mask=~shown), levels=[0.0],
                      colors='white', linewidths=0.8, linestyles='dashed')
     edge_lo, edge_hi = _slice_edges(cert, i, qs, lower, upper)
     axes.plot(qs, edge_hi, color='black', linewidth=1.0)
     axes.plot(qs, edge_lo, color='black', linewidth=1.0)
-    if np.isfinite(b_star):
+    if np.isfinite(b_star) and flat:
+        axes.plot([], [], ' ', label=f'beta* = {b_star:.4g} (certificate: '
+                  f'{cert.beta_star[i]:.4g}), attained everywhere')
+        axes.plot([], [], ' ', label=f'beta = {cert.beta[i]:.4g} used by the filter')
+        axes.legend(loc='upper right', fontsize=8, framealpha=0.85)
+    elif np.isfinite(b_star):
         q_best = upper - best_x
         a1p_best = float(cert.alpha1.value(best_x))
         a1n_best = float(cert.alpha1.value(r - best_x))
@@ -336,9 +346,9 @@ def _plot_safe_set(outcome: CertificationOutcome, model: RobotModel, i: int, pat
         axes.plot(qs, edge_hi, color='#1f4e79', linewidth=1.5, label='bp = 0, bn = 0')
         axes.plot(qs, edge_lo, color='#1f4e79', linewidth=1.5)
         bound = gamma * float(cert.alpha1.value(r))
-        axes.axhline(bound, color='#2a8a2a', linestyle=':', linewidth=1.5,
+        axes.axhline(bound, color='#2a8a2a', linestyle=':', linewidth=1.8, zorder=4,
                      label=f'certified bound +-{bound:.3g}')
-        axes.axhline(-bound, color='#2a8a2a', linestyle=':', linewidth=1.5)
+        axes.axhline(-bound, color='#2a8a2a', linestyle=':', linewidth=1.8, zorder=4)
     else:
         _no_gains(axes)
     axes.axhline(rated, color='#c05000', linestyle='--', linewidth=1.2,
@@ -559,9 +569,11 @@ def _html_page(outcome: CertificationOutcome, model: RobotModel,
         parts.append(
             f'<figure><img src="{esc(files["ratio"][i])}" alt="ratio for {esc(name)}">'
             '<figcaption>Colour: the ratio &psi;/&alpha;2(b) over the joint&rsquo;s slice of '
-            'S (blank outside S). The QP stays feasible where &beta; is above it; its '
-            'largest value is &beta;* (red star). The white dashed line separates the '
-            'states that need braking (ratio above 0).</figcaption></figure>')
+            'S (blank outside S): the larger of the braking needs at the upper and lower '
+            'edges and of keeping An + margin &le; Ap &minus; margin. The QP stays feasible '
+            'where &beta; is above it; its largest value is &beta;* (red star). The white '
+            'dashed line, if any, encloses the states where the ratio is above '
+            '0.</figcaption></figure>')
         parts.append(
             f'<figure><img src="{esc(files["safe_set"][i])}" alt="safe set of {esc(name)}">'
             '<figcaption>The safe set S (shaded) between its barrier edges, the position '
