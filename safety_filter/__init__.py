@@ -44,7 +44,6 @@ from safety_filter.falsify import FalsifierResult, falsify
 from safety_filter.filter import FilterMode, FilterOutput, SafetyFilter
 from safety_filter.model import PayloadRange, RobotModel
 
-
 __all__ = [
     'BoundSettings',
     'Certificate',
