@@ -590,6 +590,36 @@ class SafetyFilter:
             return None
         return position
 
+    def _hold_full(self, position: np.ndarray, v: Any) -> tuple[np.ndarray, np.ndarray]:
+        """Full-torque hold command ``clip(g(q) - hold_damping v)`` and ``g(q)``."""
+        n = self.n
+        gravity = self._dyn.gravity(np.array(position, dtype=float))
+        damping = np.zeros(n)
+        try:
+            velocity = np.asarray(v, dtype=float)
+            if velocity.shape == (n,):
+                damping = np.where(np.isfinite(velocity), -self.hold_damping * velocity, 0.0)
+        except (TypeError, ValueError):
+            pass
+        full = np.clip(gravity + damping, -self.torque_limit, self.torque_limit)
+        return full, gravity
+
+    def hold_torque(self, q: Any, v: Any) -> np.ndarray:
+        """The hold command at ``(q, v)`` in the driver's convention, without a filter step.
+
+        Gravity compensation plus damping toward rest, inside the torque box; what a
+        rejected step sends, and what the node uses in place of a stale nominal or after its
+        joint-state watchdog trips. Uses the last valid position when ``q`` is invalid, and
+        zero torque when there has never been one.
+        """
+        position = self._valid_position(q)
+        if position is None:
+            if not self._has_last_q:
+                return np.zeros(self.n)
+            position = self._last_q
+        full, gravity = self._hold_full(position, v)
+        return full - gravity if self._driver else full
+
     def _reject(
         self,
         q: Any,
@@ -619,15 +649,7 @@ class SafetyFilter:
         saturated = np.zeros(n, dtype=bool)
         intervention = math.nan
         if position is not None:
-            gravity = self._dyn.gravity(np.array(position, dtype=float))
-            damping = np.zeros(n)
-            try:
-                velocity = np.asarray(v, dtype=float)
-                if velocity.shape == (n,):
-                    damping = np.where(np.isfinite(velocity), -self.hold_damping * velocity, 0.0)
-            except (TypeError, ValueError):
-                pass
-            full = np.clip(gravity + damping, -self.torque_limit, self.torque_limit)
+            full, gravity = self._hold_full(position, v)
             if u_nom is not None:
                 nominal_full = u_nom + gravity if self._driver else u_nom
                 intervention = float(np.linalg.norm(full - nominal_full))
