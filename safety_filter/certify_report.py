@@ -231,11 +231,14 @@ def plot_file_names(outcome: CertificationOutcome) -> dict[str, list[str]]:
     }
 
 
-def _new_figure(width: float = 6.4, height: float = 4.6) -> Any:
+def _new_figure(width: float = 6.4, height: float = 4.6, left: float = 0.11,
+                right: float = 0.9) -> Any:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    figure = Figure(figsize=(width, height), dpi=110, layout='constrained')
+    # Fixed margins: a layout engine would cost more than drawing the plot.
+    figure = Figure(figsize=(width, height), dpi=110)
+    figure.subplots_adjust(left=left, right=right, bottom=0.12, top=0.92)
     FigureCanvasAgg(figure)
     return figure
 
@@ -290,9 +293,10 @@ def _plot_ratio(outcome: CertificationOutcome, model: RobotModel, i: int, path: 
     if not low < high:
         low = high - 1.0
     masked = np.ma.masked_array(ratio, mask=~shown)
-    mesh = axes.pcolormesh(qs, vs, masked, cmap='viridis', vmin=low, vmax=high,
-                           shading='auto')
-    colorbar = figure.colorbar(mesh, ax=axes)
+    mesh = axes.imshow(masked, cmap='viridis', vmin=low, vmax=high, origin='lower',
+                       aspect='auto', interpolation='nearest',
+                       extent=(lower, upper, -top, top))
+    colorbar = figure.colorbar(mesh, ax=axes, fraction=0.06, pad=0.02)
     colorbar.set_label('psi / alpha2(b)  (clipped below at the 5th percentile)', fontsize=8)
     flat = bool(values.size) and float(np.ptp(values)) <= 1e-6 * max(1.0, abs(high))
     if flat:
@@ -364,19 +368,19 @@ def _plot_safe_set(outcome: CertificationOutcome, model: RobotModel, i: int, pat
         points = axes.scatter(q_w, v_w, c=slack, cmap='autumn', s=28, edgecolors='black',
                               linewidths=0.5, zorder=5,
                               label=f'falsifier: {len(worst)} lowest-slack states')
-        colorbar = figure.colorbar(points, ax=axes)
+        colorbar = figure.colorbar(points, ax=axes, fraction=0.06, pad=0.02)
         colorbar.set_label('falsifier slack [% of torque limits]', fontsize=8)
     margin_q = 0.04 * r
     axes.set_xlim(lower - margin_q, upper + margin_q)
     axes.set_ylim(-span, span)
-    axes.legend(loc='upper right', fontsize=7, framealpha=0.85)
+    axes.legend(loc='best', fontsize=7, framealpha=0.85)
     figure.savefig(path)
 
 
 def _plot_summary(outcome: CertificationOutcome, path: Path) -> None:
     cert = outcome.certificate
     n = cert.n_joints
-    figure = _new_figure(max(5.0, 1.0 + 0.9 * n), 4.0)
+    figure = _new_figure(max(5.0, 1.0 + 0.9 * n), 4.0, left=0.14, right=0.97)
     axes = figure.add_subplot()
     x = np.arange(n)
     authority = np.array(cert.authority)

@@ -7,8 +7,11 @@ or a URDF with an optional limits file and chain selection).
 from __future__ import annotations
 
 import argparse
+import re
 import sys
 from collections.abc import Sequence
+from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -16,6 +19,9 @@ from safety_filter.demo_arms import DEMO_ARMS, load_demo_arm
 from safety_filter.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
+
+if TYPE_CHECKING:
+    from safety_filter.certify import CertifySettings
 
 EXIT_OK = 0
 EXIT_BAD_INPUT = 2
@@ -76,6 +82,212 @@ def _command_inspect(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _certify_settings(args: argparse.Namespace) -> CertifySettings:
+    """The :class:`CertifySettings` the certify options describe (SafetyFilterError if bad)."""
+    from safety_filter.alphas import ClassK
+    from safety_filter.bounds import BoundSettings
+    from safety_filter.certify import CertifySettings
+
+    try:
+        bounds = BoundSettings(samples=args.samples, inflation=args.inflation, seed=args.seed)
+    except ValueError as err:
+        raise SafetyFilterError(f'bound settings: {err}') from err
+    if args.falsifier_states < 0:
+        raise SafetyFilterError('--falsifier-states must be >= 0')
+    extra = {}
+    if args.gamma_margin is not None:
+        extra['gamma_margin'] = args.gamma_margin
+    if args.beta_margin is not None:
+        extra['beta_margin'] = args.beta_margin
+    return CertifySettings(
+        alpha1=ClassK(args.alpha1, args.alpha1_scale),
+        alpha2=ClassK(args.alpha2, args.alpha2_scale),
+        control_rate_hz=args.control_rate,
+        falsifier_states=args.falsifier_states,
+        bounds=bounds,
+        seed=args.seed,
+        **extra)
+
+
+class _ProgressBar:
+    """A tqdm bar on stderr driven by certification's ``(stage, fraction)`` callback."""
+
+    def __init__(self, enabled: bool) -> None:
+        self._bar = None
+        self._stage = None
+        if enabled:
+            from tqdm import tqdm
+
+            # disable=None: no bar when stderr is not a terminal (logs, CI, pipes).
+            self._bar = tqdm(total=100, desc='starting', file=sys.stderr, leave=False,
+                             disable=None,
+                             bar_format='{desc:<28} {percentage:3.0f}%|{bar}| {elapsed}')
+
+    def __call__(self, stage: str, fraction: float) -> None:
+        if self._bar is None:
+            return
+        if stage != self._stage:
+            self._stage = stage
+            self._bar.reset(total=100)
+            self._bar.set_description_str(stage)
+        done = int(round(100 * min(max(fraction, 0.0), 1.0)))
+        if done != self._bar.n:
+            self._bar.n = done
+            self._bar.refresh()
+
+    def close(self) -> None:
+        if self._bar is not None:
+            self._bar.close()
+
+
+def _command_certify(args: argparse.Namespace) -> int:
+    from safety_filter.certify import certify_with_evidence
+    from safety_filter.certify_report import format_joint_table, write_report
+
+    model = load_robot(args)
+    settings = _certify_settings(args)
+    default_name = re.sub(r'[^A-Za-z0-9_.-]', '_', model.name) + '_certificate.yaml'
+    output = Path(args.output) if args.output else Path(default_name)
+    if output.is_dir():
+        raise SafetyFilterError(f'--output {output} is a folder; give the file to write')
+    report_dir = None
+    if not args.no_report:
+        report_dir = (Path(args.report_dir) if args.report_dir
+                      else output.parent / f'{output.stem}_report')
+    bar = _ProgressBar(enabled=not args.quiet)
+    try:
+        outcome = certify_with_evidence(model, settings, progress=bar)
+    finally:
+        bar.close()
+    certificate = outcome.certificate
+    table = format_joint_table(outcome, model)
+    if args.quiet:
+        lines = [line for line in table.splitlines() if line.startswith('verdict:')]
+        if not outcome.certified:
+            start = table.find('why not certified:')
+            lines.append(table[start:] if start >= 0 else '')
+        print('\n'.join(lines))
+    else:
+        print(table)
+    try:
+        written = certificate.save(output)
+        page = write_report(outcome, model, report_dir) if report_dir is not None else None
+    except OSError as err:
+        raise SafetyFilterError(f'cannot write the results: {err}') from err
+    state = 'certified: true' if outcome.certified else 'certified: false (the filter refuses it)'
+    print(f'\ncertificate ({state}): {written.resolve()}')
+    if page is not None:
+        print(f'report: {page.resolve()}')
+    return EXIT_OK if outcome.certified else EXIT_NOT_CERTIFIED
+
+
+def _add_certify_parser(commands: argparse._SubParsersAction) -> None:
+    from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS
+
+    certify = commands.add_parser(
+        'certify', help='certify barrier gains for a robot; write the parameter file and a '
+        'report', description='Certify per-joint barrier gains for which the safety QP is '
+        'feasible everywhere in the safe set, write them as a ROS 2 parameter file and write '
+        'a report for the engineer. Exit code 0: certified, 3: not certifiable (the file is '
+        'written with certified: false and the reasons), 2: bad input.')
+    add_robot_arguments(certify)
+    files = certify.add_argument_group('output')
+    files.add_argument('--output', metavar='PATH',
+                       help='parameter file to write (default: <robot name>_certificate.yaml '
+                       'in the current folder)')
+    files.add_argument('--report-dir', metavar='DIR',
+                       help='report folder (default: <output stem>_report next to the output)')
+    files.add_argument('--no-report', action='store_true', help='do not write the report')
+    files.add_argument('--quiet', action='store_true',
+                       help='no progress bar and no table: the verdict, reasons and files only')
+    method = certify.add_argument_group('certification')
+    method.add_argument('--control-rate', type=float, default=1000.0, metavar='HZ',
+                        help='control rate of the filter [Hz] (default: 1000)')
+    method.add_argument('--alpha1', choices=ALPHA1_KINDS, default='linear',
+                        help='class-K family of the velocity barrier (default: linear)')
+    method.add_argument('--alpha1-scale', type=float, default=1.0,
+                        help='bend of atan/tanh alpha1 [rad or m] (default: 1)')
+    method.add_argument('--alpha2', choices=ALPHA2_KINDS, default='linear',
+                        help='class-K family of the rate condition (default: linear)')
+    method.add_argument('--alpha2-scale', type=float, default=1.0,
+                        help='bend of atan/tanh alpha2 [rad/s or m/s] (default: 1)')
+    method.add_argument('--gamma-margin', type=float, default=None,
+                        help='gamma <= this * gamma*, in (0, 1) (default: 0.9)')
+    method.add_argument('--beta-margin', type=float, default=None,
+                        help='beta >= this * beta*, > 1 (default: 1.2)')
+    method.add_argument('--samples', type=int, default=4096,
+                        help='quasi-random samples of the joint box for the dynamics bounds '
+                        '(default: 4096)')
+    method.add_argument('--inflation', type=float, default=1.1,
+                        help='factor on the estimated dynamics bounds, >= 1 (default: 1.1)')
+    method.add_argument('--falsifier-states', type=int, default=100_000,
+                        help='states the independent falsifier checks (default: 100000)')
+    method.add_argument('--seed', type=int, default=0, help='random seed (default: 0)')
+    certify.set_defaults(handler=_command_certify)
+
+
+def _command_node(args: argparse.Namespace) -> int:
+    from safety_filter.demo_arms import demo_arm_files
+
+    try:
+        from safety_filter.ros import filter_node
+    except ImportError as err:
+        raise SafetyFilterError(
+            f'the node needs rclpy and the ROS 2 message packages ({err}); install them with '
+            "pip install -e '.[ros]' or source a ROS 2 Jazzy install") from err
+    if args.urdf is None:
+        if args.limits:
+            raise SafetyFilterError('--limits needs --urdf')
+        urdf, limits = demo_arm_files(args.demo or 'bench6')
+    elif args.demo is not None:
+        raise SafetyFilterError('give either --demo or --urdf, not both')
+    else:
+        urdf, limits = Path(args.urdf), Path(args.limits) if args.limits else None
+    certificate = Path(args.certificate)
+    if not certificate.is_file():
+        raise SafetyFilterError(f'certificate file not found: {certificate}')
+    ros_args = ['--ros-args', '--params-file', str(certificate),
+                '-p', f'urdf_path:={Path(urdf).resolve()}']
+    if limits is not None:
+        ros_args += ['-p', f'limits_path:={Path(limits).resolve()}']
+    if args.gravity_convention is not None:
+        ros_args += ['-p', f'gravity_convention:={args.gravity_convention}']
+    if args.payload_mass is not None:
+        ros_args += ['-p', f'payload_mass:={float(args.payload_mass)!r}']
+    ros_args += list(args.ros_args or [])
+    own = [] if args.no_autostart else ['--autostart']
+    return filter_node.main(['safety-filter-node', *own, *ros_args])
+
+
+def _add_node_parser(commands: argparse._SubParsersAction) -> None:
+    node = commands.add_parser(
+        'node', help='run the safety filter ROS 2 node (configures and activates itself)',
+        description='Run the safety_filter lifecycle node in this process, with the '
+        'certificate parameter file, the URDF and the limits file. By default it configures '
+        'and activates itself at start-up; SIGINT or SIGTERM end it cleanly. Topics: '
+        'joint_states, nominal_torque in, filtered_torque, ~/status, /diagnostics out (remap '
+        'with --ros-args -r filtered_torque:=/driver/commands). Exit code 0 on a clean stop, 1 '
+        'when configure/activate failed (reason in the log), 2 on bad options.')
+    node.add_argument('--certificate', required=True, metavar='PATH',
+                      help='certificate parameter file written by `safety-filter certify`')
+    robot = node.add_argument_group('robot')
+    robot.add_argument('--demo', choices=DEMO_ARMS, default=None,
+                       help='a built-in demo arm (default: bench6 when no --urdf is given)')
+    robot.add_argument('--urdf', help='path of the robot URDF')
+    robot.add_argument('--limits', help='limits file (YAML; also selects the chain)')
+    node.add_argument('--gravity-convention', choices=('full', 'driver_compensated'),
+                      default=None, help="what the driver takes (default: 'full' torque)")
+    node.add_argument('--payload-mass', type=float, default=None, metavar='KG',
+                      help='payload mass of the model [kg] (default: middle of the certified '
+                      'range)')
+    node.add_argument('--no-autostart', action='store_true',
+                      help='start unconfigured; drive it with the lifecycle services')
+    node.add_argument('--ros-args', dest='ros_args', nargs=argparse.REMAINDER, default=[],
+                      metavar='ROS_ARGS', help='everything after this goes to ROS, e.g. '
+                      '--ros-args -r filtered_torque:=/arm/commands -p trigger:=joint_state')
+    node.set_defaults(handler=_command_node)
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of ``safety-filter``."""
     parser = argparse.ArgumentParser(
@@ -90,13 +302,18 @@ def build_parser() -> argparse.ArgumentParser:
     inspect.add_argument('--seed', type=int, default=0)
     inspect.add_argument('--backend', choices=('auto', 'numpy', 'pinocchio'), default='auto')
     inspect.set_defaults(handler=_command_inspect)
+    _add_certify_parser(commands)
+    _add_node_parser(commands)
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``safety-filter`` command."""
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as err:  # argparse: --help (0) or bad options (2)
+        return err.code if isinstance(err.code, int) else EXIT_BAD_INPUT
     print(SAFETY_NOTICE, file=sys.stderr)
     try:
         return int(args.handler(args))

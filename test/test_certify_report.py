@@ -1,0 +1,161 @@
+"""The engineer's report of a certification: terminal table, HTML page, plots, JSON."""
+
+from __future__ import annotations
+
+import copy
+import html
+import json
+import re
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+
+from safety_filter.bounds import BoundSettings
+from safety_filter.certify import CertificationOutcome, CertifySettings, certify_with_evidence
+from safety_filter.certify_report import (
+    REPORT_HTML,
+    REPORT_JSON,
+    SAFETY_NOTICE,
+    format_joint_table,
+    joint_rows,
+    plot_file_names,
+    write_report,
+)
+from safety_filter.cli import SAFETY_NOTICE as CLI_NOTICE
+from safety_filter.demo_arms import demo_arm_files, load_demo_arm
+from safety_filter.model import RobotModel
+
+PNG_SIGNATURE = b'\x89PNG\r\n\x1a\n'  # PNG specification (ISO/IEC 15948), section 5.2
+FAST = CertifySettings(bounds=BoundSettings(samples=256), falsifier_states=2000)
+
+
+def weak_shoulder_planar2() -> RobotModel:
+    """planar2 with a 5 N m shoulder, below its gravity load (about 14 N m)."""
+    urdf, limits = demo_arm_files('planar2')
+    spec = yaml.safe_load(limits.read_text(encoding='utf-8'))
+    weak = {'format': spec['format'], 'chain': spec['chain'],
+            'joints': {'shoulder': {'effort': 5.0}}}
+    return RobotModel.from_urdf(urdf, limits=weak)
+
+
+@pytest.fixture(scope='module')
+def planar2() -> tuple[CertificationOutcome, RobotModel]:
+    model = load_demo_arm('planar2')
+    return certify_with_evidence(model, FAST), model
+
+
+@pytest.fixture(scope='module')
+def weak() -> tuple[CertificationOutcome, RobotModel]:
+    model = weak_shoulder_planar2()
+    return certify_with_evidence(model, FAST), model
+
+
+def _referenced_files(page: str) -> list[str]:
+    return re.findall(r'(?:src|href)="([^"]+)"', page)
+
+
+def test_table_lists_every_joint_and_the_verdict(planar2) -> None:
+    outcome, model = planar2
+    assert outcome.certified
+    table = format_joint_table(outcome, model)
+    rows = {line.split()[0]: line for line in table.splitlines() if line.split()}
+    for name in model.joint_names:
+        assert name in rows and rows[name].rstrip().endswith('ok')
+    assert 'verdict: CERTIFIED' in table
+    assert 'falsifier: 2000 states in S' in table
+    assert 'why not certified' not in table
+    assert all(len(line) <= 100 for line in table.splitlines())
+    assert table.isascii()
+
+
+def test_rows_match_the_certificate(planar2) -> None:
+    outcome, model = planar2
+    cert = outcome.certificate
+    rows = joint_rows(outcome, model)
+    assert [row['joint'] for row in rows] == list(model.joint_names)
+    for i, row in enumerate(rows):
+        # Linear alpha1: the velocity lemma bound is gamma * range.
+        assert row['certified_velocity'] == pytest.approx(
+            cert.gamma[i] * model.position_range[i], rel=1e-12)
+        assert row['certified_velocity'] <= model.velocity_limit[i] * (1 + 1e-9)
+        assert row['usable_authority'] == pytest.approx(
+            cert.authority[i] - cert.sampling_margin[i])
+        assert row['beta_star'] <= row['beta'] <= row['beta_cap']
+        assert row['passed']
+
+
+def test_table_marks_the_joint_a_reason_names(planar2) -> None:
+    outcome, model = planar2
+    failed = copy.deepcopy(outcome)
+    failed.certificate.certified = False
+    failed.certificate.reasons = ["joint 'elbow': invented finding for the test"]
+    table = format_joint_table(failed, model)
+    rows = {line.split()[0]: line for line in table.splitlines() if line.split()}
+    assert rows['elbow'].rstrip().endswith('FAIL')
+    assert rows['shoulder'].rstrip().endswith('ok')
+    assert 'verdict: NOT CERTIFIED' in table
+    assert "  1. joint 'elbow': invented finding" in table
+
+
+def test_table_explains_a_torque_limit_below_the_gravity_load(weak) -> None:
+    outcome, model = weak
+    assert not outcome.certified
+    table = format_joint_table(outcome, model)
+    assert 'verdict: NOT CERTIFIED' in table
+    assert re.search(r"1\. joint 'shoulder': .*short by [0-9.]+ N m", table.replace('\n', ' '))
+    assert 'falsifier: not run' in table
+    assert all(len(line) <= 100 for line in table.splitlines())
+
+
+def _check_report_folder(outcome: CertificationOutcome, model: RobotModel, folder: Path
+                         ) -> tuple[str, dict]:
+    page_path = write_report(outcome, model, folder)
+    assert page_path == folder / REPORT_HTML
+    files = plot_file_names(outcome)
+    assert len(files['ratio']) == len(files['safe_set']) == model.n_joints
+    assert len(set(files['ratio'] + files['safe_set'] + files['summary'])) == \
+        2 * model.n_joints + 1
+    for name in files['ratio'] + files['safe_set'] + files['summary']:
+        data = (folder / name).read_bytes()
+        assert data.startswith(PNG_SIGNATURE), name
+        assert len(data) > 1000, name
+    assert len(list(folder.glob('*.png'))) == 2 * model.n_joints + 1
+    page = page_path.read_text(encoding='utf-8')
+    referenced = _referenced_files(page)
+    assert set(files['ratio'] + files['safe_set'] + files['summary']) <= set(referenced)
+    for name in referenced:
+        assert '://' not in name and (folder / name).is_file(), name
+    assert 'http://' not in page and 'https://' not in page
+    data = json.loads((folder / REPORT_JSON).read_text(encoding='utf-8'))
+    return page, data
+
+
+def test_report_folder_is_complete_and_self_contained(planar2, tmp_path) -> None:
+    outcome, model = planar2
+    page, data = _check_report_folder(outcome, model, tmp_path / 'report')
+    assert 'CERTIFIED' in page and 'NOT CERTIFIED' not in page
+    for name in model.joint_names:
+        assert f'<td>{name}</td>' in page
+    assert outcome.certificate.model_hash in page
+    assert html.escape(SAFETY_NOTICE) in page
+    assert SAFETY_NOTICE == CLI_NOTICE  # the report repeats the command line's words
+    assert data['verdict'] == 'certified'
+    assert data['certificate']['joint_names'] == list(model.joint_names)
+    assert data['certificate']['certificate_id'] == outcome.certificate.certificate_id
+    assert set(data['stage_seconds']) == set(outcome.stage_seconds)
+    assert data['falsifier']['states'] == 2000
+    assert data['falsifier']['infeasible'] == 0
+    assert len(data['falsifier']['worst_states']) == len(outcome.falsifier.worst_states)
+    assert np.allclose([row['gamma'] for row in data['joints']], outcome.certificate.gamma)
+
+
+def test_report_of_a_failed_certification_says_why(weak, tmp_path) -> None:
+    outcome, model = weak
+    page, data = _check_report_folder(outcome, model, tmp_path / 'report')
+    assert 'NOT CERTIFIED' in page
+    assert 'joint &#x27;shoulder&#x27;' in page and 'short by' in page
+    assert data['verdict'] == 'not certified'
+    assert data['falsifier'] is None
+    assert any('shoulder' in reason for reason in data['certificate']['reasons'])
