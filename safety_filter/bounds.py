@@ -25,6 +25,7 @@ import numpy as np
 from scipy.stats import qmc
 
 from safety_filter.dynamics import christoffel_batch, mass_matrix_batch, rnea_batch
+from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 
 ProgressCallback = Callable[[str, float], None]
@@ -53,9 +54,10 @@ class BoundSettings:
 
     def __post_init__(self) -> None:
         if self.samples < 16 or self.refine_starts < 0 or self.refine_iterations < 0:
-            raise ValueError('samples >= 16, refine_starts >= 0, refine_iterations >= 0')
+            raise SafetyFilterError(
+                'bound settings need samples >= 16, refine_starts >= 0, refine_iterations >= 0')
         if not self.inflation >= 1.0:
-            raise ValueError(f'inflation must be >= 1, got {self.inflation}')
+            raise SafetyFilterError(f'inflation must be >= 1, got {self.inflation}')
 
 
 @dataclass

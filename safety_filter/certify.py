@@ -298,6 +298,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     r = np.array(model.position_range)
     seconds: dict[str, float] = {}
     reasons: list[str] = []
+    notes: list[str] = []
 
     clock = time.perf_counter()
     bounds = estimate_bounds(model, settings.bounds, progress=lambda s, f: report(
@@ -337,6 +338,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
                 inflation=settings.margin_inflation, current_margin=margin,
                 seed=settings.seed + rounds['count'])
             rounds['count'] += 1
+            report('sampling margin', min(0.95, rounds['count'] / 12))
             if np.all(new_margin <= margin * (1.0 + 1e-9)):
                 return design, margin, design
             margin = np.maximum(margin, new_margin)
@@ -361,7 +363,6 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
                         design, margin, low = trial, trial_margin, middle
                     else:
                         high = middle
-                    report('sampling margin', (step + 1) / 4)
             if design is not None:
                 candidates = _design_for_scale(model, bounds, settings, design.scale,
                                                margin)[1]
@@ -372,15 +373,25 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     clock = time.perf_counter()
     if design is None:
         reasons.extend(_explain_no_design(model, bounds, settings, margin, last_design))
-        gamma = g_star = authority = np.zeros(n)
         b_star = b_floor = b_cap = beta = np.zeros(n)
-        velocity_box = np.zeros(n)
-        condition = 'acceleration_authority'
-        scale = 0.0
+        if last_design is not None:
+            # Keep the numbers of the last attempt: they show which joint ran short.
+            gamma, g_star, authority = (last_design.gamma, last_design.gamma_star,
+                                        last_design.authority)
+            velocity_box, condition = last_design.velocity_box, last_design.condition
+            scale = last_design.scale
+        else:
+            gamma = g_star = authority = velocity_box = np.zeros(n)
+            condition, scale = 'acceleration_authority', 0.0
     else:
         gamma, g_star, authority = design.gamma, design.gamma_star, design.authority
         velocity_box, condition, scale = design.velocity_box, design.condition, design.scale
         b_star, b_floor, b_cap, beta = _choose_beta(design, margin, r, settings)
+        for i in np.flatnonzero(b_floor > b_cap):
+            notes.append(f'joint {names[i]!r}: beta is held at the sampled-data cap '
+                         f'{b_cap[i]:.4g}, below the floor {b_floor[i]:.4g} at which the bound '
+                         'at rest mid-range reaches the authority: the filter brakes this joint '
+                         'earlier than it needs to (a faster control rate raises the cap)')
         for i in range(n):
             if not np.isfinite(b_star[i]) or settings.beta_margin * b_star[i] > b_cap[i]:
                 factor = settings.beta_margin * b_star[i] / b_cap[i]
@@ -407,6 +418,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'authority_row_sums': _plain(candidates.get('acceleration_authority')),
         'authority_torque_coupling': _plain(candidates.get('torque_coupling')),
         'torque_coupling_rho': _plain(bounds.coupling_min),
+        'notes': notes,
     }
     certificate = Certificate(
         joint_names=names,
