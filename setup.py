@@ -59,6 +59,14 @@ setup(
     entry_points={
         'console_scripts': [
             'safety-filter = safety_filter.cli:main',
+            # `ros2 run safety_filter filter_node --ros-args --params-file certificate.yaml ...`
+            'filter_node = safety_filter.ros.filter_node:main',
+            # The simulated demo's nodes (launch/sim_demo.launch.py, `safety-filter demo`).
+            'sim_arm = safety_filter.ros.sim_arm_node:main',
+            'careless_operator = safety_filter.ros.operator_node:main',
+            'bag_recorder = safety_filter.ros.recorder_node:main',
+            # The live terminal monitor and event log (`safety-filter monitor`).
+            'filter_monitor = safety_filter.ros.monitor:main',
         ],
     },
 )

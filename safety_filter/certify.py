@@ -528,6 +528,14 @@ def _explain_no_design(model: RobotModel, bounds: DynamicsBounds, settings: Cert
         return reasons
     if last_design is not None:
         short = np.flatnonzero(margin >= last_design.authority)
+        if len(short) == 0:
+            # Every joint kept some authority, but the margin -> gains -> margin iteration did
+            # not settle (each round re-estimates the margin from new rollouts).
+            return [f'the sampled-data margin did not settle down to velocity scale '
+                    f'{last_design.scale:.3g}: last margin per joint '
+                    f'{", ".join(f"{names[i]!r} {margin[i]:.4g}" for i in range(len(names)))}'
+                    f' rad/s^2; raise margin_samples (now {settings.margin_samples}) or the '
+                    'control rate']
         return [f'joint {names[i]!r}: within one hold period of '
                 f'{1000 * settings.hold_period_s:.3g} ms its acceleration drifts by up to '
                 f'{margin[i]:.4g} rad/s^2, more than its authority '

@@ -88,10 +88,7 @@ def _certify_settings(args: argparse.Namespace) -> CertifySettings:
     from safety_filter.bounds import BoundSettings
     from safety_filter.certify import CertifySettings
 
-    try:
-        bounds = BoundSettings(samples=args.samples, inflation=args.inflation, seed=args.seed)
-    except ValueError as err:
-        raise SafetyFilterError(f'bound settings: {err}') from err
+    bounds = BoundSettings(samples=args.samples, inflation=args.inflation, seed=args.seed)
     if args.falsifier_states < 0:
         raise SafetyFilterError('--falsifier-states must be >= 0')
     extra = {}
@@ -304,6 +301,16 @@ def build_parser() -> argparse.ArgumentParser:
     inspect.set_defaults(handler=_command_inspect)
     _add_certify_parser(commands)
     _add_node_parser(commands)
+    from safety_filter.replay_cli import add_replay_parser
+
+    add_replay_parser(commands)
+    from safety_filter.cli_demo import add_demo_parser, add_run_graph_parser
+
+    add_demo_parser(commands)
+    add_run_graph_parser(commands)
+    from safety_filter.monitor_view import add_monitor_parser
+
+    add_monitor_parser(commands)
     return parser
 
 

@@ -376,6 +376,10 @@ class Dynamics:
     def forward_dynamics(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
         """Acceleration ``a = M^-1 (u - h)`` under torque ``u``."""
         u = self._check(u, 'u')
+        if self._pin is not None:
+            q, v = self._check(q, 'q'), self._check(v, 'v')
+            # The articulated-body algorithm with friction moved to the torque side.
+            return self._pin.forward(q, v, u - self._viscous * v - self._coulomb * np.sign(v))
         mass, bias = self.mass_and_bias(q, v)
         factor = np.linalg.cholesky(mass)
         return np.linalg.solve(factor.T, np.linalg.solve(factor, u - bias))
@@ -422,6 +426,9 @@ class _PinocchioChain:
 
     def nonlinear(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
         return np.array(self._pin.nonLinearEffects(self.model, self.data, q, v))
+
+    def forward(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
+        return np.array(self._pin.aba(self.model, self.data, q, v, u))
 
     def rnea(self, q: np.ndarray, v: np.ndarray, a: np.ndarray, with_gravity: bool
              ) -> np.ndarray:

@@ -249,6 +249,19 @@ class RobotModel:
     def __repr__(self) -> str:
         return f'RobotModel({self.name!r}, joints={list(self.joint_names)})'
 
+    def __getstate__(self) -> dict[str, Any]:
+        # The dynamics cache a Pinocchio twin on the model; it cannot be pickled (worker
+        # processes rebuild it on first use).
+        state = dict(self.__dict__)
+        state.pop('_pinocchio_cache', None)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        for value in state.values():
+            if isinstance(value, np.ndarray):
+                value.flags.writeable = False
+
 
 # ---------------------------------------------------------------------- URDF reading
 def _read_urdf_text(urdf: str | Path) -> tuple[str, str]:

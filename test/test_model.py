@@ -555,3 +555,18 @@ def test_describe_lists_every_joint() -> None:
         assert name in text
     assert 'finger_left=0' in text
     assert repr(model) == "RobotModel('gripper3', joints=['yaw', 'pitch', 'slide'])"
+
+
+def test_model_survives_pickling_for_worker_processes() -> None:
+    # Batch replay sends the model to worker processes; the cached Pinocchio twin must not
+    # travel with it, and the arrays must stay read-only.
+    import pickle
+
+    from safety_filter import Dynamics, load_demo_arm
+
+    model = load_demo_arm('planar2')
+    Dynamics(model).mass_matrix(np.zeros(2))  # fills the cache
+    copy = pickle.loads(pickle.dumps(model))
+    assert copy.content_hash() == model.content_hash()
+    with pytest.raises(ValueError):
+        copy.position_lower[0] = 0.0

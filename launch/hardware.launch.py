@@ -1,0 +1,82 @@
+"""The safety filter alone, between a command source and the driver of a real arm.
+
+    ros2 launch safety_filter hardware.launch.py certificate:=arm_certificate.yaml \
+        urdf_path:=arm.urdf limits_path:=arm_limits.yaml \
+        command_topic:=/effort_controller/commands payload_mass:=0.5
+
+The filter reads ``joint_states_topic`` and ``nominal_topic`` and publishes the safe torque
+on ``command_topic`` (its ``filtered_torque``, remapped). Operational parameters come from
+``config/filter.yaml`` (one filter step per joint state, timeouts, diagnostics).
+
+Arguments:
+    certificate: the certificate parameter file (``safety-filter certify``); required.
+    urdf_path, limits_path: the robot the certificate was computed for (hash-checked).
+    command_topic: the driver's effort-command topic (default ``effort_command``).
+    joint_states_topic: the driver's joint states (default ``joint_states``).
+    nominal_topic: the command source's torques (default ``nominal_torque``).
+    gravity_convention: ``full`` (the driver takes full torques, default) or
+        ``driver_compensated`` (the driver adds gravity itself).
+    payload_mass: the mounted payload [kg] (default -1: the middle of the certified range).
+    control_rate_hz: the watchdog's rate [Hz] (default 0: the certificate's control rate;
+        the driver must run at the certificate's control rate for its guarantee).
+    autostart: configure and activate the filter at start (default true); false leaves it
+        unconfigured for a lifecycle manager (``ros2 lifecycle set /safety_filter ...``).
+
+``safety-filter run-graph --graph hardware`` starts the same node without ``ros2 launch``.
+"""
+
+from launch import LaunchDescription
+from launch.actions import DeclareLaunchArgument
+from launch.conditions import IfCondition, UnlessCondition
+from launch.substitutions import LaunchConfiguration, PathJoinSubstitution
+from launch_ros.actions import Node
+from launch_ros.parameter_descriptions import ParameterValue
+from launch_ros.substitutions import FindPackageShare
+
+
+def generate_launch_description() -> LaunchDescription:
+    config = PathJoinSubstitution([FindPackageShare('safety_filter'), 'config', 'filter.yaml'])
+    arguments = [
+        DeclareLaunchArgument('certificate',
+                              description='certificate parameter file (safety-filter certify)'),
+        DeclareLaunchArgument('urdf_path', description='the robot URDF'),
+        DeclareLaunchArgument('limits_path', default_value='',
+                              description='the limits file of the robot'),
+        DeclareLaunchArgument('command_topic', default_value='effort_command',
+                              description="the driver's effort-command topic"),
+        DeclareLaunchArgument('joint_states_topic', default_value='joint_states',
+                              description="the driver's joint states"),
+        DeclareLaunchArgument('nominal_topic', default_value='nominal_torque',
+                              description="the command source's torques"),
+        DeclareLaunchArgument('gravity_convention', default_value='full',
+                              description='full or driver_compensated'),
+        DeclareLaunchArgument('payload_mass', default_value='-1.0',
+                              description='mounted payload [kg]; negative: mid-range'),
+        DeclareLaunchArgument('control_rate_hz', default_value='0.0',
+                              description="watchdog rate [Hz]; 0: the certificate's rate"),
+        DeclareLaunchArgument('autostart', default_value='true',
+                              description='configure and activate the filter at start'),
+    ]
+    parameters = [
+        LaunchConfiguration('certificate'), config,
+        {'urdf_path': LaunchConfiguration('urdf_path'),
+         'limits_path': LaunchConfiguration('limits_path'),
+         'gravity_convention': LaunchConfiguration('gravity_convention'),
+         'payload_mass': ParameterValue(LaunchConfiguration('payload_mass'), value_type=float),
+         'watchdog_rate_hz': ParameterValue(LaunchConfiguration('control_rate_hz'),
+                                            value_type=float)},
+    ]
+    remappings = [
+        ('filtered_torque', LaunchConfiguration('command_topic')),
+        ('joint_states', LaunchConfiguration('joint_states_topic')),
+        ('nominal_torque', LaunchConfiguration('nominal_topic')),
+    ]
+    autostarted = Node(
+        package='safety_filter', executable='filter_node', name='safety_filter',
+        output='screen', arguments=['--autostart'], parameters=parameters,
+        remappings=remappings, condition=IfCondition(LaunchConfiguration('autostart')))
+    managed = Node(
+        package='safety_filter', executable='filter_node', name='safety_filter',
+        output='screen', parameters=parameters, remappings=remappings,
+        condition=UnlessCondition(LaunchConfiguration('autostart')))
+    return LaunchDescription(arguments + [autostarted, managed])

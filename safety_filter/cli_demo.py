@@ -1,0 +1,203 @@
+"""The ``demo`` and ``run-graph`` subcommands of ``safety-filter`` (see :mod:`safety_filter.cli`).
+
+They need rclpy (the ``ros`` extra) at run time, not to build the parser.
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+from pathlib import Path
+
+from safety_filter.demo_arms import DEMO_ARMS, demo_arm_files
+from safety_filter.errors import SafetyFilterError
+
+EXECUTORS = ('events', 'single', 'multi')
+EXIT_INTERRUPTED = 130
+GRAPHS = ('sim', 'hardware')
+
+
+def _require_rclpy() -> None:
+    try:
+        import rclpy  # noqa: F401
+    except ImportError as err:
+        raise SafetyFilterError(
+            "this command needs rclpy: python3 -m pip install -e '.[ros]' (the ROS 2 "
+            'Jazzy wheels), or source a ROS 2 Jazzy install') from err
+
+
+def _add_graph_options(parser: argparse.ArgumentParser) -> None:
+    group = parser.add_argument_group('how the graph runs')
+    group.add_argument('--processes', action='store_true',
+                       help='one process per node (default: every node in one process)')
+    group.add_argument('--executor', choices=EXECUTORS, default='events',
+                       help="executor of the nodes (default: events, rclpy's "
+                       'EventsExecutor, the fastest for a 1 kHz loop in Python)')
+    group.add_argument('--domain-id', type=int, default=None, metavar='N',
+                       help='ROS domain of the graph (demo default: a random one in '
+                       '150..199, discovery on this machine only)')
+    group.add_argument('--verbose', action='store_true', help="show the nodes' info logs")
+
+
+# ---------------------------------------------------------------------- demo
+def _command_demo(args: argparse.Namespace) -> int:
+    from safety_filter.demo import (
+        DEMO_FALSIFIER_STATES,
+        EXIT_LIMITS_BROKEN,
+        EXIT_OK,
+        DemoOptions,
+        run_demo,
+    )
+
+    _require_rclpy()
+    options = DemoOptions(
+        arm=args.arm, output=Path(args.output), duration_s=args.duration, seed=args.seed,
+        processes=args.processes, executor=args.executor, domain_id=args.domain_id,
+        storage=args.storage, recertify=args.recertify,
+        falsifier_states=(DEMO_FALSIFIER_STATES if args.falsifier_states is None
+                          else args.falsifier_states), verbose=args.verbose)
+    start = time.monotonic()
+    try:
+        result = run_demo(options)
+    except KeyboardInterrupt:
+        print('interrupted', flush=True)
+        return EXIT_INTERRUPTED
+    print()
+    print(result.summary)
+    print(f'\nreport: {result.report.resolve()}')
+    print(f'bags: {(Path(args.output) / "bags").resolve()}')
+    print(f'certificate: {result.certificate_path.resolve()}')
+    print(f'wall time: {time.monotonic() - start:.1f} s')
+    if not result.unfiltered_broke_some:
+        print('note: the unfiltered run broke no limit this time; try a longer --duration '
+              'or another --seed')
+    if not result.filtered_kept_all:
+        print('FILTERED RUN BROKE A LIMIT: see the report')
+        return EXIT_LIMITS_BROKEN
+    return EXIT_OK
+
+
+def add_demo_parser(commands: argparse._SubParsersAction) -> None:
+    """Add ``safety-filter demo``."""
+    demo = commands.add_parser(
+        'demo', help='the one-command demo: a careless operator on a simulated arm, without '
+        'and with the filter, recorded and reported',
+        description='Certify a demo arm (or reuse its certificate in the output folder), run '
+        'a simulated arm driven by a careless operator twice (unfiltered, possible only in '
+        'simulation, then through the safety filter), record both runs to rosbag2 bags and '
+        'write a report with the limit violations of each. Exit code 0: the filtered run '
+        'kept every limit; 4: it did not; 2: bad input or a failed run.')
+    demo.add_argument('--arm', choices=DEMO_ARMS, default='bench6',
+                      help='the demo arm (default: bench6)')
+    demo.add_argument('--output', default='out/demo', metavar='DIR',
+                      help='output folder: certificate, bags, report (default: out/demo)')
+    demo.add_argument('--duration', type=float, default=10.0, metavar='S',
+                      help='simulated seconds of motion per run (default: 10)')
+    demo.add_argument('--seed', type=int, default=None,
+                      help="the operator's seed (default: config/sim_demo.yaml's)")
+    demo.add_argument('--storage', choices=('mcap', 'sqlite3'), default='mcap',
+                      help='bag storage (default: mcap)')
+    demo.add_argument('--recertify', action='store_true',
+                      help='certify even when a valid certificate is in the output folder')
+    demo.add_argument('--falsifier-states', type=int, default=None, metavar='N',
+                      help='falsifier states of a new certification (default: 20000)')
+    _add_graph_options(demo)
+    demo.set_defaults(handler=_command_demo)
+
+
+# ---------------------------------------------------------------------- run-graph
+def _robot_files(args: argparse.Namespace) -> tuple[Path, Path | str, str]:
+    if args.urdf is not None:
+        if args.arm is not None:
+            raise SafetyFilterError('give either --arm or --urdf, not both')
+        return Path(args.urdf), (Path(args.limits) if args.limits else ''), Path(args.urdf).stem
+    if args.limits:
+        raise SafetyFilterError('--limits needs --urdf')
+    arm = args.arm or 'bench6'
+    urdf, limits = demo_arm_files(arm)
+    return urdf, limits, arm
+
+
+def _command_run_graph(args: argparse.Namespace) -> int:
+    _require_rclpy()
+    from safety_filter.ros.runner import hardware_graph, run_graph, sim_demo_graph
+
+    urdf, limits, name = _robot_files(args)
+    certificate = (Path(args.certificate) if args.certificate
+                   else Path('out/demo') / f'{name}_certificate.yaml')
+    if not certificate.is_file():
+        raise SafetyFilterError(
+            f'no certificate at {certificate}: give --certificate, or write one with '
+            f'`safety-filter certify` (or `safety-filter demo`, which puts it there)')
+    if args.graph == 'sim':
+        specs = sim_demo_graph(urdf_path=urdf, limits_path=limits, certificate=certificate,
+                               duration_s=args.duration, seed=args.seed,
+                               payload_mass=args.payload_mass, bag_path=args.bag,
+                               storage=args.storage)
+        duration = 0.0  # the simulated arm stops itself
+    else:
+        if args.bag:
+            raise SafetyFilterError('--bag records the sim graph only; use ros2 bag record')
+        specs = hardware_graph(
+            certificate=certificate, urdf_path=urdf, limits_path=limits,
+            command_topic=args.command_topic, joint_states_topic=args.joint_states_topic,
+            nominal_topic=args.nominal_topic, gravity_convention=args.gravity_convention,
+            payload_mass=-1.0 if args.payload_mass is None else args.payload_mass,
+            control_rate_hz=args.control_rate)
+        duration = args.duration
+    how = 'one process per node' if args.processes else 'one process'
+    print(f'running {[s.name for s in specs]} ({how}); Ctrl-C stops', flush=True)
+    result = run_graph(specs, processes=args.processes, executor=args.executor,
+                       duration_s=duration, domain_id=args.domain_id,
+                       localhost_only=args.graph == 'sim',
+                       log_level=None if args.verbose else 'warn')
+    state = 'interrupted' if result.interrupted else 'done'
+    simulated = f', {result.simulated_s:.2f} s simulated' if result.simulated_s else ''
+    print(f'{state} after {result.wall_s:.1f} s{simulated}')
+    if result.counts:
+        print('recorded: ' + ', '.join(f'{t} {c}' for t, c in sorted(result.counts.items())))
+    return 0
+
+
+def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
+    """Add ``safety-filter run-graph``."""
+    run = commands.add_parser(
+        'run-graph', help='start the node graph of a launch file without ros2 launch',
+        description='Start the nodes of launch/sim_demo.launch.py (--graph sim: simulated '
+        'arm, careless operator, filter) or launch/hardware.launch.py (--graph hardware: '
+        'the filter alone) with the same parameter files and remappings, configure and '
+        'activate the filter, and stop cleanly on Ctrl-C or after --duration.')
+    run.add_argument('--graph', choices=GRAPHS, default='sim',
+                     help='sim (default) or hardware')
+    robot = run.add_argument_group('robot')
+    robot.add_argument('--arm', choices=DEMO_ARMS, default=None,
+                       help='a demo arm (default: bench6 when no --urdf)')
+    robot.add_argument('--urdf', help='the robot URDF')
+    robot.add_argument('--limits', help='its limits file')
+    robot.add_argument('--certificate', metavar='PATH',
+                       help='certificate parameter file (default: out/demo/<arm or URDF '
+                       'stem>_certificate.yaml, where safety-filter demo writes it)')
+    robot.add_argument('--payload-mass', type=float, default=None, metavar='KG',
+                       help='mounted payload [kg] (hardware default: the middle of the '
+                       'certified range)')
+    run.add_argument('--duration', type=float, default=0.0, metavar='S',
+                     help='sim: simulated seconds of motion; hardware: wall seconds '
+                     '(default 0: until Ctrl-C)')
+    sim = run.add_argument_group('sim graph')
+    sim.add_argument('--seed', type=int, default=None, help="the operator's seed")
+    sim.add_argument('--bag', metavar='DIR', default=None,
+                     help='record the graph to this bag folder (must not exist)')
+    sim.add_argument('--storage', choices=('mcap', 'sqlite3'), default='mcap')
+    hardware = run.add_argument_group('hardware graph')
+    hardware.add_argument('--command-topic', default='effort_command',
+                          help="the driver's effort-command topic (filtered_torque goes "
+                          'there; default: effort_command)')
+    hardware.add_argument('--joint-states-topic', default='joint_states')
+    hardware.add_argument('--nominal-topic', default='nominal_torque')
+    hardware.add_argument('--gravity-convention', choices=('full', 'driver_compensated'),
+                          default='full')
+    hardware.add_argument('--control-rate', type=float, default=0.0, metavar='HZ',
+                          help="the filter's watchdog rate (default 0: the certificate's "
+                          'control rate)')
+    _add_graph_options(run)
+    run.set_defaults(handler=_command_run_graph)

@@ -1,0 +1,862 @@
+"""The safety filter as a managed (lifecycle) ROS 2 node, between a command source and a driver.
+
+Wiring (topic names are relative, so remap them)::
+
+    teleop / policy --nominal_torque--> [safety_filter] --filtered_torque--> driver
+    driver ---------------joint_states--^
+
+The node converts messages, calls :meth:`SafetyFilter.step` (the ROS-free numeric core) and
+publishes. It does no numerics of its own: even the "hold" commands below come from the
+filter's own rejection path.
+
+Topics
+------
+Subscriptions:
+
+* ``joint_states`` (``sensor_msgs/JointState``): matched by joint NAME, so any order works and
+  joints outside the certified chain are ignored. The message is *invalid* (counted, and the
+  step gets the filter's rejection semantics: the hold command at the last valid position)
+  when a chain joint is missing, when ``position`` or ``velocity`` does not have one entry per
+  name, or when ``velocity`` is empty. ``header.stamp`` is not used: input ages are measured
+  from receipt on this node's steady clock, so the node works with any clock in the stamps
+  (sim time, a driver's own clock); DDS transport delay is not included in the ages.
+* ``nominal_torque`` (``std_msgs/Float64MultiArray``, the usual effort-command format of
+  ``ros2_control`` forward controllers): ``data`` holds exactly one torque per chain joint in
+  the CERTIFICATE's joint order (the ``joint_names`` parameter, base to tip), in the driver's
+  convention (see ``gravity_convention``). ``layout`` is ignored. Another length makes the
+  message invalid (counted; the step then sends the hold command).
+
+Publications:
+
+* ``filtered_torque`` (``std_msgs/Float64MultiArray``): the safe torque, same format and joint
+  order as the nominal. Remap it to the driver's effort command topic, e.g.
+  ``-r filtered_torque:=/effort_controller/commands``. Nothing is published before the first
+  valid joint state: without a state there is no safe command to give (the driver's own
+  command timeout applies then, as it does when this node stops).
+* ``~/status`` (``std_msgs/Float64MultiArray``, one per published torque, for bags):
+  ``layout.dim[0].label`` is the comma-separated list of field names and ``layout.dim[0].size``
+  their number (see :data:`STATUS_SCALAR_FIELDS` and :func:`status_field_names`)::
+
+      stamp_s,step,mode,hold_nominal,intervention,solve_time_s,joint_state_age_s,
+      nominal_age_s,margin.<joint>...,torque.<joint>...,nominal.<joint>...,
+      position.<joint>...,velocity.<joint>...
+
+  ``stamp_s`` is the node clock [s]; ``step`` counts published steps since activation;
+  ``mode`` is a numeric code (:data:`MODE_CODES`): **0 filtered, 1 fallback, 2 recovering,
+  3 rejected, 4 stale** (joint states timed out, hold command sent); ``hold_nominal`` is 1
+  when the nominal was stale and the hold command was used as the nominal; ``intervention``
+  ``|u* - u_nom|`` [N m]; ``margin.<j>`` the smallest barrier value of the joint (negative:
+  outside the safe set); ``torque``, ``nominal``, ``position`` and ``velocity`` are exactly
+  the arrays given to and returned by :meth:`SafetyFilter.step` (NaN where the input was
+  invalid), so a bag of this topic replays the filter step by step.
+* ``/diagnostics`` (``diagnostic_msgs/DiagnosticArray``, at ``diagnostics_rate_hz``, also
+  while inactive): one status named ``'<node name>: filter'``. Level ERROR when the
+  joint-state watchdog has tripped or steps were rejected or recovering since the last
+  report; STALE when inactive, when no joint state was ever received, or when the nominal is
+  stale or was never received; WARN after a fallback since the last report or when a barrier
+  margin fell below ``margin_warn``; OK otherwise (ERROR > STALE > WARN > OK). Key values:
+  mode, intervention (last and max since the last report), ``margin.<joint>`` (smallest
+  since the last report), active constraints of the last step, solve time median/p99/max
+  over the report window, step counts per mode and the reasons of non-filtered steps, input
+  ages [ms], invalid-message counts, certificate id.
+
+Quality of service
+------------------
+``joint_states``, ``nominal_torque``, ``filtered_torque`` and ``~/status``: keep-last depth 1,
+reliable, volatile. In a control loop only the newest sample is useful: a deeper queue would
+hand the filter (or the driver) a backlog of old states and commands after any hiccup, i.e.
+feed stale commands; volatile because a late joiner must not get an old command. Reliable
+keeps samples from being dropped on a lossy link while the writer still holds them. A driver
+that publishes joint states best-effort (sensor-data QoS) needs the standard override
+``-p qos_overrides./joint_states.subscription.reliability:=best_effort`` (QoS overrides are
+enabled for reliability, history and depth on these four topics). ``/diagnostics``: the
+default QoS (reliable, depth 10), like every diagnostics publisher.
+
+Timeouts and the watchdog
+-------------------------
+A watchdog timer runs at ``watchdog_rate_hz`` (default: the certificate's control rate).
+
+* **Joint states** older than ``joint_state_timeout_s`` (no valid message for that long):
+  every step publishes the filter's hold command at the last valid position with the
+  velocity unknown (gravity compensation ``g(q_last)`` only: no damping computed from a
+  stale velocity), status mode 4, diagnostics ERROR. The watchdog publishes it at its rate
+  even when no message arrives at all.
+* **Nominal** older than ``nominal_timeout_s`` (or never received) is NEVER used. The step
+  uses the "hold still" command as the nominal instead: the filter's hold command at the
+  current state (gravity compensation plus damping toward rest, ``g(q) - hold_damping v``),
+  and that nominal is still filtered, so the limits keep being enforced. Diagnostics go
+  STALE with the nominal's age; status ``hold_nominal`` = 1.
+* With ``trigger: nominal`` (steps run on each nominal, with the latest joint state) the
+  watchdog runs the step itself while the nominal topic is silent; with
+  ``trigger: joint_state`` (steps run on each joint state, with the latest nominal) it does
+  so while the joint-state topic is silent. So a command keeps flowing to the driver once a
+  valid joint state has been received since activation (a state that is already stale at
+  activation is forgotten: nothing is published until a fresh one arrives).
+
+Parameters
+----------
+Safety parameters, fixed for the life of the node (a runtime change is rejected with a
+reason; change them by starting the node again):
+
+* every entry of the certificate parameter file (:meth:`Certificate.to_parameters`, given
+  with ``--params-file``; declared read-only). The node refuses an uncertified certificate,
+  an edited one (its id covers the content) and one computed for another model (hash).
+* ``urdf_path`` (a URDF file) or ``robot_description`` (the URDF XML text); ``limits_path``
+  (the limits YAML, which also selects the chain); ``gravity_convention`` (``'full'``: the
+  driver takes the full torque, ``'driver_compensated'``: the driver adds ``g(q)`` itself,
+  both nominal and output are then on top of gravity); ``payload_mass`` [kg] (negative: the
+  middle of the certified range; outside the range: refused).
+
+Operational parameters: ``joint_state_timeout_s`` (0.05) and ``nominal_timeout_s`` (0.1)
+[s] may change at any time (positive, finite); ``trigger`` (``'nominal'``),
+``watchdog_rate_hz`` (0 = the certificate's control rate), ``diagnostics_rate_hz`` (2.0) and
+``margin_warn`` (0.01, in the barrier's units) are read at configure and can be changed only
+while the node is unconfigured.
+
+Lifecycle
+---------
+``configure`` builds the model, rebuilds the certificate from the parameters, checks the
+model hash and creates the filter, publishers, subscriptions and timers (any error: logged,
+the transition fails and the node stays unconfigured). ``activate`` enables the publishers and
+starts filtering (fresh filter state and counters); ``deactivate`` stops it; ``cleanup`` and
+``shutdown`` destroy everything. Executables: ``ros2 run safety_filter filter_node
+--ros-args --params-file certificate.yaml -p urdf_path:=arm.urdf -p limits_path:=limits.yaml``
+(add ``--autostart`` before ``--ros-args`` to configure and activate at start-up), or
+``safety-filter node --certificate certificate.yaml --urdf arm.urdf --limits limits.yaml``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import array
+import math
+import os
+import signal
+import sys
+import time
+from collections import Counter
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+import rclpy
+from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
+from lifecycle_msgs.srv import ChangeState
+from rcl_interfaces.msg import ParameterDescriptor, SetParametersResult
+from rclpy.executors import SingleThreadedExecutor
+from rclpy.impl.implementation_singleton import rclpy_implementation as _rclpy
+from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
+from rclpy.parameter import Parameter
+from rclpy.qos import (
+    DurabilityPolicy,
+    HistoryPolicy,
+    QoSPolicyKind,
+    QoSProfile,
+    ReliabilityPolicy,
+)
+from rclpy.qos_overriding_options import QoSOverridingOptions
+from rclpy.signals import SignalHandlerOptions
+from rclpy.utilities import remove_ros_args
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Float64MultiArray, MultiArrayDimension
+
+from safety_filter.certificate import FILTER_NODE_NAME, Certificate
+from safety_filter.errors import SafetyFilterError
+from safety_filter.filter import GRAVITY_CONVENTIONS, FilterMode, FilterOutput, SafetyFilter
+from safety_filter.model import RobotModel
+
+# Every key of Certificate.to_parameters() (a test checks they agree).
+CERTIFICATE_PARAMETERS = (
+    'certificate_format', 'joint_names', 'position_lower', 'position_upper', 'velocity_limit',
+    'effort_limit', 'velocity_bound', 'gamma', 'gamma_star', 'beta', 'beta_star', 'beta_floor',
+    'beta_cap', 'authority', 'sampling_margin', 'viscous_friction', 'coulomb_friction',
+    'condition', 'control_rate_hz', 'sampling_factor', 'model_hash', 'package_version',
+    'created', 'certified', 'alpha1_kind', 'alpha1_scale', 'alpha2_kind', 'alpha2_scale',
+    'payload_mass_range', 'payload_point', 'settings_json', 'falsifier_json', 'reasons',
+    'certificate_id')
+MODEL_PARAMETERS = ('urdf_path', 'robot_description', 'limits_path', 'gravity_convention',
+                    'payload_mass')
+SAFETY_PARAMETERS = frozenset(CERTIFICATE_PARAMETERS + MODEL_PARAMETERS)
+TIMEOUT_PARAMETERS = ('joint_state_timeout_s', 'nominal_timeout_s')
+CONFIGURE_TIME_PARAMETERS = ('trigger', 'watchdog_rate_hz', 'diagnostics_rate_hz',
+                             'margin_warn')
+TRIGGERS = ('nominal', 'joint_state')
+
+# Status mode codes (the ``mode`` field of ~/status).
+MODE_FILTERED = 0
+MODE_FALLBACK = 1
+MODE_RECOVERING = 2
+MODE_REJECTED = 3
+MODE_STALE = 4
+MODE_CODES = {FilterMode.FILTERED: MODE_FILTERED, FilterMode.FALLBACK: MODE_FALLBACK,
+              FilterMode.RECOVERING: MODE_RECOVERING, FilterMode.REJECTED: MODE_REJECTED}
+MODE_NAMES = ('filtered', 'fallback', 'recovering', 'rejected', 'stale')
+STATUS_SCALAR_FIELDS = ('stamp_s', 'step', 'mode', 'hold_nominal', 'intervention',
+                        'solve_time_s', 'joint_state_age_s', 'nominal_age_s')
+STATUS_JOINT_FIELDS = ('margin', 'torque', 'nominal', 'position', 'velocity')
+
+RCLError = _rclpy.RCLError
+DIAGNOSTIC_NAME_SUFFIX = ': filter'
+EXIT_OK = 0
+EXIT_FAILED = 1
+
+
+def control_qos() -> QoSProfile:
+    """Keep-last depth 1, reliable, volatile: the QoS of the control topics (module doc)."""
+    return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
+                      reliability=ReliabilityPolicy.RELIABLE,
+                      durability=DurabilityPolicy.VOLATILE)
+
+
+def status_field_names(joint_names: Sequence[str]) -> list[str]:
+    """Field names of the ``~/status`` array, in order (see the module docstring)."""
+    names = list(STATUS_SCALAR_FIELDS)
+    for field in STATUS_JOINT_FIELDS:
+        names.extend(f'{field}.{joint}' for joint in joint_names)
+    return names
+
+
+def _qos_overrides() -> QoSOverridingOptions:
+    return QoSOverridingOptions(policy_kinds=(QoSPolicyKind.RELIABILITY,
+                                              QoSPolicyKind.HISTORY, QoSPolicyKind.DEPTH))
+
+
+def _describe(text: str, read_only: bool = False, dynamic: bool = False) -> ParameterDescriptor:
+    return ParameterDescriptor(description=text, read_only=read_only, dynamic_typing=dynamic)
+
+
+def _positive_finite(name: str, value: Any) -> float:
+    """``value`` as a positive finite float, or :class:`SafetyFilterError` naming ``name``."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise SafetyFilterError(f'{name} must be a number, got {value!r}')
+    number = float(value)
+    if not (math.isfinite(number) and number > 0.0):
+        raise SafetyFilterError(f'{name} must be positive and finite, got {value!r}')
+    return number
+
+
+def _format_number(value: float) -> str:
+    return 'nan' if value is None or not math.isfinite(value) else f'{value:.6g}'
+
+
+class SafetyFilterNode(LifecycleNode):
+    """The managed node ``safety_filter`` (see the module docstring for its interface).
+
+    Args:
+        node_name: the node's name; the certificate file is keyed by it.
+        **kwargs: passed to :class:`rclpy.lifecycle.LifecycleNode` (``context``,
+            ``cli_args``, ``parameter_overrides``, ``namespace``, ...).
+    """
+
+    def __init__(self, node_name: str = FILTER_NODE_NAME, **kwargs: Any) -> None:
+        super().__init__(node_name, **kwargs)
+        # rclpy's change_state service raises (and so ends the executor's spin) when asked for
+        # a transition the current state does not have; answer success=False instead.
+        service = getattr(self, '_service_change_state', None)
+        if service is not None:
+            service.callback = self._guard_change_state(service.callback)
+        self._declare_parameters()
+        # Registered after the declarations: declaring calls the callback too.
+        self.add_on_set_parameters_callback(self._on_set_parameters)
+        self._configured = False
+        self._active = False
+        self._subscriptions_made: list[Any] = []
+        self._timers_made: list[Any] = []
+        self._filtered_pub: Any = None
+        self._status_pub: Any = None
+        self._diagnostics_pub: Any = None
+        self._watchdog: Any = None
+        self._filter: SafetyFilter | None = None
+        self._model: RobotModel | None = None
+        self._certificate: Certificate | None = None
+        self._joint_state_timeout = float(self.get_parameter('joint_state_timeout_s').value)
+        self._nominal_timeout = float(self.get_parameter('nominal_timeout_s').value)
+
+    def _guard_change_state(self, callback: Any) -> Any:
+        def change_state(request: ChangeState.Request,
+                         response: ChangeState.Response) -> ChangeState.Response:
+            try:
+                return callback(request, response)
+            except RCLError as err:
+                self.get_logger().warning(
+                    f'refused lifecycle transition {request.transition.id} '
+                    f'{request.transition.label!r}: {err}')
+                response.success = False
+                return response
+        return change_state
+
+    # ------------------------------------------------------------------ parameters
+    def _declare_parameters(self) -> None:
+        for name in CERTIFICATE_PARAMETERS:
+            self.declare_parameter(name, None, _describe(
+                'certificate entry (from the certificate parameter file); fixed',
+                read_only=True, dynamic=True))
+        self.declare_parameter('urdf_path', '', _describe(
+            'path of the robot URDF (or give robot_description); safety parameter, fixed'))
+        self.declare_parameter('robot_description', '', _describe(
+            'URDF XML text, used when urdf_path is empty; safety parameter, fixed'))
+        self.declare_parameter('limits_path', '', _describe(
+            'limits YAML of the robot (also selects the chain); safety parameter, fixed'))
+        self.declare_parameter('gravity_convention', 'full', _describe(
+            "'full' (the driver takes the full torque) or 'driver_compensated' (the driver "
+            'adds g(q) itself); safety parameter, fixed'))
+        self.declare_parameter('payload_mass', -1.0, _describe(
+            'payload of the model [kg]; negative: middle of the certified range; safety '
+            'parameter, fixed', dynamic=True))
+        self.declare_parameter('joint_state_timeout_s', 0.05, _describe(
+            'joint states older than this [s] trip the watchdog (hold command)', dynamic=True))
+        self.declare_parameter('nominal_timeout_s', 0.1, _describe(
+            'a nominal older than this [s] is never used (hold-still nominal instead)',
+            dynamic=True))
+        self.declare_parameter('trigger', 'nominal', _describe(
+            "'nominal': step on each nominal with the latest joint state; 'joint_state': step "
+            'on each joint state with the latest nominal; read at configure'))
+        self.declare_parameter('watchdog_rate_hz', 0.0, _describe(
+            'rate of the watchdog timer [Hz]; 0: the certificate control rate; read at '
+            'configure', dynamic=True))
+        self.declare_parameter('diagnostics_rate_hz', 2.0, _describe(
+            'rate of /diagnostics [Hz]; read at configure', dynamic=True))
+        self.declare_parameter('margin_warn', 0.01, _describe(
+            'diagnostics WARN when a barrier margin falls below this (barrier units); read '
+            'at configure', dynamic=True))
+
+    def _on_set_parameters(self, parameters: list[Parameter]) -> SetParametersResult:
+        """Reject safety parameters; validate operational ones."""
+        for parameter in parameters:
+            name = parameter.name
+            if name in SAFETY_PARAMETERS:
+                return SetParametersResult(
+                    successful=False,
+                    reason=f'{name} is a safety parameter (certificate, robot model, payload or '
+                    'gravity convention) and cannot change at runtime; start the node again '
+                    'with the new value (a new certificate for a new model)')
+            try:
+                if name in TIMEOUT_PARAMETERS:
+                    _positive_finite(name, parameter.value)
+                elif name in CONFIGURE_TIME_PARAMETERS:
+                    if self._configured:
+                        return SetParametersResult(
+                            successful=False,
+                            reason=f'{name} is read at configure; clean the node up first')
+                    self._validate_configure_parameter(name, parameter.value)
+            except SafetyFilterError as err:
+                return SetParametersResult(successful=False, reason=str(err))
+        for parameter in parameters:
+            if parameter.name == 'joint_state_timeout_s':
+                self._joint_state_timeout = float(parameter.value)
+            elif parameter.name == 'nominal_timeout_s':
+                self._nominal_timeout = float(parameter.value)
+        return SetParametersResult(successful=True)
+
+    @staticmethod
+    def _validate_configure_parameter(name: str, value: Any) -> Any:
+        if name == 'trigger':
+            if value not in TRIGGERS:
+                raise SafetyFilterError(f'trigger must be one of {TRIGGERS}, got {value!r}')
+            return value
+        if name == 'watchdog_rate_hz':
+            if isinstance(value, (int, float)) and not isinstance(value, bool) and value == 0:
+                return 0.0
+            return _positive_finite(name, value)
+        if name == 'margin_warn':
+            if isinstance(value, bool) or not isinstance(value, (int, float)) \
+                    or not math.isfinite(value):
+                raise SafetyFilterError(f'margin_warn must be a finite number, got {value!r}')
+            return float(value)
+        return _positive_finite(name, value)
+
+    def _certificate_parameters(self) -> dict[str, Any]:
+        values = {}
+        for name in CERTIFICATE_PARAMETERS:
+            parameter = self.get_parameter(name)
+            if parameter.type_ != Parameter.Type.NOT_SET:
+                value = parameter.value
+                values[name] = list(value) if isinstance(value, (array.array, tuple)) else value
+        return values
+
+    # ------------------------------------------------------------------ lifecycle
+    def on_configure(self, state: LifecycleState) -> TransitionCallbackReturn:
+        try:
+            self._configure()
+        except SafetyFilterError as err:
+            self.get_logger().error(f'configure failed: {err}')
+            self._teardown()
+            return TransitionCallbackReturn.FAILURE
+        except Exception as err:  # noqa: BLE001 - any error must fail the transition cleanly
+            self.get_logger().error(
+                f'configure failed: {type(err).__name__}: {err}')
+            self._teardown()
+            return TransitionCallbackReturn.FAILURE
+        return TransitionCallbackReturn.SUCCESS
+
+    def on_activate(self, state: LifecycleState) -> TransitionCallbackReturn:
+        result = super().on_activate(state)  # enables the lifecycle publishers
+        if result != TransitionCallbackReturn.SUCCESS:
+            return result
+        if self._filter is None:  # cannot happen: activate needs a configured node
+            return TransitionCallbackReturn.FAILURE
+        self._filter.reset()
+        self._reset_counters()
+        if time.monotonic() - self._js_valid_time > self._joint_state_timeout:
+            # A state from before activation is not a basis for holding: wait for a new one.
+            self._last_valid_q = None
+        self._active = True
+        if self._last_valid_q is not None:
+            self._watchdog.reset()  # else started by the first valid joint state
+        self.get_logger().info('active: filtering')
+        return TransitionCallbackReturn.SUCCESS
+
+    def on_deactivate(self, state: LifecycleState) -> TransitionCallbackReturn:
+        self._active = False
+        if self._watchdog is not None:
+            self._watchdog.cancel()
+        self.get_logger().info('inactive: not filtering')
+        return super().on_deactivate(state)
+
+    def on_cleanup(self, state: LifecycleState) -> TransitionCallbackReturn:
+        self._teardown()
+        return TransitionCallbackReturn.SUCCESS
+
+    def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
+        self._teardown()
+        self.get_logger().info('shut down')
+        return TransitionCallbackReturn.SUCCESS
+
+    def on_error(self, state: LifecycleState) -> TransitionCallbackReturn:
+        self.get_logger().error('error processing: tearing down (back to unconfigured)')
+        self._teardown()
+        return TransitionCallbackReturn.SUCCESS
+
+    @property
+    def filter(self) -> SafetyFilter | None:
+        """The filter while configured, else None."""
+        return self._filter
+
+    # ------------------------------------------------------------------ configure
+    def _configure(self) -> None:
+        values = self._certificate_parameters()
+        if 'certificate_format' not in values:
+            raise SafetyFilterError(
+                'no certificate parameters: start the node with --params-file <certificate '
+                'YAML written by safety-filter certify> (keyed by the node name '
+                f'{self.get_name()!r})')
+        certificate = Certificate.from_parameters(values)
+        urdf_path = str(self.get_parameter('urdf_path').value)
+        description = str(self.get_parameter('robot_description').value)
+        limits_path = str(self.get_parameter('limits_path').value)
+        if urdf_path and description:
+            raise SafetyFilterError('give urdf_path or robot_description, not both')
+        if not urdf_path and not description.strip():
+            raise SafetyFilterError('no robot model: set urdf_path or robot_description')
+        if description and not description.lstrip().startswith('<'):
+            raise SafetyFilterError('robot_description must be URDF XML text')
+        model = RobotModel.from_urdf(urdf_path or description, limits=limits_path or None)
+        certificate.check_model(model)
+
+        convention = self.get_parameter('gravity_convention').value
+        if convention not in GRAVITY_CONVENTIONS:
+            raise SafetyFilterError(
+                f'gravity_convention must be one of {GRAVITY_CONVENTIONS}, got {convention!r}')
+        payload = self.get_parameter('payload_mass').value
+        if isinstance(payload, bool) or not isinstance(payload, (int, float)) \
+                or not math.isfinite(payload):
+            raise SafetyFilterError(f'payload_mass must be a finite number, got {payload!r}')
+        low, high = certificate.payload_mass_range
+        payload_mass: float | None = None
+        if payload >= 0.0:
+            if not low <= payload <= high:
+                raise SafetyFilterError(
+                    f'payload_mass {payload:g} kg is outside the certified range '
+                    f'[{low:g}, {high:g}] kg: certify for this payload')
+            payload_mass = float(payload)
+        operational = {name: self._validate_configure_parameter(
+            name, self.get_parameter(name).value) for name in CONFIGURE_TIME_PARAMETERS}
+        for name in TIMEOUT_PARAMETERS:
+            _positive_finite(name, self.get_parameter(name).value)
+        filt = SafetyFilter(model, certificate, gravity_convention=convention,
+                            payload_mass=payload_mass)
+
+        self._model = model
+        self._certificate = certificate
+        self._filter = filt
+        self._trigger = operational['trigger']
+        self._margin_warn = operational['margin_warn']
+        watchdog_rate = operational['watchdog_rate_hz'] or certificate.control_rate_hz
+        n = model.n_joints
+        self._n = n
+        self._joint_names = tuple(model.joint_names)
+        self._clock = self.get_clock()
+        self._nan = np.full(n, math.nan)
+        self._nan.flags.writeable = False
+        self._js_names: list[str] | None = None
+        self._js_index: np.ndarray | None = None
+        self._js_problem = ''
+        self._q = self._nan
+        self._v = self._nan
+        self._last_valid_q: np.ndarray | None = None
+        self._js_valid_time = -math.inf  # steady time of the last valid joint state
+        self._js_time = -math.inf  # steady time of the last joint state (valid or not)
+        self._u_nom = self._nan
+        self._nominal_time = -math.inf
+        self._nominal_problem = ''
+        self._last_js_problem = ''
+        self._reset_counters()
+
+        fields = status_field_names(self._joint_names)
+        self._status_buffer = np.zeros(len(fields))
+        self._status_msg = Float64MultiArray()
+        self._status_msg.layout.dim = [MultiArrayDimension(
+            label=','.join(fields), size=len(fields), stride=len(fields))]
+        self._filtered_msg = Float64MultiArray()
+        self._filtered_msg.layout.dim = [MultiArrayDimension(
+            label='joints', size=n, stride=n)]
+
+        qos = control_qos()
+        self._filtered_pub = self.create_lifecycle_publisher(
+            Float64MultiArray, 'filtered_torque', qos, qos_overriding_options=_qos_overrides())
+        self._status_pub = self.create_lifecycle_publisher(
+            Float64MultiArray, '~/status', qos, qos_overriding_options=_qos_overrides())
+        self._diagnostics_pub = self.create_publisher(DiagnosticArray, '/diagnostics', 10)
+        self._subscriptions_made = [
+            self.create_subscription(JointState, 'joint_states', self._on_joint_state, qos,
+                                     qos_overriding_options=_qos_overrides()),
+            self.create_subscription(Float64MultiArray, 'nominal_torque', self._on_nominal,
+                                     qos, qos_overriding_options=_qos_overrides()),
+        ]
+        self._watchdog = self.create_timer(1.0 / watchdog_rate, self._on_watchdog)
+        self._watchdog.cancel()  # runs only while active
+        diagnostics = self.create_timer(1.0 / operational['diagnostics_rate_hz'],
+                                        self._on_diagnostics)
+        self._timers_made = [self._watchdog, diagnostics]
+        self._configured = True
+        self.get_logger().info(
+            f'configured: {model.name!r}, joints {list(self._joint_names)}, certificate '
+            f'{certificate.certificate_id}, gravity convention {convention}, payload '
+            f'{filt.payload_mass:g} kg, trigger {self._trigger}, watchdog {watchdog_rate:g} Hz')
+
+    def _teardown(self) -> None:
+        self._active = False
+        self._configured = False
+        for subscription in self._subscriptions_made:
+            self.destroy_subscription(subscription)
+        self._subscriptions_made = []
+        for timer in self._timers_made:
+            self.destroy_timer(timer)
+        self._timers_made = []
+        self._watchdog = None
+        for publisher in (self._filtered_pub, self._status_pub):
+            if publisher is not None:
+                self.destroy_lifecycle_publisher(publisher)
+        if self._diagnostics_pub is not None:
+            self.destroy_publisher(self._diagnostics_pub)
+        self._filtered_pub = self._status_pub = self._diagnostics_pub = None
+        self._filter = None
+        self._model = None
+        self._certificate = None
+
+    def _reset_counters(self) -> None:
+        self._steps = 0
+        self._invalid_joint_states = 0
+        self._invalid_nominals = 0
+        self._last_output: FilterOutput | None = None
+        self._last_code = -1
+        self._reset_window()
+
+    def _reset_window(self) -> None:
+        self._window_counts = [0] * len(MODE_NAMES)
+        self._window_reasons: Counter[str] = Counter()
+        self._window_solve_times: list[float] = []
+        self._window_intervention = 0.0
+        self._window_margin = np.full(self._n, math.inf)
+
+    # ------------------------------------------------------------------ inputs
+    def _on_joint_state(self, msg: JointState) -> None:
+        now = time.monotonic()
+        self._js_time = now
+        names = msg.name
+        if names != self._js_names:
+            self._js_names = list(names)
+            self._js_index, self._js_problem = self._index_for(names)
+        count = len(names)
+        problem = self._js_problem
+        if not problem:
+            if len(msg.position) != count:
+                problem = (f'{len(msg.position)} positions for {count} names')
+            elif len(msg.velocity) == 0:
+                problem = 'no velocities'
+            elif len(msg.velocity) != count:
+                problem = f'{len(msg.velocity)} velocities for {count} names'
+        if problem:
+            self._invalid_joint_states += 1
+            self._last_js_problem = problem
+            self._q = self._v = self._nan
+        else:
+            index = self._js_index
+            self._q = np.asarray(msg.position)[index]
+            self._v = np.asarray(msg.velocity)[index]
+            if self._last_valid_q is None and self._active:
+                self._watchdog.reset()  # nothing to watch before the first valid state
+            self._last_valid_q = self._q
+            self._js_valid_time = now
+        if self._active and self._trigger == 'joint_state':
+            self._run_step(now)
+
+    def _index_for(self, names: Sequence[str]) -> tuple[np.ndarray | None, str]:
+        position = {name: i for i, name in enumerate(names)}
+        missing = [joint for joint in self._joint_names if joint not in position]
+        if missing:
+            return None, f'missing chain joints {missing}'
+        return np.array([position[joint] for joint in self._joint_names], dtype=np.intp), ''
+
+    def _on_nominal(self, msg: Float64MultiArray) -> None:
+        now = time.monotonic()
+        data = msg.data
+        if len(data) != self._n:
+            self._invalid_nominals += 1
+            self._nominal_problem = f'{len(data)} values for {self._n} joints'
+            self._u_nom = self._nan
+        else:
+            self._u_nom = np.array(data, dtype=float)
+        self._nominal_time = now
+        if self._active and self._trigger == 'nominal':
+            self._run_step(now)
+
+    def _on_watchdog(self) -> None:
+        if not self._active:
+            return
+        now = time.monotonic()
+        if self._trigger == 'nominal':
+            silent = now - self._nominal_time > self._nominal_timeout
+        else:
+            silent = now - self._js_time > self._joint_state_timeout
+        if silent:
+            self._run_step(now)
+
+    # ------------------------------------------------------------------ the step
+    def _run_step(self, now: float) -> None:
+        """One filter step with the latest inputs (the timeouts applied), then publish."""
+        filt = self._filter
+        if filt is None or self._last_valid_q is None:
+            return  # no valid joint state yet: nothing safe to command
+        joint_state_age = now - self._js_valid_time
+        nominal_age = now - self._nominal_time
+        hold_nominal = False
+        if joint_state_age > self._joint_state_timeout:
+            # The filter's hold command at the last valid position, velocity unknown.
+            q, v, u_nom = self._last_valid_q, self._nan, self._nan
+            output = filt.step(q, v, u_nom)
+            code = MODE_STALE
+            reason = (f'joint states stale ({joint_state_age * 1e3:.0f} ms > '
+                      f'{self._joint_state_timeout * 1e3:.0f} ms): holding')
+        else:
+            q, v = self._q, self._v
+            if nominal_age <= self._nominal_timeout:
+                u_nom = self._u_nom
+            else:
+                # Never use a stale nominal: the hold command (g(q) - D v) is the nominal.
+                u_nom = filt.step(q, v, self._nan).torque
+                hold_nominal = True
+            output = filt.step(q, v, u_nom)
+            code = MODE_CODES[output.mode]
+            reason = output.reason
+        msg = self._filtered_msg
+        msg.data = array.array('d', output.torque.tobytes())
+        self._filtered_pub.publish(msg)
+
+        self._steps += 1
+        buffer = self._status_buffer
+        n = self._n
+        buffer[:8] = (self._clock.now().nanoseconds * 1e-9, self._steps, code,
+                      float(hold_nominal), output.intervention, output.solve_time_s,
+                      joint_state_age, nominal_age)
+        buffer[8:8 + n] = output.barrier_margin
+        buffer[8 + n:8 + 2 * n] = output.torque
+        buffer[8 + 2 * n:8 + 3 * n] = u_nom
+        buffer[8 + 3 * n:8 + 4 * n] = q
+        buffer[8 + 4 * n:8 + 5 * n] = v
+        status = self._status_msg
+        status.data = array.array('d', buffer.tobytes())
+        self._status_pub.publish(status)
+
+        self._window_counts[code] += 1
+        if reason:
+            self._window_reasons[reason] += 1
+        if output.solve_time_s > 0.0:
+            self._window_solve_times.append(output.solve_time_s)
+        if output.intervention > self._window_intervention:
+            self._window_intervention = output.intervention
+        np.fmin(self._window_margin, output.barrier_margin, out=self._window_margin)
+        self._last_output = output
+        self._last_code = code
+
+    # ------------------------------------------------------------------ diagnostics
+    def _on_diagnostics(self) -> None:
+        if self._diagnostics_pub is None:
+            return
+        status = self._diagnostic_status(time.monotonic())
+        array_msg = DiagnosticArray()
+        array_msg.header.stamp = self.get_clock().now().to_msg()
+        array_msg.status = [status]
+        self._diagnostics_pub.publish(array_msg)
+        self._reset_window()
+
+    def _diagnostic_status(self, now: float) -> DiagnosticStatus:
+        certificate = self._certificate
+        model = self._model
+        assert certificate is not None and model is not None
+        errors: list[str] = []
+        stale: list[str] = []
+        warnings: list[str] = []
+        counts = self._window_counts
+        joint_state_age = now - self._js_valid_time
+        nominal_age = now - self._nominal_time
+        if not self._active:
+            stale.append('inactive: not filtering, nothing published')
+        else:
+            if self._last_valid_q is None:
+                stale.append('no valid joint state received yet: nothing published')
+            elif joint_state_age > self._joint_state_timeout:
+                errors.append(f'joint-state watchdog tripped: last valid joint state '
+                              f'{joint_state_age * 1e3:.0f} ms ago; sending the hold command')
+            if not math.isfinite(nominal_age):
+                stale.append('no nominal received yet: holding still')
+            elif nominal_age > self._nominal_timeout:
+                stale.append(f'nominal stale ({nominal_age * 1e3:.0f} ms old): holding still')
+            if counts[MODE_REJECTED] or self._last_code == MODE_REJECTED:
+                errors.append(f'{counts[MODE_REJECTED]} rejected steps (invalid input)')
+            if counts[MODE_RECOVERING] or self._last_code == MODE_RECOVERING:
+                errors.append(f'{counts[MODE_RECOVERING]} recovering steps (state outside the '
+                              'safe set)')
+            if counts[MODE_FALLBACK]:
+                warnings.append(f'{counts[MODE_FALLBACK]} fallback steps')
+            finite = self._window_margin[np.isfinite(self._window_margin)]
+            if finite.size and float(finite.min()) < self._margin_warn:
+                warnings.append(f'barrier margin down to {float(finite.min()):.4g}')
+        if errors:
+            level, parts = DiagnosticStatus.ERROR, errors + stale + warnings
+        elif stale:
+            level, parts = DiagnosticStatus.STALE, stale + warnings
+        elif warnings:
+            level, parts = DiagnosticStatus.WARN, warnings
+        else:
+            level, parts = DiagnosticStatus.OK, ['filtering']
+        status = DiagnosticStatus(level=level, name=self.get_name() + DIAGNOSTIC_NAME_SUFFIX,
+                                  message='; '.join(parts), hardware_id=model.name)
+        values = [('mode', MODE_NAMES[self._last_code] if self._last_code >= 0 else 'none'),
+                  ('active', str(self._active).lower())]
+        last = self._last_output
+        values.append(('intervention.last',
+                       _format_number(last.intervention) if last is not None else 'nan'))
+        values.append(('intervention.max', _format_number(self._window_intervention)))
+        for joint, margin in zip(self._joint_names, self._window_margin.tolist()):
+            values.append((f'margin.{joint}', _format_number(margin)))
+        values.append(('active_constraints', self._active_constraints(last)))
+        times = np.array(self._window_solve_times) * 1e6
+        values.append(('solves', str(times.size)))
+        for label, value in (('median', 50.0), ('p99', 99.0)):
+            values.append((f'solve_time.{label}_us',
+                           _format_number(float(np.percentile(times, value)))
+                           if times.size else 'nan'))
+        values.append(('solve_time.max_us',
+                       _format_number(float(times.max())) if times.size else 'nan'))
+        values.append(('steps', str(sum(counts))))
+        for name, count in zip(MODE_NAMES, counts):
+            values.append((f'count.{name}', str(count)))
+        values.append(('reasons', '; '.join(f'{reason} (x{count})' for reason, count
+                                            in self._window_reasons.most_common(5)) or 'none'))
+        values.append(('age.joint_state_ms', _format_number(joint_state_age * 1e3)))
+        values.append(('age.nominal_ms', _format_number(nominal_age * 1e3)))
+        values.append(('invalid.joint_state', str(self._invalid_joint_states)))
+        values.append(('invalid.nominal', str(self._invalid_nominals)))
+        if self._invalid_joint_states:
+            values.append(('invalid.joint_state_last', self._last_js_problem))
+        if self._invalid_nominals:
+            values.append(('invalid.nominal_last', self._nominal_problem))
+        values.append(('trigger', self._trigger))
+        values.append(('certificate_id', certificate.certificate_id))
+        status.values = [KeyValue(key=key, value=value) for key, value in values]
+        return status
+
+    def _active_constraints(self, output: FilterOutput | None) -> str:
+        if output is None:
+            return 'none'
+        active = []
+        for i, joint in enumerate(self._joint_names):
+            if output.active_upper[i]:
+                active.append(f'{joint}:accel_upper')
+            if output.active_lower[i]:
+                active.append(f'{joint}:accel_lower')
+            if output.torque_saturated[i]:
+                active.append(f'{joint}:torque')
+        return ', '.join(active) or 'none'
+
+
+# ---------------------------------------------------------------------- executable
+def _parse_own_arguments(arguments: Sequence[str]) -> argparse.Namespace:
+    parser = argparse.ArgumentParser(
+        prog='filter_node',
+        description='The safety_filter lifecycle node. ROS arguments go after --ros-args, '
+        'e.g. --ros-args --params-file certificate.yaml -p urdf_path:=arm.urdf')
+    parser.add_argument('--autostart', action='store_true',
+                        help='configure and activate at start-up (no lifecycle manager needed)')
+    return parser.parse_args(list(arguments))
+
+
+def _raise_keyboard_interrupt(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt
+
+
+def main(args: Sequence[str] | None = None) -> int:
+    """Run the node until SIGINT or SIGTERM (both end it cleanly: shutdown transition).
+
+    Args:
+        args: the command line like ``sys.argv`` (program name first); default ``sys.argv``.
+            ``--autostart`` configures and activates the node at start-up.
+
+    Returns:
+        0 on a clean exit, 1 when the autostart transitions failed.
+    """
+    argv = list(sys.argv if args is None else args)
+    own = _parse_own_arguments(remove_ros_args(argv)[1:])
+    context = rclpy.context.Context()
+    # Our own signal handling: SIGINT/SIGTERM raise KeyboardInterrupt in the spin loop, so the
+    # node can run its shutdown transition before the context goes away.
+    rclpy.init(args=argv, context=context, signal_handler_options=SignalHandlerOptions.NO)
+    previous = {number: signal.signal(number, _raise_keyboard_interrupt)
+                for number in (signal.SIGINT, signal.SIGTERM)}
+    node: SafetyFilterNode | None = None
+    code = EXIT_OK
+    try:
+        node = SafetyFilterNode(context=context)
+        if own.autostart:
+            if node.trigger_configure() != TransitionCallbackReturn.SUCCESS:
+                node.get_logger().fatal('autostart: configure failed (see above)')
+                return EXIT_FAILED
+            if node.trigger_activate() != TransitionCallbackReturn.SUCCESS:
+                node.get_logger().fatal('autostart: activate failed')
+                return EXIT_FAILED
+        if os.environ.get('SF_EXPERIMENT_EVENTS'):
+            from rclpy.experimental import EventsExecutor
+            executor = EventsExecutor(context=context)
+        else:
+            executor = SingleThreadedExecutor(context=context)
+        executor.add_node(node)
+        while context.ok():
+            executor.spin_once(timeout_sec=0.1)
+    except KeyboardInterrupt:
+        pass
+    finally:
+        for number, handler in previous.items():
+            signal.signal(number, handler)
+        if node is not None:
+            try:
+                node.trigger_shutdown()
+            except Exception as err:  # noqa: BLE001 - best effort on the way out
+                node.get_logger().warning(f'shutdown transition failed: {err}')
+            node.destroy_node()
+        context.try_shutdown()
+    return code
+
+
+if __name__ == '__main__':
+    sys.exit(main())

@@ -1,0 +1,331 @@
+"""Watch a running filter live: a terminal monitor over DDS, and an event log.
+
+``safety-filter monitor`` (or the ``filter_monitor`` executable) starts a plain node,
+``safety_filter_monitor_<pid>``, that subscribes to the filter node's ``/diagnostics`` status
+``'<node>: filter'`` and its ``~/status`` array (both documented in
+:mod:`safety_filter.ros.filter_node`) and redraws a screen at ``--rate`` (4 Hz): state
+(diagnostics level) and mode; per joint position, velocity and torque against their limits
+(bars and percentages) and the barrier margin; intervention; solve times; fallback and
+recovery counts; input ages; certificate id; the last events. Alarm lines start with ``!!``
+(red on a terminal): a margin below ``--thin-margin``, the joint-state watchdog tripped,
+level ERROR or STALE, a certificate other than ``--certificate``.
+
+The limits come from ``--certificate`` (the certificate parameter file) or, without it, from
+the filter node's parameters (read once through its ``get_parameters`` service when it
+appears). Without either, values are shown without bars.
+
+On a terminal the screen is redrawn in place with ANSI escape codes (no curses: it works in
+any terminal, over SSH, in tmux); when stdout is not a terminal (or with ``--plain``) each
+frame is printed after a separator line, without escape codes. When nothing is heard from
+the filter for ``--absent-after`` (2 s) the screen says so and waits.
+
+The monitor is meant to cost the filter nothing: ``~/status`` is subscribed best-effort (no
+acknowledgements or resends asked of the filter's publisher), ``/diagnostics`` with the
+default reliable QoS of diagnostics.
+
+Events (:mod:`safety_filter.monitor_view` lists the kinds and keys) go to ``--event-log`` as
+JSON lines, flushed as they happen. ``--duration`` stops after that many seconds; Ctrl-C
+(SIGINT) and SIGTERM stop cleanly.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import signal
+import sys
+import time
+from collections.abc import Sequence
+from typing import IO, Any
+
+import rclpy
+from diagnostic_msgs.msg import DiagnosticArray
+from rcl_interfaces.srv import GetParameters
+from rclpy.clock import Clock, ClockType
+from rclpy.node import Node
+from rclpy.parameter import parameter_value_to_python
+from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
+from rclpy.signals import SignalHandlerOptions
+from rclpy.utilities import remove_ros_args
+from std_msgs.msg import Float64MultiArray
+
+from safety_filter.errors import SafetyFilterError
+from safety_filter.monitor_view import (
+    ANSI_CLEAR_BELOW,
+    ANSI_CLEAR_LINE,
+    ANSI_HIDE_CURSOR,
+    ANSI_HOME,
+    ANSI_SHOW_CURSOR,
+    DiagnosticSnapshot,
+    EventLogWriter,
+    JointLimits,
+    MonitorEvent,
+    MonitorState,
+    StatusLayout,
+    StatusSnapshot,
+    add_monitor_arguments,
+    check_monitor_arguments,
+    diagnostic_name,
+    render_frame,
+    split_node_name,
+    status_topic,
+)
+from safety_filter.ros._common import make_executor
+
+EXIT_OK = 0
+EXIT_BAD_INPUT = 2
+LIMIT_PARAMETERS = ('joint_names', 'position_lower', 'position_upper', 'velocity_limit',
+                    'effort_limit', 'certificate_id')
+PARAMETER_RETRY_S = 3.0
+SEPARATOR = '-' * 100
+
+
+def status_qos() -> QoSProfile:
+    """Best-effort, keep-last 100, volatile: takes every status the filter sends without
+    asking its publisher for acknowledgements or resends."""
+    return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=100,
+                      reliability=ReliabilityPolicy.BEST_EFFORT,
+                      durability=DurabilityPolicy.VOLATILE)
+
+
+class Screen:
+    """Writes frames: redrawn in place on a terminal, or one after another (plain)."""
+
+    def __init__(self, stream: IO[str], plain: bool, color: bool) -> None:
+        self.stream = stream
+        self.plain = plain
+        self.color = color and not plain
+        self._started = False
+        self._waiting_since: float | None = None
+        self._last_waiting_print = -1e9
+
+    def width(self) -> int:
+        if self.plain:
+            return 100
+        return max(60, shutil.get_terminal_size((100, 40)).columns)
+
+    def show(self, text: str, waiting: bool, now: float) -> None:
+        if self.plain:
+            # Waiting frames say the same thing: print them once, then every 5 s.
+            if waiting:
+                if now - self._last_waiting_print < 5.0:
+                    return
+                self._last_waiting_print = now
+            else:
+                self._last_waiting_print = -1e9
+            self.stream.write(SEPARATOR + '\n' + text + '\n')
+        else:
+            if not self._started:
+                self.stream.write(ANSI_HIDE_CURSOR + '\x1b[2J')
+                self._started = True
+            body = ''.join(line + ANSI_CLEAR_LINE + '\n' for line in text.splitlines())
+            self.stream.write(ANSI_HOME + body + ANSI_CLEAR_BELOW)
+        self.stream.flush()
+
+    def close(self) -> None:
+        if self._started and not self.plain:
+            self.stream.write(ANSI_SHOW_CURSOR)
+            self.stream.flush()
+
+
+class FilterMonitorNode(Node):
+    """The monitor's node: subscriptions feed a :class:`MonitorState`; a steady timer polls
+    it, writes events and draws the screen.
+
+    Args:
+        state: what the monitor knows (its node name selects the filter).
+        screen: where frames go (None: no screen, e.g. for tests).
+        event_log: where events go (None: nowhere).
+        rate_hz: frames per second.
+        diagnostics_topic: the diagnostics topic.
+        status_topic_name: the filter's status topic (default ``/<node>/status``).
+        read_parameters: read the limits from the node's parameters when ``state`` has none.
+        **kwargs: passed to :class:`rclpy.node.Node` (``context``, ...).
+    """
+
+    def __init__(self, state: MonitorState, screen: Screen | None = None,
+                 event_log: EventLogWriter | None = None, rate_hz: float = 4.0,
+                 diagnostics_topic: str = '/diagnostics',
+                 status_topic_name: str | None = None, read_parameters: bool = True,
+                 node_name: str | None = None, **kwargs: Any) -> None:
+        super().__init__(node_name or f'safety_filter_monitor_{os.getpid()}', **kwargs)
+        self.state = state
+        self.screen = screen
+        self.event_log = event_log
+        self.rate_hz = rate_hz
+        self.diagnostics_topic = diagnostics_topic
+        self.frames = 0
+        self._diagnostic_name = diagnostic_name(state.node_name)
+        self._layout: StatusLayout | None = None
+        self._layout_label = ''
+        self._read_parameters = read_parameters
+        self._parameter_future: Any = None
+        self._parameter_asked_at = -1e9
+        topic = status_topic_name or status_topic(state.node_name)
+        self.create_subscription(DiagnosticArray, diagnostics_topic, self._on_diagnostics, 50)
+        self.create_subscription(Float64MultiArray, topic, self._on_status, status_qos())
+        self._parameters_client = self.create_client(
+            GetParameters, split_node_name(state.node_name)[1] + '/get_parameters')
+        self.create_timer(1.0 / rate_hz, self._on_timer,
+                          clock=Clock(clock_type=ClockType.STEADY_TIME))
+
+    # ---- inputs
+    def _on_status(self, msg: Float64MultiArray) -> None:
+        now = time.time()
+        dims = msg.layout.dim
+        label = dims[0].label if dims else ''
+        if label != self._layout_label:
+            self._layout_label = label
+            try:
+                self._layout = StatusLayout.from_label(label)
+            except SafetyFilterError as err:
+                self.get_logger().warning(f'status without a usable layout: {err}')
+                self._layout = None
+        if self._layout is None:
+            return
+        self._record(self.state.add_status(StatusSnapshot(self._layout, msg.data, now)))
+
+    def _on_diagnostics(self, msg: DiagnosticArray) -> None:
+        now = time.time()
+        stamp = msg.header.stamp.sec + msg.header.stamp.nanosec * 1e-9
+        for status in msg.status:
+            if status.name != self._diagnostic_name:
+                continue
+            level = status.level
+            level = level[0] if isinstance(level, (bytes, bytearray)) else int(level)
+            snapshot = DiagnosticSnapshot(
+                level=level, message=status.message,
+                values={kv.key: kv.value for kv in status.values}, received_s=now,
+                stamp_s=stamp if stamp > 0.0 else None)
+            self._record(self.state.add_diagnostic(snapshot))
+
+    def _record(self, events: Sequence[MonitorEvent]) -> None:
+        if events and self.event_log is not None:
+            self.event_log.write(events)
+
+    # ---- limits from the node's parameters
+    def _maybe_read_parameters(self, now: float) -> None:
+        if (not self._read_parameters or self.state.limits is not None
+                or not self.state.present or self._parameter_future is not None
+                or now - self._parameter_asked_at < PARAMETER_RETRY_S):
+            return
+        if not self._parameters_client.service_is_ready():
+            return
+        self._parameter_asked_at = now
+        request = GetParameters.Request()
+        request.names = list(LIMIT_PARAMETERS)
+        self._parameter_future = self._parameters_client.call_async(request)
+        self._parameter_future.add_done_callback(self._on_parameters)
+
+    def _on_parameters(self, future: Any) -> None:
+        self._parameter_future = None
+        try:
+            response = future.result()
+            values = {name: parameter_value_to_python(value)
+                      for name, value in zip(LIMIT_PARAMETERS, response.values)}
+            self.state.limits = JointLimits.from_parameters(
+                values, f'parameters of {split_node_name(self.state.node_name)[1]}')
+        except Exception as err:  # noqa: BLE001 - retried later; the screen says limits unknown
+            self.get_logger().debug(f'cannot read the limits from the node: {err}')
+
+    # ---- the screen
+    def _on_timer(self) -> None:
+        now = time.time()
+        self._record(self.state.poll(now))
+        self._maybe_read_parameters(now)
+        if self.screen is not None:
+            text = render_frame(self.state, now, color=self.screen.color,
+                                width=self.screen.width(),
+                                diagnostics_topic=self.diagnostics_topic, rate_hz=self.rate_hz)
+            self.screen.show(text, waiting=not self.state.present, now=now)
+        self.frames += 1
+
+
+# ---------------------------------------------------------------------- executable
+def _raise_keyboard_interrupt(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt
+
+
+def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
+    """Run the monitor with parsed options (see :func:`add_monitor_arguments`).
+
+    Returns:
+        0 on a clean stop (Ctrl-C, SIGTERM or ``--duration``).
+
+    Raises:
+        SafetyFilterError: bad options, an unreadable certificate or event log.
+    """
+    check_monitor_arguments(args)
+    stream = stream if stream is not None else sys.stdout
+    limits = JointLimits.from_certificate_file(args.certificate) if args.certificate else None
+    state = MonitorState(args.node_name, thin_margin=args.thin_margin, limits=limits,
+                         absent_after_s=args.absent_after,
+                         expected_certificate_id=limits.certificate_id if limits else None)
+    plain = bool(args.plain) or not stream.isatty()
+    color = not (args.no_color or os.environ.get('NO_COLOR'))
+    screen = Screen(stream, plain=plain, color=color)
+    event_log = (EventLogWriter(args.event_log, split_node_name(args.node_name)[0],
+                                args.event_time) if args.event_log else None)
+    ros_args = ['filter_monitor', '--ros-args', *list(getattr(args, 'ros_args', []) or [])]
+    context = rclpy.context.Context()
+    rclpy.init(args=ros_args, context=context, domain_id=args.domain_id,
+               signal_handler_options=SignalHandlerOptions.NO)
+    previous = {signum: signal.signal(signum, _raise_keyboard_interrupt)
+                for signum in (signal.SIGINT, signal.SIGTERM)}
+    node = None
+    executor = None
+    try:
+        node = FilterMonitorNode(state, screen, event_log, rate_hz=args.rate,
+                                 diagnostics_topic=args.diagnostics_topic,
+                                 status_topic_name=args.status_topic,
+                                 read_parameters=limits is None, context=context)
+        executor = make_executor('events', context)
+        executor.add_node(node)
+        deadline = time.monotonic() + args.duration if args.duration > 0 else None
+        while context.ok():
+            if deadline is not None and time.monotonic() >= deadline:
+                break
+            executor.spin_once(timeout_sec=0.05)
+    except KeyboardInterrupt:
+        pass
+    finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+        screen.close()
+        if event_log is not None:
+            event_log.close()
+        if executor is not None:
+            executor.shutdown(timeout_sec=1.0)
+        if node is not None:
+            node.destroy_node()
+        context.try_shutdown()
+    if not plain:
+        stream.write('\n')
+        stream.flush()
+    return EXIT_OK
+
+
+def main(args: Sequence[str] | None = None) -> int:
+    """Entry point of ``filter_monitor`` (the same options as ``safety-filter monitor``;
+    ROS arguments after ``--ros-args``)."""
+    argv = list(sys.argv if args is None else args)
+    own = remove_ros_args(argv)[1:]
+    ros_part: list[str] = []
+    if '--ros-args' in argv:
+        ros_part = argv[argv.index('--ros-args') + 1:]
+    parser = argparse.ArgumentParser(
+        prog='filter_monitor', description='Watch a running safety_filter node live in the '
+        'terminal and log its events (see safety-filter monitor --help).')
+    add_monitor_arguments(parser)
+    options = parser.parse_args(own)
+    options.ros_args = ros_part
+    try:
+        return run(options)
+    except SafetyFilterError as err:
+        print(f'error: {err}', file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+
+if __name__ == '__main__':
+    sys.exit(main())

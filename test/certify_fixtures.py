@@ -1,0 +1,128 @@
+"""Certified demo arms for the certification, simulation and closed-loop tests.
+
+Certification takes tens of seconds per arm, so each demo arm is certified ONCE per test
+session with the default :class:`CertifySettings`: :func:`certified_demo_arm` is cached, and
+the session-scoped fixtures below call it (the cache, not the fixture scope, is what makes it
+once per session: pytest keeps a separate fixture instance for every module that imports a
+fixture, but they all share this cache).
+
+Also here: the two-link planar arm in closed form (Spong, Hutchinson and Vidyasagar,
+*Robot Modeling and Control*, the planar elbow manipulator), with the numbers of
+``safety_filter/robots/planar2.urdf`` and a point payload on the tool frame, as a model of
+planar2 that shares no code with the package.
+"""
+
+from __future__ import annotations
+
+import functools
+from dataclasses import dataclass
+
+import numpy as np
+import pytest
+
+from safety_filter.certify import CertificationOutcome, certify_with_evidence
+from safety_filter.demo_arms import load_demo_arm
+from safety_filter.model import RobotModel
+
+CERTIFIED_ARMS = ('planar2', 'bench6')
+
+
+@functools.lru_cache(maxsize=None)
+def certified_demo_arm(name: str) -> tuple[RobotModel, CertificationOutcome]:
+    """A demo arm and the outcome of certifying it with the default settings (cached)."""
+    model = load_demo_arm(name)
+    return model, certify_with_evidence(model)
+
+
+@pytest.fixture(scope='session')
+def planar2_certified() -> tuple[RobotModel, CertificationOutcome]:
+    """planar2 and its certification outcome (default settings)."""
+    return certified_demo_arm('planar2')
+
+
+@pytest.fixture(scope='session')
+def bench6_certified() -> tuple[RobotModel, CertificationOutcome]:
+    """bench6 and its certification outcome (default settings)."""
+    return certified_demo_arm('bench6')
+
+
+@pytest.fixture(scope='session', params=CERTIFIED_ARMS)
+def certified_arm(request: pytest.FixtureRequest) -> tuple[RobotModel, CertificationOutcome]:
+    """Each certified demo arm in turn."""
+    return certified_demo_arm(request.param)
+
+
+# ---------------------------------------------------------------------- planar2, closed form
+@dataclass(frozen=True)
+class PlanarTwoLink:
+    """The planar elbow manipulator in closed form (Spong et al., planar elbow example).
+
+    Angles as in planar2.urdf: both joints positive counter-clockwise in the vertical x-z
+    plane, zero with both links along +x, gravity ``-z``. Numbers from the URDF's inertial
+    and dynamics elements (``l1 = 0.5``, ``lc1 = 0.25``, ``m1 = 2``, ``I1 = 0.042116667``,
+    ``l2 = 0.4``, ``lc2 = 0.2``, ``m2 = 1.2``, ``I2 = 0.0161875``, damping 0.05 on both) and
+    from planar2_limits.yaml (``g = 9.81``, payload point at the tool frame, ``x = l2`` on
+    the forearm). The point payload ``mp`` is merged into link 2 by the parallel-axis theorem.
+    """
+
+    payload_mass: float = 0.0
+    l1: float = 0.5
+    lc1: float = 0.25
+    m1: float = 2.0
+    inertia1: float = 0.042116667
+    l2: float = 0.4
+    lc2_bare: float = 0.2
+    m2_bare: float = 1.2
+    inertia2_bare: float = 0.0161875
+    gravity: float = 9.81
+    damping: tuple[float, float] = (0.05, 0.05)
+
+    @property
+    def m2(self) -> float:
+        return self.m2_bare + self.payload_mass
+
+    @property
+    def lc2(self) -> float:
+        return (self.m2_bare * self.lc2_bare + self.payload_mass * self.l2) / self.m2
+
+    @property
+    def inertia2(self) -> float:
+        """Link 2 (with payload) about its own centre of mass."""
+        return (self.inertia2_bare + self.m2_bare * (self.lc2_bare - self.lc2) ** 2
+                + self.payload_mass * (self.l2 - self.lc2) ** 2)
+
+    def mass_matrix(self, q2: np.ndarray) -> np.ndarray:
+        """``M(q)`` for elbow angles ``q2`` of shape (N,), shape (N, 2, 2)."""
+        c2 = np.cos(q2)
+        m2, lc2, i2 = self.m2, self.lc2, self.inertia2
+        m11 = (self.m1 * self.lc1 ** 2 + m2 * (self.l1 ** 2 + lc2 ** 2 + 2 * self.l1 * lc2 * c2)
+               + self.inertia1 + i2)
+        m12 = m2 * (lc2 ** 2 + self.l1 * lc2 * c2) + i2
+        m22 = np.full_like(c2, m2 * lc2 ** 2 + i2)
+        return np.stack([np.stack([m11, m12], -1), np.stack([m12, m22], -1)], -2)
+
+    def gravity_torque(self, q1: np.ndarray, q2: np.ndarray) -> np.ndarray:
+        """``g(q)``, shape (..., 2)."""
+        g = self.gravity
+        c1, c12 = np.cos(q1), np.cos(q1 + q2)
+        g2 = self.m2 * self.lc2 * g * c12
+        g1 = (self.m1 * self.lc1 + self.m2 * self.l1) * g * c1 + g2
+        return np.stack([g1, g2], -1)
+
+    def coriolis_torque(self, q2: float, v: np.ndarray) -> np.ndarray:
+        """``C(q, v) v`` with ``h = -m2 l1 lc2 sin q2`` (Spong et al.)."""
+        h = -self.m2 * self.l1 * self.lc2 * np.sin(q2)
+        return np.array([h * v[1] ** 2 + 2.0 * h * v[0] * v[1], -h * v[0] ** 2])
+
+    def acceleration(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """``M^-1 (u - C v - D v - g)``."""
+        mass = self.mass_matrix(np.array([q[1]]))[0]
+        bias = (self.coriolis_torque(q[1], v) + np.array(self.damping) * v
+                + self.gravity_torque(q[0], q[1]))
+        return np.linalg.solve(mass, u - bias)
+
+    def state_derivative(self, u: np.ndarray):  # noqa: ANN201
+        """``f(t, x)`` for ``x = (q, v)`` under a constant torque ``u`` (for solve_ivp)."""
+        def rhs(_t: float, x: np.ndarray) -> np.ndarray:
+            return np.concatenate([x[2:], self.acceleration(x[:2], x[2:], u)])
+        return rhs

@@ -1,0 +1,177 @@
+"""The demo graph end to end: real rclpy nodes over DDS on loopback, recorded to bags.
+
+A short ``safety-filter demo`` on planar2 (3 s of simulated motion per run, with a
+certificate from the session's reduced-settings certification) must break at least one limit
+without the filter, keep all of them with it, and leave bags with the expected topics and
+message counts. The graph runner is also run across processes and stopped with SIGINT.
+Each module gets its own DDS domain, with discovery limited to this machine.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+pytest.importorskip('rclpy', reason='rclpy is missing: install the ROS 2 wheels with '
+                    "pip install -e '.[ros]' (or source a ROS 2 Jazzy install)")
+
+from ros_fixtures import certified_arm, isolate_ros_domain  # noqa: E402
+
+from safety_filter import bags  # noqa: E402
+from safety_filter.demo import DemoOptions, run_demo  # noqa: E402
+from safety_filter.demo_report import PLOTS, REPORT_HTML, SUMMARY_JSON  # noqa: E402
+from safety_filter.ros.runner import run_graph, sim_demo_graph  # noqa: E402
+
+pytestmark = [pytest.mark.ros, pytest.mark.slow]
+
+ARM = 'planar2'
+DURATION_S = 3.0
+RATE_HZ = 1000.0  # config/sim_demo.yaml and the certificate
+OPERATOR_RATE_HZ = 100.0
+
+
+@pytest.fixture(scope='module')
+def domain() -> int:
+    return isolate_ros_domain()
+
+
+@pytest.fixture(scope='module')
+def demo(tmp_path_factory: pytest.TempPathFactory, domain: int):
+    arm = certified_arm(ARM)
+    assert arm.certificate.control_rate_hz == RATE_HZ
+    output = tmp_path_factory.mktemp('demo')
+    shutil.copy(arm.certificate_path, output / f'{ARM}_certificate.yaml')
+    result = run_demo(DemoOptions(arm=ARM, output=output, duration_s=DURATION_S,
+                                  domain_id=domain, progress=False, wall_timeout_s=300.0))
+    return result, output
+
+
+def test_the_demo_reuses_a_valid_certificate(demo) -> None:
+    result, output = demo
+    assert result.certificate_reused
+    assert result.certificate_path == output / f'{ARM}_certificate.yaml'
+
+
+def test_unfiltered_run_breaks_a_limit_and_filtered_run_keeps_all(demo) -> None:
+    result, _ = demo
+    assert result.unfiltered_broke_some, result.summary
+    assert result.filtered_kept_all, result.summary
+    filtered = result.runs['filtered']
+    # The filter kept the state in the safe set too: every barrier value non-negative.
+    margins = np.column_stack([filtered.status[f'margin.{joint}']
+                               for joint in ('shoulder', 'elbow')])
+    assert np.nanmin(margins) >= -1e-9
+    assert set(np.unique(filtered.status['mode'])) <= {0.0, 1.0}  # filtered or fallback
+
+
+def _released_states(run) -> int:
+    """Joint states from the arm's release (its first command) on."""
+    first_command = run.command_time_s[0]
+    return int(np.count_nonzero(run.time_s >= first_command - 0.5 / RATE_HZ))
+
+
+def test_bags_hold_the_expected_topics_and_counts(demo) -> None:
+    result, output = demo
+    unfiltered = bags.topic_summary(output / 'bags' / 'unfiltered')
+    filtered = bags.topic_summary(output / 'bags' / 'filtered')
+    assert set(unfiltered) == {bags.TOPIC_JOINT_STATES, bags.TOPIC_NOMINAL}
+    assert set(filtered) == {bags.TOPIC_JOINT_STATES, bags.TOPIC_NOMINAL, bags.TOPIC_COMMAND,
+                             bags.TOPIC_DIAGNOSTICS, bags.TOPIC_STATUS}
+    for summary in (unfiltered, filtered):
+        for topic, info in summary.items():
+            assert info.msgtype == bags.TOPIC_TYPES[topic]
+    expected_states = DURATION_S * RATE_HZ
+    for label in ('unfiltered', 'filtered'):
+        run = result.runs[label]
+        assert run.counts[bags.TOPIC_JOINT_STATES] >= 0.98 * expected_states
+        assert _released_states(run) == pytest.approx(expected_states, abs=0.02 * expected_states)
+        assert run.duration_s >= DURATION_S - 1.0 / RATE_HZ
+        assert run.counts[bags.TOPIC_NOMINAL] == pytest.approx(
+            DURATION_S * OPERATOR_RATE_HZ, rel=0.1)
+    run = result.runs['filtered']
+    # Lockstep: one filtered torque (and one status record) per joint state.
+    commands = run.counts[bags.TOPIC_COMMAND]
+    assert commands == pytest.approx(_released_states(run), abs=0.02 * expected_states)
+    assert run.counts[bags.TOPIC_STATUS] == commands
+    assert run.counts[bags.TOPIC_DIAGNOSTICS] >= 2  # 2 Hz on simulated time
+    assert bags.TOPIC_COMMAND not in result.runs['unfiltered'].counts
+
+
+def test_report_is_written(demo) -> None:
+    result, output = demo
+    folder = output / 'report'
+    assert result.report == folder / REPORT_HTML
+    page = result.report.read_text(encoding='utf-8')
+    for name in PLOTS.values():
+        assert (folder / name).stat().st_size > 10_000, name
+        assert name in page
+    assert (folder / SUMMARY_JSON).is_file()
+    assert 'all 6 limits kept' in result.summary
+    assert 'not a certified safety function' in page
+
+
+def test_graph_across_processes_stops_cleanly_on_sigint(tmp_path: Path, domain: int) -> None:
+    arm = certified_arm(ARM)
+    bag = tmp_path / 'bag'
+    env = dict(os.environ, ROS_DOMAIN_ID=str(domain), ROS_AUTOMATIC_DISCOVERY_RANGE='LOCALHOST')
+    command = [sys.executable, '-m', 'safety_filter.cli', 'run-graph', '--arm', ARM,
+               '--certificate', str(arm.certificate_path), '--bag', str(bag), '--processes',
+               '--domain-id', str(domain)]
+    process = subprocess.Popen(command, env=env, stdout=subprocess.PIPE,
+                               stderr=subprocess.STDOUT, text=True)
+    try:
+        # Nodes start one after the other (the recorder first, the arm last); wait until the
+        # recording has grown past its start.
+        deadline = time.monotonic() + 180.0
+        while time.monotonic() < deadline and process.poll() is None:
+            files = list(bag.glob('*.mcap'))
+            if files and files[0].stat().st_size > 200_000:
+                break
+            time.sleep(0.5)
+        assert process.poll() is None, process.communicate()[0]
+        process.send_signal(signal.SIGINT)
+        output, _ = process.communicate(timeout=60.0)
+    finally:
+        if process.poll() is None:
+            process.kill()
+            process.communicate()
+    assert process.returncode == 0, output
+    assert 'interrupted' in output
+    summary = bags.topic_summary(bag)  # a finished, readable bag
+    assert summary[bags.TOPIC_JOINT_STATES].count > 100
+    assert summary[bags.TOPIC_COMMAND].count > 100
+
+
+def test_unfiltered_graph_exists_only_around_the_simulated_arm(tmp_path: Path) -> None:
+    arm = certified_arm(ARM)
+    specs = sim_demo_graph(urdf_path=arm.urdf_path, limits_path=arm.limits_path,
+                           certificate=None, filtered=False, control_rate_hz=RATE_HZ)
+    assert [s.executable for s in specs] == ['careless_operator', 'sim_arm']
+    assert specs[-1].remappings == [('effort_command', 'nominal_torque')]
+    # The filter node has no option to pass the nominal through.
+    source = (Path(__file__).resolve().parent.parent / 'safety_filter' / 'ros'
+              / 'filter_node.py').read_text(encoding='utf-8')
+    for word in ('bypass', 'passthrough', 'pass_through'):
+        assert f"'{word}" not in source
+
+
+def test_a_timed_sim_graph_in_one_process(tmp_path: Path, domain: int) -> None:
+    arm = certified_arm(ARM)
+    bag = tmp_path / 'bag'
+    specs = sim_demo_graph(urdf_path=arm.urdf_path, limits_path=arm.limits_path,
+                           certificate=arm.certificate_path, duration_s=0.5, bag_path=bag,
+                           storage='sqlite3')
+    result = run_graph(specs, domain_id=domain, localhost_only=True, log_level='warn',
+                       wall_timeout_s=120.0, executor='single')
+    assert result.finished and not result.interrupted
+    assert result.simulated_s == pytest.approx(0.5, abs=1.5 / RATE_HZ)
+    assert (bag / 'metadata.yaml').is_file() and any(bag.glob('*.db3'))
+    assert result.counts[bags.TOPIC_COMMAND] == pytest.approx(500, abs=10)

@@ -1,0 +1,222 @@
+"""Static checks of the launch files (``launch`` and ``launch_ros`` are not installed here).
+
+Each ``launch/*.launch.py`` is parsed with ``ast``; every ``Node(...)`` call is resolved
+(names bound by simple assignments in the file are followed) and checked against the
+package: the package name, the executable among ``setup.py``'s console scripts, every
+parameter file either in ``config/`` or a declared launch argument, every remapping source a
+topic the node's module really uses, and ``generate_launch_description`` defined. The
+runner (``safety-filter run-graph``) must start the same graphs with the same remappings.
+"""
+
+from __future__ import annotations
+
+import ast
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pytest
+
+REPO = Path(__file__).resolve().parent.parent
+LAUNCH_FILES = sorted((REPO / 'launch').glob('*.launch.py'))
+PACKAGE = 'safety_filter'
+
+
+def console_scripts() -> dict[str, str]:
+    """``name -> module`` of setup.py's console scripts (parsed, not imported)."""
+    tree = ast.parse((REPO / 'setup.py').read_text(encoding='utf-8'))
+    for node in ast.walk(tree):
+        if isinstance(node, ast.keyword) and node.arg == 'entry_points':
+            entry_points = ast.literal_eval(node.value)
+            scripts = {}
+            for line in entry_points['console_scripts']:
+                name, target = (part.strip() for part in line.split('='))
+                scripts[name] = target.split(':')[0]
+            return scripts
+    raise AssertionError('setup.py has no entry_points')
+
+
+@dataclass
+class NodeCall:
+    """The keywords of one ``Node(...)`` call, with names resolved to expressions."""
+
+    line: int
+    keywords: dict[str, ast.expr] = field(default_factory=dict)
+
+
+class LaunchFile:
+    """A parsed launch file: its assignments, declared arguments and Node calls."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self.tree = ast.parse(path.read_text(encoding='utf-8'), filename=str(path))
+        self.assignments: dict[str, ast.expr] = {}
+        for node in ast.walk(self.tree):
+            if isinstance(node, ast.Assign) and len(node.targets) == 1 \
+                    and isinstance(node.targets[0], ast.Name):
+                self.assignments[node.targets[0].id] = node.value
+        self.arguments = {
+            call.args[0].value for call in self._calls('DeclareLaunchArgument')
+            if call.args and isinstance(call.args[0], ast.Constant)}
+        self.nodes = [NodeCall(call.lineno, {k.arg: self.resolve(k.value)
+                                             for k in call.keywords if k.arg})
+                      for call in self._calls('Node')]
+
+    def _calls(self, name: str) -> list[ast.Call]:
+        found = []
+        for node in ast.walk(self.tree):
+            if isinstance(node, ast.Call):
+                func = node.func
+                called = func.id if isinstance(func, ast.Name) else getattr(func, 'attr', '')
+                if called == name:
+                    found.append(node)
+        return found
+
+    def resolve(self, expression: ast.expr) -> ast.expr:
+        """Follow a name to the expression assigned to it (once per name)."""
+        seen = set()
+        while isinstance(expression, ast.Name) and expression.id in self.assignments \
+                and expression.id not in seen:
+            seen.add(expression.id)
+            expression = self.assignments[expression.id]
+        return expression
+
+    def function_names(self) -> set[str]:
+        return {node.name for node in self.tree.body if isinstance(node, ast.FunctionDef)}
+
+
+def _call_name(expression: ast.expr) -> str:
+    if isinstance(expression, ast.Call):
+        func = expression.func
+        return func.id if isinstance(func, ast.Name) else getattr(func, 'attr', '')
+    return ''
+
+
+def _string(expression: ast.expr) -> str | None:
+    return expression.value if isinstance(expression, ast.Constant) \
+        and isinstance(expression.value, str) else None
+
+
+def _elements(launch: LaunchFile, expression: ast.expr) -> list[ast.expr]:
+    expression = launch.resolve(expression)
+    assert isinstance(expression, (ast.List, ast.Tuple)), ast.dump(expression)
+    items: list[ast.expr] = []
+    for element in expression.elts:
+        if isinstance(element, ast.Starred):
+            items += _elements(launch, element.value)
+        else:
+            items.append(launch.resolve(element))
+    return items
+
+
+def _module_source(executable: str) -> str:
+    module = console_scripts()[executable]
+    return (REPO / Path(*module.split('.'))).with_suffix('.py').read_text(encoding='utf-8')
+
+
+@pytest.fixture(scope='module', params=[p.name for p in LAUNCH_FILES])
+def launch_file(request: pytest.FixtureRequest) -> LaunchFile:
+    return LaunchFile(REPO / 'launch' / request.param)
+
+
+def test_there_are_the_two_launch_files() -> None:
+    names = {p.name for p in LAUNCH_FILES}
+    assert {'sim_demo.launch.py', 'hardware.launch.py'} <= names
+
+
+def test_defines_generate_launch_description(launch_file: LaunchFile) -> None:
+    assert 'generate_launch_description' in launch_file.function_names()
+    assert launch_file.nodes, 'no Node(...) in the launch file'
+
+
+def test_nodes_name_package_and_existing_executables(launch_file: LaunchFile) -> None:
+    scripts = console_scripts()
+    for node in launch_file.nodes:
+        assert _string(node.keywords['package']) == PACKAGE, node.line
+        executable = _string(node.keywords['executable'])
+        assert executable in scripts, f'line {node.line}: {executable} not in console_scripts'
+        assert _string(node.keywords.get('name', ast.Constant(None))), \
+            f'line {node.line}: give the node a name (parameter files are keyed by it)'
+
+
+def test_parameter_files_exist_or_are_launch_arguments(launch_file: LaunchFile) -> None:
+    for node in launch_file.nodes:
+        for item in _elements(launch_file, node.keywords.get('parameters', ast.List([]))):
+            if isinstance(item, ast.Dict):
+                continue  # inline parameters
+            name = _call_name(item)
+            if name == 'LaunchConfiguration':
+                argument = _string(item.args[0])
+                assert argument in launch_file.arguments, \
+                    f'line {node.line}: parameter file {argument} is not a launch argument'
+            elif name == 'PathJoinSubstitution':
+                parts = [_string(part) for part in _elements(launch_file, item.args[0])]
+                assert parts[-2] == 'config', parts
+                assert (REPO / 'config' / parts[-1]).is_file(), f'config/{parts[-1]} missing'
+            else:
+                path = _string(item)
+                assert path is not None, f'line {node.line}: unknown parameter {ast.dump(item)}'
+                assert (REPO / 'config' / Path(path).name).is_file(), path
+
+
+def test_launch_configurations_are_declared(launch_file: LaunchFile) -> None:
+    used = {call.args[0].value for call in launch_file._calls('LaunchConfiguration')
+            if call.args and isinstance(call.args[0], ast.Constant)}
+    assert used <= launch_file.arguments, used - launch_file.arguments
+
+
+def test_remapping_sources_are_topics_the_node_uses(launch_file: LaunchFile) -> None:
+    for node in launch_file.nodes:
+        source_code = _module_source(_string(node.keywords['executable']))
+        for pair in _elements(launch_file, node.keywords.get('remappings', ast.List([]))):
+            assert isinstance(pair, ast.Tuple) and len(pair.elts) == 2, ast.dump(pair)
+            topic = _string(pair.elts[0])
+            assert topic, f'line {node.line}: remapping source must be a string'
+            assert f"'{topic}'" in source_code, \
+                f'line {node.line}: the node never uses the topic {topic!r}'
+
+
+def test_sim_demo_feeds_the_filter_output_to_the_simulated_driver() -> None:
+    launch = LaunchFile(REPO / 'launch' / 'sim_demo.launch.py')
+    executables = {_string(n.keywords['executable']): n for n in launch.nodes}
+    assert set(executables) == {'sim_arm', 'careless_operator', 'filter_node'}
+    remaps = [tuple(_string(e) for e in pair.elts) for pair in
+              _elements(launch, executables['filter_node'].keywords['remappings'])]
+    assert ('filtered_torque', 'effort_command') in remaps
+    assert "'effort_command'" in _module_source('sim_arm')
+
+
+def test_the_runner_starts_the_same_graphs(tmp_path: Path) -> None:
+    from safety_filter.demo_arms import demo_arm_files
+    from safety_filter.ros.runner import NODES, hardware_graph, sim_demo_graph
+
+    scripts = console_scripts()
+    for executable, (module, _) in NODES.items():
+        assert scripts.get(executable) == module, executable
+    urdf, limits = demo_arm_files('planar2')
+    certificate = tmp_path / 'certificate.yaml'
+    specs = sim_demo_graph(urdf_path=urdf, limits_path=limits, certificate=certificate,
+                           control_rate_hz=1000.0)
+    launch = LaunchFile(REPO / 'launch' / 'sim_demo.launch.py')
+    by_executable = {s.executable: s for s in specs}
+    for node in launch.nodes:
+        spec = by_executable[_string(node.keywords['executable'])]
+        assert spec.name == _string(node.keywords['name'])
+        remaps = [tuple(_string(e) for e in pair.elts) for pair in
+                  _elements(launch, node.keywords.get('remappings', ast.List([])))]
+        assert sorted(remaps) == sorted(spec.remappings)
+        assert any(p.name == 'sim_demo.yaml' for p in spec.parameter_files)
+    (hardware,) = hardware_graph(certificate=certificate, urdf_path=urdf,
+                                 command_topic='/arm/commands')
+    assert ('filtered_torque', '/arm/commands') in hardware.remappings
+    assert [p.name for p in hardware.parameter_files] == ['certificate.yaml', 'filter.yaml']
+
+
+def test_config_files_are_parameter_files_keyed_by_node_name() -> None:
+    import yaml
+
+    for path in (REPO / 'config').glob('*.yaml'):
+        document = yaml.safe_load(path.read_text(encoding='utf-8'))
+        assert isinstance(document, dict) and document, path.name
+        for node, section in document.items():
+            assert set(section) == {'ros__parameters'}, (path.name, node)
+            assert node in {'sim_arm', 'careless_operator', 'safety_filter'}, (path.name, node)

@@ -1,0 +1,168 @@
+"""The simulated driver (safety_filter.sim_driver): the plant of the sim_arm node, no ROS.
+
+The accelerated simulator is checked against the package's reference simulator
+(:class:`safety_filter.simulate.ArmSimulator`, itself checked against SciPy's ``solve_ivp``
+in test_simulate.py); the driver's rules (brakes, saturation, safe stop, latency, noise)
+against hand-computed expectations.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from safety_filter.demo_arms import load_demo_arm
+from safety_filter.dynamics import Dynamics
+from safety_filter.errors import SafetyFilterError
+from safety_filter.sim_driver import FastArmSimulator, SimulatedDriver
+from safety_filter.simulate import ArmSimulator
+
+RATE = 1000.0
+PERIOD = 1.0 / RATE
+
+
+@pytest.fixture(scope='module', params=['planar2', 'bench6'])
+def model(request):
+    return load_demo_arm(request.param)
+
+
+def test_fast_simulator_matches_the_reference(model) -> None:
+    pytest.importorskip('pinocchio', reason='the fast path needs Pinocchio: pip install pin')
+    rng = np.random.default_rng(1)
+    fast = FastArmSimulator(model, payload_mass=0.4, internal_rate_hz=5000.0)
+    reference = ArmSimulator(model, payload_mass=0.4, internal_rate_hz=5000.0)
+    assert fast.accelerated
+    q0 = rng.uniform(model.position_lower, model.position_upper)
+    v0 = rng.uniform(-1.0, 1.0, model.n_joints)
+    fast.reset(q0, v0)
+    reference.reset(q0, v0)
+    effort = np.array(model.effort_limit)
+    for _ in range(50):
+        u = rng.uniform(-effort, effort)
+        fast.advance(u, 0.004)
+        reference.advance(u, 0.004)
+    np.testing.assert_allclose(fast.q, reference.q, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(fast.v, reference.v, rtol=0, atol=1e-8)
+
+
+def test_held_still_until_the_first_command(model) -> None:
+    driver = SimulatedDriver(model, RATE)
+    q0 = driver.position
+    np.testing.assert_allclose(q0, 0.5 * (model.position_lower + model.position_upper))
+    for _ in range(20):
+        measurement = driver.tick()
+    assert not driver.released
+    np.testing.assert_array_equal(measurement.position, q0)
+    np.testing.assert_array_equal(measurement.velocity, 0.0)
+    assert driver.time_s == pytest.approx(20 * PERIOD)
+    assert driver.command(np.zeros(model.n_joints))
+    driver.tick()
+    assert driver.released
+    assert not np.allclose(driver.position, q0)  # gravity acts on a zero command
+
+
+def test_commands_are_saturated_like_a_driver(model) -> None:
+    driver = SimulatedDriver(model, RATE, initial_positions=np.zeros(model.n_joints)
+                             + 0.5 * (model.position_lower + model.position_upper))
+    effort = np.array(model.effort_limit)
+    command = 3.0 * effort * np.where(np.arange(model.n_joints) % 2 == 0, 1.0, -1.0)
+    reference = ArmSimulator(model, internal_rate_hz=10 * RATE)
+    reference.reset(driver.position)
+    driver.command(command)
+    measurement = driver.tick()
+    reference.advance(np.clip(command, -effort, effort), PERIOD)
+    np.testing.assert_array_equal(measurement.effort, np.clip(command, -effort, effort))
+    np.testing.assert_allclose(measurement.position, reference.q, atol=1e-10)
+
+
+def test_stale_command_gives_zero_torque(model) -> None:
+    driver = SimulatedDriver(model, RATE, command_timeout_s=0.0045)
+    hold = Dynamics(model).gravity_torque(driver.position)
+    driver.command(hold)
+    for _ in range(5):  # command ages 0 .. 4 ms
+        assert np.allclose(driver.tick().effort, np.clip(hold, -model.effort_limit,
+                                                         model.effort_limit))
+    assert driver.stale_ticks == 0
+    for _ in range(3):
+        assert np.all(driver.tick().effort == 0.0)  # safe torque off
+    assert driver.stale_ticks == 3
+    driver.command(hold)  # commands resume
+    assert np.any(driver.tick().effort != 0.0)
+
+
+def test_invalid_commands_are_ignored(model) -> None:
+    driver = SimulatedDriver(model, RATE)
+    assert not driver.command(np.zeros(model.n_joints + 1))
+    assert not driver.command(np.full(model.n_joints, np.nan))
+    assert driver.invalid_commands == 2
+    assert not driver.released
+
+
+def test_driver_compensated_adds_gravity(model) -> None:
+    driver = SimulatedDriver(model, RATE, gravity_convention='driver_compensated')
+    gravity = Dynamics(model).gravity_torque(driver.position)
+    driver.command(np.zeros(model.n_joints))
+    measurement = driver.tick()
+    np.testing.assert_allclose(measurement.effort,
+                               np.clip(gravity, -model.effort_limit, model.effort_limit))
+
+
+def test_latency_publishes_the_state_measured_that_long_ago(model) -> None:
+    # The newest state at least latency_s old is published, with its own stamp.
+    delayed = SimulatedDriver(model, RATE, latency_s=3 * PERIOD)
+    prompt = SimulatedDriver(model, RATE)
+    rng = np.random.default_rng(2)
+    truth = {0.0: prompt.position}
+    for k in range(30):
+        u = rng.uniform(-1.0, 1.0, model.n_joints)
+        delayed.command(u)
+        prompt.command(u)
+        late = delayed.tick()
+        now = prompt.tick()
+        truth[round(now.stamp_s, 9)] = now.position
+        assert delayed.time_s - late.stamp_s == pytest.approx(min(3, k + 1) * PERIOD,
+                                                              abs=1e-12)
+        np.testing.assert_array_equal(late.position, truth[round(late.stamp_s, 9)])
+
+
+def test_noise_is_seeded_and_has_the_asked_spread(model) -> None:
+    def samples(seed: int) -> np.ndarray:
+        driver = SimulatedDriver(model, RATE, position_noise_std=0.01,
+                                 velocity_noise_std=0.1, noise_seed=seed)
+        return np.array([np.concatenate([m.position - driver.position,
+                                         m.velocity - driver.velocity])
+                         for m in (driver.tick() for _ in range(2000))])
+
+    first, again, other = samples(7), samples(7), samples(8)
+    np.testing.assert_array_equal(first, again)
+    assert not np.array_equal(first, other)
+    n = model.n_joints
+    assert np.std(first[:, :n]) == pytest.approx(0.01, rel=0.1)
+    assert np.std(first[:, n:]) == pytest.approx(0.1, rel=0.1)
+
+
+@pytest.mark.parametrize('options', [
+    {'control_rate_hz': 0.0}, {'internal_rate_hz': 10.0}, {'latency_s': -1.0},
+    {'command_timeout_s': 0.0}, {'gravity_convention': 'none'},
+    {'initial_positions': [0.0]}, {'position_noise_std': float('nan')}])
+def test_bad_options_are_refused(options) -> None:
+    model = load_demo_arm('planar2')
+    kwargs = {'control_rate_hz': RATE, **options}
+    with pytest.raises(SafetyFilterError):
+        SimulatedDriver(model, **kwargs)
+
+
+def test_the_demo_core_imports_no_ros() -> None:
+    import ast
+    from pathlib import Path
+
+    package = Path(__file__).resolve().parent.parent / 'safety_filter'
+    for name in ('operator', 'bags', 'sim_driver', 'demo_report', 'demo'):
+        tree = ast.parse((package / f'{name}.py').read_text(encoding='utf-8'))
+        top_level = [node for node in tree.body if isinstance(node, (ast.Import, ast.ImportFrom))]
+        imported = {alias.name.split('.')[0] for node in top_level if isinstance(node, ast.Import)
+                    for alias in node.names}
+        imported |= {node.module for node in top_level
+                     if isinstance(node, ast.ImportFrom) and node.module}
+        assert not {m.split('.')[0] for m in imported} & {'rclpy', 'sensor_msgs', 'std_msgs'}, name
+        assert not any(m.startswith('safety_filter.ros') for m in imported), name
