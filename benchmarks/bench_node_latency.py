@@ -69,15 +69,14 @@ def _interrupt(signum: int, frame: Any) -> None:
     raise KeyboardInterrupt
 
 
-def run_echo_node(namespace: str) -> int:
+def run_echo_node(namespace: str, executor_kind: str) -> int:
     """The baseline: per nominal, publish its data on filtered_torque and on ~/status."""
     import rclpy
-    from rclpy.executors import SingleThreadedExecutor
     from rclpy.signals import SignalHandlerOptions
     from sensor_msgs.msg import JointState
     from std_msgs.msg import Float64MultiArray
 
-    from safety_filter.ros.filter_node import control_qos
+    from safety_filter.ros.filter_node import control_qos, make_executor
 
     rclpy.init(signal_handler_options=SignalHandlerOptions.NO)
     node = rclpy.create_node('echo', namespace=namespace)
@@ -97,7 +96,7 @@ def run_echo_node(namespace: str) -> int:
 
     node.create_subscription(JointState, 'joint_states', on_joint_state, qos)
     node.create_subscription(Float64MultiArray, 'nominal_torque', on_nominal, qos)
-    executor = SingleThreadedExecutor()
+    executor = make_executor(executor_kind, rclpy.get_default_context())
     executor.add_node(node)
     signal.signal(signal.SIGTERM, _interrupt)
     try:
@@ -149,14 +148,13 @@ class Driver:
     """Publishes joint states and nominals at 1 kHz; records outputs and status records."""
 
     def __init__(self, namespace: str, node_name: str, joint_names: list[str],
-                 position: Any, nominal_of: Any, rate_hz: float) -> None:
+                 position: Any, nominal_of: Any, rate_hz: float, executor_kind: str) -> None:
         import rclpy
-        from rclpy.executors import SingleThreadedExecutor
         from rclpy.qos import QoSProfile, ReliabilityPolicy
         from sensor_msgs.msg import JointState
         from std_msgs.msg import Float64MultiArray
 
-        from safety_filter.ros.filter_node import control_qos
+        from safety_filter.ros.filter_node import control_qos, make_executor
 
         self.context = rclpy.context.Context()
         rclpy.init(context=self.context)
@@ -185,7 +183,7 @@ class Driver:
         self._nominal_of = nominal_of
         self._nominal_msg_type = Float64MultiArray
         node.create_timer(1.0 / rate_hz, self._on_timer)
-        self.executor = SingleThreadedExecutor(context=self.context)
+        self.executor = make_executor(executor_kind, self.context)
         self.executor.add_node(node)
         self._running = True
         self._thread = threading.Thread(target=self._spin, daemon=True)
@@ -282,12 +280,13 @@ def evaluate(driver: Driver, echo: bool, n: int) -> dict[str, Any]:
 
 def run_workload(label: str, command: list[str], namespace: str, node_name: str,
                  joint_names: list[str], position: Any, nominal_of: Any, duration: float,
-                 rate_hz: float, echo: bool) -> dict[str, Any]:
+                 rate_hz: float, echo: bool, executor_kind: str) -> dict[str, Any]:
     env = dict(os.environ)
     env['PYTHONPATH'] = os.pathsep.join([str(ROOT)] + [p for p in [env.get('PYTHONPATH')] if p])
     log = tempfile.TemporaryFile()
     process = subprocess.Popen(command, env=env, stdout=log, stderr=subprocess.STDOUT)
-    driver = Driver(namespace, node_name, joint_names, position, nominal_of, rate_hz)
+    driver = Driver(namespace, node_name, joint_names, position, nominal_of, rate_hz,
+                    executor_kind)
     try:
         if not driver.wait_for_node(STARTUP_TIMEOUT_S):
             log.seek(0)
@@ -319,10 +318,14 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument('--node-ros-args', default='', metavar='ARGS',
                         help="extra ROS arguments of the filter node, e.g. '-p "
                         "trigger:=joint_state'")
+    parser.add_argument('--executor', choices=('single_threaded', 'events'),
+                        default='single_threaded',
+                        help='rclpy executor of the node under test, the echo and this '
+                        'process')
     parser.add_argument('--echo-node', metavar='NAMESPACE', help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.echo_node is not None:
-        return run_echo_node(args.echo_node)
+        return run_echo_node(args.echo_node, args.executor)
     duration = 5.0 if args.quick else args.duration
 
     import numpy as np
@@ -362,17 +365,19 @@ def main(argv: list[str] | None = None) -> int:
               f'outputs of {len(outputs)}', flush=True)
 
     print(f'{args.arm}: {n} joints, {args.rate:g} Hz, {duration:g} s per workload, '
-          f'{os.cpu_count()} CPUs, load average before {os.getloadavg()[0]:.2f}, '
-          f'ROS_DOMAIN_ID {os.environ["ROS_DOMAIN_ID"]}', flush=True)
+          f'executor {args.executor}, {os.cpu_count()} CPUs, load average before '
+          f'{os.getloadavg()[0]:.2f}, ROS_DOMAIN_ID {os.environ["ROS_DOMAIN_ID"]}', flush=True)
     # The nodes run in namespaces: the parameter file must be keyed for any namespace.
     any_namespace = certificate_path.with_name(certificate_path.stem + '-any.yaml')
     Certificate.load(certificate_path).save(any_namespace, node_name='/**/safety_filter')
     node_command = [sys.executable, '-m', 'safety_filter.cli', 'node', '--certificate',
-                    str(any_namespace), '--demo', args.arm, '--ros-args', '-r']
+                    str(any_namespace), '--demo', args.arm, '--executor', args.executor,
+                    '--ros-args', '-r']
     extra = args.node_ros_args.split()
     workloads = [
         ('echo (bare rclpy)', [sys.executable, str(Path(__file__).resolve()), '--echo-node',
-                               '/bench_echo'], '/bench_echo', 'echo', inside, True),
+                               '/bench_echo', '--executor', args.executor], '/bench_echo',
+         'echo', inside, True),
         ('filter, pass-through', node_command + ['__ns:=/bench_pass', *extra], '/bench_pass',
          'safety_filter', inside, False),
         ('filter, intervening', node_command + ['__ns:=/bench_qp', *extra], '/bench_qp',
@@ -382,7 +387,7 @@ def main(argv: list[str] | None = None) -> int:
     for label, command, namespace, node_name, nominal_of, echo in workloads:
         print(f'running {label} ...', flush=True)
         results.append(run_workload(label, command, namespace, node_name, names, position,
-                                    nominal_of, duration, args.rate, echo))
+                                    nominal_of, duration, args.rate, echo, args.executor))
     echo = results[0]
     print()
     print(HEADER)

@@ -22,7 +22,6 @@ from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
-from scipy.stats import qmc
 
 from safety_filter.dynamics import christoffel_batch, mass_matrix_batch, rnea_batch
 from safety_filter.errors import SafetyFilterError
@@ -160,6 +159,8 @@ def estimate_bounds(
     evaluator = _Evaluator(model)
     report = progress or (lambda _stage, _fraction: None)
     vel = np.array(model.velocity_limit) if velocity_scale is None else velocity_scale
+
+    from scipy.stats import qmc  # slow to import; only certification needs it
 
     # ---- 1. quasi-random sampling (joint box, plus the payload mass as a coordinate)
     dims = n + 1

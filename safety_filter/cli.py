@@ -252,7 +252,7 @@ def _command_node(args: argparse.Namespace) -> int:
     if args.payload_mass is not None:
         ros_args += ['-p', f'payload_mass:={float(args.payload_mass)!r}']
     ros_args += list(args.ros_args or [])
-    own = [] if args.no_autostart else ['--autostart']
+    own = ['--executor', args.executor] + ([] if args.no_autostart else ['--autostart'])
     return filter_node.main(['safety-filter-node', *own, *ros_args])
 
 
@@ -279,6 +279,10 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
                       'range)')
     node.add_argument('--no-autostart', action='store_true',
                       help='start unconfigured; drive it with the lifecycle services')
+    node.add_argument('--executor', choices=('single_threaded', 'events'),
+                      default='single_threaded',
+                      help="rclpy executor (default single_threaded; 'events': rclpy's "
+                      'experimental EventsExecutor, less overhead per message)')
     node.add_argument('--ros-args', dest='ros_args', nargs=argparse.REMAINDER, default=[],
                       metavar='ROS_ARGS', help='everything after this goes to ROS, e.g. '
                       '--ros-args -r filtered_torque:=/arm/commands -p trigger:=joint_state')

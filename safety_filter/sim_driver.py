@@ -24,7 +24,6 @@ import math
 from collections import deque
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 
@@ -34,39 +33,6 @@ from safety_filter.simulate import ArmSimulator
 
 GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
 DEFAULT_INTERNAL_RATE_FACTOR = 10.0
-
-
-class FastArmSimulator(ArmSimulator):
-    """:class:`ArmSimulator` whose forward dynamics go through Pinocchio's ABA when the
-    dynamics backend is Pinocchio (same model, payload and friction; the tests check the
-    two agree). ``Dynamics.forward_dynamics`` builds ``M`` and ``h`` and solves, which costs
-    about 30 times as much per call and made a 1 kHz simulation slower than real time."""
-
-    def __init__(self, model: RobotModel, payload_mass: float = 0.0,
-                 internal_rate_hz: float = 10_000.0, backend: str = 'auto') -> None:
-        super().__init__(model, payload_mass, internal_rate_hz, backend)
-        chain = getattr(self.dynamics, '_pin', None)
-        self._aba: Any = None
-        if chain is not None and all(hasattr(chain, a) for a in ('_pin', 'model', 'data')):
-            self._aba = chain._pin.aba
-            self._pin_model, self._pin_data = chain.model, chain.data
-        self._viscous = np.array(model.viscous_friction)
-        self._coulomb = np.array(model.coulomb_friction)
-        self._has_coulomb = bool(np.any(self._coulomb != 0.0))
-
-    @property
-    def accelerated(self) -> bool:
-        """True when the ABA path is used."""
-        return self._aba is not None
-
-    def _derivative(self, q: np.ndarray, v: np.ndarray, u: np.ndarray
-                    ) -> tuple[np.ndarray, np.ndarray]:
-        if self._aba is None:
-            return super()._derivative(q, v, u)
-        effort = u - self._viscous * v
-        if self._has_coulomb:
-            effort -= self._coulomb * np.sign(v)
-        return v, self._aba(self._pin_model, self._pin_data, q, v, effort)
 
 
 @dataclass(frozen=True)
@@ -142,7 +108,7 @@ class SimulatedDriver:
         self.latency_s = check('latency_s', latency_s)
         self.command_timeout_s = check('command_timeout_s', command_timeout_s, positive=True)
         self.gravity_convention = gravity_convention
-        self.simulator = FastArmSimulator(model, self.payload_mass, internal_rate_hz, backend)
+        self.simulator = ArmSimulator(model, self.payload_mass, internal_rate_hz, backend)
         q0 = (0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
               if initial_positions is None or len(initial_positions) == 0
               else np.asarray(initial_positions, dtype=float))

@@ -92,15 +92,19 @@ def node_process(tmp_path: Path) -> Any:
         process.kill()
 
 
+@pytest.mark.parametrize('executor', ['single_threaded', 'events'])
 def test_cli_node_filters_and_exits_cleanly_on_sigint(
-        planar2: CertifiedArm, domain_id: int, node_process: Any) -> None:
+        executor: str, planar2: CertifiedArm, domain_id: int, node_process: Any) -> None:
     arm = planar2
-    # The certificate file as `safety-filter certify` writes it, the node in the root
-    # namespace (the only one in this module's domain), the URDF and limits by path.
-    node = node_process(['--certificate', str(arm.default_certificate_path),
-                         '--urdf', str(arm.urdf_path), '--limits', str(arm.limits_path),
-                         '--ros-args', '-p', 'diagnostics_rate_hz:=5.0'])
-    harness = Harness(domain_id, '')
+    # The certificate file as `safety-filter certify` writes it, the URDF and limits by path.
+    # single_threaded: the node in the root namespace, where that file's key matches.
+    namespace = '' if executor == 'single_threaded' else unique_namespace()
+    certificate = arm.default_certificate_path if not namespace else arm.certificate_path
+    node = node_process(['--certificate', str(certificate), '--urdf', str(arm.urdf_path),
+                         '--limits', str(arm.limits_path), '--executor', executor,
+                         '--ros-args', '-r', f'__ns:={namespace or "/"}',
+                         '-p', 'diagnostics_rate_hz:=5.0'])
+    harness = Harness(domain_id, namespace)
     try:
         harness.wait_for_subscribers(START_TIMEOUT_S)
         harness.wait_for_publishers(START_TIMEOUT_S)

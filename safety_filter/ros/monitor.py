@@ -243,8 +243,15 @@ class FilterMonitorNode(Node):
 
 
 # ---------------------------------------------------------------------- executable
-def _raise_keyboard_interrupt(signum: int, frame: Any) -> None:
-    raise KeyboardInterrupt
+class _StopRequest:
+    """SIGINT/SIGTERM set a flag that the spin loop checks (at least every 50 ms): raising
+    from the handler could land inside a callback called from the executor's C++ code."""
+
+    def __init__(self) -> None:
+        self.raised = False
+
+    def __call__(self, signum: int, frame: Any) -> None:
+        self.raised = True
 
 
 def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
@@ -267,15 +274,16 @@ def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
     screen = Screen(stream, plain=plain, color=color)
     event_log = (EventLogWriter(args.event_log, split_node_name(args.node_name)[0],
                                 args.event_time) if args.event_log else None)
-    ros_args = ['filter_monitor', '--ros-args', *list(getattr(args, 'ros_args', []) or [])]
-    context = rclpy.context.Context()
-    rclpy.init(args=ros_args, context=context, domain_id=args.domain_id,
-               signal_handler_options=SignalHandlerOptions.NO)
-    previous = {signum: signal.signal(signum, _raise_keyboard_interrupt)
+    stop = _StopRequest()
+    previous = {signum: signal.signal(signum, stop)
                 for signum in (signal.SIGINT, signal.SIGTERM)}
+    context = rclpy.context.Context()
     node = None
     executor = None
     try:
+        ros_args = ['filter_monitor', '--ros-args', *list(getattr(args, 'ros_args', []) or [])]
+        rclpy.init(args=ros_args, context=context, domain_id=args.domain_id,
+                   signal_handler_options=SignalHandlerOptions.NO)
         node = FilterMonitorNode(state, screen, event_log, rate_hz=args.rate,
                                  diagnostics_topic=args.diagnostics_topic,
                                  status_topic_name=args.status_topic,
@@ -283,12 +291,10 @@ def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
         executor = make_executor('events', context)
         executor.add_node(node)
         deadline = time.monotonic() + args.duration if args.duration > 0 else None
-        while context.ok():
+        while context.ok() and not stop.raised:
             if deadline is not None and time.monotonic() >= deadline:
                 break
             executor.spin_once(timeout_sec=0.05)
-    except KeyboardInterrupt:
-        pass
     finally:
         for signum, handler in previous.items():
             signal.signal(signum, handler)
