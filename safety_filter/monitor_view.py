@@ -1004,7 +1004,9 @@ def add_monitor_arguments(parser: argparse.ArgumentParser) -> None:
     """The options of ``safety-filter monitor`` and ``filter_monitor``."""
     parser.add_argument('--node-name', default=DEFAULT_NODE_NAME, metavar='NAME',
                         help='the filter node to watch, e.g. safety_filter or '
-                        '/arm1/safety_filter (default: safety_filter)')
+                        '/arm1/safety_filter (default: safety_filter). Its diagnostics are '
+                        "named by the node's base name only, so run filters in different "
+                        'namespaces with different names or diagnostics topics')
     parser.add_argument('--rate', type=float, default=DEFAULT_RATE_HZ, metavar='HZ',
                         help=f'screen refreshes per second (default: {DEFAULT_RATE_HZ:g})')
     parser.add_argument('--thin-margin', type=float, default=DEFAULT_THIN_MARGIN,

@@ -101,6 +101,9 @@ reason; change them by starting the node again):
 * every entry of the certificate parameter file (:meth:`Certificate.to_parameters`, given
   with ``--params-file``; declared read-only). The node refuses an uncertified certificate,
   an edited one (its id covers the content) and one computed for another model (hash).
+  ROS applies a file keyed ``safety_filter`` (as ``Certificate.save`` writes it) only to a
+  node in the root namespace; for a namespaced node key it ``/**/safety_filter`` or with the
+  full name (``Certificate.save(path, node_name='/**/safety_filter')``).
 * ``urdf_path`` (a URDF file) or ``robot_description`` (the URDF XML text); ``limits_path``
   (the limits YAML, which also selects the chain); ``gravity_convention`` (``'full'``: the
   driver takes the full torque, ``'driver_compensated'``: the driver adds ``g(q)`` itself,
@@ -437,10 +440,12 @@ class SafetyFilterNode(LifecycleNode):
     def _configure(self) -> None:
         values = self._certificate_parameters()
         if 'certificate_format' not in values:
+            name = self.get_fully_qualified_name()
             raise SafetyFilterError(
                 'no certificate parameters: start the node with --params-file <certificate '
-                'YAML written by safety-filter certify> (keyed by the node name '
-                f'{self.get_name()!r})')
+                'YAML written by safety-filter certify>; ROS matches its key '
+                f'{self.get_name()!r} only for a node in the root namespace, so for {name!r} '
+                f"key it {name!r} or '/**/{self.get_name()}'")
         certificate = Certificate.from_parameters(values)
         urdf_path = str(self.get_parameter('urdf_path').value)
         description = str(self.get_parameter('robot_description').value)
