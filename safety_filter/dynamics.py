@@ -248,8 +248,8 @@ def christoffel_batch(model: RobotModel, q: np.ndarray, *, payload_mass: float =
     ``Gamma_ijk = 1/2 (dM_ij/dq_k + dM_ik/dq_j - dM_jk/dq_i)``, so that
     ``(C v)_i = sum_jk Gamma_ijk v_j v_k`` and ``C_ij = sum_k Gamma_ijk v_k``.
     The numpy backend takes them exactly from the velocity-quadratic term of the recursion
-    by polarisation; the Pinocchio backend from the analytic derivatives of ``M`` (RNEA
-    derivatives at unit accelerations). The tests check that the two agree.
+    by polarisation; the Pinocchio backend from its Coriolis matrix at unit velocities
+    (Pinocchio builds ``C`` from the same symbols). The tests check that the two agree.
     """
     n = model.n_joints
     q = _as_batch(q, n)
@@ -437,11 +437,11 @@ class _PinocchioChain:
         return self._pin.rnea(self.model_free, self.data_free, q, v, a)
 
     def christoffel(self, q: np.ndarray) -> np.ndarray:
+        # Pinocchio's Coriolis matrix is built from the same Christoffel symbols
+        # (C_ij = sum_k Gamma_ijk v_k), so a unit velocity along joint k gives Gamma[:, :, k].
         n = len(q)
-        derivative = np.empty((n, n, n))  # derivative[i, j, k] = dM_ij / dq_k
-        for j in range(n):
-            d_tau_dq = self._pin.computeRNEADerivatives(
-                self.model_free, self.data_free, q, self._zero, self._unit[j])[0]
-            derivative[:, j, :] = d_tau_dq
-        return 0.5 * (derivative + derivative.transpose(0, 2, 1)
-                      - derivative.transpose(2, 1, 0))
+        gamma = np.empty((n, n, n))
+        for k in range(n):
+            gamma[:, :, k] = self._pin.computeCoriolisMatrix(
+                self.model_free, self.data_free, q, self._unit[k])
+        return gamma
