@@ -74,7 +74,9 @@ default QoS (reliable, depth 10), like every diagnostics publisher.
 
 Timeouts and the watchdog
 -------------------------
-A watchdog timer runs at ``watchdog_rate_hz`` (default: the certificate's control rate).
+A watchdog timer runs at ``watchdog_rate_hz`` (default: the certificate's control rate), on the
+steady clock even under ``use_sim_time``: a stopped simulator stops ``/clock``, and the
+watchdog must still fire. The diagnostics timer does likewise.
 
 * **Joint states** older than ``joint_state_timeout_s`` (no valid message for that long):
   every step publishes the filter's hold command at the last valid position with the
@@ -145,6 +147,7 @@ import rclpy
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from lifecycle_msgs.srv import ChangeState
 from rcl_interfaces.msg import ParameterDescriptor, SetParametersResult
+from rclpy.clock import Clock, ClockType
 from rclpy.executors import SingleThreadedExecutor
 from rclpy.impl.implementation_singleton import rclpy_implementation as _rclpy
 from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
@@ -530,10 +533,13 @@ class SafetyFilterNode(LifecycleNode):
             self.create_subscription(Float64MultiArray, 'nominal_torque', self._on_nominal,
                                      qos, qos_overriding_options=_qos_overrides()),
         ]
-        self._watchdog = self.create_timer(1.0 / watchdog_rate, self._on_watchdog)
+        # Both timers run on the steady clock: under simulated time a dead simulator stops
+        # /clock, and a watchdog on the node clock would then never fire.
+        steady = Clock(clock_type=ClockType.STEADY_TIME)
+        self._watchdog = self.create_timer(1.0 / watchdog_rate, self._on_watchdog, clock=steady)
         self._watchdog.cancel()  # runs only while active
         diagnostics = self.create_timer(1.0 / operational['diagnostics_rate_hz'],
-                                        self._on_diagnostics)
+                                        self._on_diagnostics, clock=steady)
         self._timers_made = [self._watchdog, diagnostics]
         self._configured = True
         self.get_logger().info(
