@@ -659,8 +659,7 @@ class SafetyFilterNode(LifecycleNode):
             q, v, u_nom = self._last_valid_q, self._nan, self._nan
             output = filt.step(q, v, u_nom)
             code = MODE_STALE
-            reason = (f'joint states stale ({joint_state_age * 1e3:.0f} ms > '
-                      f'{self._joint_state_timeout * 1e3:.0f} ms): holding')
+            reason = 'joint states stale: holding'  # the age is in the status and diagnostics
         else:
             q, v = self._q, self._v
             if nominal_age <= self._nominal_timeout:
