@@ -29,6 +29,7 @@ from typing import Any
 
 import numpy as np
 
+from safety_filter._report_common import BASE_CSS, json_ready
 from safety_filter.certify import CertificationOutcome, _slice_ratio, beta_star
 from safety_filter.model import RobotModel
 
@@ -400,23 +401,6 @@ def _plot_summary(outcome: CertificationOutcome, path: Path) -> None:
 
 
 # ---------------------------------------------------------------------- files
-def _json_ready(value: Any) -> Any:
-    """Plain JSON content: numpy to Python, non-finite floats to None."""
-    if isinstance(value, dict):
-        return {str(k): _json_ready(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_ready(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return [_json_ready(v) for v in value.tolist()]
-    if isinstance(value, (np.bool_, bool)):
-        return bool(value)
-    if isinstance(value, (np.integer, int)):
-        return int(value)
-    if isinstance(value, (np.floating, float)):
-        return float(value) if math.isfinite(float(value)) else None
-    return value
-
-
 def report_data(outcome: CertificationOutcome, model: RobotModel) -> dict[str, Any]:
     """The machine-readable report: certificate summary, per-joint rows, timings, falsifier."""
     falsifier = outcome.falsifier
@@ -424,7 +408,7 @@ def report_data(outcome: CertificationOutcome, model: RobotModel) -> dict[str, A
     if falsifier is not None:
         falsifier_summary = dict(falsifier.summary())
         falsifier_summary['worst_states'] = list(falsifier.worst_states)
-    return _json_ready({
+    return json_ready({
         'robot': model.name,
         'verdict': 'certified' if outcome.certified else 'not certified',
         'certificate': outcome.certificate.summary(),
@@ -458,20 +442,12 @@ def write_report(outcome: CertificationOutcome, model: RobotModel, folder: str |
     return page
 
 
-_CSS = """
-body { font-family: -apple-system, 'Segoe UI', Helvetica, Arial, sans-serif; margin: 2em auto;
-       max-width: 70em; padding: 0 1em; color: #1d1d1f; line-height: 1.45; }
-h1 { font-size: 1.6em; margin-bottom: 0.2em; }
-h2 { font-size: 1.25em; margin-top: 1.8em; border-bottom: 1px solid #ccc; }
+_CSS = BASE_CSS + """
 h3 { font-size: 1.05em; margin-top: 1.4em; }
-.caution { background: #fff4e0; border-left: 5px solid #e08a00; padding: 0.6em 1em; }
 .verdict { font-size: 1.3em; font-weight: bold; padding: 0.5em 1em; border-radius: 4px; }
 .pass { background: #e3f4e3; color: #14601a; }
 .fail { background: #fbe4e4; color: #8a1010; }
-table { border-collapse: collapse; margin: 0.8em 0; font-size: 0.92em; }
-th, td { border: 1px solid #d0d0d0; padding: 0.25em 0.6em; }
 th { background: #f0f2f5; text-align: center; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; }
 td.ok { color: #14601a; font-weight: bold; text-align: center; }
 td.bad { color: #8a1010; font-weight: bold; text-align: center; }
 table.facts td:first-child { font-weight: bold; background: #f7f7f9; }
@@ -611,7 +587,7 @@ def _html_page(outcome: CertificationOutcome, model: RobotModel,
         ('falsifier states', str(certify_settings.get('falsifier_states', '?'))),
     ]))
     parts.append('<p>All settings as recorded in the certificate:</p>')
-    parts.append('<pre>' + esc(json.dumps(_json_ready(settings), indent=2, sort_keys=True))
+    parts.append('<pre>' + esc(json.dumps(json_ready(settings), indent=2, sort_keys=True))
                  + '</pre>')
     parts.append(f'<p>Machine-readable: <a href="{REPORT_JSON}">{REPORT_JSON}</a>.</p>')
     parts += ['</body>', '</html>']

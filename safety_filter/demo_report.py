@@ -19,7 +19,6 @@ from __future__ import annotations
 import datetime as _dt
 import html
 import json
-import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,6 +27,7 @@ from typing import Any
 import numpy as np
 
 from safety_filter import bags
+from safety_filter._report_common import BASE_CSS, json_ready
 from safety_filter.barriers import evaluate_barriers
 from safety_filter.certificate import Certificate
 from safety_filter.model import RobotModel
@@ -410,22 +410,6 @@ def _plot_solve_times(run: RunData, path: Path) -> None:
 
 
 # ---------------------------------------------------------------------- report
-def _json_ready(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _json_ready(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_ready(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _json_ready(value.tolist())
-    if isinstance(value, (np.floating, float)):
-        return float(value) if math.isfinite(value) else None
-    if isinstance(value, (np.integer, np.bool_)):
-        return value.item()
-    if isinstance(value, Path):
-        return str(value)
-    return value
-
-
 def mode_counts(run: RunData) -> dict[str, int]:
     """Filter steps per mode in a run (empty without a filter)."""
     if not run.status:
@@ -480,7 +464,7 @@ def write_demo_report(folder: str | Path, model: RobotModel, certificate: Certif
             'mode_counts': mode_counts(run)}
             for (run, violations), margin in zip(runs, margins)},
     }
-    (folder / SUMMARY_JSON).write_text(json.dumps(_json_ready(summary), indent=2) + '\n',
+    (folder / SUMMARY_JSON).write_text(json.dumps(json_ready(summary), indent=2) + '\n',
                                        encoding='utf-8')
     page = folder / REPORT_HTML
     page.write_text(_html_page(model, runs, schedule, facts, bool(filtered),
@@ -488,24 +472,15 @@ def write_demo_report(folder: str | Path, model: RobotModel, certificate: Certif
     return page
 
 
-_CSS = """
-body { font-family: -apple-system, 'Segoe UI', Helvetica, Arial, sans-serif; margin: 2em auto;
-       max-width: 72em; padding: 0 1em; color: #1d1d1f; line-height: 1.45; }
-h1 { font-size: 1.6em; margin-bottom: 0.2em; }
-h2 { font-size: 1.25em; margin-top: 1.8em; border-bottom: 1px solid #ccc; }
-.caution { background: #fff4e0; border-left: 5px solid #e08a00; padding: 0.6em 1em; }
+_CSS = BASE_CSS + """
 .verdict { font-size: 1.15em; font-weight: bold; padding: 0.4em 1em; border-radius: 4px; }
 .pass { background: #e3f4e3; color: #14601a; }
 .fail { background: #fbe4e4; color: #8a1010; }
-table { border-collapse: collapse; margin: 0.8em 0; font-size: 0.92em; }
-th, td { border: 1px solid #d0d0d0; padding: 0.25em 0.6em; }
 th { background: #f0f2f5; text-align: center; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; }
 td.ok { color: #14601a; text-align: center; }
 td.bad { color: #8a1010; font-weight: bold; text-align: right; }
 table.facts td:first-child { font-weight: bold; background: #f7f7f9; }
 figure { margin: 1em 0 1.5em 0; }
-figure img { max-width: 100%; border: 1px solid #ddd; }
 figcaption { font-size: 0.9em; color: #444; max-width: 60em; }
 span.swatch { display: inline-block; width: 1em; height: 0.9em; vertical-align: middle;
               border: 1px solid #bbb; margin-right: 0.3em; }

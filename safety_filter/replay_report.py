@@ -56,6 +56,7 @@ from typing import Any
 
 import numpy as np
 
+from safety_filter._report_common import BASE_CSS, json_ready
 from safety_filter.certificate import Certificate
 from safety_filter.certify_report import SAFETY_NOTICE
 from safety_filter.model import RobotModel
@@ -153,25 +154,6 @@ class CertificateRun:
     result: ReplayResult
     source: str = ''
     closed: ClosedLoopResult | None = None
-
-
-def json_ready(value: Any) -> Any:
-    """Plain JSON content: numpy to Python, non-finite floats to None."""
-    if isinstance(value, dict):
-        return {str(k): json_ready(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [json_ready(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return [json_ready(v) for v in value.tolist()]
-    if isinstance(value, Path):
-        return str(value)
-    if isinstance(value, (np.bool_, bool)):
-        return bool(value)
-    if isinstance(value, (np.integer, int)):
-        return int(value)
-    if isinstance(value, (np.floating, float)):
-        return float(value) if math.isfinite(float(value)) else None
-    return value
 
 
 def _extreme_moments(time: np.ndarray, relative: np.ndarray, values: np.ndarray,
@@ -716,21 +698,11 @@ def write_trial_report(folder: str | Path, trial: Trial, model: RobotModel,
     return data
 
 
-_CSS = """
-body { font-family: -apple-system, 'Segoe UI', Helvetica, Arial, sans-serif; margin: 2em auto;
-       max-width: 72em; padding: 0 1em; color: #1d1d1f; line-height: 1.45; }
-h1 { font-size: 1.6em; margin-bottom: 0.2em; }
-h2 { font-size: 1.25em; margin-top: 1.8em; border-bottom: 1px solid #ccc; }
-.caution { background: #fff4e0; border-left: 5px solid #e08a00; padding: 0.6em 1em; }
+_CSS = BASE_CSS + """
 .warn { background: #fbf3d9; border-left: 5px solid #c99a06; padding: 0.4em 1em; }
 .bad { color: #8a1010; font-weight: bold; }
 .ok { color: #14601a; font-weight: bold; }
-table { border-collapse: collapse; margin: 0.8em 0; font-size: 0.92em; }
-th, td { border: 1px solid #d0d0d0; padding: 0.25em 0.6em; }
-th { background: #f0f2f5; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; }
 figure { margin: 0.8em 0; }
-figure img { max-width: 100%; border: 1px solid #ddd; }
 figcaption { font-size: 0.88em; color: #444; }
 code { font-size: 0.95em; }
 """
