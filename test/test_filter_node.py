@@ -299,8 +299,11 @@ def test_invalid_messages_are_counted_and_get_the_hold_command(
     diagnostic = harness.latest_diagnostic(since)
     assert LEVEL_NAMES[diagnostic.level] == 'ERROR', diagnostic.message
     values = {kv.key: kv.value for kv in diagnostic.values}
-    assert int(values['invalid.joint_state']) >= 90  # 3 phases of >= 30 messages
-    assert int(values['invalid.nominal']) >= 30
+    # 3 phases of >= 30 invalid joint states and one of >= 30 invalid nominals were sent;
+    # with keep-last-1 QoS the node may see fewer than were sent (a newer sample replaces
+    # one not yet taken), so ask for most of them, not all.
+    assert int(values['invalid.joint_state']) >= 60
+    assert int(values['invalid.nominal']) >= 20
     assert values['invalid.nominal_last'] == '3 values for 2 joints'
     records, _ = stop_and_collect(harness, arm)
     assert replay_statuses(records, arm.reference_filter()) >= 200
