@@ -38,6 +38,8 @@ setup(
         # Rigid-body dynamics backend for the per-step path (the numpy recursion stays as
         # the reference and fallback).
         'pin>=2.7',
+        # Compiles the filter step's inner loops (safety_filter/_kernels.py).
+        'numba>=0.57',
     ],
     extras_require={
         # ROS 2 Jazzy client libraries as wheels (published for CPython 3.11 only);

@@ -41,6 +41,7 @@ from typing import Any
 
 import numpy as np
 
+from safety_filter import _kernels
 from safety_filter.barriers import BarrierState, evaluate_barriers
 from safety_filter.certificate import Certificate, CertificateError
 from safety_filter.dynamics import Dynamics
@@ -49,6 +50,11 @@ from safety_filter.model import RobotModel
 from safety_filter.qp import DEFAULT_EPS, DEFAULT_MAX_ITER, AccelerationQP
 
 GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
+_CHECK_REASONS = {
+    _kernels.CHECK_PASSED: '',
+    _kernels.CHECK_TORQUE: 'answer failed the check: torque outside the box',
+    _kernels.CHECK_ACCELERATION: 'answer failed the check: acceleration bound violated',
+}
 HOLD_TIME_CONSTANT_PERIODS = 20.0  # default hold damping: velocity time constant [periods]
 CHECK_TOLERANCE = 1e-6  # relative tolerance of the answer check (times max(1, scale))
 
@@ -112,12 +118,7 @@ class _StepDynamics:
         n = dynamics.n
         self._viscous = np.array(dynamics.model.viscous_friction)
         self._coulomb = np.array(dynamics.model.coulomb_friction)
-        self._has_viscous = bool(np.any(self._viscous != 0.0))
-        self._has_coulomb = bool(np.any(self._coulomb != 0.0))
-        rows, cols = np.tril_indices(n, -1)
-        self._lower_flat = rows * n + cols
-        self._upper_flat = cols * n + rows
-        self._scratch = np.empty(n)
+        self._has_friction = bool(np.any(self._viscous != 0.0) or np.any(self._coulomb != 0.0))
         self._friction = np.zeros(n)
         chain = getattr(dynamics, '_pin', None)
         self._pin: Any = None
@@ -138,21 +139,10 @@ class _StepDynamics:
             mass_out[...] = mass
             bias_out[...] = bias
             return
-        mass_out[...] = self._pin.crba(self._pin_model, self._pin_data, q)
-        flat = mass_out.reshape(-1)
-        flat[self._lower_flat] = flat[self._upper_flat]  # CRBA fills the upper triangle
+        _kernels.mirror_upper(self._pin.crba(self._pin_model, self._pin_data, q), mass_out)
         bias_out[...] = self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v)
-        if self._has_viscous or self._has_coulomb:
-            friction = self._friction
-            friction[:] = 0.0
-            if self._has_viscous:
-                np.multiply(self._viscous, v, out=self._scratch)
-                friction += self._scratch
-            if self._has_coulomb:
-                np.sign(v, out=self._scratch)
-                self._scratch *= self._coulomb
-                friction += self._scratch
-            bias_out += friction
+        if self._has_friction:
+            _kernels.add_friction(v, self._viscous, self._coulomb, self._friction, bias_out)
 
     def nominal_acceleration(self, q: np.ndarray, v: np.ndarray, torque: np.ndarray,
                              mass: np.ndarray, bias: np.ndarray) -> np.ndarray:
@@ -163,8 +153,7 @@ class _StepDynamics:
         """
         if self._pin is None:
             return np.linalg.solve(mass, torque - bias)
-        effort = torque - self._friction if (self._has_viscous or self._has_coulomb) \
-            else torque
+        effort = torque - self._friction if self._has_friction else torque
         return np.array(self._pin.aba(self._pin_model, self._pin_data, q, v, effort))
 
     def gravity(self, q: np.ndarray) -> np.ndarray:
@@ -300,15 +289,9 @@ class SafetyFilter:
         self._margin = frozen(certificate.sampling_margin)
         self._alpha1 = certificate.alpha1
         self._alpha2 = certificate.alpha2
-        self._linear = certificate.alpha1.kind == 'linear' and certificate.alpha2.kind == 'linear'
         self._accel_tol = frozen(CHECK_TOLERANCE * np.maximum(1.0, usable))
-        self._neg_accel_tol = frozen(-self._accel_tol)
         self._torque_tol = frozen(CHECK_TOLERANCE * np.maximum(1.0, self.torque_limit))
-        self._torque_check_list = (self.torque_limit + self._torque_tol).tolist()
-        self._torque_limit_list = self.torque_limit.tolist()
-        self._accel_tol_list = self._accel_tol.tolist()
         self._torque_saturation = frozen(self.torque_limit - self._torque_tol)
-        self._neg_torque_limit = frozen(-self.torque_limit)
 
         q_mid = 0.5 * (self._lower + self._upper)
         mass_mid = self.dynamics.mass_matrix(q_mid)
@@ -326,31 +309,30 @@ class SafetyFilter:
                                   mass_hint=mass_mid)
         self.torque_weights = self._qp.weights
 
-        # Preallocated per-step buffers. Rows of the (2, n) arrays: [upper side, lower side].
+        # Private writable copies of the constants for the compiled kernels (one array type).
+        self._k_lower = np.array(self._lower)
+        self._k_upper = np.array(self._upper)
+        self._k_gamma = np.array(self._gamma)
+        self._k_beta = np.array(self._beta)
+        self._k_margin = np.array(self._margin)
+        self._k_alpha = (_kernels.ALPHA_CODES[self._alpha1.kind], float(self._alpha1.scale),
+                         _kernels.ALPHA_CODES[self._alpha2.kind], float(self._alpha2.scale))
+        self._k_torque_limit = np.array(self.torque_limit)
+        self._k_torque_bound = self.torque_limit + self._torque_tol  # the answer check's box
+        self._k_accel_tol = np.array(self._accel_tol)
+        self._k_saturation = np.array(self._torque_saturation)
+        self._k_authority = np.array(usable)
+
+        # Preallocated per-step buffers.
         self._inputs = np.empty((3, n))
-        self._inputs_flat = self._inputs.reshape(-1)
-        self._gaps = np.empty((2, n))  # [a - Ap; An - a]
-        self._finite = np.empty((3, n), dtype=bool)
-        # Barrier rows [hp; hn; bp; bn; Ap; An] = A q + B v + C for linear alpha1, alpha2:
-        #   hp = upper - q, hn = q - lower, bp = gamma hp - v, bn = gamma hn + v,
-        #   Ap = beta bp - gamma v - mu, An = -beta bn - gamma v + mu.
-        g, b, mu = self._gamma, self._beta, self._margin
-        ones = np.ones(n)
-        self._row_q = np.stack([-ones, ones, -g, g, -b * g, -b * g])
-        self._row_v = np.stack([0 * ones, 0 * ones, -ones, ones, -(b + g), -(b + g)])
-        self._row_const = np.stack([self._upper, -self._lower, g * self._upper,
-                                    -g * self._lower, b * g * self._upper - mu,
-                                    b * g * self._lower + mu])
+        # Barrier rows [hp; hn; bp; bn; Ap; An] (METHOD 2), written by _kernels.barrier_rows.
         self._rows = np.empty((6, n))
-        self._rows_work = np.empty((6, n))
-        self._margins = self._rows[:4]  # hp, hn, bp, bn
-        self._positions = self._rows[:2]  # hp, hn
         self._accel_upper = self._rows[4]
         self._accel_lower = self._rows[5]
         self._mass = np.empty((n, n))
         self._bias = np.empty(n)
         self._torque_full = np.empty(n)
-        self._work = np.empty(n)
+        self._no_gravity = np.zeros(n)
         self._a_nom: np.ndarray | None = None
         self._last_q = np.zeros(n)
         self._has_last_q = False
@@ -383,25 +365,19 @@ class SafetyFilter:
                                  c.alpha1, c.alpha2, c.sampling_margin)
 
     # ------------------------------------------------------------------ the step
-    def _evaluate_barriers(self, q: np.ndarray, v: np.ndarray) -> None:
+    def _evaluate_barriers(self, q: np.ndarray, v: np.ndarray,
+                           smallest: np.ndarray | None = None) -> tuple[float, float]:
         """Fill ``_rows = [hp; hn; bp; bn; Ap; An]`` (shape (6, n)) at one state.
 
-        With linear alpha1 and alpha2 every row is affine in ``(q, v)`` joint by joint
-        (METHOD 2), ``row = A q + B v + C`` with constant ``A, B, C``: four ufunc calls for
-        all six rows. Other families go through :func:`evaluate_barriers`.
+        ``smallest`` (shape (n,)) receives ``min(hp, hn, bp, bn)`` per joint. Returns the
+        smallest of those and the smallest position margin ``min(hp, hn)``.
         """
-        rows = self._rows
-        if self._linear:
-            np.multiply(self._row_q, q, out=rows)
-            rows += self._row_const
-            np.multiply(self._row_v, v, out=self._rows_work)
-            rows += self._rows_work
-        else:
-            state = evaluate_barriers(q, v, self._lower, self._upper, self._gamma, self._beta,
-                                      self._alpha1, self._alpha2, self._margin)
-            rows[0], rows[1] = state.margin_upper, state.margin_lower
-            rows[2], rows[3] = state.barrier_upper, state.barrier_lower
-            rows[4], rows[5] = state.accel_upper, state.accel_lower
+        if smallest is None:
+            smallest = np.empty(self.n)
+        code1, scale1, code2, scale2 = self._k_alpha
+        return _kernels.barrier_rows(q, v, self._k_lower, self._k_upper, self._k_gamma,
+                                     self._k_beta, self._k_margin, code1, scale1, code2,
+                                     scale2, self._rows, smallest)
 
     def step(self, q: Any, v: Any, u_nom: Any) -> FilterOutput:
         """Filter one nominal torque at the measured state.
@@ -415,8 +391,9 @@ class SafetyFilter:
             A :class:`FilterOutput`; invalid input gives mode ``'rejected'``, never an
             exception.
         """
-        # The body is written for speed (it runs at the control rate): preallocated
-        # buffers, in-place ufuncs, few reductions. See benchmarks/bench_filter_step.py.
+        # The body is written for speed (it runs at the control rate): each stage is one
+        # compiled kernel (safety_filter._kernels) on preallocated buffers. See
+        # benchmarks/bench_filter_step.py.
         try:
             q_in = np.asarray(q, dtype=float)
             v_in = np.asarray(v, dtype=float)
@@ -428,27 +405,26 @@ class SafetyFilter:
             return self._reject(q, v, f'expected arrays of shape {shape}, got q {q_in.shape}, '
                                 f'v {v_in.shape}, u_nom {u_in.shape}', 'wrong shape')
         inputs = self._inputs
-        inputs[0] = q_in
-        inputs[1] = v_in
-        inputs[2] = u_in
-        flat = self._inputs_flat
-        if not math.isfinite(flat @ flat):  # NaN, inf, or absurd values (beyond ~1e150)
-            np.isfinite(inputs, out=self._finite)
-            names = [name for name, row in zip(('q', 'v', 'u_nom'), self._finite)
-                     if not row.all()]
+        flags = _kernels.stage_inputs(q_in, v_in, u_in, inputs)
+        if flags:
+            names = [name for name, bit in (('q', _kernels.NONFINITE_Q),
+                                            ('v', _kernels.NONFINITE_V),
+                                            ('u_nom', _kernels.NONFINITE_U)) if flags & bit]
             if names:
                 return self._reject(q_in, v_in, f'non-finite values in {", ".join(names)}',
                                     'non-finite input')
-            return self._reject(q_in, v_in, 'values beyond 1e150 in the input',
-                                'non-finite input')
+            return self._reject(q_in, v_in, f'values beyond {_kernels.HUGE_LIMIT:g} in the '
+                                'input', 'non-finite input')
         q, v, u_nom_in = inputs[0], inputs[1], inputs[2]
 
-        self._evaluate_barriers(q, v)
-        barrier_margin = self._margins.min(axis=0)
-        worst = min(barrier_margin.tolist())  # no NaN: inputs are below ~1e154 here
-        if worst < 0.0 and float(self._positions.min()) < -self.rejection_distance:
+        out_real = np.empty((2, self.n))  # [torque; barrier margin], returned to the caller
+        out_flags = np.empty((3, self.n), dtype=bool)  # [active upper; active lower; saturated]
+        torque, barrier_margin = out_real[0], out_real[1]
+        worst, deepest = self._evaluate_barriers(q, v, barrier_margin)
+        if worst < 0.0 and deepest < -self.rejection_distance:
+            rows = self._rows
             far = [self.model.joint_names[i] for i in range(self.n)
-                   if self._positions[:, i].min() < -self.rejection_distance]
+                   if min(rows[0, i], rows[1, i]) < -self.rejection_distance]
             return self._reject(q, v, f'position more than {self.rejection_distance:g} beyond '
                                 f'a limit at {", ".join(far)}', 'position far outside limits',
                                 position=q, barrier_margin=barrier_margin, u_nom=u_nom_in)
@@ -457,7 +433,7 @@ class SafetyFilter:
 
         mass, bias = self._mass, self._bias
         self._dyn.mass_and_bias(q, v, mass, bias)
-        gravity = None
+        gravity = self._no_gravity
         if self._driver:
             gravity = self._dyn.gravity(q)
             u_full = np.add(u_nom_in, gravity, out=self._torque_full)
@@ -470,7 +446,7 @@ class SafetyFilter:
         solve_time = 0.0
         status = 'not run'
         acceleration = None
-        torque = None
+        have_torque = False
         key = reason = ''
         if worst < 0.0:
             mode = FilterMode.RECOVERING
@@ -483,7 +459,8 @@ class SafetyFilter:
             mode = FilterMode.FILTERED
             status = 'nominal feasible'
             acceleration = self._a_nom
-            torque = u_full.copy()  # passed through exactly
+            torque[:] = u_full  # passed through exactly
+            have_torque = True
         else:
             result = self._qp.solve(mass, bias, u_full, accel_lower, accel_upper)
             solve_time = result.solve_time_s
@@ -491,57 +468,37 @@ class SafetyFilter:
             mode = FilterMode.FILTERED
             if result.solved:
                 acceleration = result.acceleration
-                torque = mass @ acceleration
-                torque += bias
-                key = self._check(acceleration, torque)
+                check = _kernels.torque_and_check(
+                    mass, bias, acceleration, accel_lower, accel_upper, self._k_torque_bound,
+                    self._k_accel_tol, torque)
+                key = _CHECK_REASONS[check]
+                have_torque = True
             else:
                 key = f'solver status: {status}'
             if key:
-                acceleration = torque = None
+                acceleration = None
+                have_torque = False
                 self._qp.reset_warm_start()
                 mode = FilterMode.FALLBACK
                 reason = key
         if acceleration is None:
             acceleration = self._constructive(u_full)
-        if torque is None:
-            torque = mass @ acceleration
-            torque += bias
+        if not have_torque:
+            _kernels.torque_and_check(mass, bias, acceleration, accel_lower, accel_upper,
+                                      self._k_torque_bound, self._k_accel_tol, torque)
             if not math.isfinite(torque @ torque):  # only with a broken model: never send NaN
                 return self._reject(q, v, 'the dynamics gave non-finite numbers',
                                     'non-finite dynamics', position=q,
                                     barrier_margin=barrier_margin)
-        np.minimum(torque, self.torque_limit, out=torque)  # faster than np.clip
-        np.maximum(torque, self._neg_torque_limit, out=torque)
-        difference = np.subtract(torque, u_full, out=self._work)
-        intervention = math.sqrt(difference @ difference)
-        # Active bounds: a - Ap >= -tol, An - a >= -tol.
-        np.subtract(acceleration, accel_upper, out=self._gaps[0])
-        np.subtract(accel_lower, acceleration, out=self._gaps[1])
-        active = self._gaps >= self._neg_accel_tol
-        saturated = np.abs(torque) >= self._torque_saturation
-        if gravity is not None:
-            torque -= gravity
+        intervention = _kernels.finish(torque, u_full, acceleration, accel_lower, accel_upper,
+                                       self._k_torque_limit, self._k_accel_tol,
+                                       self._k_saturation, gravity, self._driver, out_flags)
         self.steps += 1
         self.mode_counts[mode] += 1
         if key:
             self.reason_counts[key] += 1
-        return FilterOutput(torque, mode, intervention, barrier_margin, active[0], active[1],
-                            saturated, solve_time, status, reason)
-
-    def _check(self, acceleration: np.ndarray, torque: np.ndarray) -> str:
-        """'' if the QP answer meets every constraint (with tolerance), else the reason.
-
-        ``torque`` is ``M a + h``. Written over Python lists: for n <= 10 or so that is
-        several times faster than the same test as numpy calls. NaN fails (``not x <= b``).
-        """
-        for value, bound in zip(torque.tolist(), self._torque_check_list):
-            if not abs(value) <= bound:
-                return 'answer failed the check: torque outside the box'
-        for value, low, high, tol in zip(acceleration.tolist(), self._accel_lower.tolist(),
-                                         self._accel_upper.tolist(), self._accel_tol_list):
-            if not low - tol <= value <= high + tol:
-                return 'answer failed the check: acceleration bound violated'
-        return ''
+        return FilterOutput(torque, mode, intervention, barrier_margin, out_flags[0],
+                            out_flags[1], out_flags[2], solve_time, status, reason)
 
     def _nominal_feasible(self, u_full: np.ndarray) -> bool:
         """Whether the nominal (full torque) meets the box and the acceleration bounds.
@@ -549,15 +506,10 @@ class SafetyFilter:
         Checks the box first, which rules out far-off nominals without a linear solve. Sets
         ``_a_nom`` when it gets to compute it.
         """
-        for value, bound in zip(u_full.tolist(), self._torque_limit_list):
-            if not abs(value) <= bound:
-                return False
+        if not _kernels.within_box(u_full, self._k_torque_limit):
+            return False
         a_nom = self._nominal_acceleration(u_full)
-        for value, low, high in zip(a_nom.tolist(), self._accel_lower.tolist(),
-                                    self._accel_upper.tolist()):
-            if not low <= value <= high:
-                return False
-        return True
+        return _kernels.within_bounds(a_nom, self._accel_lower, self._accel_upper)
 
     def _nominal_acceleration(self, u_full: np.ndarray) -> np.ndarray:
         """``a_nom = M^-1 (u_nom - h)`` at the current state (cached per step)."""
@@ -573,10 +525,10 @@ class SafetyFilter:
     def _constructive(self, u_full: np.ndarray) -> np.ndarray:
         """Constructive acceleration (METHOD 4.4) for the current state's buffers."""
         a_nom = self._nominal_acceleration(u_full)
-        rows = self._rows
-        upper_worse = np.minimum(rows[0], rows[2]) < np.minimum(rows[1], rows[3])
-        return constructive_acceleration(a_nom, self._accel_lower, self._accel_upper,
-                                         self.usable_authority, upper_worse)
+        acceleration = np.empty(self.n)
+        _kernels.constructive(a_nom, self._accel_lower, self._accel_upper, self._k_authority,
+                              self._rows, acceleration)
+        return acceleration
 
     def _valid_position(self, q: Any) -> np.ndarray | None:
         try:

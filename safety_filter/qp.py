@@ -34,6 +34,7 @@ import numpy as np
 import osqp
 import scipy.sparse as sparse
 
+from safety_filter import _kernels
 from safety_filter.errors import SafetyFilterError
 
 STATUS_SOLVED = 1  # OSQP_SOLVED in OSQP 0.6 and 1.x
@@ -179,47 +180,37 @@ class AccelerationQP:
         self.weights = weights
         self.settings = _osqp_settings(eps, max_iter, time_limit_s, polish)
 
-        # Constant factors.
-        self._sqrt_weights_col = None if np.all(weights == 1.0) else np.sqrt(weights)[:, None]
-        self._sqrt_weights = None if np.all(weights == 1.0) else np.sqrt(weights)
-        self._inv_umax = 1.0 / umax
-        self._row_factor = (1.0 / (np.sqrt(weights) * umax))[None, :]
+        # Constant factors (private writable copies: the kernels take one array type).
+        self._sqrt_weights = np.sqrt(weights)
+        self._umax = umax.copy()
 
-        # Index maps: P's upper triangle in CSC order (column j holds rows 0..j) as flat
-        # indices into a C-ordered n x n array; A = [I; B] in CSC order is, column by column,
-        # a 1 followed by column j of B, i.e. row j of B^T.
-        rows = np.concatenate([np.arange(j + 1) for j in range(n)]).astype(np.int64)
-        cols = np.concatenate([np.full(j + 1, j) for j in range(n)]).astype(np.int64)
-        self._p_flat = rows * n + cols
+        # Index maps: P's upper triangle in CSC order (column j holds rows 0..j); A = [I; B]
+        # in CSC order is, column by column, a 1 followed by column j of B.
+        self._p_rows = np.concatenate([np.arange(j + 1) for j in range(n)]).astype(np.int64)
+        self._p_cols = np.concatenate([np.full(j + 1, j) for j in range(n)]).astype(np.int64)
         p_indptr = np.concatenate([[0], np.cumsum(np.arange(1, n + 1))]).astype(np.int64)
         a_indices = np.concatenate([[j, *range(n, 2 * n)] for j in range(n)]).astype(np.int64)
         a_indptr = np.arange(0, n * (n + 1) + 1, n + 1, dtype=np.int64)
 
         # Preallocated per-step buffers.
-        self._weighted = np.empty((n, n))  # W^(1/2) M
-        self._squares = np.empty((n, n))
         self._root = np.empty((n, n))  # W^(1/2) M D
-        self._p_full = np.empty((n, n))
-        self._p_full_flat = self._p_full.reshape(-1)
-        self._px = np.empty(len(rows))
+        self._px = np.empty(len(self._p_rows))
+        self._ax = np.empty(n * (n + 1))
         self._scale = np.empty(n)  # d
         self._inv_scale = np.empty(n)  # 1 / d
-        self._ax_block = np.empty((n, n + 1))  # row j: [1, column j of U^-1 M D]
-        self._ax_block[:, 0] = 1.0
-        self._ax_rows = self._ax_block[:, 1:]
-        self._ax = self._ax_block.reshape(-1)  # a view: writing the block writes Ax
-        self._residual = np.empty(n)
         self._c = np.empty(n)
-        self._work = np.empty(n)
         self._lower = np.empty(2 * n)
         self._upper = np.empty(2 * n)
 
         mass = np.eye(n) if mass_hint is None else np.array(mass_hint, dtype=float)
-        self._fill_matrices(mass)
-        self._c[:] = 0.0
-        self._lower[:] = -1.0
-        self._upper[:] = 1.0
-        p_matrix = sparse.csc_matrix((self._px.copy(), rows, p_indptr), shape=(n, n))
+        if mass.shape != (n, n) or not np.all(np.isfinite(mass)):
+            raise SafetyFilterError(f'mass_hint must be a finite {n} x {n} matrix')
+        zeros = np.zeros(n)
+        _kernels.fill_qp(mass, zeros, zeros, -np.ones(n), np.ones(n), self._sqrt_weights,
+                         self._umax, self._p_rows, self._p_cols, self._root, self._scale,
+                         self._inv_scale, self._px, self._ax, self._c, self._lower,
+                         self._upper)
+        p_matrix = sparse.csc_matrix((self._px.copy(), self._p_rows, p_indptr), shape=(n, n))
         a_matrix = sparse.csc_matrix((self._ax.copy(), a_indices, a_indptr), shape=(2 * n, n))
         self._solver = osqp.OSQP()
         self._solver.setup(p_matrix, self._c.copy(), a_matrix, self._lower.copy(),
@@ -232,28 +223,9 @@ class AccelerationQP:
         self._inner = inner
         self._zeros_x = np.zeros(n)
         self._zeros_y = np.zeros(2 * n)
+        self._status_text: dict[int, str] = {}
 
     # ------------------------------------------------------------------ per step
-    def _fill_matrices(self, mass: np.ndarray) -> None:
-        """Scaling ``d``, P's data and A's data for ``mass`` (see the class docstring)."""
-        weighted = self._weighted
-        if self._sqrt_weights_col is None:
-            weighted[...] = mass
-        else:
-            np.multiply(mass, self._sqrt_weights_col, out=weighted)
-        # (M W M)_jj is the squared norm of column j of W^(1/2) M. (add.reduce of the
-        # squares is about twice as fast as np.einsum for these sizes.)
-        np.multiply(weighted, weighted, out=self._squares)
-        np.add.reduce(self._squares, axis=0, out=self._inv_scale)
-        np.sqrt(self._inv_scale, out=self._inv_scale)
-        np.divide(1.0, self._inv_scale, out=self._scale)
-        root = np.multiply(weighted, self._scale, out=self._root)  # W^(1/2) M D
-        np.matmul(root.T, root, out=self._p_full)
-        self._px[:] = self._p_full_flat[self._p_flat]  # faster than np.take(..., out=)
-        # Row j of the block is column j of U^-1 M D, i.e. M_ij d_j / umax_i
-        # = root_ij / (w_i^(1/2) umax_i): the transpose of root with its rows rescaled.
-        np.multiply(root.T, self._row_factor, out=self._ax_rows)
-
     def solve(
         self,
         mass: np.ndarray,
@@ -276,25 +248,12 @@ class AccelerationQP:
         """
         n = self.n
         start = time.perf_counter()
-        self._fill_matrices(mass)
-        residual, c = self._residual, self._c
-        np.subtract(bias, torque_nominal, out=residual)
-        if self._sqrt_weights is not None:
-            residual *= self._sqrt_weights
-        np.matmul(self._root.T, residual, out=c)
-        np.abs(c, out=self._work)
-        # P has a unit diagonal, so its largest entry is 1. (Python's max over a short list
-        # is faster than numpy's reduction.)
-        cost_scale = max(self._work.tolist())
-        if cost_scale > 1.0 and math.isfinite(cost_scale):
-            self._px *= 1.0 / cost_scale
-            c *= 1.0 / cost_scale
         lower, upper = self._lower, self._upper
-        np.multiply(accel_lower, self._inv_scale, out=lower[:n])
-        np.multiply(accel_upper, self._inv_scale, out=upper[:n])
-        np.multiply(bias, self._inv_umax, out=self._work)
-        np.subtract(-1.0, self._work, out=lower[n:])
-        np.subtract(1.0, self._work, out=upper[n:])
+        _kernels.fill_qp(mass, bias, torque_nominal, accel_lower, accel_upper,
+                         self._sqrt_weights, self._umax, self._p_rows, self._p_cols,
+                         self._root, self._scale, self._inv_scale, self._px, self._ax, self._c,
+                         lower, upper)
+        c = self._c
         try:
             if self._fast:
                 inner = self._inner
@@ -309,17 +268,20 @@ class AccelerationQP:
                 info = result.info
                 x = result.x
             code = int(info.status_val)
-            status = str(info.status).lower()
+            status = self._status_text.get(code)
+            if status is None:  # first time this code is seen (the text costs a few us)
+                status = self._status_text[code] = str(info.status).lower()
             iterations = int(info.iter)
         except Exception as err:  # noqa: BLE001 - a solver crash is a status, not a crash
             x = None
             code = -1000
             status = f'solver error: {type(err).__name__}: {err}'
             iterations = 0
+        acceleration = np.empty(n)
         if x is None or np.shape(x) != (n,):
-            acceleration = np.full(n, np.nan)
+            acceleration[:] = np.nan
         else:
-            acceleration = np.multiply(x, self._scale)
+            _kernels.unscale(x, self._scale, acceleration)
         return QPResult(acceleration, status, code, iterations, time.perf_counter() - start)
 
     def reset_warm_start(self) -> None:
