@@ -37,6 +37,7 @@ try:
     import safety_filter  # noqa: F401
 except ImportError:  # run from a source checkout without installing
     sys.path.insert(0, str(ROOT))
+    import safety_filter  # noqa: F401
 
 from safety_filter.bounds import BoundSettings  # noqa: E402
 from safety_filter.certify import CertifySettings, certify_with_evidence  # noqa: E402

@@ -32,8 +32,10 @@ Reported: the rate actually achieved, median, 99th percentile and maximum latenc
 the ratios to the echo (the issue's targets: median within 1.5x of the echo, no drops over
 60 s at 1 kHz), and the CPU time the node process spent per nominal (from /proc; less
 sensitive to other load on the machine than the latencies). Each workload is measured for
-``--duration`` seconds. Figures depend on the machine and its load (the load average is
-printed); there are no assertions.
+``--duration`` seconds in all, split into ``--rounds`` runs that alternate with the other
+workloads (echo, pass-through, intervening, echo, ...), so that a change in the machine's
+load hits baseline and filter alike; the per-round ratios are printed too. Figures depend on
+the machine and its load (the load average is printed); there are no assertions.
 """
 
 from __future__ import annotations
@@ -57,6 +59,7 @@ try:
     import safety_filter  # noqa: F401
 except ImportError:  # run from a source checkout without installing
     sys.path.insert(0, str(ROOT))
+    import safety_filter  # noqa: F401
 
 STARTUP_TIMEOUT_S = 120.0
 WARMUP_S = 1.0
@@ -78,11 +81,16 @@ def run_echo_node(namespace: str, executor_kind: str) -> int:
     from sensor_msgs.msg import JointState
     from std_msgs.msg import Float64MultiArray
 
-    from safety_filter.ros.filter_node import control_qos, make_executor
+    from safety_filter.ros.filter_node import (
+        control_qos,
+        control_subscription_qos,
+        make_executor,
+    )
 
     rclpy.init(signal_handler_options=SignalHandlerOptions.NO)
     node = rclpy.create_node('echo', namespace=namespace)
     qos = control_qos()
+    inbound = control_subscription_qos()
     output = node.create_publisher(Float64MultiArray, 'filtered_torque', qos)
     status = node.create_publisher(Float64MultiArray, '~/status', qos)
     latest: dict[str, Any] = {}
@@ -96,8 +104,8 @@ def run_echo_node(namespace: str, executor_kind: str) -> int:
         output.publish(reply)
         status.publish(reply)
 
-    node.create_subscription(JointState, 'joint_states', on_joint_state, qos)
-    node.create_subscription(Float64MultiArray, 'nominal_torque', on_nominal, qos)
+    node.create_subscription(JointState, 'joint_states', on_joint_state, inbound)
+    node.create_subscription(Float64MultiArray, 'nominal_torque', on_nominal, inbound)
     executor = make_executor(executor_kind, rclpy.get_default_context())
     executor.add_node(node)
     signal.signal(signal.SIGTERM, _interrupt)
@@ -261,8 +269,12 @@ def evaluate(driver: Driver, echo: bool, n: int) -> dict[str, Any]:
             if source_of.get(torque, nominal) != nominal:
                 nominal = None
             source_of[torque] = nominal
-            mode = int(data[2])
-            modes[mode] = modes.get(mode, 0) + 1
+            # Modes of the steps on nominals of the measured window only (before and after
+            # it the node holds on its watchdog: stale, by design).
+            seq = driver.sent.get(nominal, (0, 0))[0]
+            if driver.measuring_from <= seq <= driver.measured_until:
+                mode = int(data[2])
+                modes[mode] = modes.get(mode, 0) + 1
     latencies = []
     seen: set[int] = set()
     for received, data in driver.outputs:
@@ -277,7 +289,7 @@ def evaluate(driver: Driver, echo: bool, n: int) -> dict[str, Any]:
     values = np.array(latencies) if latencies else np.array([math.nan])
     return {'sent': count, 'back': len(seen), 'dropped': count - len(seen),
             'median': float(np.median(values)), 'p99': float(np.percentile(values, 99)),
-            'max': float(np.max(values)), 'modes': modes}
+            'max': float(np.max(values)), 'modes': modes, 'latencies': latencies}
 
 
 def run_workload(label: str, command: list[str], namespace: str, node_name: str,
@@ -316,7 +328,10 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split('\n\n')[0])
     parser.add_argument('--duration', type=float, default=60.0,
                         help='measured seconds per workload (default 60)')
-    parser.add_argument('--quick', action='store_true', help='5 s per workload')
+    parser.add_argument('--quick', action='store_true', help='5 s per workload, one round')
+    parser.add_argument('--rounds', type=int, default=3,
+                        help='split each workload into this many runs, interleaved with the '
+                        'others (default 3)')
     parser.add_argument('--arm', default='bench6', help='demo arm (default bench6)')
     parser.add_argument('--rate', type=float, default=1000.0, help='publish rate [Hz]')
     parser.add_argument('--node-ros-args', default='', metavar='ARGS',
@@ -387,12 +402,21 @@ def main(argv: list[str] | None = None) -> int:
         ('filter, intervening', node_command + ['__ns:=/bench_qp', *extra], '/bench_qp',
          'safety_filter', beyond, False),
     ]
-    results = []
-    for label, command, namespace, node_name, nominal_of, echo in workloads:
-        print(f'running {label} ...', flush=True)
-        results.append(run_workload(label, command, namespace, node_name, names, position,
-                                    nominal_of, duration, args.rate, echo))
+    # Rounds: echo, pass-through, intervening, echo, ... so that a change in the machine's
+    # load during the run hits the baseline and the filter alike.
+    rounds = 1 if args.quick else max(1, args.rounds)
+    per_round: list[list[dict[str, Any]]] = [[] for _ in workloads]
+    for round_index in range(rounds):
+        for index, (label, command, namespace, node_name, nominal_of, echo) in enumerate(
+                workloads):
+            print(f'round {round_index + 1}/{rounds}: {label} ...', flush=True)
+            per_round[index].append(run_workload(
+                label, command, namespace, node_name, names, position, nominal_of,
+                duration / rounds, args.rate, echo))
+    results = [pool(label_runs) for label_runs in per_round]
     echo = results[0]
+    round_ratios = [[run['median'] / base['median'] for run, base in zip(runs, per_round[0])]
+                    for runs in per_round]
     print()
     print(HEADER)
     for result in results:
@@ -407,13 +431,39 @@ def main(argv: list[str] | None = None) -> int:
           '4 stale):')
     for result in results[1:]:
         print(f'  {result["label"]}: {dict(sorted(result["modes"].items()))}')
+    if rounds > 1:
+        print('median/echo per round (each round runs the three workloads back to back):')
+        for result, ratios in zip(results[1:], round_ratios[1:]):
+            print(f'  {result["label"]}: ' + ', '.join(f'{r:.2f}' for r in ratios))
     print(f'load average after: {os.getloadavg()[0]:.2f}')
     worst = max(r['median'] / echo['median'] for r in results[1:])
-    drops = sum(r['dropped'] for r in results)
+    filter_drops = sum(r['dropped'] for r in results[1:])
     print(f'issue targets: median within 1.5x of the echo: '
           f'{"met" if worst <= 1.5 else "NOT met"} (worst {worst:.2f}x); no drops: '
-          f'{"met" if drops == 0 else f"NOT met ({drops} dropped)"}')
+          f'{"met" if filter_drops == 0 else f"NOT met ({filter_drops} dropped)"} '
+          f'(the bare echo dropped {echo["dropped"]} in the same run)')
     return 0
+
+
+def pool(runs: list[dict[str, Any]]) -> dict[str, Any]:
+    """The runs of one workload as one: summed counts, statistics of all latencies."""
+    import numpy as np
+
+    latencies = np.array([x for run in runs for x in run['latencies']] or [math.nan])
+    modes: dict[int, int] = {}
+    for run in runs:
+        for mode, count in run['modes'].items():
+            modes[mode] = modes.get(mode, 0) + count
+    sent = sum(run['sent'] for run in runs)
+    seconds = sum(run['sent'] / run['rate'] for run in runs if run['rate'] > 0)
+    cpu = sum(run['cpu_us'] * run['sent'] for run in runs)
+    return {'label': runs[0]['label'], 'sent': sent,
+            'back': sum(run['back'] for run in runs),
+            'dropped': sum(run['dropped'] for run in runs),
+            'median': float(np.median(latencies)), 'p99': float(np.percentile(latencies, 99)),
+            'max': float(np.max(latencies)), 'modes': modes,
+            'rate': sent / seconds if seconds > 0 else math.nan,
+            'cpu_us': cpu / max(sent, 1)}
 
 
 if __name__ == '__main__':

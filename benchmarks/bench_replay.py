@@ -39,6 +39,7 @@ try:
     import safety_filter  # noqa: F401
 except ImportError:  # run from a source checkout without installing
     sys.path.insert(0, str(ROOT))
+    import safety_filter  # noqa: F401
 sys.path.insert(0, str(ROOT / 'test'))
 
 from filter_fixtures import demo_arm_and_certificate  # noqa: E402

@@ -42,7 +42,6 @@ from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus  # noqa: E402
 from lifecycle_msgs.msg import Transition  # noqa: E402
 from lifecycle_msgs.srv import ChangeState, GetState  # noqa: E402
 from rcl_interfaces.srv import GetParameters, SetParameters  # noqa: E402
-from rclpy.executors import SingleThreadedExecutor  # noqa: E402
 from rclpy.parameter import Parameter, parameter_value_to_python  # noqa: E402
 from rclpy.qos import QoSProfile, ReliabilityPolicy  # noqa: E402
 from sensor_msgs.msg import JointState  # noqa: E402
@@ -58,6 +57,7 @@ from safety_filter.ros.filter_node import (  # noqa: E402
     STATUS_SCALAR_FIELDS,
     SafetyFilterNode,
     control_qos,
+    make_executor,
     status_field_names,
 )
 
@@ -156,12 +156,13 @@ def wait_for(condition: Callable[[], bool], timeout: float, step: float = 0.01) 
 
 
 class _Spinner:
-    """An rclpy context with a single-threaded executor spinning in a thread."""
+    """An rclpy context with an executor (single-threaded by default, or rclpy's events
+    executor) spinning in a thread."""
 
-    def __init__(self, domain_id: int) -> None:
+    def __init__(self, domain_id: int, executor: str = 'single_threaded') -> None:
         self.context = rclpy.context.Context()
         rclpy.init(context=self.context, domain_id=domain_id)
-        self.executor = SingleThreadedExecutor(context=self.context)
+        self.executor = make_executor(executor, self.context)
         self._running = threading.Event()
         self._thread: threading.Thread | None = None
 
@@ -199,8 +200,9 @@ def unique_namespace() -> str:
 class NodeRunner:
     """The filter node in this process, in its own context and executor thread."""
 
-    def __init__(self, domain_id: int, arguments: Sequence[str], namespace: str) -> None:
-        self._spinner = _Spinner(domain_id)
+    def __init__(self, domain_id: int, arguments: Sequence[str], namespace: str,
+                 executor: str = 'single_threaded') -> None:
+        self._spinner = _Spinner(domain_id, executor)
         self.node = SafetyFilterNode(context=self._spinner.context, cli_args=list(arguments),
                                      namespace=namespace)
         self._spinner.executor.add_node(self.node)
@@ -389,6 +391,9 @@ class StatusRecord:
     nominal: np.ndarray
     position: np.ndarray
     velocity: np.ndarray
+    stamp: float = math.nan  # [s], the node clock
+    joint_state_age: float = math.nan  # [s]
+    nominal_age: float = math.nan  # [s]
 
 
 def parse_status(msg: Float64MultiArray, joint_names: Sequence[str]) -> StatusRecord:
@@ -403,7 +408,10 @@ def parse_status(msg: Float64MultiArray, joint_names: Sequence[str]) -> StatusRe
     blocks = [data[base + k * n:base + (k + 1) * n] for k in range(5)]
     return StatusRecord(int(scalars['step']), int(scalars['mode']),
                         bool(scalars['hold_nominal']), float(scalars['intervention']),
-                        float(scalars['solve_time_s']), *blocks)
+                        float(scalars['solve_time_s']), *blocks,
+                        stamp=float(scalars['stamp_s']),
+                        joint_state_age=float(scalars['joint_state_age_s']),
+                        nominal_age=float(scalars['nominal_age_s']))
 
 
 def replay_statuses(records: Sequence[StatusRecord], reference: SafetyFilter,

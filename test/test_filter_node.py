@@ -86,8 +86,8 @@ def start_node(domain_id: int, namespace: str) -> Any:
     """Start a filter node (in this process) with given ROS arguments; closed afterwards."""
     runners: list[NodeRunner] = []
 
-    def start(arguments: list[str]) -> NodeRunner:
-        runner = NodeRunner(domain_id, arguments, namespace)
+    def start(arguments: list[str], executor: str = 'single_threaded') -> NodeRunner:
+        runner = NodeRunner(domain_id, arguments, namespace, executor)
         runners.append(runner)
         return runner
 
@@ -310,10 +310,13 @@ def test_invalid_messages_are_counted_and_get_the_hold_command(
 
 
 # ---------------------------------------------------------------------- 3. timeouts
-def test_stale_joint_states_send_the_hold_command(planar2: CertifiedArm, harness: Harness,
-                                                  start_node: Any) -> None:
+@pytest.mark.parametrize('executor', ['single_threaded', 'events'])
+def test_stale_joint_states_send_the_hold_command(executor: str, planar2: CertifiedArm,
+                                                  harness: Harness, start_node: Any) -> None:
+    """Under both executors (the watchdog timer is restarted by every message and changes
+    its period when it trips)."""
     arm = planar2
-    start_node(node_arguments(arm, diagnostics_rate_hz=20.0))  # default timeouts
+    start_node(node_arguments(arm, diagnostics_rate_hz=20.0), executor)  # default timeouts
     activate(harness)
     names = list(arm.model.joint_names)
     q = mid_range(arm.model) + np.array([0.3, -0.2])
@@ -349,14 +352,17 @@ def test_stale_joint_states_send_the_hold_command(planar2: CertifiedArm, harness
     assert replay_statuses(records, arm.reference_filter()) >= 100
 
 
-@pytest.mark.parametrize('trigger', ['nominal', 'joint_state'])
-def test_stale_nominal_is_never_used(trigger: str, planar2: CertifiedArm, harness: Harness,
-                                     start_node: Any) -> None:
+@pytest.mark.parametrize(('trigger', 'executor'), [('nominal', 'single_threaded'),
+                                                   ('joint_state', 'single_threaded'),
+                                                   ('nominal', 'events')])
+def test_stale_nominal_is_never_used(trigger: str, executor: str, planar2: CertifiedArm,
+                                     harness: Harness, start_node: Any) -> None:
     """After nominal_timeout_s the last nominal is not used: the step filters the hold
-    command (gravity compensation with damping toward rest) instead."""
+    command (gravity compensation with damping toward rest) instead. With trigger
+    'nominal' the watchdog runs those steps, starting one timeout after the last nominal."""
     arm = planar2
     start_node(node_arguments(arm, trigger=trigger, diagnostics_rate_hz=20.0,
-                              joint_state_timeout_s=5.0))
+                              joint_state_timeout_s=5.0), executor)
     activate(harness)
     names = list(arm.model.joint_names)
     model = arm.model
@@ -382,6 +388,12 @@ def test_stale_nominal_is_never_used(trigger: str, planar2: CertifiedArm, harnes
     hold = fresh.step(q, v, np.full(2, math.nan)).torque  # g(q) - D v
     held = [r for r in records if r.hold_nominal]
     assert len(held) >= 50
+    # Never held before the nominal's timeout (0.1 s), and once held, steps keep coming at
+    # about the watchdog rate (planar2: 1 kHz; generous bound for a loaded machine).
+    assert min(r.nominal_age for r in held) > 0.1
+    if trigger == 'nominal':
+        stamps = np.array([r.stamp for r in held])
+        assert np.median(np.diff(stamps)) < 0.01
     for record in held:
         np.testing.assert_array_equal(record.nominal, hold)
         assert not np.allclose(record.torque, u)

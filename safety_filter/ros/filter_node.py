@@ -62,21 +62,35 @@ Publications:
 
 Quality of service
 ------------------
-``joint_states``, ``nominal_torque``, ``filtered_torque`` and ``~/status``: keep-last depth 1,
-reliable, volatile. In a control loop only the newest sample is useful: a deeper queue would
-hand the filter (or the driver) a backlog of old states and commands after any hiccup, i.e.
-feed stale commands; volatile because a late joiner must not get an old command. Reliable
-keeps samples from being dropped on a lossy link while the writer still holds them. A driver
-that publishes joint states best-effort (sensor-data QoS) needs the standard override
-``-p qos_overrides./joint_states.subscription.reliability:=best_effort`` (QoS overrides are
-enabled for reliability, history and depth on these four topics). ``/diagnostics``: the
+All four control topics are keep-last depth 1 and volatile: in a control loop only the newest
+sample is useful; a deeper queue would hand the filter (or the driver) a backlog of old states
+and commands after any hiccup, i.e. feed stale commands; volatile because a late joiner must
+not get an old command. The subscriptions (``joint_states``, ``nominal_torque``) are
+best effort: a lost sample is simply replaced by the next one a period later (a reliable
+reader would deliver in order and wait for the repair of a sample that is stale by then), and
+a best-effort subscription matches both reliable and best-effort publishers (drivers often
+publish joint states with the sensor-data QoS, which is best effort). The publications
+(``filtered_torque``, ``~/status``) are reliable, which matches any subscriber (one that
+subscribes best effort gets best effort). QoS overrides are enabled for reliability, history
+and depth on these four topics, e.g.
+``-p qos_overrides./joint_states.subscription.reliability:=reliable``. ``/diagnostics``: the
 default QoS (reliable, depth 10), like every diagnostics publisher.
+
+Executor
+--------
+The executable spins the node with rclpy's EventsExecutor (``rclpy.experimental`` in Jazzy):
+in ``benchmarks/bench_node_latency.py`` it needed about half the CPU per message of the
+single-threaded executor, whose wait-set rebuild grows with the node's entities (a lifecycle
+node has many services). ``--executor single_threaded`` selects the classic executor.
 
 Timeouts and the watchdog
 -------------------------
-A watchdog timer runs at ``watchdog_rate_hz`` (default: the certificate's control rate), on the
-steady clock even under ``use_sim_time``: a stopped simulator stops ``/clock``, and the
-watchdog must still fire. The diagnostics timer does likewise.
+A watchdog timer counts down from the trigger topic's timeout (``nominal_timeout_s`` with
+``trigger: nominal``, ``joint_state_timeout_s`` with ``trigger: joint_state``); each message on
+the trigger topic restarts it, so it fires only after a full timeout of silence. It then ticks
+at ``watchdog_rate_hz`` (default: the certificate's control rate) until the trigger topic is
+back. It runs on the steady clock even under ``use_sim_time``: a stopped simulator stops
+``/clock``, and the watchdog must still fire. The diagnostics timer does likewise.
 
 * **Joint states** older than ``joint_state_timeout_s`` (no valid message for that long):
   every step publishes the filter's hold command at the last valid position with the
@@ -208,9 +222,18 @@ EXECUTORS = ('single_threaded', 'events')
 
 
 def control_qos() -> QoSProfile:
-    """Keep-last depth 1, reliable, volatile: the QoS of the control topics (module doc)."""
+    """Keep-last depth 1, reliable, volatile: the QoS of the control topics' publishers
+    (module doc)."""
     return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
                       reliability=ReliabilityPolicy.RELIABLE,
+                      durability=DurabilityPolicy.VOLATILE)
+
+
+def control_subscription_qos() -> QoSProfile:
+    """Keep-last depth 1, best effort, volatile: the QoS of the control topics'
+    subscriptions (module doc)."""
+    return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
+                      reliability=ReliabilityPolicy.BEST_EFFORT,
                       durability=DurabilityPolicy.VOLATILE)
 
 
@@ -272,6 +295,8 @@ class SafetyFilterNode(LifecycleNode):
         self._status_pub: Any = None
         self._diagnostics_pub: Any = None
         self._watchdog: Any = None
+        self._watchdog_holding = False  # the watchdog ticks at the hold rate (trigger silent)
+        self._hold_period_ns = 1_000_000
         self._filter: SafetyFilter | None = None
         self._model: RobotModel | None = None
         self._certificate: Certificate | None = None
@@ -353,6 +378,8 @@ class SafetyFilterNode(LifecycleNode):
                 self._joint_state_timeout = float(parameter.value)
             elif parameter.name == 'nominal_timeout_s':
                 self._nominal_timeout = float(parameter.value)
+        if self._watchdog is not None and not self._watchdog_holding:
+            self._watchdog.timer_period_ns = round(self._silence_limit() * 1e9)
         return SetParametersResult(successful=True)
 
     @staticmethod
@@ -409,7 +436,7 @@ class SafetyFilterNode(LifecycleNode):
             self._last_valid_q = None
         self._active = True
         if self._last_valid_q is not None:
-            self._watchdog.reset()  # else started by the first valid joint state
+            self._start_watchdog()  # else started by the first valid joint state
         self.get_logger().info('active: filtering')
         return TransitionCallbackReturn.SUCCESS
 
@@ -417,6 +444,7 @@ class SafetyFilterNode(LifecycleNode):
         self._active = False
         if self._watchdog is not None:
             self._watchdog.cancel()
+            self._watchdog_holding = False
         self.get_logger().info('inactive: not filtering')
         return super().on_deactivate(state)
 
@@ -487,6 +515,7 @@ class SafetyFilterNode(LifecycleNode):
 
         self._model = model
         self._certificate = certificate
+        self._certificate_id = certificate.certificate_id  # a hash of the content: compute once
         self._filter = filt
         self._joint_state_timeout, self._nominal_timeout = timeouts
         self._trigger = operational['trigger']
@@ -527,17 +556,21 @@ class SafetyFilterNode(LifecycleNode):
         self._status_pub = self.create_lifecycle_publisher(
             Float64MultiArray, '~/status', qos, qos_overriding_options=_qos_overrides())
         self._diagnostics_pub = self.create_publisher(DiagnosticArray, '/diagnostics', 10)
+        inbound = control_subscription_qos()
         self._subscriptions_made = [
-            self.create_subscription(JointState, 'joint_states', self._on_joint_state, qos,
-                                     qos_overriding_options=_qos_overrides()),
+            self.create_subscription(JointState, 'joint_states', self._on_joint_state,
+                                     inbound, qos_overriding_options=_qos_overrides()),
             self.create_subscription(Float64MultiArray, 'nominal_torque', self._on_nominal,
-                                     qos, qos_overriding_options=_qos_overrides()),
+                                     inbound, qos_overriding_options=_qos_overrides()),
         ]
         # Both timers run on the steady clock: under simulated time a dead simulator stops
         # /clock, and a watchdog on the node clock would then never fire.
         steady = Clock(clock_type=ClockType.STEADY_TIME)
-        self._watchdog = self.create_timer(1.0 / watchdog_rate, self._on_watchdog, clock=steady)
+        self._hold_period_ns = max(1, round(1e9 / watchdog_rate))
+        self._watchdog = self.create_timer(self._silence_limit(), self._on_watchdog,
+                                           clock=steady)
         self._watchdog.cancel()  # runs only while active
+        self._watchdog_holding = False
         diagnostics = self.create_timer(1.0 / operational['diagnostics_rate_hz'],
                                         self._on_diagnostics, clock=steady)
         self._timers_made = [self._watchdog, diagnostics]
@@ -557,6 +590,7 @@ class SafetyFilterNode(LifecycleNode):
             self.destroy_timer(timer)
         self._timers_made = []
         self._watchdog = None
+        self._watchdog_holding = False
         for publisher in (self._filtered_pub, self._status_pub):
             if publisher is not None:
                 self.destroy_lifecycle_publisher(publisher)
@@ -608,10 +642,11 @@ class SafetyFilterNode(LifecycleNode):
             self._q = np.asarray(msg.position)[index]
             self._v = np.asarray(msg.velocity)[index]
             if self._last_valid_q is None and self._active:
-                self._watchdog.reset()  # nothing to watch before the first valid state
+                self._start_watchdog()  # nothing to watch before the first valid state
             self._last_valid_q = self._q
             self._js_valid_time = now
         if self._active and self._trigger == 'joint_state':
+            self._feed_watchdog()
             self._run_step(now)
 
     def _index_for(self, names: Sequence[str]) -> tuple[np.ndarray | None, str]:
@@ -632,17 +667,57 @@ class SafetyFilterNode(LifecycleNode):
             self._u_nom = np.array(data, dtype=float)
         self._nominal_time = now
         if self._active and self._trigger == 'nominal':
+            self._feed_watchdog()
             self._run_step(now)
 
+    def _silence_limit(self) -> float:
+        """How long the trigger topic may be silent before the watchdog steps in [s]."""
+        if self._trigger == 'nominal':
+            return self._nominal_timeout
+        return self._joint_state_timeout
+
+    def _feed_watchdog(self) -> None:
+        """The trigger topic delivered: restart the watchdog's countdown.
+
+        While the trigger topic flows the watchdog timer's period is the timeout and every
+        message restarts it, so it never fires (a timer callback costs as much as a message
+        in rclpy; a timer polling at the control rate doubled the node's CPU per step).
+        """
+        watchdog = self._watchdog
+        if watchdog is None:
+            return
+        if self._watchdog_holding:
+            self._watchdog_holding = False
+            watchdog.timer_period_ns = round(self._silence_limit() * 1e9)
+        watchdog.reset()
+
+    def _start_watchdog(self) -> None:
+        """Start watching: tick at the hold rate at once if the trigger topic is already
+        silent (a command then flows from the start), else count down."""
+        if self._trigger_silent(time.monotonic()):
+            self._hold_at_watchdog_rate()
+        else:
+            self._feed_watchdog()
+
+    def _hold_at_watchdog_rate(self) -> None:
+        self._watchdog_holding = True
+        self._watchdog.timer_period_ns = self._hold_period_ns
+        # reset: a changed period applies only from the next restart of the countdown.
+        self._watchdog.reset()
+
+    def _trigger_silent(self, now: float) -> bool:
+        if self._trigger == 'nominal':
+            return now - self._nominal_time > self._nominal_timeout
+        return now - self._js_time > self._joint_state_timeout
+
     def _on_watchdog(self) -> None:
+        """The trigger topic has been silent for a timeout: step at the hold rate."""
         if not self._active:
             return
+        if not self._watchdog_holding:
+            self._hold_at_watchdog_rate()  # until the trigger topic is back
         now = time.monotonic()
-        if self._trigger == 'nominal':
-            silent = now - self._nominal_time > self._nominal_timeout
-        else:
-            silent = now - self._js_time > self._joint_state_timeout
-        if silent:
+        if self._trigger_silent(now):
             self._run_step(now)
 
     # ------------------------------------------------------------------ the step
@@ -785,7 +860,7 @@ class SafetyFilterNode(LifecycleNode):
         if self._invalid_nominals:
             values.append(('invalid.nominal_last', self._nominal_problem))
         values.append(('trigger', self._trigger))
-        values.append(('certificate_id', certificate.certificate_id))
+        values.append(('certificate_id', self._certificate_id))
         status.values = [KeyValue(key=key, value=value) for key, value in values]
         return status
 
@@ -811,10 +886,10 @@ def _parse_own_arguments(arguments: Sequence[str]) -> argparse.Namespace:
         'e.g. --ros-args --params-file certificate.yaml -p urdf_path:=arm.urdf')
     parser.add_argument('--autostart', action='store_true',
                         help='configure and activate at start-up (no lifecycle manager needed)')
-    parser.add_argument('--executor', choices=EXECUTORS, default='single_threaded',
-                        help="rclpy executor: 'single_threaded' (default) or 'events' "
-                        '(rclpy.experimental.EventsExecutor: much less overhead per callback, '
-                        'experimental in Jazzy)')
+    parser.add_argument('--executor', choices=EXECUTORS, default='events',
+                        help="rclpy executor: 'events' (default; rclpy.experimental."
+                        'EventsExecutor: about half the CPU per message, experimental in '
+                        "Jazzy) or 'single_threaded' (rclpy's classic executor)")
     return parser.parse_args(list(arguments))
 
 
@@ -836,8 +911,9 @@ def main(args: Sequence[str] | None = None) -> int:
 
     Args:
         args: the command line like ``sys.argv`` (program name first); default ``sys.argv``.
-            ``--autostart`` configures and activates the node at start-up; ``--executor
-            events`` spins it with rclpy's (experimental) EventsExecutor.
+            ``--autostart`` configures and activates the node at start-up; the node spins
+            with rclpy's (experimental) EventsExecutor unless ``--executor
+            single_threaded`` is given.
 
     Returns:
         0 on a clean exit, 1 when the autostart transitions failed.
