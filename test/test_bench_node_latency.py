@@ -24,10 +24,13 @@ def test_bench_node_latency_runs_and_prints_its_table() -> None:
     env['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
     result = subprocess.run(
         [sys.executable, str(REPO / 'benchmarks' / 'bench_node_latency.py'), '--arm', 'planar2',
-         '--duration', '1'],
+         '--duration', '2', '--rounds', '2'],
         capture_output=True, text=True, timeout=600, env=env, cwd=REPO)
     assert result.returncode == 0, result.stdout + result.stderr
     out = result.stdout
     assert 'median/echo' in out and 'issue targets' in out, out
     for label in ('echo (bare rclpy)', 'filter, pass-through', 'filter, intervening'):
-        assert f'running {label} ...' in out and f'\n{label} ' in out, out  # run, table row
+        for run in ('1/2', '2/2'):  # interleaved rounds
+            assert f'round {run}: {label} ...' in out, out
+        assert f'\n{label} ' in out, out  # table row
+    assert 'median/echo per round' in out, out
