@@ -405,7 +405,13 @@ class SafetyFilter:
             return self._reject(q, v, f'expected arrays of shape {shape}, got q {q_in.shape}, '
                                 f'v {v_in.shape}, u_nom {u_in.shape}', 'wrong shape')
         inputs = self._inputs
-        flags = _kernels.stage_inputs(q_in, v_in, u_in, inputs)
+        out_real = np.empty((2, self.n))  # [torque; barrier margin], returned to the caller
+        out_flags = np.empty((3, self.n), dtype=bool)  # [active upper; active lower; saturated]
+        torque, barrier_margin = out_real[0], out_real[1]
+        code1, scale1, code2, scale2 = self._k_alpha
+        flags, worst, deepest = _kernels.stage_and_bound(
+            q_in, v_in, u_in, inputs, self._k_lower, self._k_upper, self._k_gamma, self._k_beta,
+            self._k_margin, code1, scale1, code2, scale2, self._rows, barrier_margin)
         if flags:
             names = [name for name, bit in (('q', _kernels.NONFINITE_Q),
                                             ('v', _kernels.NONFINITE_V),
@@ -416,11 +422,6 @@ class SafetyFilter:
             return self._reject(q_in, v_in, f'values beyond {_kernels.HUGE_LIMIT:g} in the '
                                 'input', 'non-finite input')
         q, v, u_nom_in = inputs[0], inputs[1], inputs[2]
-
-        out_real = np.empty((2, self.n))  # [torque; barrier margin], returned to the caller
-        out_flags = np.empty((3, self.n), dtype=bool)  # [active upper; active lower; saturated]
-        torque, barrier_margin = out_real[0], out_real[1]
-        worst, deepest = self._evaluate_barriers(q, v, barrier_margin)
         if worst < 0.0 and deepest < -self.rejection_distance:
             rows = self._rows
             far = [self.model.joint_names[i] for i in range(self.n)

@@ -203,3 +203,25 @@ def test_box_and_bounds_reject_nan() -> None:
     assert _kernels.within_bounds(np.zeros(2), -bound, bound)
     assert not _kernels.within_bounds(np.array([0.0, math.nan]), -bound, bound)
     assert not _kernels.within_bounds(np.array([0.0, 2.0]), -bound, bound)
+
+
+def test_stage_and_bound_is_stage_then_rows() -> None:
+    rng = np.random.default_rng(7)
+    n = 3
+    lower, upper = -np.ones(n), np.ones(n)
+    gamma, beta, margin = np.full(n, 2.0), np.full(n, 5.0), np.full(n, 0.1)
+    rows, smallest = np.empty((6, n)), np.empty(n)
+    rows_ref, smallest_ref = np.empty((6, n)), np.empty(n)
+    inputs = np.empty((3, n))
+    q, v, u = rng.normal(size=n), rng.normal(size=n), rng.normal(size=n)
+    flags, worst, deepest = _kernels.stage_and_bound(q, v, u, inputs, lower, upper, gamma, beta,
+                                                     margin, 2, 0.5, 3, 1.0, rows, smallest)
+    expected = _kernels.barrier_rows(q, v, lower, upper, gamma, beta, margin, 2, 0.5, 3, 1.0,
+                                     rows_ref, smallest_ref)
+    assert flags == 0 and (worst, deepest) == expected
+    np.testing.assert_array_equal(rows, rows_ref)
+    np.testing.assert_array_equal(inputs, [q, v, u])
+    q[1] = math.nan
+    flags, worst, deepest = _kernels.stage_and_bound(q, v, u, inputs, lower, upper, gamma, beta,
+                                                     margin, 2, 0.5, 3, 1.0, rows, smallest)
+    assert flags == _kernels.NONFINITE_Q and math.isnan(worst) and math.isnan(deepest)
