@@ -81,16 +81,11 @@ def run_echo_node(namespace: str, executor_kind: str) -> int:
     from sensor_msgs.msg import JointState
     from std_msgs.msg import Float64MultiArray
 
-    from safety_filter.ros.filter_node import (
-        control_qos,
-        control_subscription_qos,
-        make_executor,
-    )
+    from safety_filter.ros.filter_node import control_qos, make_executor
 
     rclpy.init(signal_handler_options=SignalHandlerOptions.NO)
     node = rclpy.create_node('echo', namespace=namespace)
     qos = control_qos()
-    inbound = control_subscription_qos()
     output = node.create_publisher(Float64MultiArray, 'filtered_torque', qos)
     status = node.create_publisher(Float64MultiArray, '~/status', qos)
     latest: dict[str, Any] = {}
@@ -104,8 +99,8 @@ def run_echo_node(namespace: str, executor_kind: str) -> int:
         output.publish(reply)
         status.publish(reply)
 
-    node.create_subscription(JointState, 'joint_states', on_joint_state, inbound)
-    node.create_subscription(Float64MultiArray, 'nominal_torque', on_nominal, inbound)
+    node.create_subscription(JointState, 'joint_states', on_joint_state, qos)
+    node.create_subscription(Float64MultiArray, 'nominal_torque', on_nominal, qos)
     executor = make_executor(executor_kind, rclpy.get_default_context())
     executor.add_node(node)
     signal.signal(signal.SIGTERM, _interrupt)

@@ -62,18 +62,14 @@ Publications:
 
 Quality of service
 ------------------
-All four control topics are keep-last depth 1 and volatile: in a control loop only the newest
-sample is useful; a deeper queue would hand the filter (or the driver) a backlog of old states
-and commands after any hiccup, i.e. feed stale commands; volatile because a late joiner must
-not get an old command. The subscriptions (``joint_states``, ``nominal_torque``) are
-best effort: a lost sample is simply replaced by the next one a period later (a reliable
-reader would deliver in order and wait for the repair of a sample that is stale by then), and
-a best-effort subscription matches both reliable and best-effort publishers (drivers often
-publish joint states with the sensor-data QoS, which is best effort). The publications
-(``filtered_torque``, ``~/status``) are reliable, which matches any subscriber (one that
-subscribes best effort gets best effort). QoS overrides are enabled for reliability, history
-and depth on these four topics, e.g.
-``-p qos_overrides./joint_states.subscription.reliability:=reliable``. ``/diagnostics``: the
+``joint_states``, ``nominal_torque``, ``filtered_torque`` and ``~/status``: keep-last depth 1,
+reliable, volatile. In a control loop only the newest sample is useful: a deeper queue would
+hand the filter (or the driver) a backlog of old states and commands after any hiccup, i.e.
+feed stale commands; volatile because a late joiner must not get an old command. Reliable
+keeps samples from being dropped on a lossy link while the writer still holds them. A driver
+that publishes joint states best-effort (sensor-data QoS) needs the standard override
+``-p qos_overrides./joint_states.subscription.reliability:=best_effort`` (QoS overrides are
+enabled for reliability, history and depth on these four topics). ``/diagnostics``: the
 default QoS (reliable, depth 10), like every diagnostics publisher.
 
 Executor
@@ -222,18 +218,9 @@ EXECUTORS = ('single_threaded', 'events')
 
 
 def control_qos() -> QoSProfile:
-    """Keep-last depth 1, reliable, volatile: the QoS of the control topics' publishers
-    (module doc)."""
+    """Keep-last depth 1, reliable, volatile: the QoS of the control topics (module doc)."""
     return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
                       reliability=ReliabilityPolicy.RELIABLE,
-                      durability=DurabilityPolicy.VOLATILE)
-
-
-def control_subscription_qos() -> QoSProfile:
-    """Keep-last depth 1, best effort, volatile: the QoS of the control topics'
-    subscriptions (module doc)."""
-    return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
-                      reliability=ReliabilityPolicy.BEST_EFFORT,
                       durability=DurabilityPolicy.VOLATILE)
 
 
@@ -556,12 +543,11 @@ class SafetyFilterNode(LifecycleNode):
         self._status_pub = self.create_lifecycle_publisher(
             Float64MultiArray, '~/status', qos, qos_overriding_options=_qos_overrides())
         self._diagnostics_pub = self.create_publisher(DiagnosticArray, '/diagnostics', 10)
-        inbound = control_subscription_qos()
         self._subscriptions_made = [
-            self.create_subscription(JointState, 'joint_states', self._on_joint_state,
-                                     inbound, qos_overriding_options=_qos_overrides()),
+            self.create_subscription(JointState, 'joint_states', self._on_joint_state, qos,
+                                     qos_overriding_options=_qos_overrides()),
             self.create_subscription(Float64MultiArray, 'nominal_torque', self._on_nominal,
-                                     inbound, qos_overriding_options=_qos_overrides()),
+                                     qos, qos_overriding_options=_qos_overrides()),
         ]
         # Both timers run on the steady clock: under simulated time a dead simulator stops
         # /clock, and a watchdog on the node clock would then never fire.
