@@ -162,6 +162,14 @@ class _StepDynamics:
         return np.array(self._pin.computeGeneralizedGravity(self._pin_model, self._pin_data, q))
 
 
+def _kernel_input(values: Any) -> np.ndarray:
+    """``values`` as a writable C-contiguous float64 array (copied only if it is not one):
+    the kernels are compiled for that array type, and any other type would cost a
+    compilation inside the control loop."""
+    array = np.ascontiguousarray(values, dtype=float)
+    return array if array.flags.writeable else array.copy()
+
+
 def constructive_acceleration(
     acceleration_nominal: np.ndarray,
     accel_lower: np.ndarray,
@@ -340,6 +348,18 @@ class SafetyFilter:
         self.mode_counts: dict[FilterMode, int] = {}
         self.reason_counts: Counter[str] = Counter()
         self.reset()
+        self._warm_up(q_mid)
+        self.reset()
+
+    def _warm_up(self, q_mid: np.ndarray) -> None:
+        """Run every branch of the step once, so that the compiled kernels are loaded (or
+        compiled, on a cold cache) now and not at the first control step."""
+        zeros = np.zeros(self.n)
+        self.step(q_mid, zeros, zeros)  # nominal checked, passed or filtered
+        self.step(q_mid, zeros, 10.0 * self.torque_limit)  # outside the box: the QP
+        beyond = np.array(self._upper) + 0.5 * self.rejection_distance
+        self.step(beyond, zeros, zeros)  # outside S: recovery (constructive kernel)
+        self.step(np.full(self.n, math.nan), zeros, zeros)  # rejected
 
     # ------------------------------------------------------------------ diagnostics
     def reset(self) -> None:
@@ -395,9 +415,9 @@ class SafetyFilter:
         # compiled kernel (safety_filter._kernels) on preallocated buffers. See
         # benchmarks/bench_filter_step.py.
         try:
-            q_in = np.asarray(q, dtype=float)
-            v_in = np.asarray(v, dtype=float)
-            u_in = np.asarray(u_nom, dtype=float)
+            q_in = _kernel_input(q)
+            v_in = _kernel_input(v)
+            u_in = _kernel_input(u_nom)
         except (TypeError, ValueError) as err:
             return self._reject(q, v, f'input is not numeric: {err}', 'input not numeric')
         shape = self._shape

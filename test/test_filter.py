@@ -528,3 +528,27 @@ def test_closed_loop_keeps_the_position_limits(arm: str) -> None:
     modes = filt.statistics()['modes']
     assert modes['filtered'] >= 0.95 * filt.steps, modes
     assert modes['rejected'] == 0
+
+
+def test_no_compilation_at_the_first_steps() -> None:
+    """The constructor runs every branch once, so stepping compiles nothing new, whatever
+    the input arrays' layout or write flag (a compilation takes seconds: in the control
+    loop it would miss deadlines)."""
+    from safety_filter import _kernels
+
+    filt = make_filter('reach7')
+    kernels = [getattr(_kernels, name) for name in dir(_kernels)
+               if hasattr(getattr(_kernels, name), 'signatures')]
+    before = {kernel: len(kernel.signatures) for kernel in kernels}
+    rng = np.random.default_rng(40)
+    q, v = random_state_in_safe_set(rng, filt.certificate)
+    frozen = np.array(q)
+    frozen.flags.writeable = False
+    strided = np.repeat(v, 2)[::2]  # a non-contiguous view
+    outputs = [filt.step(q, v, 50.0 * filt.torque_limit),
+               filt.step(frozen, strided, list(50.0 * filt.torque_limit)),
+               filt.step(q + 1.0, v, np.zeros(filt.n)),
+               filt.step(q, v, np.zeros(filt.n))]
+    assert {kernel: len(kernel.signatures) for kernel in kernels} == before
+    np.testing.assert_array_equal(outputs[0].torque, outputs[1].torque)
+    assert filt.statistics()['steps'] == 4  # the warm-up steps are not counted
