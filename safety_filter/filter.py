@@ -166,8 +166,12 @@ def _kernel_input(values: Any) -> np.ndarray:
     """``values`` as a writable C-contiguous float64 array (copied only if it is not one):
     the kernels are compiled for that array type, and any other type would cost a
     compilation inside the control loop."""
-    array = np.ascontiguousarray(values, dtype=float)
-    return array if array.flags.writeable else array.copy()
+    # Not np.ascontiguousarray: it makes a scalar a (1,) array, which would then pass the
+    # shape check of a one-joint arm.
+    array = np.asarray(values, dtype=float)
+    if array.flags.c_contiguous and array.flags.writeable:
+        return array
+    return array.copy(order='C')
 
 
 def constructive_acceleration(
@@ -385,19 +389,13 @@ class SafetyFilter:
                                  c.alpha1, c.alpha2, c.sampling_margin)
 
     # ------------------------------------------------------------------ the step
-    def _evaluate_barriers(self, q: np.ndarray, v: np.ndarray,
-                           smallest: np.ndarray | None = None) -> tuple[float, float]:
-        """Fill ``_rows = [hp; hn; bp; bn; Ap; An]`` (shape (6, n)) at one state.
-
-        ``smallest`` (shape (n,)) receives ``min(hp, hn, bp, bn)`` per joint. Returns the
-        smallest of those and the smallest position margin ``min(hp, hn)``.
-        """
-        if smallest is None:
-            smallest = np.empty(self.n)
+    def _evaluate_barriers(self, q: np.ndarray, v: np.ndarray) -> None:
+        """Fill ``_rows = [hp; hn; bp; bn; Ap; An]`` (shape (6, n)) at one state (the step
+        does the same inside its first kernel; the tests use this one)."""
         code1, scale1, code2, scale2 = self._k_alpha
-        return _kernels.barrier_rows(q, v, self._k_lower, self._k_upper, self._k_gamma,
-                                     self._k_beta, self._k_margin, code1, scale1, code2,
-                                     scale2, self._rows, smallest)
+        _kernels.barrier_rows(q, v, self._k_lower, self._k_upper, self._k_gamma, self._k_beta,
+                              self._k_margin, code1, scale1, code2, scale2, self._rows,
+                              np.empty(self.n))
 
     def step(self, q: Any, v: Any, u_nom: Any) -> FilterOutput:
         """Filter one nominal torque at the measured state.

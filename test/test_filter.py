@@ -552,3 +552,7 @@ def test_no_compilation_at_the_first_steps() -> None:
     assert {kernel: len(kernel.signatures) for kernel in kernels} == before
     np.testing.assert_array_equal(outputs[0].torque, outputs[1].torque)
     assert filt.statistics()['steps'] == 4  # the warm-up steps are not counted
+    # The normalisation keeps shapes: a scalar stays a scalar (and is then rejected).
+    from safety_filter.filter import _kernel_input
+    assert _kernel_input(5.0).shape == ()
+    assert filt.step(q, v, 5.0).mode is FilterMode.REJECTED
