@@ -24,10 +24,12 @@ from safety_filter._files import read_yaml_file
 from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
+from safety_filter.uncertainty import UncertaintySet
 
 FILTER_NODE_NAME = 'safety_filter'
 CERTIFICATE_FORMAT = 'safety_filter/certificate-1'
 CONDITIONS = ('acceleration_authority', 'torque_coupling')
+DEFAULT_OBSERVER_PERIODS = 20.0  # the disturbance observer's time constant [control periods]
 
 
 class CertificateError(SafetyFilterError):
@@ -144,6 +146,22 @@ class Certificate:
     def control_period_s(self) -> float:
         """Control period [s]."""
         return 1.0 / self.control_rate_hz
+
+    @property
+    def observer_time_constant_s(self) -> float:
+        """Time constant of the filter's disturbance observer [s] (``docs/method.md``).
+
+        Certificates from before the observer existed get twenty control periods.
+        """
+        value = self.settings.get('observer_time_constant_s')
+        return (DEFAULT_OBSERVER_PERIODS / self.control_rate_hz if value is None
+                else float(value))
+
+    @property
+    def uncertainty(self) -> UncertaintySet | None:
+        """The declared uncertainty set the certificate was made for (None if unrecorded)."""
+        record = self.settings.get('uncertainty')
+        return None if record is None else UncertaintySet.from_mapping(record)
 
     @property
     def certificate_id(self) -> str:

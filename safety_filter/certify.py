@@ -32,7 +32,7 @@ from scipy.optimize import linprog, minimize
 from safety_filter._version import __version__
 from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
 from safety_filter.bounds import BoundSettings, DynamicsBounds, estimate_bounds
-from safety_filter.certificate import Certificate
+from safety_filter.certificate import DEFAULT_OBSERVER_PERIODS, Certificate
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 from safety_filter.sampling import Gains, estimate_sampling_margin
@@ -62,6 +62,8 @@ class CertifySettings:
         falsifier_states: states the falsifier samples (0 skips it: not certified then).
         bounds: settings of the dynamics bounds.
         seed: random seed of every sampling stage.
+        observer_periods: time constant of the filter's disturbance observer, in control
+            periods (recorded; the filter uses it).
     """
 
     alpha1: ClassK = ClassK('linear')
@@ -79,6 +81,7 @@ class CertifySettings:
     falsifier_states: int = 100_000
     bounds: BoundSettings = field(default_factory=BoundSettings)
     seed: int = 0
+    observer_periods: float = DEFAULT_OBSERVER_PERIODS
 
     def __post_init__(self) -> None:
         if self.alpha1.kind not in ALPHA1_KINDS:
@@ -93,6 +96,8 @@ class CertifySettings:
             raise SafetyFilterError('control_rate_hz must be > 0 and sampling_factor >= 1')
         if self.condition not in ('auto', 'acceleration_authority', 'torque_coupling'):
             raise SafetyFilterError(f'unknown condition {self.condition!r}')
+        if not (np.isfinite(self.observer_periods) and self.observer_periods >= 0.0):
+            raise SafetyFilterError('observer_periods must be finite and >= 0')
 
     @property
     def hold_period_s(self) -> float:
@@ -428,6 +433,8 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'authority_torque_coupling': _plain(candidates.get('torque_coupling')),
         'torque_coupling_rho': _plain(bounds.coupling_min),
         'notes': notes,
+        'uncertainty': model.uncertainty.record(),
+        'observer_time_constant_s': settings.observer_periods / settings.control_rate_hz,
     }
     certificate = Certificate(
         joint_names=names,

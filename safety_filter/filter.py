@@ -4,10 +4,17 @@
 call (no ROS imports here). One :meth:`SafetyFilter.step` (METHOD sections 3, 4.4 and 5):
 
 1. **Validate** ``q``, ``v``, ``u_nom`` (shape ``(n,)``, finite) and reject positions more than
-   ``rejection_distance`` beyond a limit (a sensor fault or a state the model cannot recover
-   from). Rejected steps send the *hold* command: gravity compensation at the measured (or
+   ``rejection_distance`` beyond a limit (by default half the smallest joint range: no arm
+   gets there, so it is a sensor fault). Only such inputs, which cannot be a physical state,
+   are refused; a position beyond a limit but within that distance is recovered from (step
+   4). Rejected steps send the *hold* command: gravity compensation at the measured (or
    last valid) position plus damping toward rest, ``g(q) - hold_damping * v``, clipped to the
    torque box.
+1b. **Model error feedback** (``docs/method.md``, "Model error"): a disturbance observer
+   estimates the torque that the arm needs beyond the filter's model (payload, inertia and
+   friction errors, the driver's torque error) from the measured velocity change over the last
+   period, low-pass filtered with ``observer_time_constant_s``; the estimate is taken out of
+   the bias ``h`` of every later step, so the bounds hold for the arm, not only the model.
 2. **Convert** the nominal to full torque: with ``gravity_convention='driver_compensated'``
    the driver adds ``g(q)`` itself, so ``u_full = u_nom + g(q)`` here and the output is
    ``u* - g(q)``. The torque box ``|u| <= umax`` always applies to the full torque.
@@ -227,7 +234,11 @@ class SafetyFilter:
             ``'pinocchio'``).
         solver_time_limit_s: OSQP time limit per solve [s]; None: only the iteration cap.
         rejection_distance: positions farther than this beyond a limit [rad or m] are
-            rejected as a sensor fault.
+            rejected as a sensor fault; default half the smallest joint range. Closer ones
+            are recovered from.
+        observer_time_constant_s: time constant of the disturbance observer [s]; default the
+            certificate's (twenty control periods unless certified otherwise); 0 turns the
+            observer off (the filter then trusts its model exactly).
         hold_damping: damping of the hold command [N m s/rad], scalar or shape (n,);
             default ``M_ii(q_mid) / (20 T)``: a velocity time constant of twenty control
             periods ``T`` at the mid-range configuration (stable for the sampled loop as
@@ -250,11 +261,20 @@ class SafetyFilter:
         payload_mass: float | None = None,
         backend: str = 'auto',
         solver_time_limit_s: float | None = None,
-        rejection_distance: float = 0.2,
+        rejection_distance: float | None = None,
         hold_damping: float | np.ndarray | None = None,
         solver_max_iter: int = DEFAULT_MAX_ITER,
         solver_eps: float = DEFAULT_EPS,
+        observer_time_constant_s: float | None = None,
     ) -> None:
+        if rejection_distance is None:
+            rejection_distance = 0.5 * float(np.min(certificate.position_upper
+                                                    - certificate.position_lower))
+        if observer_time_constant_s is None:
+            observer_time_constant_s = certificate.observer_time_constant_s
+        if not (math.isfinite(observer_time_constant_s) and observer_time_constant_s >= 0.0):
+            raise SafetyFilterError('observer_time_constant_s must be finite and >= 0, got '
+                                    f'{observer_time_constant_s}')
         certificate.check_model(model)
         if not certificate.certified:
             reasons = '; '.join(certificate.reasons) or 'no reason recorded'
@@ -315,6 +335,13 @@ class SafetyFilter:
         if not (np.all(np.isfinite(damping)) and np.all(damping >= 0.0)):
             raise SafetyFilterError(f'hold_damping must be finite and >= 0, got {hold_damping}')
         self.hold_damping = frozen(damping)
+        self.observer_time_constant_s = float(observer_time_constant_s)
+        self._observing = self.observer_time_constant_s > 0.0
+        self._disturbance = np.zeros(n)  # estimated torque beyond the model [N m]
+        self._obs_v = np.zeros(n)  # velocity at the last step
+        self._obs_u = np.zeros(n)  # full torque sent at the last step
+        self._obs_valid = False  # both of the above belong to the step before this one
+        self._obs_step = np.empty(n)
 
         self._qp = AccelerationQP(self.torque_limit, torque_weights, eps=solver_eps,
                                   max_iter=solver_max_iter, time_limit_s=solver_time_limit_s,
@@ -334,6 +361,7 @@ class SafetyFilter:
         self._k_accel_tol = np.array(self._accel_tol)
         self._k_saturation = np.array(self._torque_saturation)
         self._k_authority = np.array(usable)
+        self._k_observer_plausible = 2.0 * np.array(self.torque_limit)
 
         # Preallocated per-step buffers.
         self._inputs = np.empty((3, n))
@@ -367,9 +395,12 @@ class SafetyFilter:
 
     # ------------------------------------------------------------------ diagnostics
     def reset(self) -> None:
-        """Forget the warm start, the last valid position and the counters."""
+        """Forget the warm start, the last valid position, the disturbance estimate and the
+        counters."""
         self._qp.reset_warm_start()
         self._has_last_q = False
+        self._disturbance[:] = 0.0
+        self._obs_valid = False
         self.mode_counts = {mode: 0 for mode in FilterMode}
         self.reason_counts = Counter()
         self.steps = 0
@@ -397,13 +428,50 @@ class SafetyFilter:
                               self._k_margin, code1, scale1, code2, scale2, self._rows,
                               np.empty(self.n))
 
-    def step(self, q: Any, v: Any, u_nom: Any) -> FilterOutput:
+    def _observe(self, v: np.ndarray, mass: np.ndarray, bias: np.ndarray,
+                 period_s: float | None) -> None:
+        """Update the disturbance estimate and take it out of ``bias`` (in place).
+
+        The arm obeys ``M a + h = u + d`` in the filter's model, with ``d`` the torque that
+        the model misses. Over the last period the measured velocity change gives
+        ``d ~ M (v - v_prev) / T + h - u_prev``; a first-order low-pass with time constant
+        ``observer_time_constant_s`` smooths it (its noise is ``M * velocity noise / time
+        constant``, as for a momentum observer). ``u = M a + h - d`` then gives the arm the
+        acceleration ``a`` that the barrier bounds were checked for.
+        """
+        period = self.certificate.control_period_s if period_s is None else float(period_s)
+        if self._obs_valid and math.isfinite(period) and period > 0.0:
+            step = self._obs_step
+            np.subtract(v, self._obs_v, out=step)
+            step /= period
+            measured = mass @ step
+            measured += bias
+            measured -= self._obs_u
+            # A torque beyond twice the box cannot act on the arm: the two samples are not
+            # one period apart (a gap, a reset, a replayed jump); skip them.
+            if _kernels.within_box(measured, self._k_observer_plausible):
+                gain = period / (period + self.observer_time_constant_s)
+                self._disturbance += gain * (measured - self._disturbance)
+            # Never more than the torque box: beyond it the estimate is not a model error.
+            np.clip(self._disturbance, -self._k_torque_limit, self._k_torque_limit,
+                    out=self._disturbance)
+        self._obs_v[:] = v
+        bias -= self._disturbance
+
+    @property
+    def disturbance_estimate(self) -> np.ndarray:
+        """The observer's estimate of the torque the model misses [N m], shape (n,)."""
+        return self._disturbance.copy()
+
+    def step(self, q: Any, v: Any, u_nom: Any, period_s: float | None = None) -> FilterOutput:
         """Filter one nominal torque at the measured state.
 
         Args:
             q: joint positions [rad or m], shape (n,).
             v: joint velocities [rad/s or m/s], shape (n,).
             u_nom: nominal torque [N m or N] in the driver's convention, shape (n,).
+            period_s: time since the previous step [s], for the disturbance observer;
+                default the certificate's control period.
 
         Returns:
             A :class:`FilterOutput`; invalid input gives mode ``'rejected'``, never an
@@ -452,6 +520,8 @@ class SafetyFilter:
 
         mass, bias = self._mass, self._bias
         self._dyn.mass_and_bias(q, v, mass, bias)
+        if self._observing:
+            self._observe(v, mass, bias, period_s)
         gravity = self._no_gravity
         if self._driver:
             gravity = self._dyn.gravity(q)
@@ -512,6 +582,9 @@ class SafetyFilter:
         intervention = _kernels.finish(torque, u_full, acceleration, accel_lower, accel_upper,
                                        self._k_torque_limit, self._k_accel_tol,
                                        self._k_saturation, gravity, self._driver, out_flags)
+        if self._observing:
+            np.add(torque, gravity, out=self._obs_u)
+            self._obs_valid = True
         self.steps += 1
         self.mode_counts[mode] += 1
         if key:
@@ -629,6 +702,7 @@ class SafetyFilter:
         if barrier_margin is None:
             barrier_margin = np.full(n, math.nan)
         false = np.zeros(n, dtype=bool)
+        self._obs_valid = False
         self.steps += 1
         self.mode_counts[FilterMode.REJECTED] += 1
         self.reason_counts[key] += 1

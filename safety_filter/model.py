@@ -36,6 +36,7 @@ from safety_filter.errors import (
     UnknownLink,
     UnsupportedChain,
 )
+from safety_filter.uncertainty import UncertaintySet
 
 LIMITS_FORMAT = 'safety_filter/limits-1'
 STANDARD_GRAVITY = (0.0, 0.0, -9.80665)  # [m/s^2], ISO 80000-3 standard acceleration
@@ -94,6 +95,7 @@ class RobotModel:
         payload_point_in_body: np.ndarray,
         locked_positions: Mapping[str, float],
         notes: Sequence[str] = (),
+        uncertainty: UncertaintySet | None = None,
     ) -> None:
         n = len(joint_names)
         if n == 0:
@@ -122,6 +124,7 @@ class RobotModel:
         self.payload_point_in_body = _frozen(payload_point_in_body, (3,))
         self.locked_positions = dict(locked_positions)
         self.notes: tuple[str, ...] = tuple(notes)
+        self.uncertainty = uncertainty if uncertainty is not None else UncertaintySet()
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -217,6 +220,8 @@ class RobotModel:
             'payload': [format(self.payload.mass_min, '.12g'),
                         format(self.payload.mass_max, '.12g')]
             + rounded(self.payload_point_in_body),
+            'uncertainty': {key: (None if value is None else format(float(value), '.12g'))
+                            for key, value in self.uncertainty.record().items()},
         }
         text = json.dumps(content, sort_keys=True, separators=(',', ':'))
         return hashlib.sha256(text.encode()).hexdigest()
@@ -550,6 +555,7 @@ def _build_model(
         payload_point_in_body=point_in_body,
         locked_positions=locked_used,
         notes=notes,
+        uncertainty=UncertaintySet.from_mapping(spec.get('uncertainty')),
     )
 
 
@@ -589,7 +595,8 @@ def _validated_inertial(link: Any) -> tuple[float, np.ndarray, np.ndarray]:
 
 
 # ---------------------------------------------------------------------- limits file
-_LIMIT_KEYS = {'format', 'chain', 'locked_joints', 'joints', 'payload', 'gravity'}
+_LIMIT_KEYS = {'format', 'chain', 'locked_joints', 'joints', 'payload', 'gravity',
+               'uncertainty'}
 _JOINT_KEYS = {'position', 'velocity', 'effort', 'viscous_friction', 'coulomb_friction'}
 
 
@@ -615,7 +622,7 @@ def _read_limits(limits: str | Path | Mapping[str, Any] | None) -> dict[str, Any
     chain = spec.get('chain', {}) or {}
     if not isinstance(chain, Mapping) or set(chain) - {'base_link', 'tip_link', 'joints'}:
         raise InvalidLimits(f'{source}: chain takes base_link, tip_link or joints')
-    for key in ('locked_joints', 'joints', 'payload'):
+    for key in ('locked_joints', 'joints', 'payload', 'uncertainty'):
         if not isinstance(spec.get(key, {}) or {}, Mapping):
             raise InvalidLimits(f'{source}: {key} must be a mapping')
     for name, entry in (spec.get('joints') or {}).items():
