@@ -316,6 +316,9 @@ def build_parser() -> argparse.ArgumentParser:
     from safety_filter.monitor_view import add_monitor_parser
 
     add_monitor_parser(commands)
+    from safety_filter.stress import add_stress_parser
+
+    add_stress_parser(commands)
     return parser
 
 

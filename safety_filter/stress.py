@@ -1,0 +1,814 @@
+"""Stress test: the filter in closed loop with plants drawn from the declared uncertainty set.
+
+Before an arm runs on hardware, ``safety-filter stress`` tries its model, certificate and
+filter against arms that differ from the model as much as the limits file says they may
+(:mod:`safety_filter.uncertainty`). The matrix is plants x nominals x control rates:
+
+* **plants**: ``exact`` (the filter's own model, no noise, no delay, no torque error: the
+  baseline), ``nominal`` (the model's inertias with the set's noise, delay and torque error),
+  the payload at both ends of its range, every link's mass and rotational inertia all at
+  ``+link_mass_error`` / ``-link_mass_error`` (and ``link_inertia_error``), and ``K`` random
+  draws (:func:`safety_filter.uncertainty.draw_plant`). Every plant but ``exact`` has the
+  set's measurement noise, delay and driver torque error (the non-random plants take the
+  torque gain and offset at the ends of their ranges, with seeded signs per joint);
+* **nominals**: the adversarial sources of :mod:`safety_filter.nominal` (bang-bang, a PD
+  toward targets beyond the limits with gravity feedforward from the filter's model, large
+  sinusoids, zero torque), the benign :class:`~safety_filter.nominal.SafeTracking`, and
+  ``pushes``: SafeTracking while external torque impulses act on the arm;
+* **rates**: the certificate's control rate, and ``control_rate_hz / sampling_factor`` when
+  the certificate's margin covers longer hold periods (``sampling_factor > 1``).
+
+One run is :func:`run_plant_loop`; :func:`summarize_run` measures it and
+:func:`run_failures` holds the verdict rules (one small function, so they can be adjusted).
+:func:`run_stress` runs the matrix in worker processes. The command line is
+:func:`add_stress_parser` / :func:`command_stress`; the report is in
+:mod:`safety_filter.stress_report`. No ROS here.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import math
+import os
+import sys
+import time
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from safety_filter.certificate import Certificate
+from safety_filter.errors import SafetyFilterError
+from safety_filter.model import RobotModel
+from safety_filter.simulate import ArmSimulator, NominalPolicy, limit_violations
+from safety_filter.uncertainty import (
+    Plant,
+    UncertaintySet,
+    draw_plant,
+    model_with_inertials,
+    nominal_plant,
+)
+
+EXIT_OK = 0
+EXIT_BAD_INPUT = 2
+EXIT_NOT_CERTIFIED = 3
+EXIT_STRESS_FAILED = 5  # distinct from every other exit code of safety-filter
+DEFAULT_OUT = Path('out') / 'stress'
+DEFAULT_DURATION_S = 5.0
+DEFAULT_PLANTS = 8
+DEFAULT_JOBS = os.cpu_count() or 1
+DEMO_CONTROL_RATE_HZ = 1000.0
+DEMO_FALSIFIER_STATES = 20_000  # as `safety-filter demo` certifies
+NOMINALS = ('bang_bang', 'pd_beyond_limits', 'large_sinusoid', 'zero_torque',
+            'safe_tracking', 'pushes')
+POSITION_TOLERANCE = 1e-6  # [rad or m]: float round-off, not an allowance
+TORQUE_TOLERANCE = 1e-6  # relative, times max(1, effort limit), as the filter's check
+
+
+# ---------------------------------------------------------------------- one run
+@dataclass(frozen=True)
+class Push:
+    """An external torque ``torque`` [N m] on the plant from ``start_s`` for ``duration_s``.
+
+    It acts at the control steps whose time lies in ``[start_s, start_s + duration_s)``
+    (held over each such control period, like the drive torque).
+    """
+
+    start_s: float
+    duration_s: float
+    torque: np.ndarray
+
+    @property
+    def end_s(self) -> float:
+        return self.start_s + self.duration_s
+
+
+@dataclass
+class PlantLog:
+    """Samples of one run, one row per control step (arrays (T,) or (T, n)).
+
+    Attributes:
+        time_s: step times [s]; q, v: the true state; measured_q, measured_v: what the
+            filter and the nominal saw (true state + noise); nominal: the nominal torque;
+            command: the filter's output (full-torque convention); applied: the torque the
+            driver applied (delayed command, gain and offset, saturated); demand: the
+            driver's ``gain * u + offset`` before saturation; external: push torque;
+            mode: filter mode names; margin: smallest barrier value per joint of the TRUE
+            state (NaN when no barrier function was given).
+    """
+
+    time_s: np.ndarray
+    q: np.ndarray
+    v: np.ndarray
+    measured_q: np.ndarray
+    measured_v: np.ndarray
+    nominal: np.ndarray
+    command: np.ndarray
+    applied: np.ndarray
+    demand: np.ndarray
+    external: np.ndarray
+    mode: np.ndarray
+    margin: np.ndarray
+
+
+class _PushedArm(ArmSimulator):
+    """:class:`ArmSimulator` with an external torque added after the driver's saturation."""
+
+    def __init__(self, model: RobotModel, payload_mass: float, internal_rate_hz: float
+                 ) -> None:
+        super().__init__(model, payload_mass, internal_rate_hz)
+        self.external = np.zeros(model.n_joints)
+
+    def _derivative(self, q: np.ndarray, v: np.ndarray, u: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray]:
+        return v, self.dynamics.forward_dynamics(q, v, u + self.external)
+
+
+def run_plant_loop(
+    plant: Plant,
+    step: Callable[[np.ndarray, np.ndarray, np.ndarray], object] | None,
+    nominal: NominalPolicy,
+    duration_s: float,
+    control_rate_hz: float,
+    q0: np.ndarray,
+    v0: np.ndarray | None = None,
+    *,
+    rng: np.random.Generator | None = None,
+    pushes: Sequence[Push] = (),
+    barrier: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None,
+    internal_rate_hz: float = 10_000.0,
+) -> PlantLog:
+    """Closed loop of a plant, a nominal and a filter step, with the plant's imperfections.
+
+    At each control step ``k`` (time ``t_k = k T``):
+
+    1. the filter and the nominal see the measured state: the true state plus noise drawn
+       uniformly within ``+-plant.position_noise`` and ``+-plant.velocity_noise``;
+    2. ``nominal(t_k, q_meas, v_meas)`` gives ``u_nom``; ``step(q_meas, v_meas, u_nom)``
+       gives the command ``u_k`` (``step=None``: the nominal itself, simulation only);
+    3. the command acts ``plant.delay_periods = d`` periods later (a FIFO): the driver
+       applies ``clip(gain * u_{k-d} + offset, -effort_limit, effort_limit)``. Before the
+       first command arrives (``k < d``) the driver applies the FIRST command ``u_0``, as if
+       the arm had been under this control before the run began;
+    4. the plant (:class:`ArmSimulator` with the plant's model and payload, RK4 at
+       ``internal_rate_hz``) holds that torque, plus any active push, for one period.
+
+    Args:
+        plant: the arm (see :class:`safety_filter.uncertainty.Plant`).
+        step: a filter step (``SafetyFilter.step``) or None.
+        nominal: the command source ``nominal(t, q, v)``.
+        rng: the noise generator (default: seeded with 0).
+        pushes: external torque impulses.
+        barrier: ``barrier(q, v) -> smallest barrier value per joint`` (batched over rows),
+            evaluated on the true states, e.g. ``lambda q, v:
+            filt.constraint_bounds(q, v).smallest``.
+    """
+    if not (control_rate_hz > 0.0 and duration_s > 0.0):
+        raise SafetyFilterError('the control rate and the duration must be positive')
+    model = plant.model
+    n = model.n_joints
+    rng = np.random.default_rng(0) if rng is None else rng
+    arm = _PushedArm(model, plant.payload_mass, internal_rate_hz)
+    arm.reset(q0, v0)
+    period = 1.0 / control_rate_hz
+    steps = int(round(duration_s * control_rate_hz))
+    delay = int(plant.delay_periods)
+    umax = np.array(model.effort_limit)
+    gain, offset = np.asarray(plant.torque_gain, float), np.asarray(plant.torque_offset, float)
+    pos_noise, vel_noise = float(plant.position_noise), float(plant.velocity_noise)
+
+    def empty() -> np.ndarray:
+        return np.zeros((steps, n))
+
+    log = PlantLog(np.zeros(steps), empty(), empty(), empty(), empty(), empty(), empty(),
+                   empty(), empty(), empty(), np.empty(steps, dtype=object),
+                   np.full((steps, n), np.nan))
+    zero = np.zeros(n)
+    for k in range(steps):
+        t, q, v = k * period, arm.q, arm.v
+        q_meas = q + rng.uniform(-pos_noise, pos_noise, n) if pos_noise > 0.0 else q.copy()
+        v_meas = v + rng.uniform(-vel_noise, vel_noise, n) if vel_noise > 0.0 else v.copy()
+        u_nom = np.asarray(nominal(t, q_meas, v_meas), dtype=float)
+        if step is None:
+            command, mode = u_nom, 'unfiltered'
+        else:
+            out = step(q_meas, v_meas, u_nom)
+            command = np.array(out.torque)  # type: ignore[attr-defined]
+            mode = str(out.mode)  # type: ignore[attr-defined]
+        log.command[k] = command
+        demand = gain * log.command[max(k - delay, 0)] + offset
+        applied = np.clip(demand, -umax, umax)
+        external = zero
+        for push in pushes:
+            if push.start_s - 1e-9 <= t < push.end_s - 1e-9:
+                external = external + push.torque
+        log.time_s[k], log.q[k], log.v[k] = t, q, v
+        log.measured_q[k], log.measured_v[k], log.nominal[k] = q_meas, v_meas, u_nom
+        log.applied[k], log.demand[k], log.external[k], log.mode[k] = (applied, demand,
+                                                                     external, mode)
+        arm.external = external
+        arm.advance(applied, period)
+    if barrier is not None and steps:
+        log.margin = np.asarray(barrier(log.q, log.v), dtype=float)
+    return log
+
+
+# ---------------------------------------------------------------------- measuring a run
+def recovery_times(log: PlantLog, pushes: Sequence[Push], period_s: float
+                   ) -> list[float | None]:
+    """Per push: seconds from its end until the true state is back in S for good.
+
+    The window of a push runs from its end to the next push's start (or the end of the run).
+    The recovery time is ``t_last_outside + T - t_end``, where ``t_last_outside`` is the last
+    control step of the window with some barrier value below 0; 0 when the state is in S at
+    every step of the window; None when it is still outside S at the window's last step.
+    """
+    inside = np.all(log.margin >= 0.0, axis=1)
+    times = log.time_s
+    starts = sorted(p.start_s for p in pushes)
+    result: list[float | None] = []
+    for push in pushes:
+        later = [s for s in starts if s > push.start_s + 1e-12]
+        window_end = later[0] if later else math.inf
+        in_window = (times >= push.end_s - 1e-9) & (times < window_end - 1e-9)
+        if not np.any(in_window):
+            result.append(None)
+            continue
+        outside = np.flatnonzero(in_window & ~inside)
+        last = np.flatnonzero(in_window)[-1]
+        if outside.size == 0:
+            result.append(0.0)
+        elif outside[-1] == last:
+            result.append(None)
+        else:
+            result.append(float(times[outside[-1]] + period_s - push.end_s))
+    return result
+
+
+def disturbed_steps(log: PlantLog, pushes: Sequence[Push],
+                    recovery: Sequence[float | None]) -> np.ndarray:
+    """Mask of the control steps from each push's start until the state is back in S for
+    good (to the next push or the end of the run when it is not)."""
+    times = log.time_s
+    mask = np.zeros(len(times), dtype=bool)
+    starts = sorted(p.start_s for p in pushes)
+    for push, seconds in zip(pushes, recovery):
+        later = [s for s in starts if s > push.start_s + 1e-12]
+        end = (later[0] if later else math.inf) if seconds is None else push.end_s + seconds
+        mask |= (times >= push.start_s - 1e-9) & (times < end - 1e-9)
+    return mask
+
+
+def _excursions(model: RobotModel, log: PlantLog, rows: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray]:
+    n = model.n_joints
+    if not np.any(rows):
+        return np.zeros(n), np.zeros(n)
+    kept = limit_violations(model, log.q[rows], log.v[rows], log.applied[rows])
+    return kept['position'], kept['velocity']
+
+
+def summarize_run(log: PlantLog, model: RobotModel, period_s: float,
+                  pushes: Sequence[Push] = ()) -> dict[str, Any]:
+    """The figures of one run (plain numbers; per-joint lists in joint order).
+
+    Keys: ``position_excursion`` / ``velocity_excursion`` [rad, rad/s]: largest past a
+    limit (0 when kept; ``*_per_joint`` too), over the steps NOT disturbed by a push (see
+    :func:`disturbed_steps`); ``push_position_excursion`` / ``push_velocity_excursion``: the
+    same over the disturbed steps (what the push itself did, reported, not judged);
+    ``command_excess`` (the filter's command past the torque box, every step),
+    ``applied_excess`` (the applied torque past the box: 0 by construction, the driver
+    saturates), ``driver_saturation`` (the driver's ``gain u + offset`` past the box before
+    saturation), ``time_outside_s`` (control steps with the true state outside S, times T,
+    pushes included), ``min_margin``, ``recovery_s`` (per push, None: not back in S),
+    ``modes`` (fraction of steps per filter mode).
+    """
+    umax = np.array(model.effort_limit)
+    recovery = recovery_times(log, pushes, period_s) if pushes else []
+    disturbed = disturbed_steps(log, pushes, recovery)
+    position, velocity = _excursions(model, log, ~disturbed)
+    push_position, push_velocity = _excursions(model, log, disturbed)
+    applied = np.maximum(np.max(np.abs(log.applied) - umax, axis=0), 0.0)
+    command = np.maximum(np.max(np.abs(log.command) - umax, axis=0), 0.0)
+    demand = np.maximum(np.max(np.abs(log.demand) - umax, axis=0), 0.0)
+    finite = bool(np.all(np.isfinite(log.margin)))
+    outside = ~np.all(log.margin >= 0.0, axis=1) if finite else \
+        np.zeros(len(log.time_s), dtype=bool)
+    modes, counts = np.unique(log.mode.astype(str), return_counts=True)
+    steps = max(len(log.time_s), 1)
+    return {
+        'position_excursion': float(position.max()),
+        'position_excursion_per_joint': position.tolist(),
+        'velocity_excursion': float(velocity.max()),
+        'velocity_excursion_per_joint': velocity.tolist(),
+        'push_position_excursion': float(push_position.max()),
+        'push_velocity_excursion': float(push_velocity.max()),
+        'command_excess': float(command.max()),
+        'applied_excess': float(applied.max()),
+        'driver_saturation': float(demand.max()),
+        'time_outside_s': float(np.count_nonzero(outside) * period_s),
+        'disturbed_s': float(np.count_nonzero(disturbed) * period_s),
+        'min_margin': float(np.nanmin(log.margin)) if np.any(np.isfinite(log.margin))
+        else None,
+        'recovery_s': recovery,
+        'modes': {str(m): float(c) / steps for m, c in zip(modes, counts)},
+    }
+
+
+@dataclass(frozen=True)
+class VerdictRules:
+    """What a run must meet to pass (see :func:`run_failures`).
+
+    Attributes:
+        position_tolerance: allowed position excursion [rad or m] (round-off only).
+        velocity_allowance: allowed velocity excursion [rad/s or m/s]: the declared
+            velocity noise (the filter cannot see the velocity better than that).
+        torque_tolerance: allowed torque excess, relative, times ``max(1, effort limit)``.
+        recovery_time_s: after each push the state must be back in S within this time; None
+            (the certificate does not declare ``recovery_time_s``): measured and reported
+            only.
+    """
+
+    position_tolerance: float = POSITION_TOLERANCE
+    velocity_allowance: float = 0.0
+    torque_tolerance: float = TORQUE_TOLERANCE
+    recovery_time_s: float | None = None
+
+
+def run_failures(summary: dict[str, Any], rules: VerdictRules, effort_limit: np.ndarray
+                 ) -> list[str]:
+    """The verdict rules: the reasons a run fails (empty: it passes).
+
+    1. no position-limit violation (beyond round-off);
+    2. velocity excursion at most the declared velocity noise;
+
+    (1 and 2 over the steps not disturbed by a push: a push may drive the arm past a limit
+    by itself; what is judged after it is rule 4);
+    3. torque within the box: the applied torque, and the filter's command (the driver
+       saturates, so the applied torque alone could not show a command outside the box);
+    4. after each push, back in S within ``recovery_time_s`` when it is declared.
+    """
+    reasons = []
+    if summary['position_excursion'] > rules.position_tolerance:
+        reasons.append(f'position limit exceeded by {summary["position_excursion"]:.3g}')
+    if summary['velocity_excursion'] > rules.velocity_allowance:
+        reasons.append(f'velocity limit exceeded by {summary["velocity_excursion"]:.3g} '
+                       f'(allowance {rules.velocity_allowance:g})')
+    torque_tol = rules.torque_tolerance * max(1.0, float(np.max(effort_limit)))
+    excess = max(summary['command_excess'], summary['applied_excess'])
+    if excess > torque_tol:
+        reasons.append(f'torque outside the box by {excess:.3g}')
+    if rules.recovery_time_s is not None:
+        for k, seconds in enumerate(summary['recovery_s']):
+            if seconds is None or seconds > rules.recovery_time_s:
+                took = 'not back in S' if seconds is None else f'{seconds:.3g} s'
+                reasons.append(f'push {k + 1}: {took} (allowed {rules.recovery_time_s:g} s)')
+    return reasons
+
+
+# ---------------------------------------------------------------------- the matrix
+@dataclass(frozen=True)
+class StressSettings:
+    """How to stress (the same for every run).
+
+    Attributes:
+        duration_s: simulated seconds per run.
+        plants: random plants drawn from the set (besides the fixed ones).
+        seed: seed of the plants, nominals, noise and pushes.
+        pushes: pushes per ``pushes`` run, spread evenly over it.
+        push_fraction: largest joint torque of a push, as a fraction of its effort limit.
+        push_duration_s: duration of each push [s].
+        speed_fraction: peak speed of SafeTracking, as a fraction of the rated speed.
+        internal_rate_hz: integration rate of the plant (RK4) [Hz].
+    """
+
+    duration_s: float = DEFAULT_DURATION_S
+    plants: int = DEFAULT_PLANTS
+    seed: int = 0
+    pushes: int = 2
+    push_fraction: float = 0.5
+    push_duration_s: float = 0.02
+    speed_fraction: float = 0.5
+    internal_rate_hz: float = 10_000.0
+
+    def check(self) -> None:
+        """Raise SafetyFilterError on a setting that makes no sense."""
+        if not (math.isfinite(self.duration_s) and self.duration_s > 0.0):
+            raise SafetyFilterError(f'--duration must be positive, got {self.duration_s}')
+        if self.plants < 0:
+            raise SafetyFilterError(f'--plants must be >= 0, got {self.plants}')
+        if self.pushes < 0:
+            raise SafetyFilterError(f'--pushes must be >= 0, got {self.pushes}')
+        if not (0.0 <= self.push_fraction <= 10.0):
+            raise SafetyFilterError(f'--push-fraction must be in [0, 10], got '
+                                    f'{self.push_fraction}')
+        if self.pushes and self.push_duration_s * self.pushes >= self.duration_s:
+            raise SafetyFilterError('the pushes do not fit in --duration')
+        if not (0.0 < self.speed_fraction <= 1.0):
+            raise SafetyFilterError(f'--speed-fraction must be in (0, 1], got '
+                                    f'{self.speed_fraction}')
+
+
+@dataclass(frozen=True)
+class RunSpec:
+    """One cell of the matrix: plant (index into the plant list), nominal, control rate."""
+
+    index: int
+    plant: int
+    plant_name: str
+    nominal: str
+    rate_hz: float
+
+
+def _torque_error_at_ends(model: RobotModel, payload: float, uncertainty: UncertaintySet,
+                          rng: np.random.Generator) -> Plant:
+    n = model.n_joints
+    gain = 1.0 + uncertainty.torque_error_relative * rng.choice([-1.0, 1.0], n)
+    offset = (uncertainty.torque_error_absolute * np.array(model.effort_limit)
+              * rng.choice([-1.0, 1.0], n))
+    return Plant(model_with_inertials(model, payload_mass=payload), float(payload), gain,
+                 offset, uncertainty.position_noise, uncertainty.velocity_noise,
+                 int(uncertainty.delay_periods))
+
+
+def build_plants(model: RobotModel, uncertainty: UncertaintySet, count: int, seed: int,
+                 filter_payload: float) -> list[tuple[str, Plant]]:
+    """The plants of the matrix, named (see the module docstring), in a fixed order."""
+    rng = np.random.default_rng([seed, 7])
+    plants = [('exact', nominal_plant(model, filter_payload))]
+    plants.append(('nominal', _torque_error_at_ends(model, filter_payload, uncertainty, rng)))
+    for name, payload in (('payload_min', model.payload.mass_min),
+                          ('payload_max', model.payload.mass_max)):
+        plants.append((name, _torque_error_at_ends(model, payload, uncertainty, rng)))
+    e_m, e_i = uncertainty.link_mass_error, uncertainty.link_inertia_error
+    for sign in (1.0, -1.0):
+        scaled = model_with_inertials(
+            model, body_mass=np.array(model.body_mass) * (1.0 + sign * e_m),
+            body_inertia=np.array(model.body_inertia) * (1.0 + sign * e_i),
+            payload_mass=filter_payload)
+        label = f'links_{"+" if sign > 0 else "-"}{100 * max(e_m, e_i):g}%'
+        plants.append((label, _torque_error_at_ends(scaled, filter_payload, uncertainty,
+                                                    rng)))
+    draws = np.random.default_rng([seed, 11])
+    for k in range(count):
+        plants.append((f'random_{k + 1}', draw_plant(model, uncertainty, draws)))
+    return plants
+
+
+def control_rates(certificate: Certificate) -> list[float]:
+    """The certificate's rate, and rate / sampling_factor when sampling_factor > 1."""
+    rates = [float(certificate.control_rate_hz)]
+    if certificate.sampling_factor > 1.0:
+        rates.append(float(certificate.control_rate_hz) / float(certificate.sampling_factor))
+    return rates
+
+
+def run_specs(plants: Sequence[tuple[str, Plant]], rates: Sequence[float]) -> list[RunSpec]:
+    """Every cell: rates x plants x nominals, numbered in that order."""
+    specs = []
+    for rate in rates:
+        for p, (name, _plant) in enumerate(plants):
+            for nominal in NOMINALS:
+                specs.append(RunSpec(len(specs), p, name, nominal, rate))
+    return specs
+
+
+def make_pushes(model: RobotModel, settings: StressSettings, rng: np.random.Generator
+                ) -> list[Push]:
+    """``settings.pushes`` pushes spread over the run, each in a random direction with its
+    largest joint torque at ``push_fraction`` of that joint's effort limit."""
+    umax = np.array(model.effort_limit)
+    window = settings.duration_s / max(settings.pushes, 1)
+    pushes = []
+    for k in range(settings.pushes):
+        direction = rng.normal(size=model.n_joints)
+        direction /= max(float(np.max(np.abs(direction))), 1e-12)
+        pushes.append(Push((k + 0.3) * window, settings.push_duration_s,
+                           settings.push_fraction * umax * direction))
+    return pushes
+
+
+class StressContext:
+    """What every run of a matrix shares: model, certificate, filter, plants, start state.
+
+    Built once per process (the main one and each worker); deterministic in its inputs.
+    """
+
+    def __init__(self, model: RobotModel, certificate: Certificate,
+                 uncertainty: UncertaintySet, settings: StressSettings) -> None:
+        from safety_filter.filter import SafetyFilter
+        from safety_filter.nominal import SafeTracking
+
+        self.model, self.certificate = model, certificate
+        self.uncertainty, self.settings = uncertainty, settings
+        self.filter = SafetyFilter(model, certificate)
+        self.plants = build_plants(model, uncertainty, settings.plants, settings.seed,
+                                   self.filter.payload_mass)
+        self.rates = control_rates(certificate)
+        self.specs = run_specs(self.plants, self.rates)
+        self.rules = VerdictRules(
+            velocity_allowance=uncertainty.velocity_noise,
+            recovery_time_s=_recovery_setting(certificate))
+        tracking = SafeTracking(model, self.filter.payload_mass, settings.speed_fraction,
+                                seed=settings.seed)
+        q0, v0, _ = tracking.reference(0.0)
+        for _ in range(60):  # start inside S: slow the reference's start velocity if needed
+            if np.all(self.filter.constraint_bounds(q0, v0).smallest > 0.0):
+                break
+            v0 = 0.5 * v0
+        self.q0, self.v0 = q0, v0
+
+    def barrier(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        return self.filter.constraint_bounds(q, v).smallest
+
+    def nominal(self, name: str) -> NominalPolicy:
+        from safety_filter.nominal import (
+            BangBang,
+            LargeSinusoid,
+            PDBeyondLimits,
+            SafeTracking,
+            ZeroTorque,
+        )
+
+        model, seed = self.model, self.settings.seed
+        if name == 'bang_bang':
+            return BangBang(model, seed=seed)
+        if name == 'pd_beyond_limits':
+            return PDBeyondLimits(model, gravity=self.filter.dynamics.gravity_torque)
+        if name == 'large_sinusoid':
+            return LargeSinusoid(model, seed=seed)
+        if name == 'zero_torque':
+            return ZeroTorque(model)
+        if name in ('safe_tracking', 'pushes'):
+            return SafeTracking(model, self.filter.payload_mass, self.settings.speed_fraction,
+                                seed=seed)
+        raise SafetyFilterError(f'unknown nominal {name!r}')
+
+    def run(self, spec: RunSpec) -> tuple[dict[str, Any], PlantLog, list[Push]]:
+        """One run: its summary (with verdict), its log and its pushes."""
+        settings = self.settings
+        name, plant = self.plants[spec.plant]
+        rng = np.random.default_rng([settings.seed, spec.index])
+        pushes = make_pushes(self.model, settings, rng) if spec.nominal == 'pushes' else []
+        self.filter.reset()
+        log = run_plant_loop(plant, self.filter.step, self.nominal(spec.nominal),
+                             settings.duration_s, spec.rate_hz, self.q0, self.v0, rng=rng,
+                             pushes=pushes, barrier=self.barrier,
+                             internal_rate_hz=settings.internal_rate_hz)
+        summary = summarize_run(log, self.model, 1.0 / spec.rate_hz, pushes)
+        failures = run_failures(summary, self.rules, np.array(self.model.effort_limit))
+        summary.update(index=spec.index, plant=name, nominal=spec.nominal,
+                       rate_hz=spec.rate_hz, passed=not failures, failures=failures,
+                       plant_payload=plant.payload_mass,
+                       plant_delay_periods=plant.delay_periods,
+                       pushes=[{'start_s': p.start_s, 'duration_s': p.duration_s,
+                                'torque': p.torque.tolist()} for p in pushes])
+        return summary, log, pushes
+
+
+def _recovery_setting(certificate: Certificate) -> float | None:
+    value = certificate.settings.get('recovery_time_s') if isinstance(
+        certificate.settings, dict) else None
+    return None if value is None else float(value)
+
+
+def severity(summary: dict[str, Any]) -> tuple[float, ...]:
+    """Sort key, larger is worse: failed first, then position, velocity and torque
+    excursions, time outside S, and the thinnest true barrier margin."""
+    margin = summary['min_margin']
+    return (0.0 if summary['passed'] else 1.0, summary['position_excursion'],
+            summary['velocity_excursion'],
+            max(summary['command_excess'], summary['applied_excess']),
+            summary['time_outside_s'], -(margin if margin is not None else 0.0))
+
+
+@contextlib.contextmanager
+def _c_stdout_silenced() -> Iterator[None]:
+    """Send file descriptor 1 to the null device for a while.
+
+    OSQP 1.1 prints 'Polishing not needed ...' from its C code on stdout even with
+    ``verbose=False``, which would bury the table; Python's own prints are flushed first.
+    """
+    sys.stdout.flush()
+    try:
+        saved = os.dup(1)
+    except OSError:  # no stdout at all
+        yield
+        return
+    null = os.open(os.devnull, os.O_WRONLY)
+    try:
+        os.dup2(null, 1)
+        yield
+    finally:
+        os.dup2(saved, 1)
+        os.close(saved)
+        os.close(null)
+
+
+_WORKER: dict[str, Any] = {}
+
+
+def _init_worker(model: RobotModel, certificate: Certificate, uncertainty: UncertaintySet,
+                 settings: StressSettings) -> None:
+    null = os.open(os.devnull, os.O_WRONLY)  # see _c_stdout_silenced; workers print nothing
+    os.dup2(null, 1)
+    os.close(null)
+    _WORKER['context'] = StressContext(model, certificate, uncertainty, settings)
+
+
+def _work(index: int) -> dict[str, Any]:
+    context: StressContext = _WORKER['context']
+    return context.run(context.specs[index])[0]
+
+
+@dataclass
+class StressResult:
+    """The runs' summaries (worst first), the worst run's log and the overall verdict."""
+
+    summaries: list[dict[str, Any]]
+    worst: dict[str, Any]
+    worst_log: PlantLog
+    worst_pushes: list[Push]
+    context: StressContext
+    wall_s: float
+    passed: bool = field(init=False)
+
+    def __post_init__(self) -> None:
+        self.passed = all(s['passed'] for s in self.summaries)
+
+
+def run_stress(model: RobotModel, certificate: Certificate, uncertainty: UncertaintySet,
+               settings: StressSettings, *, jobs: int = DEFAULT_JOBS,
+               progress: Callable[[str, float], None] | None = None) -> StressResult:
+    """Run the whole matrix, ``jobs`` runs at a time in worker processes (``jobs == 1``: in
+    this process), then re-run the worst one here to keep its log."""
+    settings.check()
+    if jobs < 1:
+        raise SafetyFilterError(f'--jobs must be >= 1, got {jobs}')
+    start = time.monotonic()
+    report = progress or (lambda _stage, _fraction: None)
+    context = StressContext(model, certificate, uncertainty, settings)
+    total = len(context.specs)
+    summaries: list[dict[str, Any] | None] = [None] * total
+    report('stress runs', 0.0)
+    if jobs == 1 or total <= 1:
+        for spec in context.specs:
+            with _c_stdout_silenced():
+                summaries[spec.index] = context.run(spec)[0]
+            report('stress runs', (spec.index + 1) / total)
+    else:
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor, as_completed
+
+        from safety_filter.replay_batch import portable_model
+
+        method = 'forkserver' if 'forkserver' in multiprocessing.get_all_start_methods() \
+            else 'spawn'
+        with ProcessPoolExecutor(max_workers=min(jobs, total),
+                                 mp_context=multiprocessing.get_context(method),
+                                 initializer=_init_worker,
+                                 initargs=(portable_model(model), certificate, uncertainty,
+                                           settings)) as pool:
+            futures = {pool.submit(_work, spec.index): spec.index for spec in context.specs}
+            done = 0
+            for future in as_completed(futures):
+                summaries[futures[future]] = future.result()
+                done += 1
+                report('stress runs', done / total)
+    ordered = sorted((s for s in summaries if s is not None), key=severity, reverse=True)
+    worst = ordered[0]
+    with _c_stdout_silenced():
+        again, log, pushes = context.run(context.specs[worst['index']])
+    return StressResult(ordered, again, log, pushes, context, time.monotonic() - start)
+
+
+# ---------------------------------------------------------------------- command line
+_DESCRIPTION = (
+    'Stress-test an arm before hardware: run its model, certificate and filter in closed '
+    'loop against plants drawn from the declared uncertainty set (payload ends, link masses '
+    'and inertias at their error bounds, random draws; with the measurement noise, delay '
+    'and driver torque error applied), adversarial and benign nominals, the control rates '
+    'the certificate covers, and external torque pushes. Prints a table (worst run first) '
+    'and a verdict; writes stress_summary.json and stress_report.html with plots of the '
+    'worst run. Exit code 0: every run passed; 5: some run failed the verdict; 3: the demo '
+    "arm's certification failed; 2: bad input (options, robot, certificate).")
+
+
+def add_stress_parser(commands: argparse._SubParsersAction) -> None:
+    """Add the ``stress`` subcommand to ``safety-filter``'s subparsers."""
+    from safety_filter.cli import add_robot_arguments
+
+    stress = commands.add_parser(
+        'stress', help='closed-loop stress test against plants from the uncertainty set',
+        description=_DESCRIPTION)
+    add_robot_arguments(stress)
+    filt = stress.add_argument_group('filter')
+    filt.add_argument('--certificate', metavar='PATH',
+                      help='certificate parameter file written by `safety-filter certify`; '
+                      'required with --urdf; a demo arm without it is certified first (20000 '
+                      'falsifier states, as the demo) or its certificate in --out is reused')
+    runs = stress.add_argument_group('runs')
+    runs.add_argument('--duration', type=float, default=DEFAULT_DURATION_S, metavar='S',
+                      help=f'simulated seconds per run (default: {DEFAULT_DURATION_S:g})')
+    runs.add_argument('--plants', type=int, default=DEFAULT_PLANTS, metavar='K',
+                      help='random plants drawn from the uncertainty set, besides the fixed '
+                      f'ones (default: {DEFAULT_PLANTS})')
+    runs.add_argument('--pushes', type=int, default=2, metavar='N',
+                      help='external torque pushes per push run (default: 2)')
+    runs.add_argument('--push-fraction', type=float, default=0.5, metavar='F',
+                      help="a push's largest joint torque as a fraction of that joint's "
+                      'effort limit (default: 0.5; each push lasts 20 ms)')
+    runs.add_argument('--seed', type=int, default=0,
+                      help='seed of plants, nominals, noise and pushes (default: 0)')
+    output = stress.add_argument_group('output')
+    output.add_argument('--out', default=str(DEFAULT_OUT), metavar='DIR',
+                        help=f'output folder (default: {DEFAULT_OUT})')
+    output.add_argument('--jobs', type=int, default=DEFAULT_JOBS, metavar='N',
+                        help='runs in parallel (processes; default: the number of cores, '
+                        f'{DEFAULT_JOBS} here)')
+    output.add_argument('--no-plots', action='store_true',
+                        help='report without plots (JSON and tables only)')
+    output.add_argument('--no-progress', action='store_true', help='no progress bar')
+    output.add_argument('--quiet', action='store_true',
+                        help='no progress bar and no table: the verdict and files only')
+    stress.set_defaults(handler=command_stress)
+
+
+def _demo_certificate(model: RobotModel, name: str, out: Path,
+                      progress: Callable[[str, float], None]) -> tuple[Certificate, str]:
+    """A demo arm's certificate: reused from ``out`` when valid, else certified now."""
+    from safety_filter.certify import CertifySettings, certify_with_evidence
+    from safety_filter.demo import reusable_certificate
+
+    path = out / f'{name}_certificate.yaml'
+    certificate, note = reusable_certificate(model, path, DEMO_CONTROL_RATE_HZ)
+    if certificate is not None:
+        return certificate, f'{path} ({note})'
+    outcome = certify_with_evidence(
+        model, CertifySettings(falsifier_states=DEMO_FALSIFIER_STATES,
+                               control_rate_hz=DEMO_CONTROL_RATE_HZ), progress=progress)
+    try:
+        outcome.certificate.save(path)
+    except OSError as err:
+        raise SafetyFilterError(f'cannot write {path}: {err}') from err
+    return outcome.certificate, f'{path} (certified now, {DEMO_FALSIFIER_STATES} falsifier ' \
+        'states)'
+
+
+def command_stress(args: argparse.Namespace) -> int:
+    """Run ``safety-filter stress`` (see the parser's description for the exit codes)."""
+    from safety_filter.cli import _ProgressBar, load_robot
+    from safety_filter.stress_report import format_table, write_report
+
+    settings = StressSettings(duration_s=args.duration, plants=args.plants, seed=args.seed,
+                              pushes=args.pushes, push_fraction=args.push_fraction)
+    settings.check()
+    if args.jobs < 1:
+        raise SafetyFilterError(f'--jobs must be >= 1, got {args.jobs}')
+    if args.urdf is not None and args.certificate is None:
+        raise SafetyFilterError('--certificate is required with --urdf (write one with '
+                                '`safety-filter certify`)')
+    model = load_robot(args)
+    out = Path(args.out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise SafetyFilterError(f'cannot create --out {out}: {err}') from err
+    bar = _ProgressBar(enabled=not (args.quiet or args.no_progress))
+    try:
+        if args.certificate is not None:
+            if not Path(args.certificate).is_file():
+                raise SafetyFilterError(f'certificate file not found: {args.certificate}')
+            certificate = Certificate.load(args.certificate, model)
+            source = str(args.certificate)
+        else:
+            certificate, source = _demo_certificate(model, args.demo or 'bench6', out, bar)
+            if not certificate.certified:
+                bar.close()
+                print(f'the demo arm could not be certified: {"; ".join(certificate.reasons)}')
+                return EXIT_NOT_CERTIFIED
+        uncertainty = getattr(model, 'uncertainty', None) or UncertaintySet()
+        result = run_stress(model, certificate, uncertainty, settings, jobs=args.jobs,
+                            progress=bar)
+    finally:
+        bar.close()
+    table = format_table(result, source)
+    if args.quiet:
+        print('\n'.join(line for line in table.splitlines() if line.startswith('verdict:')))
+    else:
+        print(table)
+    try:
+        page, summary = write_report(out, result, source, plots=not args.no_plots)
+    except OSError as err:
+        raise SafetyFilterError(f'cannot write the report in {out}: {err}') from err
+    print(f'\nsummary: {summary.resolve()}\nreport: {page.resolve()}')
+    print(f'wall time: {result.wall_s:.1f} s', file=sys.stderr)
+    return EXIT_OK if result.passed else EXIT_STRESS_FAILED
+
+
+def settings_record(settings: StressSettings) -> dict[str, Any]:
+    """Plain form of the settings for the JSON summary."""
+    return asdict(settings)
