@@ -389,7 +389,7 @@ class StressSettings:
     plants: int = DEFAULT_PLANTS
     seed: int = 0
     pushes: int = 2
-    push_fraction: float = 0.5
+    push_fraction: float = 0.2
     push_duration_s: float = 0.02
     speed_fraction: float = 0.5
     internal_rate_hz: float = 10_000.0
@@ -718,9 +718,9 @@ def add_stress_parser(commands: argparse._SubParsersAction) -> None:
                       f'ones (default: {DEFAULT_PLANTS})')
     runs.add_argument('--pushes', type=int, default=2, metavar='N',
                       help='external torque pushes per push run (default: 2)')
-    runs.add_argument('--push-fraction', type=float, default=0.5, metavar='F',
+    runs.add_argument('--push-fraction', type=float, default=0.2, metavar='F',
                       help="a push's largest joint torque as a fraction of that joint's "
-                      'effort limit (default: 0.5; each push lasts 20 ms)')
+                      'effort limit (default: 0.2; each push lasts 20 ms)')
     runs.add_argument('--seed', type=int, default=0,
                       help='seed of plants, nominals, noise and pushes (default: 0)')
     output = stress.add_argument_group('output')
