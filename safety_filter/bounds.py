@@ -70,6 +70,9 @@ class DynamicsBounds:
         christoffel_max: ``Gbar[i, j, k] = max |Gamma_ijk|``.
         coupling_min: ``rho[i] = min (W_ii umax_i - sum_{j != i} |W_ij| umax_j)``
             [rad/s^2] (deflated by the inflation factor).
+        payload_mass_max, payload_gravity_max, payload_christoffel_max: what one kilogram of
+            payload adds to ``|M_ij|``, ``|g_i|``, ``|Gamma_ijk|`` at most (sampled, not
+            refined; zero without a payload range).
         settings: how they were estimated; evaluations: configurations evaluated;
         refinement_gain: largest relative increase that refinement gave over sampling,
             per kind of bound (how much plain sampling missed).
@@ -80,6 +83,9 @@ class DynamicsBounds:
     gravity_max: np.ndarray
     christoffel_max: np.ndarray
     coupling_min: np.ndarray
+    payload_mass_max: np.ndarray
+    payload_gravity_max: np.ndarray
+    payload_christoffel_max: np.ndarray
     settings: BoundSettings
     evaluations: int = 0
     refinement_gain: dict[str, float] = field(default_factory=dict)
@@ -199,15 +205,28 @@ def estimate_bounds(
             best[kind] = (top_values, q[order], mass[order])
         return flat.max(axis=0) * sign
 
+    # What one kilogram of payload adds (per kg; sampled, not refined): the difference of the
+    # two ends evaluated for each configuration, which sit side by side in q_ends.
+    unit_m, unit_g, unit_c = np.zeros((n, n)), np.zeros(n), np.zeros((n, n, n))
+    paired = len(ends) == 2
+
+    def unit_part(values: np.ndarray) -> np.ndarray:
+        return np.max(np.abs(values[1::2] - values[0::2]), axis=0) / (m_hi - m_lo)
+
     total = len(q_ends)
     for start in range(0, total, chunk):
         q = q_ends[start:start + chunk]
         mass = mass_ends[start:start + chunk]
-        m_abs = np.maximum(m_abs, keep('M', np.abs(evaluator.mass(q, mass)), q, mass)
-                           .reshape(n, n))
-        g_abs = np.maximum(g_abs, keep('g', np.abs(evaluator.gravity(q, mass)), q, mass))
-        c_abs = np.maximum(c_abs, keep('C', np.abs(evaluator.christoffel(q, mass)), q, mass)
-                           .reshape(n, n, n))
+        values_m = evaluator.mass(q, mass)
+        values_g = evaluator.gravity(q, mass)
+        values_c = evaluator.christoffel(q, mass)
+        m_abs = np.maximum(m_abs, keep('M', np.abs(values_m), q, mass).reshape(n, n))
+        g_abs = np.maximum(g_abs, keep('g', np.abs(values_g), q, mass))
+        c_abs = np.maximum(c_abs, keep('C', np.abs(values_c), q, mass).reshape(n, n, n))
+        if paired:
+            unit_m = np.maximum(unit_m, unit_part(values_m))
+            unit_g = np.maximum(unit_g, unit_part(values_g))
+            unit_c = np.maximum(unit_c, unit_part(values_c))
         report('sampling', min(1.0, (start + chunk) / (2 * total)))
     total = len(q_samples)
     for start in range(0, total, chunk):
@@ -277,6 +296,9 @@ def estimate_bounds(
         gravity_max=k * g_abs,
         christoffel_max=k * c_abs,
         coupling_min=rho - (k - 1.0) * np.abs(rho),
+        payload_mass_max=k * unit_m,
+        payload_gravity_max=k * unit_g,
+        payload_christoffel_max=k * unit_c,
         settings=settings,
         evaluations=evaluator.count,
         refinement_gain=gain,

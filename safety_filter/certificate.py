@@ -158,6 +158,18 @@ class Certificate:
                 else float(value))
 
     @property
+    def disturbance_parameters(self) -> tuple[np.ndarray, float, float] | None:
+        """``(constant [N m], link_error, payload_error [kg])`` of the bound that the filter
+        keeps its disturbance estimate in (``uncertainty.state_disturbance_bound``); None for
+        certificates made before it existed."""
+        constant = self.settings.get('disturbance_constant')
+        if constant is None:
+            return None
+        return (np.array(constant, dtype=float),
+                float(self.settings.get('disturbance_link_error', 0.0)),
+                float(self.settings.get('disturbance_payload_error', 0.0)))
+
+    @property
     def uncertainty(self) -> UncertaintySet | None:
         """The declared uncertainty set the certificate was made for (None if unrecorded)."""
         record = self.settings.get('uncertainty')

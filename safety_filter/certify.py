@@ -36,6 +36,7 @@ from safety_filter.certificate import DEFAULT_OBSERVER_PERIODS, Certificate
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 from safety_filter.sampling import Gains, estimate_sampling_margin
+from safety_filter.uncertainty import DisturbanceBound, disturbance_bound, payload_error
 
 ProgressCallback = Callable[[str, float], None]
 _BETA_MIN_MARGIN = 1.02  # beta may sit at the cap if that is still 2 % above beta*
@@ -241,22 +242,62 @@ class _Design:
     velocity_box: np.ndarray
     gamma_star: np.ndarray
     gamma: np.ndarray
+    disturbance: DisturbanceBound | None = None
+
+
+def model_error_bound(model: RobotModel, bounds: DynamicsBounds, velocity_box: np.ndarray,
+                      settings: CertifySettings) -> DisturbanceBound:
+    """The declared uncertainty set's torque bound at a velocity box (see
+    :func:`safety_filter.uncertainty.disturbance_bound`)."""
+    def coriolis(christoffel: np.ndarray) -> np.ndarray:
+        return np.einsum('ijk,j,k->i', christoffel, velocity_box, velocity_box)
+
+    return disturbance_bound(
+        model, model.uncertainty, gravity_max=bounds.gravity_max,
+        coriolis_max=coriolis(bounds.christoffel_max), mass_max=bounds.mass_max,
+        payload_gravity_max=bounds.payload_gravity_max,
+        payload_coriolis_max=coriolis(bounds.payload_christoffel_max),
+        payload_mass_max=bounds.payload_mass_max, velocity_box=velocity_box,
+        observer_time_constant_s=settings.observer_periods / settings.control_rate_hz)
+
+
+def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                      velocity_box: np.ndarray, exact_model: bool = False
+                      ) -> tuple[np.ndarray, np.ndarray, DisturbanceBound]:
+    """The row-sum condition's data ``(mass bound, bias bound, model-error bound)`` at a
+    velocity box: ``mass @ e + bias <= umax`` (``docs/method.md``).
+
+    The filter's QP uses ``h - d_hat`` with ``d_hat`` inside the range of the plants' model
+    error at the state, so its bias is some plant's bias: the payload is already inside the
+    bounds (they cover the payload range); every other kind adds to them, and the inertial
+    part grows with the acceleration. ``exact_model`` leaves the uncertainty out.
+    """
+    disturbance = (DisturbanceBound({}, {}) if exact_model
+                   else model_error_bound(model, bounds, velocity_box, settings))
+    outside = disturbance.without('payload', static_only=True)
+    bias = bounds.bias_max(velocity_box, np.array(model.viscous_friction),
+                           np.array(model.coulomb_friction)) + outside.static_total
+    mass = bounds.mass_max + outside.inertial_total
+    return mass, bias, disturbance
 
 
 def _design_for_scale(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
-                      scale: float, margin: np.ndarray) -> tuple[_Design | None, dict]:
+                      scale: float, margin: np.ndarray, exact_model: bool = False
+                      ) -> tuple[_Design | None, dict]:
     velocity_box = scale * np.array(model.velocity_limit)
-    bias = bounds.bias_max(velocity_box, np.array(model.viscous_friction),
-                           np.array(model.coulomb_friction))
+    mass, bias, disturbance = authority_problem(model, bounds, settings, velocity_box,
+                                                exact_model)
     umax = np.array(model.effort_limit)
     weights = umax / np.diag(bounds.mass_max)
     candidates: dict[str, np.ndarray | None] = {}
     if settings.condition in ('auto', 'acceleration_authority'):
-        candidates['acceleration_authority'] = authority_row_sums(
-            bounds.mass_max, bias, umax, weights)
+        candidates['acceleration_authority'] = authority_row_sums(mass, bias, umax, weights)
     if settings.condition in ('auto', 'torque_coupling'):
-        candidates['torque_coupling'] = authority_torque_coupling(
-            bounds.inverse_mass_max, bounds.coupling_min, bias)
+        coupled = authority_torque_coupling(bounds.inverse_mass_max, bounds.coupling_min, bias)
+        if coupled is not None:  # one step of e = rho - nu - Winv I e (conservative)
+            coupled = coupled - bounds.inverse_mass_max @ disturbance.inertial_total @ coupled
+            coupled = coupled if np.all(coupled > 0.0) else None
+        candidates['torque_coupling'] = coupled
     best: _Design | None = None
     r = np.array(model.position_range)
     reach = np.array([settings.alpha1.value(x) for x in r], dtype=float)
@@ -268,7 +309,7 @@ def _design_for_scale(model: RobotModel, bounds: DynamicsBounds, settings: Certi
             continue
         g_star = gamma_star(usable, r, settings.alpha1)
         gamma = np.minimum(settings.gamma_margin * g_star, velocity_box / reach)
-        design = _Design(scale, condition, authority, velocity_box, g_star, gamma)
+        design = _Design(scale, condition, authority, velocity_box, g_star, gamma, disturbance)
         if best is None or _score(model, design, settings) > _score(model, best, settings):
             best = design
     return best, candidates
@@ -435,6 +476,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'notes': notes,
         'uncertainty': model.uncertainty.record(),
         'observer_time_constant_s': settings.observer_periods / settings.control_rate_hz,
+        **_model_error_record(model, bounds, settings, design or last_design),
     }
     certificate = Certificate(
         joint_names=names,
@@ -491,6 +533,45 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     certificate.settings['stage_seconds'] = {k: round(v, 3) for k, v in seconds.items()}
     return CertificationOutcome(certificate, bounds, float(scale), candidates, seconds,
                                 falsifier_result)
+
+
+def _model_error_record(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                        design: _Design | None) -> dict[str, Any]:
+    """What the declared uncertainty costs, for the certificate and its report: the torque
+    bound per joint (the filter clips its disturbance estimate to it), its share per kind,
+    and the authority and velocity envelope the same scale would give without it."""
+    if design is None or design.disturbance is None:
+        return {}
+    by_kind = design.disturbance.by_kind(design.authority)
+    bias = bounds.bias_max(design.velocity_box, np.array(model.viscous_friction),
+                           np.array(model.coulomb_friction))
+    umax = np.array(model.effort_limit)
+    exact = authority_row_sums(bounds.mass_max, bias, umax, umax / np.diag(bounds.mass_max))
+    uncertainty = model.uncertainty
+    record: dict[str, Any] = {
+        'disturbance_constant': _plain(design.disturbance.constant_part(design.authority)),
+        'disturbance_link_error': max(uncertainty.link_mass_error,
+                                      uncertainty.link_inertia_error),
+        'disturbance_payload_error': payload_error(model, uncertainty),
+        'disturbance_bound': _plain(design.disturbance.total(design.authority)),
+        'disturbance_by_kind': {kind: _plain(value) for kind, value in by_kind.items()},
+        'authority_without_uncertainty': _plain(exact),
+    }
+    # The certified velocity fractions (before the sampled-data margin) with and without
+    # the uncertainty, each at its own best velocity scale.
+    for label, exact_model in (('with', False), ('without', True)):
+        best = None
+        for scale in np.linspace(1.0, 1.0 / settings.velocity_scales, settings.velocity_scales):
+            found, _ = _design_for_scale(model, bounds, settings, scale, np.zeros(len(umax)),
+                                         exact_model=exact_model)
+            if found is not None and (best is None or _score(model, found, settings)
+                                      > _score(model, best, settings)):
+                best = found
+        reach = np.array([settings.alpha1.value(x) for x in model.position_range])
+        record[f'velocity_fraction_{label}_uncertainty'] = (
+            None if best is None
+            else _plain(best.gamma * reach / np.array(model.velocity_limit)))
+    return record
 
 
 def _plain(values: np.ndarray | None) -> list[float] | None:

@@ -26,6 +26,7 @@ from safety_filter.barriers import evaluate_barriers
 from safety_filter.certificate import Certificate
 from safety_filter.model import RobotModel
 from safety_filter.sampling import BatchPlant, Gains, sample_safe_states
+from safety_filter.uncertainty import state_disturbance_bound
 
 
 @dataclass
@@ -78,6 +79,27 @@ def _lp_slack(mass: np.ndarray, bias: np.ndarray, lower: np.ndarray, upper: np.n
     return float(result.x[-1])
 
 
+def _disturbance_estimates(model: RobotModel, plant: BatchPlant, payload: np.ndarray,
+                           q: np.ndarray, v: np.ndarray, bias: np.ndarray,
+                           parameters: tuple[np.ndarray, float, float] | None,
+                           umax: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """Disturbance estimates the filter may hold at each state: mostly at the corners of its
+    range (``state_disturbance_bound``), else inside; zero for certificates without one."""
+    if parameters is None:
+        return np.zeros_like(bias)
+    constant, link_error, payload_error = parameters
+    friction = plant.viscous * v + plant.coulomb * np.sign(v)
+    rigid = bias - friction
+    gravity = plant.bias(q, np.zeros_like(v))
+    heavier = BatchPlant(model, payload + 1.0).bias(q, v) - friction
+    limit = np.minimum(state_disturbance_bound(constant, link_error, payload_error, gravity,
+                                               rigid, heavier - rigid), umax)
+    corner = rng.random(bias.shape) < 0.7
+    side = np.where(corner, np.where(rng.random(bias.shape) < 0.5, -1.0, 1.0),
+                    rng.uniform(-1.0, 1.0, bias.shape))
+    return side * limit
+
+
 def falsify(
     model: RobotModel,
     certificate: Certificate,
@@ -105,20 +127,31 @@ def falsify(
     gains = Gains(np.array(certificate.gamma), np.array(certificate.beta),
                   certificate.alpha1, certificate.alpha2)
     delta = np.array(certificate.sampling_margin)
-    kept_q, kept_v, kept_m, kept_slack = [], [], [], []
+    parameters = certificate.disturbance_parameters
+    uncertainty = certificate.uncertainty
+    lo_m, hi_m = model.payload.mass_min, model.payload.mass_max
+    # The filter's model carries the middle of the payload range unless it is told the
+    # payload, which may then be anywhere in the range.
+    told = uncertainty is None or uncertainty.payload_told_within is not None
+    kept: list[tuple[np.ndarray, ...]] = []
     witness_min = np.inf
-    to_decide: list[tuple[float, np.ndarray, np.ndarray, float]] = []
+    to_decide: list[tuple[np.ndarray, ...]] = []
     done = 0
     while done < states:
         count = min(chunk, states - done)
         q, v = sample_safe_states(model, gains, count, rng, boundary_fraction=0.4)
-        lo_m, hi_m = model.payload.mass_min, model.payload.mass_max
-        payload = np.where(rng.random(count) < 0.3, np.where(rng.random(count) < 0.5, lo_m,
-                                                              hi_m),
-                           rng.uniform(lo_m, hi_m, count))
+        if told:
+            payload = np.where(rng.random(count) < 0.3,
+                               np.where(rng.random(count) < 0.5, lo_m, hi_m),
+                               rng.uniform(lo_m, hi_m, count))
+        else:
+            payload = np.full(count, 0.5 * (lo_m + hi_m))
         plant = BatchPlant(model, payload)
         mass = plant.mass_matrix(q)
         bias = plant.bias(q, v)
+        estimate = _disturbance_estimates(model, plant, payload, q, v, bias, parameters,
+                                          umax, rng)
+        bias = bias - estimate  # what the filter's QP uses (docs/method.md, model error)
         barrier = evaluate_barriers(q, v, model.position_lower, model.position_upper,
                                     gains.gamma, gains.beta, gains.alpha1, gains.alpha2, delta)
         lower, upper = barrier.accel_lower, barrier.accel_upper
@@ -133,30 +166,20 @@ def falsify(
             best_slack = np.maximum(best_slack, slack)
         best_slack[empty] = -np.inf
         witness_min = min(witness_min, float(np.min(best_slack)))
-        failing = np.flatnonzero(best_slack < 0.0)
-        for k in failing:
-            to_decide.append((float(best_slack[k]), q[k], v[k], float(payload[k])))
+        for k in np.flatnonzero(best_slack < 0.0):
+            to_decide.append((q[k], v[k], payload[k], estimate[k]))
         keep = np.argsort(best_slack)[:lp_checks]
-        kept_q.append(q[keep])
-        kept_v.append(v[keep])
-        kept_m.append(payload[keep])
-        kept_slack.append(best_slack[keep])
+        kept.extend((best_slack[k], q[k], v[k], payload[k], estimate[k]) for k in keep)
         done += count
         if progress is not None:
             progress(0.8 * done / states)
-    slack_all = np.concatenate(kept_slack)
-    order = np.argsort(slack_all)[:lp_checks]
-    q_all, v_all, m_all = (np.concatenate(x) for x in (kept_q, kept_v, kept_m))
-    candidates = {(tuple(np.round(q_all[k], 12)), tuple(np.round(v_all[k], 12)), m_all[k]):
-                  (q_all[k], v_all[k], m_all[k]) for k in order}
-    for _, q, v, m in to_decide:
-        candidates[(tuple(np.round(q, 12)), tuple(np.round(v, 12)), m)] = (q, v, m)
+    kept.sort(key=lambda item: item[0])
+    items = [item[1:] for item in kept[:lp_checks]] + to_decide
     results = []
-    items = list(candidates.values())
-    for index, (q, v, m) in enumerate(items):
+    for index, (q, v, m, estimate) in enumerate(items):
         plant = BatchPlant(model, np.array([m]))
         mass = plant.mass_matrix(q[None])[0]
-        bias = plant.bias(q[None], v[None])[0]
+        bias = plant.bias(q[None], v[None])[0] - estimate
         barrier = evaluate_barriers(q, v, model.position_lower, model.position_upper,
                                     gains.gamma, gains.beta, gains.alpha1, gains.alpha2, delta)
         slack = _lp_slack(mass, bias, barrier.accel_lower, barrier.accel_upper, umax)

@@ -55,6 +55,7 @@ from safety_filter.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 from safety_filter.qp import DEFAULT_EPS, DEFAULT_MAX_ITER, AccelerationQP
+from safety_filter.uncertainty import state_disturbance_bound
 
 GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
 _CHECK_REASONS = {
@@ -162,6 +163,16 @@ class _StepDynamics:
             return np.linalg.solve(mass, torque - bias)
         effort = torque - self._friction if self._has_friction else torque
         return np.array(self._pin.aba(self._pin_model, self._pin_data, q, v, effort))
+
+    def rigid_bias(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """``g(q) + C(q, v) v`` without friction."""
+        if self._pin is None:
+            return self.dynamics.gravity_torque(q) + self.dynamics.coriolis_torque(q, v)
+        return np.array(self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v))
+
+    def friction(self, v: np.ndarray) -> np.ndarray:
+        """The model's friction torque at ``v``."""
+        return self._viscous * v + self._coulomb * np.sign(v)
 
     def gravity(self, q: np.ndarray) -> np.ndarray:
         if self._pin is None:
@@ -337,6 +348,12 @@ class SafetyFilter:
         self.hold_damping = frozen(damping)
         self.observer_time_constant_s = float(observer_time_constant_s)
         self._observing = self.observer_time_constant_s > 0.0
+        # The range the estimate is kept in: where the certificate's authority accounts for
+        # it (docs/method.md); a second model one kilogram heavier gives the payload's share.
+        self._disturbance_parameters = certificate.disturbance_parameters
+        self._dyn_heavier = (_StepDynamics(Dynamics(model, self.payload_mass + 1.0,
+                                                    backend=backend))
+                             if self._disturbance_parameters is not None else None)
         self._disturbance = np.zeros(n)  # estimated torque beyond the model [N m]
         self._obs_v = np.zeros(n)  # velocity at the last step
         self._obs_u = np.zeros(n)  # full torque sent at the last step
@@ -428,7 +445,7 @@ class SafetyFilter:
                               self._k_margin, code1, scale1, code2, scale2, self._rows,
                               np.empty(self.n))
 
-    def _observe(self, v: np.ndarray, mass: np.ndarray, bias: np.ndarray,
+    def _observe(self, q: np.ndarray, v: np.ndarray, mass: np.ndarray, bias: np.ndarray,
                  period_s: float | None) -> None:
         """Update the disturbance estimate and take it out of ``bias`` (in place).
 
@@ -452,11 +469,23 @@ class SafetyFilter:
             if _kernels.within_box(measured, self._k_observer_plausible):
                 gain = period / (period + self.observer_time_constant_s)
                 self._disturbance += gain * (measured - self._disturbance)
-            # Never more than the torque box: beyond it the estimate is not a model error.
-            np.clip(self._disturbance, -self._k_torque_limit, self._k_torque_limit,
-                    out=self._disturbance)
+            # Never beyond what a plant of the declared set can need at this state (so the
+            # certified authority holds), and never beyond the torque box.
+            limit = self._disturbance_limit(q, v, bias)
+            np.clip(self._disturbance, -limit, limit, out=self._disturbance)
         self._obs_v[:] = v
         bias -= self._disturbance
+
+    def _disturbance_limit(self, q: np.ndarray, v: np.ndarray, bias: np.ndarray) -> np.ndarray:
+        """Bound of the model error at ``(q, v)`` [N m] (``state_disturbance_bound``)."""
+        if self._disturbance_parameters is None or self._dyn_heavier is None:
+            return self._k_torque_limit
+        constant, link_error, payload_error = self._disturbance_parameters
+        rigid = bias - self._dyn.friction(v)
+        payload = self._dyn_heavier.rigid_bias(q, v) - rigid
+        limit = state_disturbance_bound(constant, link_error, payload_error,
+                                        self._dyn.gravity(q), rigid, payload)
+        return np.minimum(limit, self._k_torque_limit)
 
     @property
     def disturbance_estimate(self) -> np.ndarray:
@@ -521,7 +550,7 @@ class SafetyFilter:
         mass, bias = self._mass, self._bias
         self._dyn.mass_and_bias(q, v, mass, bias)
         if self._observing:
-            self._observe(v, mass, bias, period_s)
+            self._observe(q, v, mass, bias, period_s)
         gravity = self._no_gravity
         if self._driver:
             gravity = self._dyn.gravity(q)

@@ -261,3 +261,140 @@ def nominal_plant(model: RobotModel, payload_mass: float) -> Plant:
     n = model.n_joints
     return Plant(model_with_inertials(model, payload_mass=payload_mass), float(payload_mass),
                  np.ones(n), np.zeros(n), 0.0, 0.0, 0)
+
+
+@dataclass(frozen=True)
+class DisturbanceBound:
+    """How much torque the arm may need beyond the filter's model, per joint and per kind.
+
+    ``static[kind]`` [N m], shape (n,), does not depend on the commanded acceleration;
+    ``inertial[kind]`` [kg m^2], shape (n, n), multiplies ``|a|``: the torque error of an
+    acceleration ``a`` is at most ``static + inertial @ |a|`` (see :func:`disturbance_bound`).
+    """
+
+    static: dict[str, np.ndarray]
+    inertial: dict[str, np.ndarray]
+
+    @property
+    def static_total(self) -> np.ndarray | float:
+        """Sum of the static parts [N m] (0 when there are none)."""
+        return np.sum(list(self.static.values()), axis=0) if self.static else 0.0
+
+    @property
+    def inertial_total(self) -> np.ndarray | float:
+        """Sum of the inertial parts [kg m^2] (0 when there are none)."""
+        return np.sum(list(self.inertial.values()), axis=0) if self.inertial else 0.0
+
+    def total(self, acceleration: np.ndarray) -> np.ndarray:
+        """Bound for accelerations up to ``acceleration`` per joint [N m]."""
+        return self.static_total + np.asarray(self.inertial_total) @ np.abs(acceleration) \
+            if self.inertial else self.static_total + np.zeros(len(acceleration))
+
+    def without(self, kind: str, static_only: bool = False) -> DisturbanceBound:
+        """The same bound with one kind left out (only its static part: ``static_only``)."""
+        return DisturbanceBound(
+            {k: v for k, v in self.static.items() if k != kind},
+            {k: v for k, v in self.inertial.items() if k != kind or static_only})
+
+    def constant_part(self, acceleration: np.ndarray) -> np.ndarray:
+        """The part of the bound that the filter does not recompute at each state [N m]:
+        everything but the static payload and link terms (see :func:`state_disturbance_bound`).
+        """
+        return self.without('payload', static_only=True).without(
+            'links', static_only=True).total(acceleration)
+
+    def by_kind(self, acceleration: np.ndarray) -> dict[str, np.ndarray]:
+        """Each kind's share of :meth:`total` [N m]."""
+        kinds = list(dict.fromkeys([*self.static, *self.inertial]))
+        n = len(acceleration)
+        return {kind: self.static.get(kind, np.zeros(n))
+                + self.inertial.get(kind, np.zeros((n, n))) @ np.abs(acceleration)
+                for kind in kinds}
+
+
+def disturbance_bound(model: RobotModel, uncertainty: UncertaintySet, *,
+                      gravity_max: np.ndarray, coriolis_max: np.ndarray,
+                      mass_max: np.ndarray, payload_gravity_max: np.ndarray,
+                      payload_coriolis_max: np.ndarray, payload_mass_max: np.ndarray,
+                      velocity_box: np.ndarray, observer_time_constant_s: float
+                      ) -> DisturbanceBound:
+    """Bound of the torque ``d`` that a plant of the set needs beyond the filter's model, and
+    of the observer's noise, over the joint box and ``velocity_box`` (``docs/method.md``).
+
+    Args:
+        gravity_max, coriolis_max, mass_max: the model's bounds of ``|g_i|``, ``|(C v)_i|``
+            [N m] and ``|M_ij|`` [kg m^2] over the boxes (``safety_filter.bounds``).
+        payload_gravity_max, payload_coriolis_max, payload_mass_max: the same for one
+            kilogram of payload.
+        velocity_box: the certified velocity box [rad/s or m/s].
+        observer_time_constant_s: the observer's time constant [s].
+
+    Kinds: ``payload`` (the mass the filter is not told: half the range, or the told
+    tolerance, times the per-kilogram bounds), ``links`` (the larger relative mass or inertia
+    error times the model's bounds: rigid-body dynamics is linear in the inertias),
+    ``centre of mass`` (each outboard link's mass, and the heaviest payload, moved by
+    ``com_error`` under gravity: ``m |g x axis| com_error``, where only the first joint's
+    axis is fixed; and the same lever on the inertia), ``friction`` (the declared spreads at
+    the velocity box), ``driver`` (relative error at the torque limit plus the offset) and
+    ``observer noise`` (``M * velocity_noise / time constant``).
+    """
+    n = model.n_joints
+    umax = np.array(model.effort_limit)
+    gravity = np.array(model.gravity)
+    g_norm = float(np.linalg.norm(gravity))
+    prismatic = np.array(model.is_prismatic, dtype=bool)
+    high = model.payload.mass_max
+    mass_error = payload_error(model, uncertainty)
+    link_error = max(uncertainty.link_mass_error, uncertainty.link_inertia_error)
+    mass = np.array(model.body_mass) * (1.0 + uncertainty.link_mass_error)
+    outboard = np.array([float(np.sum(mass[i:])) + high for i in range(n)])
+    # |g x axis| for the first joint, whose axis is fixed in the base frame; g for the others.
+    first_axis = np.array(model.joint_rotation[0]) @ np.array(model.joint_axis[0])
+    lever_factor = np.full(n, g_norm)
+    lever_factor[0] = float(np.linalg.norm(np.cross(gravity, first_axis)))
+    com_gravity = np.where(prismatic, 0.0, uncertainty.com_error * lever_factor * outboard)
+    d_lo, d_hi, c_lo, c_hi = friction_ranges(model, uncertainty)
+    d_nom, c_nom = np.array(model.viscous_friction), np.array(model.coulomb_friction)
+    friction = (np.maximum(d_hi - d_nom, d_nom - d_lo) * np.asarray(velocity_box)
+                + np.maximum(c_hi - c_nom, c_nom - c_lo))
+    driver = (uncertainty.torque_error_relative + uncertainty.torque_error_absolute) * umax
+    noise = (np.asarray(mass_max) @ np.full(n, uncertainty.velocity_noise)
+             / observer_time_constant_s if observer_time_constant_s > 0 else np.zeros(n))
+    static = {
+        'payload': mass_error * (np.asarray(payload_gravity_max)
+                                 + np.asarray(payload_coriolis_max)),
+        'links': link_error * (np.asarray(gravity_max) + np.asarray(coriolis_max)),
+        'centre of mass': com_gravity,
+        'friction': friction,
+        'driver': driver,
+        'observer noise': noise,
+    }
+    inertial = {
+        'payload': mass_error * np.asarray(payload_mass_max),
+        'links': link_error * np.asarray(mass_max),
+    }
+    return DisturbanceBound(static, inertial)
+
+
+def payload_error(model: RobotModel, uncertainty: UncertaintySet) -> float:
+    """How far [kg] the payload may be from the filter model's: half the range when the
+    filter is not told it, else the told tolerance (within the range)."""
+    low, high = model.payload.mass_min, model.payload.mass_max
+    if uncertainty.payload_told_within is None:
+        return 0.5 * (high - low)
+    return min(float(uncertainty.payload_told_within), high - low)
+
+
+def state_disturbance_bound(constant: np.ndarray, link_error: float, payload_error: float,
+                            gravity: np.ndarray, rigid_bias: np.ndarray,
+                            payload_bias: np.ndarray) -> np.ndarray:
+    """The bound of the torque the model misses at one state [N m], per joint.
+
+    ``constant``: the certificate's state-independent part; ``link_error``: the relative
+    inertia error; ``payload_error`` [kg]; ``gravity``, ``rigid_bias``: the model's ``g(q)`` and
+    ``g + C v`` at the state; ``payload_bias``: what one kilogram of payload adds to them.
+    Every kind of error is symmetric about the model, so the range is ``[-bound, bound]``.
+    """
+    coriolis = np.abs(rigid_bias - gravity)
+    return (constant + link_error * (np.abs(gravity) + coriolis)
+            + payload_error * np.abs(payload_bias))

@@ -727,7 +727,9 @@ class SafetyFilterNode(LifecycleNode):
                 u_nom = self._u_nom
             else:
                 # Never use a stale nominal: the hold command (g(q) - D v) is the nominal.
-                u_nom = filt.step(q, v, self._nan).torque
+                # (hold_torque, not a rejected step: a step would count and would restart
+                # the disturbance observer, which a replay of ~/status could not know.)
+                u_nom = filt.hold_torque(q, v)
                 hold_nominal = True
             output = filt.step(q, v, u_nom)
             code = MODE_CODES[output.mode]

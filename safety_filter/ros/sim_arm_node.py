@@ -42,7 +42,9 @@ released: the node stops publishing and :attr:`SimArmNode.finished` becomes true
 executable then exits).
 
 Parameters (read at start): ``urdf_path``, ``limits_path`` (the robot), ``payload_mass``
-[kg], ``control_rate_hz`` (1000), ``internal_rate_hz`` (0: ten times the control rate),
+[kg] (negative: the top of the payload range), ``link_mass_scale`` (1: every link mass and
+inertia as in the URDF; the demo uses 1.1 so that the arm is not the filter's model),
+``control_rate_hz`` (1000), ``internal_rate_hz`` (0: ten times the control rate),
 ``initial_positions`` (empty: the middle of each range), ``position_noise_std`` [rad],
 ``velocity_noise_std`` [rad/s], ``noise_seed``, ``latency_s``, ``command_timeout_s`` (0.1 s),
 ``gravity_convention`` (``'full'``, or ``'driver_compensated'``: the driver adds ``g(q)`` to
@@ -59,6 +61,7 @@ import time
 from collections.abc import Sequence
 from typing import Any
 
+import numpy as np
 from rclpy.clock import Clock, ClockType
 from rclpy.exceptions import ParameterUninitializedException
 from rclpy.node import Node
@@ -70,6 +73,7 @@ from std_msgs.msg import Float64MultiArray
 from safety_filter.errors import SafetyFilterError
 from safety_filter.ros._common import describe, latest_qos, load_model, spin_node, state_qos
 from safety_filter.sim_driver import GRAVITY_CONVENTIONS, SimulatedDriver
+from safety_filter.uncertainty import model_with_inertials
 
 NODE_NAME = 'sim_arm'
 COMMAND_TOPIC = 'effort_command'
@@ -93,7 +97,10 @@ class SimArmNode(Node):
         declare = self.declare_parameter
         declare('urdf_path', '', describe('path of the robot URDF'))
         declare('limits_path', '', describe('limits file (YAML) of the robot'))
-        declare('payload_mass', 0.0, describe('payload on the tip [kg]'))
+        declare('payload_mass', 0.0, describe(
+            "payload on the tip [kg]; negative: the top of the limits file's payload range"))
+        declare('link_mass_scale', 1.0, describe(
+            'every link mass and inertia times this: an arm heavier or lighter than its URDF'))
         declare('control_rate_hz', 1000.0, describe('ticks per second [Hz]'))
         declare('internal_rate_hz', 0.0, describe(
             'RK4 steps per second [Hz]; 0: ten times the control rate'))
@@ -119,6 +126,12 @@ class SimArmNode(Node):
             return self.get_parameter(name).value
 
         model = load_model(str(value('urdf_path')), str(value('limits_path')))
+        scale = float(value('link_mass_scale'))
+        if not (math.isfinite(scale) and scale > 0.0):
+            raise SafetyFilterError(f'link_mass_scale must be positive, got {scale}')
+        if scale != 1.0:
+            model = model_with_inertials(model, body_mass=np.array(model.body_mass) * scale,
+                                         body_inertia=np.array(model.body_inertia) * scale)
         convention = str(value('gravity_convention'))
         if convention not in GRAVITY_CONVENTIONS:
             raise SafetyFilterError(f'gravity_convention must be one of {GRAVITY_CONVENTIONS}')
@@ -130,7 +143,8 @@ class SimArmNode(Node):
         self._start_ns = self.get_clock().now().nanoseconds  # simulated time starts now
         self.driver = SimulatedDriver(
             model, rate, internal_rate_hz=float(value('internal_rate_hz')) or None,
-            payload_mass=float(value('payload_mass')),
+            payload_mass=(float(value('payload_mass')) if float(value('payload_mass')) >= 0.0
+                          else model.payload.mass_max),
             initial_positions=list(initial) if initial is not None else None,
             position_noise_std=float(value('position_noise_std')),
             velocity_noise_std=float(value('velocity_noise_std')),
