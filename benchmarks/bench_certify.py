@@ -9,7 +9,10 @@ Certifies each arm (default: reach7, then bench6) with the default
 :class:`safety_filter.certify.CertifySettings` and prints the time of every stage as
 certification records it (``CertificationOutcome.stage_seconds``: bounds, authority,
 sampling margin, gains, falsifier) and the total, with the outcome (certified or not, the
-condition used, the certified velocity fraction) and the falsifier's smallest slack.
+condition used, the certified velocity fraction) and the falsifier's smallest slack. Then
+the cost of robustness: each arm certified again for its declared uncertainty set (the
+defaults), a narrower set and none, with the authority and certified velocity fraction per
+joint of each.
 
 ``--quick`` uses fewer samples where that is safe (1024 bound samples refined from one start
 instead of 4096 from two, 2000 falsifier states instead of 100 000): it checks that the
@@ -42,6 +45,7 @@ except ImportError:  # run from a source checkout without installing
 from safety_filter.bounds import BoundSettings  # noqa: E402
 from safety_filter.certify import CertifySettings, certify_with_evidence  # noqa: E402
 from safety_filter.demo_arms import DEMO_ARMS, load_demo_arm  # noqa: E402
+from safety_filter.uncertainty import UncertaintySet, model_with_inertials  # noqa: E402
 
 STAGES = ('bounds', 'authority', 'sampling margin', 'gains', 'falsifier')
 
@@ -96,10 +100,41 @@ def bench_arm(name: str, settings: CertifySettings) -> dict[str, float]:
     return {**outcome.stage_seconds, 'total': total}
 
 
+UNCERTAINTY_SETS = {
+    'default': UncertaintySet(),
+    'narrower': UncertaintySet(payload_told_within=0.1, link_mass_error=0.05,
+                               link_inertia_error=0.05, com_error=0.002,
+                               viscous_friction_spread=0.01, coulomb_friction_spread=0.01,
+                               torque_error_relative=0.01, torque_error_absolute=0.002,
+                               velocity_noise=0.003),
+    'none': UncertaintySet.exact(),
+}
+
+
+def cost_of_robustness(name: str, settings: CertifySettings) -> None:
+    """Certify one arm for the default uncertainty set, a narrower one and none; print the
+    authority and the certified velocity fraction per joint for each."""
+    base = load_demo_arm(name)
+    print(f'\ncost of robustness, {name}: authority e [rad/s^2] / certified velocity '
+          'fraction per joint')
+    for label, uncertainty in UNCERTAINTY_SETS.items():
+        model = model_with_inertials(base, uncertainty=uncertainty)
+        start = time.perf_counter()
+        c = certify_with_evidence(model, settings).certificate
+        seconds = time.perf_counter() - start
+        reach = c.gamma * np.array([float(c.alpha1.value(r)) for r in model.position_range])
+        fraction = reach / np.array(model.velocity_limit)
+        print(f'  {label:<9} certified {str(c.certified):<5} ({seconds:5.1f} s): '
+              + ' '.join(f'{e:.3g}/{f:.2f}' for e, f in zip(c.authority, fraction)))
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument('--quick', action='store_true', help='far fewer samples (smoke run)')
     parser.add_argument('--arms', nargs='+', default=['reach7', 'bench6'], choices=DEMO_ARMS)
+    parser.add_argument('--no-robustness', action='store_true',
+                        help='skip the cost-of-robustness runs (three more certifications '
+                             'per arm)')
     args = parser.parse_args(argv)
     settings = quick_settings() if args.quick else CertifySettings()
     print(f'certification benchmark ({"quick" if args.quick else "default settings"}); '
@@ -107,6 +142,9 @@ def main(argv: list[str] | None = None) -> int:
           f'{os.cpu_count()} CPUs, yardstick (6x6 np.dot) {yardstick_us():.2f} us')
     for name in args.arms:
         bench_arm(name, settings)
+    if not args.no_robustness:
+        for name in args.arms:
+            cost_of_robustness(name, settings)
     return 0
 
 

@@ -208,11 +208,78 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
                            subsequent_indent='  ')
     lines += textwrap.wrap(_seconds_line(outcome.stage_seconds), TABLE_WIDTH,
                            subsequent_indent='  ')
+    model_error = format_model_error_table(cert, model)
+    if model_error:
+        lines += ['', model_error]
     if not outcome.certified and cert.reasons:
         lines.append('why not certified:')
         for k, reason in enumerate(cert.reasons, start=1):
             lines += textwrap.wrap(reason, TABLE_WIDTH, initial_indent=f'  {k}. ',
                                    subsequent_indent=' ' * (len(str(k)) + 4))
+    return '\n'.join(lines)
+
+
+MODEL_ERROR_KINDS = ('payload', 'links', 'centre of mass', 'friction', 'driver',
+                     'observer noise')
+
+
+def model_error_rows(certificate: Any, model: RobotModel) -> list[dict[str, Any]]:
+    """What the declared uncertainty costs, per joint (empty for certificates without it).
+
+    Keys: ``joint``; ``effort_limit`` [N m]; one key per kind of ``MODEL_ERROR_KINDS`` with
+    its share of the model-error torque bound [N m]; ``authority`` and
+    ``authority_without`` [rad/s^2] (at the certified velocity box, with and without the
+    uncertainty); ``velocity_percent`` and ``velocity_percent_without``: the certified velocity
+    bound over the rated one, with the uncertainty and if the arm matched its model exactly
+    (both before the sampled-data margin, each at its best velocity scale).
+    """
+    settings = certificate.settings if isinstance(certificate.settings, dict) else {}
+    by_kind = settings.get('disturbance_by_kind')
+    if not by_kind:
+        return []
+    without = settings.get('authority_without_uncertainty') or [float('nan')] * model.n_joints
+    with_v = settings.get('velocity_fraction_with_uncertainty') or [float('nan')] \
+        * model.n_joints
+    without_v = settings.get('velocity_fraction_without_uncertainty') or [float('nan')] \
+        * model.n_joints
+    rows = []
+    for i, name in enumerate(certificate.joint_names):
+        row: dict[str, Any] = {'joint': name, 'effort_limit': float(model.effort_limit[i])}
+        for kind in MODEL_ERROR_KINDS:
+            value = float(by_kind.get(kind, [0.0] * model.n_joints)[i])
+            row[kind] = value if abs(value) >= 1e-6 * row['effort_limit'] else 0.0
+        row['authority'] = float(certificate.authority[i])
+        row['authority_without'] = float(without[i])
+        row['velocity_percent'] = 100.0 * float(with_v[i])
+        row['velocity_percent_without'] = 100.0 * float(without_v[i])
+        rows.append(row)
+    return rows
+
+
+def format_model_error_table(certificate: Any, model: RobotModel) -> str:
+    """The cost of the declared uncertainty as plain text (empty when not recorded)."""
+    rows = model_error_rows(certificate, model)
+    if not rows:
+        return ''
+    width = min(max([5] + [len(row['joint']) for row in rows]), 16)
+    short = ('payld', 'links', 'com', 'frict', 'drive', 'noise')
+    header = (f'{"joint":<{width}} {"umax":>6} ' + ' '.join(f'{k:>6}' for k in short)
+              + f' {"e":>6} {"e_exact":>7} {"%v":>4} {"%v_ex":>5}')
+    lines = ['model error the certificate covers (torque bound per kind [N m]):', header,
+             '-' * len(header)]
+    for row in rows:
+        name = row['joint'] if len(row['joint']) <= width else row['joint'][:width - 1] + '~'
+        lines.append(f'{name:<{width}} {_fmt(row["effort_limit"]):>6} '
+                     + ' '.join(f'{_fmt(row[k]):>6}' for k in MODEL_ERROR_KINDS)
+                     + f' {_fmt(row["authority"]):>6} {_fmt(row["authority_without"]):>7}'
+                     f' {row["velocity_percent"]:>3.0f}% {row["velocity_percent_without"]:>4.0f}%')
+    lines += textwrap.wrap(
+        'payld: payload not told; com: centres of mass; drive: driver torque error; noise: '
+        'velocity noise through the disturbance observer. e / e_exact: authority [rad/s^2] '
+        'with the declared uncertainty and for an arm that matched its model exactly; '
+        '%v / %v_ex: the velocity bound either would certify (before the sampled-data '
+        'margin). The uncertainty set comes from the limits file (docs/limits-file.md).',
+        TABLE_WIDTH)
     return '\n'.join(lines)
 
 
@@ -537,6 +604,32 @@ def _html_page(outcome: CertificationOutcome, model: RobotModel,
         ('falsifier', falsifier_text),
         ('stage timings', _seconds_line(outcome.stage_seconds).split(': ', 1)[1]),
     ]))
+    error_rows = model_error_rows(cert, model)
+    if error_rows:
+        parts.append('<h2>Model error the certificate covers</h2>')
+        parts.append(
+            '<p>The arm is not its URDF. The limits file declares by how much (payload, link '
+            'masses and inertias, centres of mass, friction, the driver&rsquo;s torque, '
+            'measurement noise and delay); the filter&rsquo;s disturbance observer measures '
+            'the difference while it runs, and the authority below is what is left when the '
+            'observer&rsquo;s estimate sits anywhere in the range these errors allow. Torque '
+            'bound per kind [N&nbsp;m]:</p>')
+        head = ''.join(f'<th>{esc(k)}</th>' for k in MODEL_ERROR_KINDS)
+        body = []
+        for row in error_rows:
+            cells = ''.join(_cell(row[k], 3) for k in MODEL_ERROR_KINDS)
+            body.append(
+                f'<tr><td>{esc(row["joint"])}</td>{_cell(row["effort_limit"], 3)}{cells}'
+                f'{_cell(row["authority"])}{_cell(row["authority_without"])}'
+                f'<td>{row["velocity_percent"]:.0f}&nbsp;%</td>'
+                f'<td>{row["velocity_percent_without"]:.0f}&nbsp;%</td></tr>')
+        parts.append(
+            '<table><tr><th>joint</th><th>effort limit</th>' + head
+            + '<th>authority e<br>[rad/s&sup2;]</th><th>e for an exact model</th>'
+            '<th>velocity bound / rated</th><th>same, exact model</th></tr>'
+            + ''.join(body) + '</table>')
+        parts.append('<p>The velocity columns are before the sampled-data margin, each at '
+                     'its own best velocity scale.</p>')
     parts.append('<h2>Plots</h2>')
     parts.append(
         f'<figure class="wide"><img src="{esc(SUMMARY_PLOT)}" alt="authority and margin">'

@@ -96,8 +96,8 @@ class UncertaintySet:
 
     @classmethod
     def exact(cls) -> UncertaintySet:
-        """The set that holds only the nominal model (payload still unknown in its range)."""
-        return cls(link_mass_error=0.0, link_inertia_error=0.0, com_error=0.0,
+        """The set that holds only the nominal model, the filter told the payload exactly."""
+        return cls(payload_told_within=0.0, link_mass_error=0.0, link_inertia_error=0.0, com_error=0.0,
                    viscous_friction_spread=0.0, coulomb_friction_spread=0.0,
                    torque_error_relative=0.0, torque_error_absolute=0.0, position_noise=0.0,
                    velocity_noise=0.0, delay_periods=0)
@@ -179,8 +179,10 @@ def model_with_inertials(model: RobotModel, *, body_mass: np.ndarray | None = No
                          body_inertia: np.ndarray | None = None,
                          viscous_friction: np.ndarray | None = None,
                          coulomb_friction: np.ndarray | None = None,
-                         payload_mass: float | None = None) -> RobotModel:
-    """A copy of ``model`` with other link inertials, friction or a fixed payload mass.
+                         payload_mass: float | None = None,
+                         uncertainty: UncertaintySet | None = None) -> RobotModel:
+    """A copy of ``model`` with other link inertials, friction, a fixed payload mass or
+    another declared uncertainty set.
 
     The copy has the same joints, limits and payload point; its content hash differs.
     """
@@ -205,7 +207,7 @@ def model_with_inertials(model: RobotModel, *, body_mass: np.ndarray | None = No
         gravity=model.gravity, payload=payload,
         payload_point_in_body=model.payload_point_in_body,
         locked_positions=model.locked_positions, notes=model.notes,
-        uncertainty=model.uncertainty)
+        uncertainty=model.uncertainty if uncertainty is None else uncertainty)
 
 
 def friction_ranges(model: RobotModel, uncertainty: UncertaintySet

@@ -29,3 +29,13 @@ def test_bench_certify_quick_runs_and_prints_the_stages() -> None:
     assert 'planar2 (2 joints): certified True' in out, out
     for stage in ('bounds', 'authority', 'sampling margin', 'gains', 'falsifier', 'total'):
         assert out.count(f'  {stage} ') == 1, (stage, out)
+    # the cost of robustness: three uncertainty sets, each certified, and less uncertainty
+    # never certifies a slower arm (the narrower set is inside the default one)
+    fractions = {}
+    for label in ('default', 'narrower', 'none'):
+        line = next(x for x in out.splitlines() if x.strip().startswith(label))
+        assert 'certified True' in line, line
+        fractions[label] = [float(pair.split('/')[1]) for pair in line.split(':', 1)[1].split()]
+    for joint in range(2):
+        assert fractions['default'][joint] <= fractions['narrower'][joint] + 1e-9
+        assert fractions['narrower'][joint] <= fractions['none'][joint] + 1e-9
