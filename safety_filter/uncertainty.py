@@ -97,7 +97,8 @@ class UncertaintySet:
     @classmethod
     def exact(cls) -> UncertaintySet:
         """The set that holds only the nominal model, the filter told the payload exactly."""
-        return cls(payload_told_within=0.0, link_mass_error=0.0, link_inertia_error=0.0, com_error=0.0,
+        return cls(payload_told_within=0.0, link_mass_error=0.0, link_inertia_error=0.0,
+                   com_error=0.0,
                    viscous_friction_spread=0.0, coulomb_friction_spread=0.0,
                    torque_error_relative=0.0, torque_error_absolute=0.0, position_noise=0.0,
                    velocity_noise=0.0, delay_periods=0)
