@@ -121,7 +121,14 @@ def build_certificate(model: RobotModel, alpha1: ClassK | None = None) -> Certif
         payload_mass_range=(model.payload.mass_min, model.payload.mass_max),
         payload_point=tuple(float(x) for x in model.payload.point),
         model_hash=model.content_hash(), package_version='test', created='test',
-        settings={'recipe': 'test/filter_fixtures.py'}, certified=True)
+        settings={'recipe': 'test/filter_fixtures.py',
+                  # a range for the disturbance observer's estimate (docs/method.md): 5 % of
+                  # the torque box, 10 % link error, the payload not told
+                  'disturbance_constant': [float(x) for x in 0.05 * umax],
+                  'disturbance_link_error': 0.1,
+                  'disturbance_payload_error': 0.5 * (model.payload.mass_max
+                                                      - model.payload.mass_min)},
+        certified=True)
 
 
 @functools.lru_cache(maxsize=None)
