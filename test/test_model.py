@@ -106,17 +106,13 @@ BAD_URDFS = [
     ('zero-axis', mutated('<axis xyz="0 1 0"/>\n    ' + PITCH_LIMIT,
                           '<axis xyz="0 0 0"/>\n    ' + PITCH_LIMIT),
      ARM_ONLY, RobotDescriptionError, ["'pitch'", 'axis']),
-    ('moving-link-without-inertial',
-     mutated('<link name="arm">\n    <inertial>\n      <origin xyz="0.2 0 0"/>\n'
-             '      <mass value="1.5"/>\n      ' + ARM_INERTIA + '\n    </inertial>',
-             '<link name="arm">'),
-     ARM_ONLY, InvalidInertia, ["'arm'", 'pitch']),
     ('inertial-without-mass', mutated('<mass value="1.5"/>', ''), ARM_ONLY,
      RobotDescriptionError, ['mass']),
     ('inertial-without-inertia', mutated(ARM_INERTIA, ''), ARM_ONLY,
      InvalidInertia, ["'arm'", 'inertia']),
-    ('zero-mass', mutated('<mass value="1.5"/>', '<mass value="0"/>'), ARM_ONLY,
-     InvalidInertia, ["'arm'", 'mass']),
+    # Mass 0 with the arm's non-zero inertia: a massless link must have a zero inertia.
+    ('zero-mass-with-inertia', mutated('<mass value="1.5"/>', '<mass value="0"/>'), ARM_ONLY,
+     InvalidInertia, ["'arm'", 'mass is 0', 'not zero']),
     ('negative-mass', mutated('<mass value="1.5"/>', '<mass value="-1.5"/>'), ARM_ONLY,
      InvalidInertia, ["'arm'", 'mass']),
     ('nan-mass', mutated('<mass value="1.5"/>', '<mass value="nan"/>'), ARM_ONLY,
@@ -125,11 +121,11 @@ BAD_URDFS = [
      ARM_ONLY, InvalidInertia, ["'arm'", 'non-finite']),
     ('inertia-negative-moment',
      mutated(ARM_INERTIA, ARM_INERTIA.replace('ixx="0.0009"', 'ixx="-0.0009"')),
-     ARM_ONLY, InvalidInertia, ["'arm'", 'positive definite']),
+     ARM_ONLY, InvalidInertia, ["'arm'", 'positive semidefinite']),
     # Positive diagonal but indefinite: principal moments of [[1, 2], [2, 1]] are -1, 3.
     ('inertia-indefinite', mutated(ARM_INERTIA, '<inertia ixx="1" ixy="2" ixz="0" iyy="1" '
                                                 'iyz="0" izz="1"/>'),
-     ARM_ONLY, InvalidInertia, ["'arm'", 'positive definite']),
+     ARM_ONLY, InvalidInertia, ["'arm'", 'positive semidefinite']),
     # Principal moments 0.1, 0.1, 1: 0.1 + 0.1 < 1 breaks I1 + I2 >= I3 (a real body has
     # non-negative second moments along each axis -- a standard fact of rigid bodies).
     ('inertia-triangle-inequality',
@@ -181,6 +177,225 @@ def test_unknown_link_names_the_link(kwargs: dict[str, str]) -> None:
     with pytest.raises(UnknownLink) as info:
         RobotModel.from_urdf(GRIPPER3, **kwargs)
     assert info.value.link == 'hand' and 'hand' in str(info.value)
+
+
+# ---------------------------------------------------------------------- massless frames
+# Real URDFs carry massless frame links (world, base, flange, tool frames: mass 0 and zero
+# inertia, or no <inertial> at all) and mesh paths in package:// form. The URDFs below are
+# written inline for these tests.
+MASSLESS = ('<inertial><origin xyz="0 0 0"/><mass value="0"/>'
+            '<inertia ixx="0" ixy="0" ixz="0" iyy="0" iyz="0" izz="0"/></inertial>')
+UPPER = ('<inertial><origin xyz="0 0 0.15"/><mass value="2"/>'
+         '<inertia ixx="0.016" ixy="0" ixz="0" iyy="0.016" iyz="0" izz="0.002"/></inertial>')
+FORE = ('<inertial><origin xyz="0.2 0 0"/><mass value="1.2"/>'
+        '<inertia ixx="0.0006" ixy="0" ixz="0" iyy="0.0162" iyz="0" izz="0.0162"/></inertial>')
+
+
+def mesh(name: str) -> str:
+    """<visual> and <collision> with package:// meshes of a package that does not exist."""
+    return (f'<visual><geometry><mesh filename="package://no_such_pkg/meshes/{name}.dae"/>'
+            '</geometry></visual><collision><geometry><mesh '
+            f'filename="package://no_such_pkg/meshes/{name}.stl" scale="0.001 0.001 0.001"/>'
+            '</geometry></collision>')
+
+
+def framed(base: str = MASSLESS, upper: str = UPPER, fore: str = FORE,
+           flange: str = MASSLESS, elbow_axis: str = '0 1 0', meshes: bool = True) -> str:
+    """A two-joint arm between a fixed world -> base_link frame chain and a fixed
+    fore -> flange -> tool0 frame chain; the arguments are the links' <inertial> text."""
+    def visual(name: str) -> str:
+        return mesh(name) if meshes else ''
+    return f"""<?xml version="1.0"?>
+<robot name="framed">
+  <link name="world"/>
+  <joint name="world_to_base" type="fixed">
+    <parent link="world"/><child link="base_link"/><origin xyz="0 0 0.5"/>
+  </joint>
+  <link name="base_link">{base}{visual('base')}</link>
+  <joint name="shoulder" type="revolute">
+    <parent link="base_link"/><child link="upper"/><origin xyz="0 0 0.1"/>
+    <axis xyz="0 0 1"/><limit lower="-2.5" upper="2.5" velocity="2" effort="50"/>
+  </joint>
+  <link name="upper">{upper}{visual('upper')}</link>
+  <joint name="elbow" type="revolute">
+    <parent link="upper"/><child link="fore"/><origin xyz="0 0 0.3"/>
+    <axis xyz="{elbow_axis}"/><limit lower="-2" upper="2" velocity="2" effort="30"/>
+  </joint>
+  <link name="fore">{fore}{visual('fore')}</link>
+  <joint name="fore_to_flange" type="fixed">
+    <parent link="fore"/><child link="flange"/><origin xyz="0.4 0 0" rpy="0 1.5707963 0"/>
+  </joint>
+  <link name="flange">{flange}{visual('flange')}</link>
+  <joint name="flange_to_tool" type="fixed">
+    <parent link="flange"/><child link="tool0"/><origin xyz="0 0 0.05"/>
+  </joint>
+  <link name="tool0"/>
+</robot>
+"""
+
+
+def assert_mass_matrix_matches_pinocchio(model: RobotModel, text: str,
+                                         rng: np.random.Generator) -> None:
+    """M(q) and g(q) of the package equal Pinocchio's CRBA and RNEA (pin.crba via
+    conftest.pinocchio_reference, built with pin.buildModelFromXML on the same URDF)."""
+    reference = pinocchio_reference(text)
+    assert reference.joint_names == model.joint_names
+    dynamics = Dynamics(model, backend='numpy')
+    for q in rng.uniform(model.position_lower, model.position_upper, (5, model.n_joints)):
+        mass_matrix = dynamics.mass_matrix(q)
+        assert relative_error(mass_matrix, reference.mass_matrix(q)) < 1e-9
+        assert relative_error(dynamics.gravity_torque(q), reference.gravity(q),
+                              scale=1.0) < 1e-9
+        assert np.linalg.eigvalsh(mass_matrix)[0] > 0.0
+
+
+def test_massless_frame_chain_loads_and_matches_pinocchio() -> None:
+    """world -> base_link (massless) -> two real links -> flange (massless) -> tool0 (no
+    <inertial>), with package:// meshes: the chain is the two joints, the frames add no
+    mass, and the mass matrix equals Pinocchio's CRBA on the same URDF text."""
+    text = framed()
+    model = RobotModel.from_urdf(text, tip_link='tool0')
+    assert model.joint_names == ('shoulder', 'elbow')
+    assert (model.base_link, model.tip_link) == ('world', 'tool0')
+    masses = {link.get('name'): float(link.find('inertial/mass').get('value'))
+              for link in urdf_tree(text).iter('link') if link.find('inertial') is not None}
+    assert masses['base_link'] == masses['flange'] == 0.0
+    assert list(model.body_mass) == [masses['upper'], masses['fore']]
+    assert_mass_matrix_matches_pinocchio(model, text, np.random.default_rng(3))
+
+
+def test_links_without_inertial_equal_massless_links() -> None:
+    """A frame link without <inertial> and one with mass 0 and zero inertia load to the
+    same model (same content hash)."""
+    massless = RobotModel.from_urdf(framed())
+    bare = RobotModel.from_urdf(framed(base='', flange=''))
+    assert bare.content_hash() == massless.content_hash()
+
+
+def test_package_mesh_paths_are_ignored() -> None:
+    """Meshes of a package that is not installed are neither resolved nor needed."""
+    with_meshes = RobotModel.from_urdf(framed(meshes=True))
+    without = RobotModel.from_urdf(framed(meshes=False))
+    assert with_meshes.content_hash() == without.content_hash()
+
+
+def test_point_masses_match_the_double_pendulum() -> None:
+    """Links with mass and zero inertia (point masses at the link ends) are valid. Their
+    mass matrix is the double pendulum's (Spong, Hutchinson, Vidyasagar, *Robot Modeling
+    and Control*, 2006, planar elbow arm of ch. 7 with I1 = I2 = 0, lc_i = l_i):
+    M11 = (m1 + m2) l1^2 + m2 l2^2 + 2 m2 l1 l2 cos q2, M12 = m2 l2^2 + m2 l1 l2 cos q2,
+    M22 = m2 l2^2."""
+    m1, m2, l1, l2 = 1.5, 0.7, 0.4, 0.3
+    point = ('<inertial><origin xyz="{l} 0 0"/><mass value="{m}"/>'
+             '<inertia ixx="0" ixy="0" ixz="0" iyy="0" iyz="0" izz="0"/></inertial>')
+    limit = '<limit lower="-3" upper="3" velocity="2" effort="20"/>'
+    text = f"""<robot name="points">
+  <link name="base"/>
+  <joint name="j1" type="revolute"><parent link="base"/><child link="l1"/>
+    <axis xyz="0 0 1"/>{limit}</joint>
+  <link name="l1">{point.format(l=l1, m=m1)}</link>
+  <joint name="j2" type="revolute"><parent link="l1"/><child link="l2"/>
+    <origin xyz="{l1} 0 0"/><axis xyz="0 0 1"/>{limit}</joint>
+  <link name="l2">{point.format(l=l2, m=m2)}</link>
+</robot>"""
+    model = RobotModel.from_urdf(text)
+    assert np.max(np.abs(model.body_inertia)) < 1e-15  # zero up to rounding
+    dynamics = Dynamics(model, backend='numpy')
+    for q2 in (-2.0, 0.0, 0.9):
+        c2 = math.cos(q2)
+        off_diagonal = m2 * l2**2 + m2 * l1 * l2 * c2
+        expected = np.array([
+            [(m1 + m2) * l1**2 + m2 * l2**2 + 2 * m2 * l1 * l2 * c2, off_diagonal],
+            [off_diagonal, m2 * l2**2]])
+        assert relative_error(dynamics.mass_matrix(np.array([0.3, q2])), expected) < 1e-12
+    assert_mass_matrix_matches_pinocchio(model, text, np.random.default_rng(4))
+
+
+def gimbal_urdf(kind: str, second_axis: str, second_xyz: str = '0 0 0') -> str:
+    """Two joints of ``kind`` with a massless link between them; the second moves a box."""
+    limit = '<limit lower="-1" upper="1" velocity="1" effort="40"/>'
+    return f"""<robot name="gimbal">
+  <link name="base"/>
+  <joint name="first" type="{kind}"><parent link="base"/><child link="between"/>
+    <origin xyz="0 0 0.2"/><axis xyz="1 0 0"/>{limit}</joint>
+  <link name="between">{MASSLESS}</link>
+  <joint name="second" type="{kind}"><parent link="between"/><child link="body"/>
+    <origin xyz="{second_xyz}"/><axis xyz="{second_axis}"/>{limit}</joint>
+  <link name="body">{FORE}</link>
+</robot>"""
+
+
+@pytest.mark.parametrize('kind', ['revolute', 'prismatic'])
+def test_massless_link_between_independent_joints_is_accepted(kind: str) -> None:
+    """A massless link between two joints with independent motions (a gimbal, a gantry)
+    is valid: the outer body's inertia sees both joints. Checked against Pinocchio's CRBA,
+    and the mass matrix is positive definite."""
+    text = gimbal_urdf(kind, '0 1 0')
+    model = RobotModel.from_urdf(text)
+    assert list(model.body_mass) == [0.0, 1.2]
+    assert_mass_matrix_matches_pinocchio(model, text, np.random.default_rng(5))
+
+
+# (id, URDF text, the link and the joint the error must name)
+POINT_ON_AXIS = ('<inertial><origin xyz="0 0.1 0"/><mass value="1"/>'
+                 '<inertia ixx="0" ixy="0" ixz="0" iyy="0" iyz="0" izz="0"/></inertial>')
+JOINTS_MOVING_NOTHING = [
+    ('tip-link-massless', framed(fore=MASSLESS), 'fore', 'elbow'),
+    ('tip-link-without-inertial', framed(fore=''), 'fore', 'elbow'),
+    # The outer body has inertia about the shoulder axis, but with the massless upper link
+    # between two coaxial joints, qd = (1, -1) moves nothing: M is singular.
+    ('coaxial-joints-massless-between', framed(upper=MASSLESS, elbow_axis='0 0 1'),
+     'upper', 'shoulder'),
+    # A point mass on the elbow axis has mass but no inertia about that axis.
+    ('point-mass-on-the-axis', framed(fore=POINT_ON_AXIS), 'fore', 'elbow'),
+    ('parallel-slides-massless-between', gimbal_urdf('prismatic', '1 0 0'),
+     'between', 'first'),
+    ('coaxial-revolutes-massless-between', gimbal_urdf('revolute', '1 0 0', '0.3 0 0'),
+     'between', 'first'),
+]
+
+
+@pytest.mark.parametrize('text, link, joint',
+                         [pytest.param(*case[1:], id=case[0]) for case in JOINTS_MOVING_NOTHING])
+def test_joint_moving_nothing_is_refused(text: str, link: str, joint: str) -> None:
+    with pytest.raises(InvalidInertia) as info:
+        RobotModel.from_urdf(text)
+    assert info.value.link == link
+    assert f'{link!r}' in str(info.value) and f'joint {joint!r}' in str(info.value)
+    assert 'singular' in str(info.value)
+
+
+def inertial(mass: str, inertia: str = 'ixx="0" ixy="0" ixz="0" iyy="0" iyz="0" izz="0"'
+             ) -> str:
+    return f'<inertial><mass value="{mass}"/><inertia {inertia}/></inertial>'
+
+
+# Inconsistent inertials on the frame links are still errors that name the link, whether
+# the link moves (flange) or is fixed to the world (base_link).
+BAD_FRAME_INERTIALS = [
+    ('negative-mass', {'flange': inertial('-0.1')}, 'flange', 'mass'),
+    ('nan-mass', {'base': inertial('nan')}, 'base_link', 'mass'),
+    ('nan-inertia', {'flange': inertial('0.1', 'ixx="nan" ixy="0" ixz="0" iyy="0" iyz="0" '
+                                        'izz="0"')}, 'flange', 'non-finite'),
+    ('massless-with-inertia', {'flange': inertial('0', 'ixx="1e-6" ixy="0" ixz="0" '
+                                                  'iyy="1e-6" iyz="0" izz="1e-6"')},
+     'flange', 'not zero'),
+    ('not-psd', {'base': inertial('1', 'ixx="0.01" ixy="0" ixz="0" iyy="0.01" iyz="0" '
+                                  'izz="-0.001"')}, 'base_link', 'positive semidefinite'),
+    ('triangle-inequality', {'flange': inertial('0.5', 'ixx="0.001" ixy="0" ixz="0" '
+                                                'iyy="0.001" iyz="0" izz="0.01"')},
+     'flange', 'triangle'),
+]
+
+
+@pytest.mark.parametrize('parts, link, fragment',
+                         [pytest.param(*case[1:], id=case[0]) for case in BAD_FRAME_INERTIALS])
+def test_inconsistent_frame_inertial_is_refused(parts: dict[str, str], link: str,
+                                                fragment: str) -> None:
+    with pytest.raises(InvalidInertia) as info:
+        RobotModel.from_urdf(framed(**parts))
+    assert info.value.link == link
+    assert f'{link!r}' in str(info.value) and fragment in str(info.value)
 
 
 # ---------------------------------------------------------------------- bad chain selections
