@@ -7,8 +7,10 @@ or a URDF with an optional limits file and chain selection).
 from __future__ import annotations
 
 import argparse
+import os
 import re
 import sys
+import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -21,6 +23,7 @@ from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 
 if TYPE_CHECKING:
+    from safety_filter.certificate import Certificate
     from safety_filter.certify import CertifySettings
 
 EXIT_OK = 0
@@ -137,6 +140,34 @@ class _ProgressBar:
             self._bar.close()
 
 
+def failed_attempt_path(output: Path) -> Path:
+    """Where ``certify`` writes a failed attempt for ``--output`` (``<stem>.failed.yaml``)."""
+    return output.with_name(f'{output.stem}.failed{output.suffix or ".yaml"}')
+
+
+def _save_atomically(certificate: Certificate, path: Path) -> Path:
+    """Write ``certificate`` to a temporary file in ``path``'s folder, then rename it over
+    ``path`` (``os.replace``): readers see the old file or the new one, never a partial one."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    if path.exists():
+        mode = path.stat().st_mode & 0o777
+    else:
+        umask = os.umask(0)
+        os.umask(umask)
+        mode = 0o666 & ~umask
+    handle, temporary = tempfile.mkstemp(dir=path.parent, prefix=f'.{path.name}.',
+                                         suffix='.tmp')
+    os.close(handle)
+    try:
+        certificate.save(temporary)
+        os.chmod(temporary, mode)
+        os.replace(temporary, path)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+    return path
+
+
 def _command_certify(args: argparse.Namespace) -> int:
     from safety_filter.certify import certify_with_evidence
     from safety_filter.certify_report import format_joint_table, write_report
@@ -147,10 +178,6 @@ def _command_certify(args: argparse.Namespace) -> int:
     output = Path(args.output) if args.output else Path(default_name)
     if output.is_dir():
         raise SafetyFilterError(f'--output {output} is a folder; give the file to write')
-    report_dir = None
-    if not args.no_report:
-        report_dir = (Path(args.report_dir) if args.report_dir
-                      else output.parent / f'{output.stem}_report')
     bar = _ProgressBar(enabled=not args.quiet)
     try:
         outcome = certify_with_evidence(model, settings, progress=bar)
@@ -166,13 +193,25 @@ def _command_certify(args: argparse.Namespace) -> int:
         print('\n'.join(lines))
     else:
         print(table)
+    # Only a certified certificate goes to --output; a failed attempt goes next to it, so
+    # that it never replaces a good certificate (nor its default report folder).
+    target = output if outcome.certified else failed_attempt_path(output)
+    report_dir = None
+    if not args.no_report:
+        report_dir = (Path(args.report_dir) if args.report_dir
+                      else target.parent / f'{target.stem}_report')
     try:
-        written = certificate.save(output)
+        written = _save_atomically(certificate, target)
         page = write_report(outcome, model, report_dir) if report_dir is not None else None
     except OSError as err:
         raise SafetyFilterError(f'cannot write the results: {err}') from err
-    state = 'certified: true' if outcome.certified else 'certified: false (the filter refuses it)'
-    print(f'\ncertificate ({state}): {written.resolve()}')
+    if outcome.certified:
+        print(f'\ncertificate (certified: true): {written.resolve()}')
+    else:
+        kept = ('left untouched' if output.exists() else 'not written')
+        print(f'\nfailed attempt (certified: false, the filter refuses it): '
+              f'{written.resolve()}\n{output} {kept}: certify writes it only when the arm is '
+              'certified')
     if page is not None:
         print(f'report: {page.resolve()}')
     return EXIT_OK if outcome.certified else EXIT_NOT_CERTIFIED
@@ -185,15 +224,18 @@ def _add_certify_parser(commands: argparse._SubParsersAction) -> None:
         'certify', help='certify barrier gains for a robot; write the parameter file and a '
         'report', description='Certify per-joint barrier gains for which the safety QP is '
         'feasible everywhere in the safe set, write them as a ROS 2 parameter file and write '
-        'a report for the engineer. Exit code 0: certified, 3: not certifiable (the file is '
-        'written with certified: false and the reasons), 2: bad input.')
+        'a report for the engineer. The file is replaced atomically, and only by a certified '
+        'result: a failed attempt is written to <output stem>.failed.yaml (certified: false '
+        'and the reasons, report in <output stem>.failed_report) and leaves --output as it '
+        'was. Exit code 0: certified, 3: not certifiable, 2: bad input.')
     add_robot_arguments(certify)
     files = certify.add_argument_group('output')
     files.add_argument('--output', metavar='PATH',
                        help='parameter file to write (default: <robot name>_certificate.yaml '
                        'in the current folder)')
     files.add_argument('--report-dir', metavar='DIR',
-                       help='report folder (default: <output stem>_report next to the output)')
+                       help='report folder (default: <output stem>_report next to the output, '
+                       '<output stem>.failed_report for a failed attempt)')
     files.add_argument('--no-report', action='store_true', help='do not write the report')
     files.add_argument('--quiet', action='store_true',
                        help='no progress bar and no table: the verdict, reasons and files only')

@@ -56,10 +56,13 @@ def test_torque_below_gravity_load_exits_3_and_says_why(tmp_path, capsys, weak_l
     assert "joint 'shoulder'" in text
     assert float(text.split('short by ')[1].split()[0]) > 0.0
     model = RobotModel.from_urdf(urdf, limits=weak_limits)
-    certificate = Certificate.load(output, model)
+    assert not output.exists()  # --output only ever receives a certified certificate
+    failed = tmp_path / 'weak.failed.yaml'
+    assert str(failed.resolve()) in captured.out
+    certificate = Certificate.load(failed, model)
     assert not certificate.certified
     assert any('shoulder' in reason for reason in certificate.reasons)
-    assert (tmp_path / 'weak_report' / 'certificate_report.html').is_file()
+    assert (tmp_path / 'weak.failed_report' / 'certificate_report.html').is_file()
 
 
 def test_quiet_and_no_report_still_give_the_reasons(tmp_path, capsys, weak_limits,
@@ -73,7 +76,63 @@ def test_quiet_and_no_report_still_give_the_reasons(tmp_path, capsys, weak_limit
     assert 'verdict: NOT CERTIFIED' in captured.out and 'shoulder' in captured.out
     assert 'gamma*' not in captured.out  # no table
     written = sorted(p.name for p in tmp_path.iterdir())
-    assert written == ['planar2_certificate.yaml', 'weak_limits.yaml']  # default name, no report
+    # The failed attempt beside the default name, no report.
+    assert written == ['planar2_certificate.failed.yaml', 'weak_limits.yaml']
+
+
+def test_failed_certify_leaves_a_good_certificate_untouched(tmp_path, capsys,
+                                                           weak_limits) -> None:
+    """A certified file at --output survives a failed run over the same path byte for byte,
+    with its report; the failed attempt and its report go next to it, and the output says
+    so. A later certified run replaces the file atomically (no temporary file is left)."""
+    output = tmp_path / 'arm.yaml'
+    assert main(['certify', '--demo', 'planar2', *FAST, '--output', str(output)]) == EXIT_OK
+    good = output.read_bytes()
+    report = tmp_path / 'arm_report' / 'certificate_report.json'
+    good_report = report.read_bytes()
+    capsys.readouterr()
+
+    code = main(['certify', '--urdf', str(demo_arm_files('planar2')[0]), '--limits',
+                 str(weak_limits), *FAST, '--output', str(output)])
+    captured = capsys.readouterr()
+    assert code == EXIT_NOT_CERTIFIED
+    assert output.read_bytes() == good
+    assert report.read_bytes() == good_report
+    assert Certificate.load(output, load_demo_arm('planar2')).certified
+    failed = tmp_path / 'arm.failed.yaml'
+    assert not yaml.safe_load(failed.read_text(encoding='utf-8'))['safety_filter'][
+        'ros__parameters']['certified']
+    assert (tmp_path / 'arm.failed_report' / 'certificate_report.html').is_file()
+    assert str(failed.resolve()) in captured.out
+    assert f'{output} left untouched' in captured.out
+
+    output.write_text('stale\n', encoding='utf-8')
+    output.chmod(0o640)
+    assert main(['certify', '--demo', 'planar2', *FAST, '--output', str(output),
+                 '--no-report']) == EXIT_OK
+    assert Certificate.load(output, load_demo_arm('planar2')).certified
+    assert output.stat().st_mode & 0o777 == 0o640  # the replaced file keeps its mode
+    assert not [p.name for p in tmp_path.iterdir() if p.name.endswith('.tmp')]
+
+
+def test_interrupted_write_keeps_the_old_file(tmp_path, capsys, monkeypatch) -> None:
+    """A write that fails half-way (here a disk-full error after some bytes) leaves the
+    previous file at --output and no temporary file behind: the new one is written to a
+    temporary file in the same folder and renamed over the old one only when complete."""
+    output = tmp_path / 'arm.yaml'
+    output.write_text('previous certificate\n', encoding='utf-8')
+
+    def partial_save(self, path, node_name='safety_filter'):
+        Path(path).write_text('# safety_filter certificate: trunc', encoding='utf-8')
+        raise OSError(28, 'No space left on device')
+
+    monkeypatch.setattr(Certificate, 'save', partial_save)
+    code = main(['certify', '--demo', 'planar2', *FAST, '--output', str(output),
+                 '--no-report', '--quiet'])
+    assert code == EXIT_BAD_INPUT
+    assert 'No space left on device' in capsys.readouterr().err
+    assert output.read_text(encoding='utf-8') == 'previous certificate\n'
+    assert sorted(p.name for p in tmp_path.iterdir()) == ['arm.yaml']
 
 
 def test_missing_urdf_exits_2(tmp_path, capsys) -> None:
