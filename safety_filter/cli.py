@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from safety_filter._version import __version__
 from safety_filter.demo_arms import DEMO_ARMS, load_demo_arm
 from safety_filter.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
@@ -338,6 +339,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog='safety-filter',
         description='Certified barrier safety filter for torque-controlled arms. '
         + SAFETY_NOTICE)
+    parser.add_argument('--version', action='version', version=f'%(prog)s {__version__}',
+                        help='print the package version and exit')
     commands = parser.add_subparsers(dest='command', required=True)
     inspect = commands.add_parser(
         'inspect', help='load a robot and print its chain, limits and dynamics at a few states')
