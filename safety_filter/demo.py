@@ -293,8 +293,7 @@ def run_demo(options: DemoOptions) -> DemoResult:
     falsifier_states = certificate.settings.get('certify', {}).get('falsifier_states', '?')
     internal_rate = float(sim_parameters.get('internal_rate_hz', 0.0)) or 10 * control_rate
     facts = [
-        ('arm', f'{model.name} ({model.n_joints} joints), payload '
-                f'{float(sim_parameters.get("payload_mass", 0.0)):g} kg'),
+        ('arm', _simulated_arm_text(model, sim_parameters, parameters.get('safety_filter', {}))),
         ('certificate', f'{certificate_path} (id {certificate.certificate_id}, '
                         f'{"reused" if reused else "new"}): {note}'),
         ('certification settings',
@@ -325,3 +324,20 @@ def run_demo(options: DemoOptions) -> DemoResult:
         output / 'report', model, certificate, pairs, schedule, facts, offsets,
         '../certificate_report/certificate_report.html' if certificate_page.is_file() else None)
     return DemoResult(certificate_path, reused, runs, violations, report, summary, wall)
+
+
+def _simulated_arm_text(model: Any, sim: dict[str, Any], filter_parameters: dict[str, Any]
+                        ) -> str:
+    """How the simulated arm differs from the filter's model, in words."""
+    payload = float(sim.get('payload_mass', 0.0))
+    if payload < 0.0:
+        payload = model.payload.mass_max
+    scale = float(sim.get('link_mass_scale', 1.0))
+    told = float(filter_parameters.get('payload_mass', -1.0))
+    filter_text = (f'the filter is told {told:g} kg' if told >= 0.0 else
+                   'not told to the filter, whose model carries '
+                   f'{0.5 * (model.payload.mass_min + model.payload.mass_max):g} kg')
+    links = ('links as in the URDF' if scale == 1.0 else
+             f'every link mass and inertia {100 * (scale - 1):+.0f} % off the URDF')
+    return (f'{model.name} ({model.n_joints} joints), payload {payload:g} kg ({filter_text}), '
+            f'{links}')
