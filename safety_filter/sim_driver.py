@@ -8,9 +8,10 @@ what a torque driver adds around the arm, one control period per :meth:`Simulate
   still (as a driver keeps the brakes on until it is commanded); the clock runs.
 * **Saturation.** The applied torque is the command clipped to the effort limits (after
   adding ``g(q)`` when the driver compensates gravity itself).
-* **Safe stop on a stale command.** A command older than ``command_timeout_s`` of simulated
-  time is not used: the driver applies zero torque (safe torque off), so the arm then moves
-  under gravity alone, like a real arm with torque off and no brakes, until commands resume.
+* **Command timeout: zero torque.** A command older than ``command_timeout_s`` of simulated
+  time is not used: the driver applies zero torque, so the arm then moves under gravity
+  alone, like a real arm with torque off and no brakes, until commands resume. (A plain
+  timeout of the simulation, not a safety-rated drive function.)
 * **Measurement.** The published state can carry Gaussian noise (seeded) and a latency: the
   state measured ``latency_s`` ago is published, with its own time stamp.
 

@@ -2,7 +2,7 @@
 
 The accelerated simulator is checked against the package's reference simulator
 (:class:`safety_filter.simulate.ArmSimulator`, itself checked against SciPy's ``solve_ivp``
-in test_simulate.py); the driver's rules (brakes, saturation, safe stop, latency, noise)
+in test_simulate.py); the driver's rules (brakes, saturation, command timeout, latency, noise)
 against hand-computed expectations.
 """
 
@@ -86,7 +86,7 @@ def test_stale_command_gives_zero_torque(model) -> None:
                                                          model.effort_limit))
     assert driver.stale_ticks == 0
     for _ in range(3):
-        assert np.all(driver.tick().effort == 0.0)  # safe torque off
+        assert np.all(driver.tick().effort == 0.0)  # command timeout: zero torque
     assert driver.stale_ticks == 3
     driver.command(hold)  # commands resume
     assert np.any(driver.tick().effort != 0.0)

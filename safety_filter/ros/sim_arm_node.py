@@ -12,8 +12,8 @@ Topics
   them to the effort limits; a command of the wrong length or with non-finite values is
   ignored (counted). Until the first valid command the arm is held still (brakes on) while
   the clock runs. A command older than ``command_timeout_s`` (simulated time) is not used:
-  the driver applies **zero torque** (safe torque off), so the arm moves under gravity alone,
-  as a real arm with torque off and no brakes would, until commands resume.
+  on this command timeout the driver applies **zero torque**, so the arm moves under gravity
+  alone, as a real arm with torque off and no brakes would, until commands resume.
 * ``joint_states`` (published, ``sensor_msgs/JointState``, once per control period): names,
   position, velocity and ``effort`` = the torque applied over the last period (saturated).
   Optional Gaussian noise (``position_noise_std``, ``velocity_noise_std``, seeded by
@@ -111,7 +111,7 @@ class SimArmNode(Node):
         declare('noise_seed', 0, describe('seed of the noise'))
         declare('latency_s', 0.0, describe('age of the published state [s]'))
         declare('command_timeout_s', 0.1, describe(
-            'older commands give zero torque (safe torque off) [s of simulated time]'))
+            'command timeout: older commands give zero torque [s of simulated time]'))
         declare('gravity_convention', 'full', describe(
             "'full' or 'driver_compensated' (the driver adds g(q) to each command)"))
         declare('lockstep', False, describe(
