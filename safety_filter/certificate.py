@@ -29,7 +29,7 @@ from safety_filter.uncertainty import UncertaintySet
 FILTER_NODE_NAME = 'safety_filter'
 CERTIFICATE_FORMAT = 'safety_filter/certificate-1'
 CONDITIONS = ('acceleration_authority', 'torque_coupling')
-DEFAULT_OBSERVER_PERIODS = 20.0  # the disturbance observer's time constant [control periods]
+DEFAULT_OBSERVER_PERIODS = 20.0  # the observer's slowest time constant [control periods]
 
 
 class CertificateError(SafetyFilterError):
@@ -148,14 +148,16 @@ class Certificate:
         return 1.0 / self.control_rate_hz
 
     @property
-    def observer_time_constant_s(self) -> float:
-        """Time constant of the filter's disturbance observer [s] (``docs/method.md``).
-
-        Certificates from before the observer existed get twenty control periods.
-        """
-        value = self.settings.get('observer_time_constant_s')
-        return (DEFAULT_OBSERVER_PERIODS / self.control_rate_hz if value is None
-                else float(value))
+    def observer_time_constants_s(self) -> np.ndarray:
+        """Time constants of the filter's disturbance observer per joint [s]
+        (``docs/method.md``). Certificates from before they were chosen per joint give their
+        one value to every joint; older ones twenty control periods."""
+        values = self.settings.get('observer_time_constants_s')
+        if values is None:
+            single = self.settings.get('observer_time_constant_s')
+            values = (DEFAULT_OBSERVER_PERIODS / self.control_rate_hz if single is None
+                      else float(single))
+        return np.broadcast_to(np.asarray(values, dtype=float), (self.n_joints,)).copy()
 
     @property
     def disturbance_parameters(self) -> tuple[np.ndarray, float, float] | None:

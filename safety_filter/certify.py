@@ -63,8 +63,10 @@ class CertifySettings:
         falsifier_states: states the falsifier samples (0 skips it: not certified then).
         bounds: settings of the dynamics bounds.
         seed: random seed of every sampling stage.
-        observer_periods: time constant of the filter's disturbance observer, in control
-            periods (recorded; the filter uses it).
+        observer_periods: the slowest time constant of the filter's disturbance observer, in
+            control periods; observer_noise_share: each joint's time constant is the fastest
+            (at least two periods) whose velocity noise costs at most this share of the
+            joint's torque limit (recorded per joint; the filter uses them).
     """
 
     alpha1: ClassK = ClassK('linear')
@@ -83,6 +85,7 @@ class CertifySettings:
     bounds: BoundSettings = field(default_factory=BoundSettings)
     seed: int = 0
     observer_periods: float = DEFAULT_OBSERVER_PERIODS
+    observer_noise_share: float = 0.01
 
     def __post_init__(self) -> None:
         if self.alpha1.kind not in ALPHA1_KINDS:
@@ -97,8 +100,10 @@ class CertifySettings:
             raise SafetyFilterError('control_rate_hz must be > 0 and sampling_factor >= 1')
         if self.condition not in ('auto', 'acceleration_authority', 'torque_coupling'):
             raise SafetyFilterError(f'unknown condition {self.condition!r}')
-        if not (np.isfinite(self.observer_periods) and self.observer_periods >= 0.0):
-            raise SafetyFilterError('observer_periods must be finite and >= 0')
+        if not (np.isfinite(self.observer_periods) and self.observer_periods >= 2.0):
+            raise SafetyFilterError('observer_periods must be finite and >= 2')
+        if not (np.isfinite(self.observer_noise_share) and self.observer_noise_share > 0.0):
+            raise SafetyFilterError('observer_noise_share must be finite and > 0')
 
     @property
     def hold_period_s(self) -> float:
@@ -258,7 +263,20 @@ def model_error_bound(model: RobotModel, bounds: DynamicsBounds, velocity_box: n
         payload_gravity_max=bounds.payload_gravity_max,
         payload_coriolis_max=coriolis(bounds.payload_christoffel_max),
         payload_mass_max=bounds.payload_mass_max, velocity_box=velocity_box,
-        observer_time_constant_s=settings.observer_periods / settings.control_rate_hz)
+        observer_time_constant_s=observer_time_constants(model, bounds, settings))
+
+
+def observer_time_constants(model: RobotModel, bounds: DynamicsBounds,
+                            settings: CertifySettings) -> np.ndarray:
+    """The disturbance observer's time constant per joint [s]: the fastest whose velocity
+    noise ``Mbar_ii v_noise / tau`` costs at most ``observer_noise_share`` of the joint's
+    torque limit, between two control periods and ``observer_periods``. A light joint gets a
+    fast observer: it feels a model error most, in acceleration, and its noise costs little
+    torque."""
+    period = 1.0 / settings.control_rate_hz
+    noise = model.uncertainty.velocity_noise * np.diag(bounds.mass_max)
+    wanted = noise / (settings.observer_noise_share * np.array(model.effort_limit))
+    return np.clip(wanted, 2.0 * period, settings.observer_periods * period)
 
 
 def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
@@ -475,7 +493,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'torque_coupling_rho': _plain(bounds.coupling_min),
         'notes': notes,
         'uncertainty': model.uncertainty.record(),
-        'observer_time_constant_s': settings.observer_periods / settings.control_rate_hz,
+        'observer_time_constants_s': _plain(observer_time_constants(model, bounds, settings)),
         **_model_error_record(model, bounds, settings, design or last_design),
     }
     certificate = Certificate(

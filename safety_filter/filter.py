@@ -20,10 +20,12 @@ call (no ROS imports here). One :meth:`SafetyFilter.step` (METHOD sections 3, 4.
    ``u* - g(q)``. The torque box ``|u| <= umax`` always applies to the full torque.
 3. **Barriers** at ``(q, v)`` with the certificate's gains give the acceleration bounds
    ``An <= a <= Ap`` (tightened by the certificate's sampling margin).
-4. **Outside the safe set S** (some barrier negative) the QP may be infeasible: the
-   constructive recovery ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))`` pushes
-   back toward S within the usable authority ``e = authority - sampling_margin``; mode
-   ``'recovering'``. The nominal is never passed through.
+4. **Outside the safe set S** (some barrier negative) the same bounds ask for a return to S at
+   the barrier rate (``db/dt >= -beta alpha2(b) > 0``). The QP meets them with any torque in
+   the box; where it cannot, the constructive recovery
+   ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))`` pushes back toward S within the
+   usable authority ``e = authority - sampling_margin``; mode ``'recovering'``. The nominal
+   is used only when it meets those bounds itself.
 5. **Inside S** the QP (:mod:`safety_filter.qp`) is solved; its answer is used only if OSQP
    says solved and the answer passes an explicit constraint check. Otherwise the same
    constructive formula (feasible by construction under the acceleration-authority
@@ -65,6 +67,7 @@ _CHECK_REASONS = {
 }
 HOLD_TIME_CONSTANT_PERIODS = 20.0  # default hold damping: velocity time constant [periods]
 CHECK_TOLERANCE = 1e-6  # relative tolerance of the answer check (times max(1, scale))
+MAX_OBSERVER_GAIN = 1.0 / 3.0  # the disturbance observer's largest update per step
 
 
 class FilterMode(str, Enum):
@@ -153,8 +156,10 @@ class _StepDynamics:
             _kernels.add_friction(v, self._viscous, self._coulomb, self._friction, bias_out)
 
     def nominal_acceleration(self, q: np.ndarray, v: np.ndarray, torque: np.ndarray,
-                             mass: np.ndarray, bias: np.ndarray) -> np.ndarray:
-        """``M^-1 (torque - h)`` at the state of the last :meth:`mass_and_bias` call.
+                             mass: np.ndarray, bias: np.ndarray,
+                             disturbance: np.ndarray | None = None) -> np.ndarray:
+        """``M^-1 (torque - h)`` at the state of the last :meth:`mass_and_bias` call (``bias``
+        already net of ``disturbance``, which the Pinocchio path adds back to the torque).
 
         Pinocchio's articulated-body algorithm takes a few microseconds where
         ``np.linalg.solve`` takes tens for these sizes; friction is moved to the torque side.
@@ -162,6 +167,8 @@ class _StepDynamics:
         if self._pin is None:
             return np.linalg.solve(mass, torque - bias)
         effort = torque - self._friction if self._has_friction else torque
+        if disturbance is not None:
+            effort = effort + disturbance
         return np.array(self._pin.aba(self._pin_model, self._pin_data, q, v, effort))
 
     def rigid_bias(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
@@ -247,8 +254,9 @@ class SafetyFilter:
         rejection_distance: positions farther than this beyond a limit [rad or m] are
             rejected as a sensor fault; default half the smallest joint range. Closer ones
             are recovered from.
-        observer_time_constant_s: time constant of the disturbance observer [s]; default the
-            certificate's (twenty control periods unless certified otherwise); 0 turns the
+        observer_time_constant_s: time constant of the disturbance observer [s], scalar or
+            per joint; default the certificate's (per joint: the fastest whose noise costs
+            about 1 % of the torque limit, between 2 and 20 control periods); 0 turns the
             observer off (the filter then trusts its model exactly).
         hold_damping: damping of the hold command [N m s/rad], scalar or shape (n,);
             default ``M_ii(q_mid) / (20 T)``: a velocity time constant of twenty control
@@ -276,16 +284,8 @@ class SafetyFilter:
         hold_damping: float | np.ndarray | None = None,
         solver_max_iter: int = DEFAULT_MAX_ITER,
         solver_eps: float = DEFAULT_EPS,
-        observer_time_constant_s: float | None = None,
+        observer_time_constant_s: float | np.ndarray | None = None,
     ) -> None:
-        if rejection_distance is None:
-            rejection_distance = 0.5 * float(np.min(certificate.position_upper
-                                                    - certificate.position_lower))
-        if observer_time_constant_s is None:
-            observer_time_constant_s = certificate.observer_time_constant_s
-        if not (math.isfinite(observer_time_constant_s) and observer_time_constant_s >= 0.0):
-            raise SafetyFilterError('observer_time_constant_s must be finite and >= 0, got '
-                                    f'{observer_time_constant_s}')
         certificate.check_model(model)
         if not certificate.certified:
             reasons = '; '.join(certificate.reasons) or 'no reason recorded'
@@ -294,6 +294,21 @@ class SafetyFilter:
         if gravity_convention not in GRAVITY_CONVENTIONS:
             raise SafetyFilterError(f'gravity_convention must be one of {GRAVITY_CONVENTIONS}, '
                                     f'got {gravity_convention!r}')
+        if rejection_distance is None:
+            rejection_distance = 0.5 * float(np.min(certificate.position_upper
+                                                    - certificate.position_lower))
+        if observer_time_constant_s is None:
+            observer_time_constant_s = certificate.observer_time_constants_s
+        try:
+            time_constants = np.broadcast_to(np.asarray(observer_time_constant_s, dtype=float),
+                                             (model.n_joints,)).copy()
+        except ValueError as err:
+            raise SafetyFilterError('observer_time_constant_s must be a number or one per '
+                                    f'joint, got {observer_time_constant_s}') from err
+        if not (np.all(np.isfinite(time_constants)) and np.all(time_constants >= 0.0)
+                and (np.all(time_constants > 0.0) or np.all(time_constants == 0.0))):
+            raise SafetyFilterError('observer_time_constant_s must be finite and > 0 per '
+                                    f'joint (or 0: no observer), got {observer_time_constant_s}')
         if not (math.isfinite(rejection_distance) and rejection_distance >= 0.0):
             raise SafetyFilterError(
                 f'rejection_distance must be finite and >= 0, got {rejection_distance}')
@@ -346,8 +361,14 @@ class SafetyFilter:
         if not (np.all(np.isfinite(damping)) and np.all(damping >= 0.0)):
             raise SafetyFilterError(f'hold_damping must be finite and >= 0, got {hold_damping}')
         self.hold_damping = frozen(damping)
-        self.observer_time_constant_s = float(observer_time_constant_s)
-        self._observing = self.observer_time_constant_s > 0.0
+        self.observer_time_constant_s = time_constants
+        self.observer_time_constant_s.flags.writeable = False
+        self._observing = bool(np.all(time_constants > 0.0))
+        # The torque that acted over the last period was sent delay + 1 steps ago.
+        uncertainty = certificate.uncertainty
+        self.observer_delay_periods = int(uncertainty.delay_periods) if uncertainty else 0
+        self._obs_sent = np.zeros((self.observer_delay_periods + 1, n))
+        self._obs_count = 0
         # The range the estimate is kept in: where the certificate's authority accounts for
         # it (docs/method.md); a second model one kilogram heavier gives the payload's share.
         self._disturbance_parameters = certificate.disturbance_parameters
@@ -356,8 +377,7 @@ class SafetyFilter:
                              if self._disturbance_parameters is not None else None)
         self._disturbance = np.zeros(n)  # estimated torque beyond the model [N m]
         self._obs_v = np.zeros(n)  # velocity at the last step
-        self._obs_u = np.zeros(n)  # full torque sent at the last step
-        self._obs_valid = False  # both of the above belong to the step before this one
+        self._obs_valid = False  # _obs_v belongs to the step before this one
         self._obs_step = np.empty(n)
 
         self._qp = AccelerationQP(self.torque_limit, torque_weights, eps=solver_eps,
@@ -418,6 +438,7 @@ class SafetyFilter:
         self._has_last_q = False
         self._disturbance[:] = 0.0
         self._obs_valid = False
+        self._obs_count = 0
         self.mode_counts = {mode: 0 for mode in FilterMode}
         self.reason_counts = Counter()
         self.steps = 0
@@ -457,17 +478,22 @@ class SafetyFilter:
         acceleration ``a`` that the barrier bounds were checked for.
         """
         period = self.certificate.control_period_s if period_s is None else float(period_s)
-        if self._obs_valid and math.isfinite(period) and period > 0.0:
+        full = self._obs_count > self.observer_delay_periods
+        if self._obs_valid and full and math.isfinite(period) and period > 0.0:
             step = self._obs_step
             np.subtract(v, self._obs_v, out=step)
             step /= period
             measured = mass @ step
             measured += bias
-            measured -= self._obs_u
+            measured -= self._obs_sent[0]  # what acted: sent delay + 1 steps ago
             # A torque beyond twice the box cannot act on the arm: the two samples are not
             # one period apart (a gap, a reset, a replayed jump); skip them.
             if _kernels.within_box(measured, self._k_observer_plausible):
-                gain = period / (period + self.observer_time_constant_s)
+                # At most 1/3 (a time constant of at least two of the actual periods): then
+                # a delay one period longer or shorter than declared cannot make the
+                # estimate oscillate (the loop's poles stay inside the unit circle).
+                gain = np.minimum(period / (period + self.observer_time_constant_s),
+                                  MAX_OBSERVER_GAIN)
                 self._disturbance += gain * (measured - self._disturbance)
             # Never beyond what a plant of the declared set can need at this state (so the
             # certified authority holds), and never beyond the torque box.
@@ -566,15 +592,18 @@ class SafetyFilter:
         acceleration = None
         have_torque = False
         key = reason = ''
+        mode = FilterMode.FILTERED
         if worst < 0.0:
+            # Outside S the same bounds ask for a return at the barrier rate; the QP meets them
+            # with any torque in the box, and the constructive push-back (within the
+            # certified authority) is the fallback.
             mode = FilterMode.RECOVERING
             outside = [self.model.joint_names[i] for i in range(self.n)
                        if barrier_margin[i] < 0.0]
             reason = f'state outside the safe set at {", ".join(outside)}'
             key = 'outside the safe set'
-        elif self._nominal_feasible(u_full):
+        if self._nominal_feasible(u_full):
             # The nominal meets every constraint, so it is the QP's unique minimiser.
-            mode = FilterMode.FILTERED
             status = 'nominal feasible'
             acceleration = self._a_nom
             torque[:] = u_full  # passed through exactly
@@ -583,22 +612,25 @@ class SafetyFilter:
             result = self._qp.solve(mass, bias, u_full, accel_lower, accel_upper)
             solve_time = result.solve_time_s
             status = result.status
-            mode = FilterMode.FILTERED
+            failed = ''
             if result.solved:
                 acceleration = result.acceleration
                 check = _kernels.torque_and_check(
                     mass, bias, acceleration, accel_lower, accel_upper, self._k_torque_bound,
                     self._k_accel_tol, torque)
-                key = _CHECK_REASONS[check]
+                failed = _CHECK_REASONS[check]
                 have_torque = True
             else:
-                key = f'solver status: {status}'
-            if key:
+                failed = f'solver status: {status}'
+            if failed:
                 acceleration = None
                 have_torque = False
                 self._qp.reset_warm_start()
-                mode = FilterMode.FALLBACK
-                reason = key
+                if mode is FilterMode.RECOVERING:
+                    reason += f'; constructive push-back ({failed})'
+                else:
+                    mode = FilterMode.FALLBACK
+                    reason = key = failed
         if acceleration is None:
             acceleration = self._constructive(u_full)
         if not have_torque:
@@ -612,7 +644,11 @@ class SafetyFilter:
                                        self._k_torque_limit, self._k_accel_tol,
                                        self._k_saturation, gravity, self._driver, out_flags)
         if self._observing:
-            np.add(torque, gravity, out=self._obs_u)
+            sent = self._obs_sent
+            if len(sent) > 1:
+                sent[:-1] = sent[1:]
+            np.add(torque, gravity, out=sent[-1])
+            self._obs_count += 1
             self._obs_valid = True
         self.steps += 1
         self.mode_counts[mode] += 1
@@ -637,8 +673,9 @@ class SafetyFilter:
         if self._a_nom is None:
             inputs = self._inputs
             try:
-                self._a_nom = self._dyn.nominal_acceleration(inputs[0], inputs[1], u_full,
-                                                             self._mass, self._bias)
+                self._a_nom = self._dyn.nominal_acceleration(
+                    inputs[0], inputs[1], u_full, self._mass, self._bias,
+                    self._disturbance if self._observing else None)
             except np.linalg.LinAlgError:
                 self._a_nom = np.zeros(self.n)
         return self._a_nom
@@ -732,6 +769,7 @@ class SafetyFilter:
             barrier_margin = np.full(n, math.nan)
         false = np.zeros(n, dtype=bool)
         self._obs_valid = False
+        self._obs_count = 0
         self.steps += 1
         self.mode_counts[FilterMode.REJECTED] += 1
         self.reason_counts[key] += 1

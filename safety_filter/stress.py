@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import functools
 import math
 import os
 import sys
@@ -379,7 +380,8 @@ class StressSettings:
         plants: random plants drawn from the set (besides the fixed ones).
         seed: seed of the plants, nominals, noise and pushes.
         pushes: pushes per ``pushes`` run, spread evenly over it.
-        push_fraction: largest joint torque of a push, as a fraction of its effort limit.
+        push_fraction: largest joint torque of a push (a force on the payload point), as a
+            fraction of that joint's effort limit.
         push_duration_s: duration of each push [s].
         speed_fraction: peak speed of SafeTracking, as a fraction of the rated speed.
         internal_rate_hz: integration rate of the plant (RK4) [Hz].
@@ -476,19 +478,46 @@ def run_specs(plants: Sequence[tuple[str, Plant]], rates: Sequence[float]) -> li
     return specs
 
 
-def make_pushes(model: RobotModel, settings: StressSettings, rng: np.random.Generator
-                ) -> list[Push]:
-    """``settings.pushes`` pushes spread over the run, each in a random direction with its
-    largest joint torque at ``push_fraction`` of that joint's effort limit."""
+def make_pushes(model: RobotModel, settings: StressSettings, rng: np.random.Generator,
+                configuration: Callable[[float], np.ndarray] | None = None) -> list[Push]:
+    """``settings.pushes`` pushes spread over the run: each a force on the payload point in a
+    seeded random direction, turned into joint torques ``J(q)^T F`` at the configuration
+    ``configuration(t)`` expected when it starts (the benign motion's reference), and scaled
+    so that its largest joint torque is ``push_fraction`` of that joint's effort limit (as a
+    bump on the tool would: light wrist joints feel it through short lever arms). Without a
+    configuration the middle of the ranges is used."""
     umax = np.array(model.effort_limit)
     window = settings.duration_s / max(settings.pushes, 1)
+    middle = 0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
     pushes = []
     for k in range(settings.pushes):
-        direction = rng.normal(size=model.n_joints)
-        direction /= max(float(np.max(np.abs(direction))), 1e-12)
-        pushes.append(Push((k + 0.3) * window, settings.push_duration_s,
-                           settings.push_fraction * umax * direction))
+        start = (k + 0.3) * window
+        q = middle if configuration is None else configuration(start)
+        direction = rng.normal(size=3)
+        direction /= max(float(np.linalg.norm(direction)), 1e-12)
+        torque = tip_force_torque(model, q, direction)
+        scale = float(np.max(np.abs(torque) / umax))
+        if scale < 1e-12:  # the point cannot be pushed that way here: push the joints
+            torque, scale = umax * rng.normal(size=model.n_joints), 1.0
+            scale = float(np.max(np.abs(torque) / umax))
+        pushes.append(Push(start, settings.push_duration_s,
+                           settings.push_fraction * torque / scale))
     return pushes
+
+
+def tip_force_torque(model: RobotModel, q: np.ndarray, force: np.ndarray) -> np.ndarray:
+    """Joint torques ``J(q)^T F`` [N m] of a force ``F`` [N] on the payload point.
+
+    A force ``F`` on a point mass acts as gravity ``F / m`` does on it, so the torque is minus
+    the generalized gravity of one kilogram of payload under the gravity vector ``F``
+    (evaluated with the package's own dynamics).
+    """
+    from safety_filter.dynamics import Dynamics
+
+    pushed = model_with_inertials(model, gravity=np.asarray(force, dtype=float))
+    with_payload = Dynamics(pushed, payload_mass=1.0).gravity_torque(q)
+    without = Dynamics(pushed, payload_mass=0.0).gravity_torque(q)
+    return -(with_payload - without)
 
 
 class StressContext:
@@ -514,6 +543,7 @@ class StressContext:
             recovery_time_s=_recovery_setting(certificate))
         tracking = SafeTracking(model, self.filter.payload_mass, settings.speed_fraction,
                                 seed=settings.seed)
+        self.tracking = tracking
         q0, v0, _ = tracking.reference(0.0)
         for _ in range(60):  # start inside S: slow the reference's start velocity if needed
             if np.all(self.filter.constraint_bounds(q0, v0).smallest > 0.0):
@@ -552,9 +582,12 @@ class StressContext:
         settings = self.settings
         name, plant = self.plants[spec.plant]
         rng = np.random.default_rng([settings.seed, spec.index])
-        pushes = make_pushes(self.model, settings, rng) if spec.nominal == 'pushes' else []
+        pushes = (make_pushes(self.model, settings, rng, lambda t: self.tracking.reference(t)[0])
+                  if spec.nominal == 'pushes' else [])
         self.filter.reset()
-        log = run_plant_loop(plant, self.filter.step, self.nominal(spec.nominal),
+        # the disturbance observer measures over the period this run's loop has
+        step = functools.partial(self.filter.step, period_s=1.0 / spec.rate_hz)
+        log = run_plant_loop(plant, step, self.nominal(spec.nominal),
                              settings.duration_s, spec.rate_hz, self.q0, self.v0, rng=rng,
                              pushes=pushes, barrier=self.barrier,
                              internal_rate_hz=settings.internal_rate_hz)

@@ -181,9 +181,10 @@ def model_with_inertials(model: RobotModel, *, body_mass: np.ndarray | None = No
                          viscous_friction: np.ndarray | None = None,
                          coulomb_friction: np.ndarray | None = None,
                          payload_mass: float | None = None,
-                         uncertainty: UncertaintySet | None = None) -> RobotModel:
-    """A copy of ``model`` with other link inertials, friction, a fixed payload mass or
-    another declared uncertainty set.
+                         uncertainty: UncertaintySet | None = None,
+                         gravity: np.ndarray | None = None) -> RobotModel:
+    """A copy of ``model`` with other link inertials, friction, a fixed payload mass,
+    another declared uncertainty set or another gravity vector [m/s^2].
 
     The copy has the same joints, limits and payload point; its content hash differs.
     """
@@ -205,7 +206,7 @@ def model_with_inertials(model: RobotModel, *, body_mass: np.ndarray | None = No
         else viscous_friction,
         coulomb_friction=model.coulomb_friction if coulomb_friction is None
         else coulomb_friction,
-        gravity=model.gravity, payload=payload,
+        gravity=model.gravity if gravity is None else gravity, payload=payload,
         payload_point_in_body=model.payload_point_in_body,
         locked_positions=model.locked_positions, notes=model.notes,
         uncertainty=model.uncertainty if uncertainty is None else uncertainty)
@@ -319,8 +320,8 @@ def disturbance_bound(model: RobotModel, uncertainty: UncertaintySet, *,
                       gravity_max: np.ndarray, coriolis_max: np.ndarray,
                       mass_max: np.ndarray, payload_gravity_max: np.ndarray,
                       payload_coriolis_max: np.ndarray, payload_mass_max: np.ndarray,
-                      velocity_box: np.ndarray, observer_time_constant_s: float
-                      ) -> DisturbanceBound:
+                      velocity_box: np.ndarray,
+                      observer_time_constant_s: float | np.ndarray) -> DisturbanceBound:
     """Bound of the torque ``d`` that a plant of the set needs beyond the filter's model, and
     of the observer's noise, over the joint box and ``velocity_box`` (``docs/method.md``).
 
@@ -330,7 +331,7 @@ def disturbance_bound(model: RobotModel, uncertainty: UncertaintySet, *,
         payload_gravity_max, payload_coriolis_max, payload_mass_max: the same for one
             kilogram of payload.
         velocity_box: the certified velocity box [rad/s or m/s].
-        observer_time_constant_s: the observer's time constant [s].
+        observer_time_constant_s: the observer's time constant [s], scalar or per joint.
 
     Kinds: ``payload`` (the mass the filter is not told: half the range, or the told
     tolerance, times the per-kilogram bounds), ``links`` (the larger relative mass or inertia
@@ -361,8 +362,9 @@ def disturbance_bound(model: RobotModel, uncertainty: UncertaintySet, *,
     friction = (np.maximum(d_hi - d_nom, d_nom - d_lo) * np.asarray(velocity_box)
                 + np.maximum(c_hi - c_nom, c_nom - c_lo))
     driver = (uncertainty.torque_error_relative + uncertainty.torque_error_absolute) * umax
-    noise = (np.asarray(mass_max) @ np.full(n, uncertainty.velocity_noise)
-             / observer_time_constant_s if observer_time_constant_s > 0 else np.zeros(n))
+    tau = np.broadcast_to(np.asarray(observer_time_constant_s, dtype=float), (n,))
+    noise = (np.asarray(mass_max) @ np.full(n, uncertainty.velocity_noise) / tau
+             if np.all(tau > 0.0) else np.zeros(n))
     static = {
         'payload': mass_error * (np.asarray(payload_gravity_max)
                                  + np.asarray(payload_coriolis_max)),

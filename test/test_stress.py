@@ -307,3 +307,25 @@ def test_bad_input_exits_2_with_a_clear_message(tmp_path, capsys, options, messa
                                ['stress', '--out', str(tmp_path), *options], capsys)
     assert code == stress.EXIT_BAD_INPUT == 2
     assert message in stderr
+
+
+def test_tip_force_torque_matches_the_planar_jacobian() -> None:
+    """J(q)^T F of a force on planar2's tool point against the planar two-link Jacobian
+    (Spong, Hutchinson and Vidyasagar, Robot Modeling and Control, the planar elbow arm:
+    tip (l1 c1 + l2 c12, l1 s1 + l2 s12) in the x-z plane, l1 = 0.5 m, l2 = 0.4 m as the URDF
+    says)."""
+    from safety_filter.demo_arms import load_demo_arm
+    from safety_filter.stress import tip_force_torque
+
+    model = load_demo_arm('planar2')
+    l1, l2 = 0.5, 0.4
+    rng = np.random.default_rng(3)
+    for _ in range(5):
+        q = rng.uniform(model.position_lower, model.position_upper)
+        force = rng.normal(size=3)
+        s1, c1 = np.sin(q[0]), np.cos(q[0])
+        s12, c12 = np.sin(q[0] + q[1]), np.cos(q[0] + q[1])
+        expected = np.array([
+            force[0] * (-l1 * s1 - l2 * s12) + force[2] * (l1 * c1 + l2 * c12),
+            force[0] * (-l2 * s12) + force[2] * (l2 * c12)])
+        np.testing.assert_allclose(tip_force_torque(model, q, force), expected, atol=1e-9)
