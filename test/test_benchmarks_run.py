@@ -23,3 +23,21 @@ def test_bench_dynamics_quick_runs_and_prints_its_tables() -> None:
     assert 'batched M + g' in out and 'batch/loop' in out
     for name in ('planar2', 'bench6', 'reach7'):
         assert out.count(name) == 2, out  # one row in each table
+
+
+def test_bench_model_error_quick_keeps_limits_with_the_observer() -> None:
+    """The model-error benchmark runs, and with the observer on (its default) no plant of
+    planar2's breaks a limit (the plants: payload at both ends untold, links +-10 %)."""
+    env = dict(os.environ)
+    env['PYTHONPATH'] = os.pathsep.join([str(REPO)] + [p for p in [env.get('PYTHONPATH')] if p])
+    result = subprocess.run(
+        [sys.executable, str(REPO / 'benchmarks' / 'bench_model_error.py'), '--quick',
+         '--arm', 'planar2'], capture_output=True, text=True, timeout=300, env=env, cwd=REPO)
+    assert result.returncode == 0, result.stderr
+    rows = [line.split() for line in result.stdout.splitlines()
+            if ' on ' in f' {line} ' or ' off ' in f' {line} ']
+    observed = [row for row in rows if 'on' in row]
+    assert len(observed) == 5 and len(rows) == 10, result.stdout
+    for row in observed:
+        at = row.index('on')
+        assert [float(x) for x in row[at + 1:at + 4]] == [0.0, 0.0, 0.0], row
