@@ -120,7 +120,12 @@ reason; change them by starting the node again):
   (the limits YAML, which also selects the chain); ``gravity_convention`` (``'full'``: the
   driver takes the full torque, ``'driver_compensated'``: the driver adds ``g(q)`` itself,
   both nominal and output are then on top of gravity); ``payload_mass`` [kg] (negative: the
-  middle of the certified range; outside the range: refused).
+  middle of the certified range; outside the range: refused); ``disturbance_observer``
+  (true: the filter estimates the model error from the measured motion, which the guarantee
+  on an arm unlike its model needs; false only for inputs that are not a real motion, such
+  as tests feeding random states). The observer assumes one step per control period of the
+  certificate: run the node at the certified rate (``trigger`` ``'joint_state'`` with the
+  driver's joint states).
 
 Operational parameters: ``joint_state_timeout_s`` (0.05) and ``nominal_timeout_s`` (0.1)
 [s] may change at any time (positive, finite); ``trigger`` (``'nominal'``),
@@ -190,7 +195,7 @@ CERTIFICATE_PARAMETERS = (
     'payload_mass_range', 'payload_point', 'settings_json', 'falsifier_json', 'reasons',
     'certificate_id')
 MODEL_PARAMETERS = ('urdf_path', 'robot_description', 'limits_path', 'gravity_convention',
-                    'payload_mass')
+                    'payload_mass', 'disturbance_observer')
 SAFETY_PARAMETERS = frozenset(CERTIFICATE_PARAMETERS + MODEL_PARAMETERS)
 TIMEOUT_PARAMETERS = ('joint_state_timeout_s', 'nominal_timeout_s')
 CONFIGURE_TIME_PARAMETERS = ('trigger', 'watchdog_rate_hz', 'diagnostics_rate_hz',
@@ -322,6 +327,11 @@ class SafetyFilterNode(LifecycleNode):
         self.declare_parameter('payload_mass', -1.0, _describe(
             'payload of the model [kg]; negative: middle of the certified range; safety '
             'parameter, fixed', dynamic=True))
+        self.declare_parameter('disturbance_observer', True, _describe(
+            'estimate the model error from the measured motion (docs/method.md); false only '
+            'to feed the node inputs that are not a real motion (tests, studies): the '
+            'guarantee on an arm that differs from its model needs it; safety parameter, '
+            'fixed'))
         self.declare_parameter('joint_state_timeout_s', 0.05, _describe(
             'joint states older than this [s] trip the watchdog (hold command)', dynamic=True))
         self.declare_parameter('nominal_timeout_s', 0.1, _describe(
@@ -497,8 +507,13 @@ class SafetyFilterNode(LifecycleNode):
             name, self.get_parameter(name).value) for name in CONFIGURE_TIME_PARAMETERS}
         timeouts = [_positive_finite(name, self.get_parameter(name).value)
                      for name in TIMEOUT_PARAMETERS]
+        observer = self.get_parameter('disturbance_observer').value
+        if not isinstance(observer, bool):
+            raise SafetyFilterError(f'disturbance_observer must be true or false, got '
+                                    f'{observer!r}')
         filt = SafetyFilter(model, certificate, gravity_convention=convention,
-                            payload_mass=payload_mass)
+                            payload_mass=payload_mass,
+                            observer_time_constant_s=None if observer else 0.0)
 
         self._model = model
         self._certificate = certificate
