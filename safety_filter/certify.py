@@ -623,6 +623,32 @@ def _choose_beta(design: _Design, margin: np.ndarray, r: np.ndarray, settings: C
     return b_star, b_floor, b_cap, beta
 
 
+def _explain_model_error_shortfall(model: RobotModel, bounds: DynamicsBounds,
+                                   settings: CertifySettings) -> list[str]:
+    """Joints whose effort limit the declared uncertainty uses up even at the slowest
+    velocity box tried, with each kind's share (empty when it does not)."""
+    names = list(model.joint_names)
+    umax = np.array(model.effort_limit)
+    box = np.array(model.velocity_limit) / settings.velocity_scales
+    _, bias, disturbance = authority_problem(model, bounds, settings, box)
+    exact_bias = authority_problem(model, bounds, settings, box, exact_model=True)[1]
+    reasons = []
+    for i in np.flatnonzero(bias >= umax):
+        if exact_bias[i] >= umax[i]:
+            continue  # the model itself is short there: the other reasons say so
+        shares = {kind: float(value[i]) for kind, value in disturbance.static.items()
+                  if kind != 'payload' and value[i] > 0.0}
+        listed = ', '.join(f'{kind} {value:.3g}' for kind, value in
+                           sorted(shares.items(), key=lambda item: -item[1]))
+        reasons.append(
+            f'joint {names[i]!r}: with the declared uncertainty its bias bound reaches '
+            f'{bias[i]:.4g} N m against an effort limit of {umax[i]:.4g} (short by '
+            f'{bias[i] - umax[i]:.4g} N m; the model alone needs {exact_bias[i]:.4g}): '
+            f'model error [N m] {listed}; narrow the uncertainty section of the limits file '
+            '(docs/limits-file.md) where you know better, or raise the effort limit')
+    return reasons
+
+
 def _explain_no_design(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
                        margin: np.ndarray, last_design: _Design | None) -> list[str]:
     """Per-joint reasons why no velocity scale gave positive authority, with numbers."""
@@ -639,6 +665,9 @@ def _explain_no_design(model: RobotModel, bounds: DynamicsBounds, settings: Cert
             text += (f' (the payload range goes up to {model.payload.mass_max:g} kg; '
                      'a lighter maximum payload lowers the gravity load)')
         reasons.append(text)
+    if reasons:
+        return reasons
+    reasons = _explain_model_error_shortfall(model, bounds, settings)
     if reasons:
         return reasons
     if last_design is not None:

@@ -396,3 +396,27 @@ def test_hand_edited_certificate_is_refused(planar2_certified, tmp_path) -> None
     with pytest.raises(CertificateError, match='certificate id') as raised:
         Certificate.load(path, model)
     assert not isinstance(raised.value, CertificateMismatch)
+
+
+def test_declared_uncertainty_that_uses_up_a_joint_is_named_with_its_kinds() -> None:
+    """planar2 with a 20 N m shoulder: enough for the model (gravity with the heaviest
+    payload about 19.3 N m, the planar two-link closed form of the URDF's comment gives
+    17.56 at the payload range's top, plus the bounds' inflation), not for the declared
+    default uncertainty on top. The reason names the joint, the shortfall and each kind of
+    model error; the same arm with an exact model certifies."""
+    urdf, limits = demo_arm_files('planar2')
+    spec = yaml.safe_load(limits.read_text(encoding='utf-8'))
+    spec['joints'] = {'shoulder': {'effort': 20.0}}
+    settings = CertifySettings(falsifier_states=2000, bounds=BoundSettings(samples=1024))
+    outcome = certify_with_evidence(RobotModel.from_urdf(urdf, limits=spec), settings)
+    assert not outcome.certified
+    reason = ' '.join(outcome.certificate.reasons)
+    assert "joint 'shoulder': with the declared uncertainty" in reason, reason
+    for kind in ('links', 'driver', 'friction', 'observer noise'):
+        assert kind in reason, reason
+    spec['uncertainty'] = {key: 0 for key in (
+        'link_mass_error', 'link_inertia_error', 'com_error', 'viscous_friction_spread',
+        'coulomb_friction_spread', 'torque_error_relative', 'torque_error_absolute',
+        'velocity_noise')}
+    exact = certify_with_evidence(RobotModel.from_urdf(urdf, limits=spec), settings)
+    assert exact.certified, exact.certificate.reasons
