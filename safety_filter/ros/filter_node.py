@@ -841,6 +841,12 @@ class SafetyFilterNode(LifecycleNode):
         for joint, margin in zip(self._joint_names, self._window_margin.tolist()):
             values.append((f'margin.{joint}', _format_number(margin)))
         values.append(('active_constraints', self._active_constraints(last)))
+        # What the arm needs beyond the model (payload, inertia and friction errors, the
+        # driver's torque error), as the disturbance observer sees it [N m].
+        estimate = self._filter.disturbance_estimate if self._filter is not None else None
+        for index, joint in enumerate(self._joint_names):
+            values.append((f'model_error.{joint}', _format_number(float(estimate[index]))
+                           if estimate is not None else 'nan'))
         times = np.array(self._window_solve_times) * 1e6
         values.append(('solves', str(times.size)))
         for label, value in (('median', 50.0), ('p99', 99.0)):
