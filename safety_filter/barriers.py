@@ -58,3 +58,26 @@ def evaluate_barriers(
     ap = beta * alpha2.value(bp) - gamma * alpha1.derivative(hp) * v - accel_margin
     an = -beta * alpha2.value(bn) - gamma * alpha1.derivative(hn) * v + accel_margin
     return BarrierState(hp, hn, bp, bn, ap, an)
+
+
+def return_time_bound(barrier: np.ndarray, beta: np.ndarray, margin: np.ndarray,
+                      alpha2: ClassK, samples: int = 400) -> np.ndarray:
+    """Time [s] within which a velocity barrier at ``barrier < 0`` is back at 0 while the
+    filter meets its bounds (``docs/method.md``, recovery).
+
+    Outside S the bounds give ``db/dt >= -beta alpha2(b) + margin = beta alpha2(|b|) + margin``
+    (alpha2 is odd), so ``b`` climbs from ``-B`` to 0 within
+    ``t(B) = integral_0^B dx / (beta alpha2(x) + margin)``: ``ln(1 + beta B / margin) / beta``
+    for the linear family, a quadrature otherwise. 0 where ``barrier >= 0``; arrays broadcast.
+    """
+    depth = np.maximum(-np.asarray(barrier, dtype=float), 0.0)
+    beta = np.asarray(beta, dtype=float)
+    margin = np.asarray(margin, dtype=float)
+    depth, beta, margin = np.broadcast_arrays(depth, beta, margin)
+    if alpha2.kind == 'linear':
+        with np.errstate(divide='ignore', invalid='ignore'):
+            return np.where(depth > 0.0, np.log1p(beta * depth / margin) / beta, 0.0)
+    fraction = np.linspace(0.0, 1.0, samples)
+    x = depth[..., None] * fraction
+    rate = beta[..., None] * alpha2.value(x) + margin[..., None]
+    return np.trapezoid(1.0 / rate, x, axis=-1)

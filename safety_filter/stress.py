@@ -98,7 +98,8 @@ class PlantLog:
             driver applied (delayed command, gain and offset, saturated); demand: the
             driver's ``gain * u + offset`` before saturation; external: push torque;
             mode: filter mode names; margin: smallest barrier value per joint of the TRUE
-            state (NaN when no barrier function was given).
+            state (NaN when no barrier function was given); pushback: the filter fell back
+            to the constructive push-back (its QP could not meet the bounds in the box).
     """
 
     time_s: np.ndarray
@@ -113,6 +114,7 @@ class PlantLog:
     external: np.ndarray
     mode: np.ndarray
     margin: np.ndarray
+    pushback: np.ndarray | None = None
 
 
 class _PushedArm(ArmSimulator):
@@ -187,6 +189,7 @@ def run_plant_loop(
     log = PlantLog(np.zeros(steps), empty(), empty(), empty(), empty(), empty(), empty(),
                    empty(), empty(), empty(), np.empty(steps, dtype=object),
                    np.full((steps, n), np.nan))
+    log.pushback = np.zeros(steps, dtype=bool)
     zero = np.zeros(n)
     for k in range(steps):
         t, q, v = k * period, arm.q, arm.v
@@ -199,6 +202,7 @@ def run_plant_loop(
             out = step(q_meas, v_meas, u_nom)
             command = np.array(out.torque)  # type: ignore[attr-defined]
             mode = str(out.mode)  # type: ignore[attr-defined]
+            log.pushback[k] = 'constructive push-back' in str(getattr(out, 'reason', ''))
         log.command[k] = command
         demand = gain * log.command[max(k - delay, 0)] + offset
         applied = np.clip(demand, -umax, umax)
@@ -328,9 +332,9 @@ class VerdictRules:
         velocity_allowance: allowed velocity excursion [rad/s or m/s]: the declared
             velocity noise (the filter cannot see the velocity better than that).
         torque_tolerance: allowed torque excess, relative, times ``max(1, effort limit)``.
-        recovery_time_s: after each push the state must be back in S within this time; None
-            (the certificate does not declare ``recovery_time_s``): measured and reported
-            only.
+        recovery_time_s: after each push the state must be back in S within this time, if
+            given; else within the certified return time of each push where it applies
+            (``recovery_bound_s`` of the summary, see :func:`return_time_bounds`).
     """
 
     position_tolerance: float = POSITION_TOLERANCE
@@ -350,7 +354,8 @@ def run_failures(summary: dict[str, Any], rules: VerdictRules, effort_limit: np.
     by itself; what is judged after it is rule 4);
     3. torque within the box: the applied torque, and the filter's command (the driver
        saturates, so the applied torque alone could not show a command outside the box);
-    4. after each push, back in S within ``recovery_time_s`` when it is declared.
+    4. after each push, back in S within ``recovery_time_s`` when it is given, else within
+       the certified return time where one applies (``summary['recovery_bound_s']``).
     """
     reasons = []
     if summary['position_excursion'] > rules.position_tolerance:
@@ -362,12 +367,56 @@ def run_failures(summary: dict[str, Any], rules: VerdictRules, effort_limit: np.
     excess = max(summary['command_excess'], summary['applied_excess'])
     if excess > torque_tol:
         reasons.append(f'torque outside the box by {excess:.3g}')
-    if rules.recovery_time_s is not None:
-        for k, seconds in enumerate(summary['recovery_s']):
-            if seconds is None or seconds > rules.recovery_time_s:
-                took = 'not back in S' if seconds is None else f'{seconds:.3g} s'
-                reasons.append(f'push {k + 1}: {took} (allowed {rules.recovery_time_s:g} s)')
+    bounds = summary.get('recovery_bound_s') or [None] * len(summary['recovery_s'])
+    for k, seconds in enumerate(summary['recovery_s']):
+        allowed = rules.recovery_time_s if rules.recovery_time_s is not None else bounds[k]
+        if allowed is not None and (seconds is None or seconds > allowed):
+            took = 'not back in S' if seconds is None else f'{seconds:.3g} s'
+            reasons.append(f'push {k + 1}: {took} (allowed {allowed:.3g} s)')
     return reasons
+
+
+def return_time_bounds(log: PlantLog, pushes: Sequence[Push], certificate: Certificate,
+                       barriers: Callable[[np.ndarray, np.ndarray], Any], period_s: float,
+                       allowance_s: float) -> list[float | None]:
+    """Per push: the time from its end within which the certificate says the state is back
+    in S, or None where that statement does not apply.
+
+    Outside S every velocity barrier climbs at ``db/dt >= beta alpha2(|b|) + margin`` while
+    the filter meets its bounds (``barriers.return_time_bound``). So from the push's end the
+    state is back by the time of the deepest barrier value plus its return time plus
+    ``allowance_s`` (the delay and one period). It applies when, in the push's window, no
+    position went past a limit (the position barrier then has its own, slower return), no
+    joint fell back to the constructive push-back (the torque box could not meet the
+    bounds) and the state did leave S; otherwise None (measured only).
+    """
+    from safety_filter.barriers import return_time_bound
+
+    times = log.time_s
+    starts = sorted(p.start_s for p in pushes)
+    result: list[float | None] = []
+    for push in pushes:
+        later = [s for s in starts if s > push.start_s + 1e-12]
+        window = (times >= push.end_s - 1e-9) & (times < (later[0] if later else math.inf)
+                                                    - 1e-9)
+        rows = np.flatnonzero(window)
+        if rows.size == 0:
+            result.append(None)
+            continue
+        state = barriers(log.q[rows], log.v[rows])
+        position = np.minimum(state.margin_upper, state.margin_lower)
+        velocity = np.minimum(state.barrier_upper, state.barrier_lower)
+        pushback = log.pushback is not None and bool(np.any(log.pushback[rows]))
+        if np.any(position < 0.0) or pushback or np.all(velocity >= 0.0):
+            result.append(None)
+            continue
+        deepest = np.argmin(velocity, axis=0)  # per joint
+        depth = velocity[deepest, np.arange(velocity.shape[1])]
+        bound = return_time_bound(depth, certificate.beta, certificate.sampling_margin,
+                                  certificate.alpha2)
+        start = times[rows[deepest]] - push.end_s
+        result.append(float(np.max(start + bound)) + allowance_s + period_s)
+    return result
 
 
 # ---------------------------------------------------------------------- the matrix
@@ -538,9 +587,7 @@ class StressContext:
                                    self.filter.payload_mass)
         self.rates = control_rates(certificate)
         self.specs = run_specs(self.plants, self.rates)
-        self.rules = VerdictRules(
-            velocity_allowance=uncertainty.velocity_noise,
-            recovery_time_s=_recovery_setting(certificate))
+        self.rules = VerdictRules(velocity_allowance=uncertainty.velocity_noise)
         tracking = SafeTracking(model, self.filter.payload_mass, settings.speed_fraction,
                                 seed=settings.seed)
         self.tracking = tracking
@@ -592,6 +639,9 @@ class StressContext:
                              pushes=pushes, barrier=self.barrier,
                              internal_rate_hz=settings.internal_rate_hz)
         summary = summarize_run(log, self.model, 1.0 / spec.rate_hz, pushes)
+        summary['recovery_bound_s'] = return_time_bounds(
+            log, pushes, self.certificate, self.filter.constraint_bounds, 1.0 / spec.rate_hz,
+            plant.delay_periods / spec.rate_hz)
         failures = run_failures(summary, self.rules, np.array(self.model.effort_limit))
         summary.update(index=spec.index, plant=name, nominal=spec.nominal,
                        rate_hz=spec.rate_hz, passed=not failures, failures=failures,
@@ -600,12 +650,6 @@ class StressContext:
                        pushes=[{'start_s': p.start_s, 'duration_s': p.duration_s,
                                 'torque': p.torque.tolist()} for p in pushes])
         return summary, log, pushes
-
-
-def _recovery_setting(certificate: Certificate) -> float | None:
-    value = certificate.settings.get('recovery_time_s') if isinstance(
-        certificate.settings, dict) else None
-    return None if value is None else float(value)
 
 
 def severity(summary: dict[str, Any]) -> tuple[float, ...]:

@@ -94,10 +94,13 @@ def summary_lines(result: StressResult, source: str) -> list[str]:
     never = len(recoveries) - len(finite)
     plants = sorted({s['plant'] for s in summaries if not s['passed']},
                     key=[name for name, _ in context.plants].index)
+    bounds = [b for s in summaries for b in s.get('recovery_bound_s') or []]
+    judged = sum(b is not None for b in bounds)
     recovery_rule = (f'back in S within {rules.recovery_time_s:g} s after each push'
                      if rules.recovery_time_s is not None else
-                     'recovery after pushes measured only (the certificate declares no '
-                     'recovery_time_s)')
+                     'after each push back in S within the certified return time where it '
+                     f'applies ({judged} of {len(bounds)} pushes: the others went past a '
+                     'position limit, needed more than the torque box, or stayed in S)')
     return [
         f'robot: {context.model.name} ({context.model.n_joints} joints); certificate: '
         f'{source} (id {context.certificate.certificate_id})',
