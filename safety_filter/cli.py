@@ -286,7 +286,12 @@ def _command_node(args: argparse.Namespace) -> int:
     certificate = Path(args.certificate)
     if not certificate.is_file():
         raise SafetyFilterError(f'certificate file not found: {certificate}')
+    from safety_filter.ros.runner import FILTER_CONFIG, config_file
+
+    # The operational parameters of config/filter.yaml (trigger joint_state, timeouts), as
+    # the hardware launch file loads them; options and --ros-args given later win.
     ros_args = ['--ros-args', '--params-file', str(certificate),
+                '--params-file', str(config_file(FILTER_CONFIG)),
                 '-p', f'urdf_path:={Path(urdf).resolve()}']
     if limits is not None:
         ros_args += ['-p', f'limits_path:={Path(limits).resolve()}']
@@ -303,8 +308,9 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
     node = commands.add_parser(
         'node', help='run the safety filter ROS 2 node (configures and activates itself)',
         description='Run the safety_filter lifecycle node in this process, with the '
-        'certificate parameter file, the URDF and the limits file. By default it configures '
-        'and activates itself at start-up; SIGINT or SIGTERM end it cleanly. Topics: '
+        'certificate parameter file, the URDF and the limits file, and the operational '
+        'parameters of config/filter.yaml (one filter step per joint state). By default it '
+        'configures and activates itself at start-up; SIGINT or SIGTERM end it cleanly. Topics: '
         'joint_states, nominal_torque in, filtered_torque, ~/status, /diagnostics out (remap '
         'with --ros-args -r filtered_torque:=/driver/commands). Exit code 0 on a clean stop, 1 '
         'when configure/activate failed (reason in the log), 2 on bad options.')
@@ -329,7 +335,7 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
                       'classic executor)')
     node.add_argument('--ros-args', dest='ros_args', nargs=argparse.REMAINDER, default=[],
                       metavar='ROS_ARGS', help='everything after this goes to ROS, e.g. '
-                      '--ros-args -r filtered_torque:=/arm/commands -p trigger:=joint_state')
+                      '--ros-args -r filtered_torque:=/arm/commands -p payload_mass:=0.5')
     node.set_defaults(handler=_command_node)
 
 

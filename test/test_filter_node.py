@@ -171,6 +171,23 @@ def test_node_declares_every_certificate_entry(planar2: CertifiedArm) -> None:
     assert len(CERTIFICATE_PARAMETERS) == len(set(CERTIFICATE_PARAMETERS))
 
 
+def test_defaults_are_the_values_of_config_filter_yaml(planar2: CertifiedArm,
+                                                      start_node: Any) -> None:
+    """The node's operational defaults are config/filter.yaml's (trigger joint_state): a
+    node started without that file (e.g. in a namespace, where its key does not match)
+    behaves as one started with it."""
+    import yaml
+
+    from safety_filter.ros.runner import FILTER_CONFIG, config_file
+
+    values = yaml.safe_load(config_file(FILTER_CONFIG).read_text(encoding='utf-8'))
+    values = values['safety_filter']['ros__parameters']
+    assert values['trigger'] == 'joint_state'
+    node = start_node(node_arguments(planar2)).node
+    for name, value in values.items():
+        assert node.get_parameter(name).value == value, name
+
+
 # ---------------------------------------------------------------------- 1. exactness
 @pytest.mark.parametrize('arm_name, options', [
     ('bench6', {'trigger': 'nominal'}),
@@ -235,7 +252,8 @@ def test_joint_states_are_matched_by_name(bench6: CertifiedArm, harness: Harness
     """Shuffled names plus joints outside the chain give the inputs (and so the output) of
     the ordered message: the node's step inputs are the chain-ordered values, exactly."""
     arm = bench6
-    start_node(node_arguments(arm, joint_state_timeout_s=5.0, nominal_timeout_s=5.0))
+    start_node(node_arguments(arm, trigger='nominal', joint_state_timeout_s=5.0,
+                              nominal_timeout_s=5.0))
     activate(harness)
     names = list(arm.model.joint_names)
     extras = ['gripper_left_finger', 'camera_pan', 'gripper_right_finger']
@@ -272,8 +290,8 @@ def test_joint_states_are_matched_by_name(bench6: CertifiedArm, harness: Harness
 def test_invalid_messages_are_counted_and_get_the_hold_command(
         planar2: CertifiedArm, harness: Harness, start_node: Any) -> None:
     arm = planar2
-    start_node(node_arguments(arm, joint_state_timeout_s=5.0, nominal_timeout_s=5.0,
-                              diagnostics_rate_hz=20.0))
+    start_node(node_arguments(arm, trigger='nominal', joint_state_timeout_s=5.0,
+                              nominal_timeout_s=5.0, diagnostics_rate_hz=20.0))
     activate(harness)
     names = list(arm.model.joint_names)
     q = mid_range(arm.model) + 0.1
@@ -322,7 +340,8 @@ def test_stale_joint_states_send_the_hold_command(executor: str, planar2: Certif
     """Under both executors (the watchdog timer is restarted by every message and changes
     its period when it trips)."""
     arm = planar2
-    start_node(node_arguments(arm, diagnostics_rate_hz=20.0), executor)  # default timeouts
+    # Default timeouts; steps on the nominals, which keep coming when the states stop.
+    start_node(node_arguments(arm, trigger='nominal', diagnostics_rate_hz=20.0), executor)
     activate(harness)
     names = list(arm.model.joint_names)
     q = mid_range(arm.model) + np.array([0.3, -0.2])
@@ -416,7 +435,7 @@ def test_stale_nominal_is_never_used(trigger: str, executor: str, planar2: Certi
 def test_runtime_parameter_changes(planar2: CertifiedArm, harness: Harness,
                                    start_node: Any) -> None:
     arm = planar2
-    start_node(node_arguments(arm))
+    start_node(node_arguments(arm, trigger='nominal'))  # steps on the nominals alone below
     activate(harness)
     for name, value in (('gamma', [1.0, 1.0]), ('payload_mass', 0.1),
                         ('gravity_convention', 'driver_compensated'),

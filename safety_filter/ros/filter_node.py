@@ -124,11 +124,20 @@ reason; change them by starting the node again):
   (true: the filter estimates the model error from the measured motion, which the guarantee
   on an arm unlike its model needs; false only for inputs that are not a real motion, such
   as tests feeding random states). The observer assumes one step per control period of the
-  certificate: run the node at the certified rate (``trigger`` ``'joint_state'`` with the
-  driver's joint states).
+  certificate: run the node at the certified rate (``trigger`` ``'joint_state'``, the
+  default, with the driver's joint states at its control rate).
+
+``trigger`` defaults to ``'joint_state'``: one filter step per joint state, so the driver gets
+a filtered torque every control period whatever the rate of the command source, which is the
+zero-order hold the certificate's sampled-data margin covers. ``'nominal'`` (one step per
+nominal) holds each torque for the command source's period instead, which the certificate
+covers only when that source runs at the control rate. ``config/filter.yaml`` (installed to
+``share/safety_filter/config``) holds the same operational values as the defaults here;
+``launch/hardware.launch.py``, ``safety-filter node`` and ``safety-filter run-graph --graph
+hardware`` load it.
 
 Operational parameters: ``joint_state_timeout_s`` (0.05) and ``nominal_timeout_s`` (0.1)
-[s] may change at any time (positive, finite); ``trigger`` (``'nominal'``),
+[s] may change at any time (positive, finite); ``trigger`` (``'joint_state'``),
 ``watchdog_rate_hz`` (0 = the certificate's control rate), ``diagnostics_rate_hz`` (2.0) and
 ``margin_warn`` (0.01, in the barrier's units) are read at configure and can be changed only
 while the node is unconfigured.
@@ -337,9 +346,11 @@ class SafetyFilterNode(LifecycleNode):
         self.declare_parameter('nominal_timeout_s', 0.1, _describe(
             'a nominal older than this [s] is never used (hold-still nominal instead)',
             dynamic=True))
-        self.declare_parameter('trigger', 'nominal', _describe(
-            "'nominal': step on each nominal with the latest joint state; 'joint_state': step "
-            'on each joint state with the latest nominal; read at configure'))
+        self.declare_parameter('trigger', 'joint_state', _describe(
+            "'joint_state' (default): step on each joint state with the latest nominal, one "
+            "step per control period at the driver's rate, the hold the certificate covers; "
+            "'nominal': step on each nominal with the latest joint state (only for a command "
+            'source at the control rate); read at configure'))
         self.declare_parameter('watchdog_rate_hz', 0.0, _describe(
             'rate of the watchdog timer [Hz]; 0: the certificate control rate; read at '
             'configure', dynamic=True))
