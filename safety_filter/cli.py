@@ -104,6 +104,7 @@ def _certify_settings(args: argparse.Namespace) -> CertifySettings:
         alpha1=ClassK(args.alpha1, args.alpha1_scale),
         alpha2=ClassK(args.alpha2, args.alpha2_scale),
         control_rate_hz=args.control_rate,
+        sampling_factor=args.sampling_factor,
         falsifier_states=args.falsifier_states,
         bounds=bounds,
         seed=args.seed,
@@ -243,6 +244,12 @@ def _add_certify_parser(commands: argparse._SubParsersAction) -> None:
     method = certify.add_argument_group('certification')
     method.add_argument('--control-rate', type=float, default=1000.0, metavar='HZ',
                         help='control rate of the filter [Hz] (default: 1000)')
+    method.add_argument('--sampling-factor', type=float, default=1.0, metavar='K',
+                        help='the sampled-data margin covers a zero-order hold of up to K '
+                        'control periods, >= 1 (default: 1, one filter step per control '
+                        'period). Give 2 when the filter may step at half the control rate: '
+                        'a larger margin, so less usable torque. The filter node warns when '
+                        'its measured step period exceeds this hold')
     method.add_argument('--alpha1', choices=ALPHA1_KINDS, default='linear',
                         help='class-K family of the velocity barrier (default: linear)')
     method.add_argument('--alpha1-scale', type=float, default=1.0,

@@ -17,6 +17,7 @@
 from __future__ import annotations
 
 import atexit
+import dataclasses
 import functools
 import itertools
 import math
@@ -109,15 +110,21 @@ def _certificate_dir() -> Path:
 
 
 @functools.lru_cache(maxsize=None)
-def certified_arm(name: str) -> CertifiedArm:
-    """Certify demo arm ``name`` once per session and save its certificate (skips when the
-    certification does not certify: the node refuses uncertified certificates)."""
+def certified_arm(name: str, control_rate_hz: float = 1000.0) -> CertifiedArm:
+    """Certify demo arm ``name`` (at ``control_rate_hz``) once per session and save its
+    certificate (skips when the certification does not certify: the node refuses uncertified
+    certificates)."""
     model = load_demo_arm(name)
-    certificate = certify(model, TEST_CERTIFY_SETTINGS)
+    settings = TEST_CERTIFY_SETTINGS
+    stem = name
+    if control_rate_hz != settings.control_rate_hz:
+        settings = dataclasses.replace(settings, control_rate_hz=control_rate_hz)
+        stem = f'{name}_{control_rate_hz:g}hz'
+    certificate = certify(model, settings)
     if not certificate.certified:
         pytest.skip(f'{name} did not certify with the test settings: {certificate.reasons}')
-    default_path = certificate.save(_certificate_dir() / f'{name}_certificate.yaml')
-    path = certificate.save(_certificate_dir() / f'{name}_certificate_any_namespace.yaml',
+    default_path = certificate.save(_certificate_dir() / f'{stem}_certificate.yaml')
+    path = certificate.save(_certificate_dir() / f'{stem}_certificate_any_namespace.yaml',
                             node_name=ANY_NAMESPACE_KEY)
     urdf, limits = demo_arm_files(name)
     return CertifiedArm(name, model, certificate, path, default_path, urdf, limits)

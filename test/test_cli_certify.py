@@ -163,6 +163,7 @@ def test_malformed_limits_file_exits_2(tmp_path, capsys) -> None:
     ['--samples', '4'],             # bound settings: too few samples
     ['--alpha1', 'atan', '--alpha1-scale', '-1'],
     ['--falsifier-states', '-5'],
+    ['--sampling-factor', '0.5'],   # settings: a hold shorter than one period
 ])
 def test_bad_options_exit_2(tmp_path, capsys, options) -> None:
     code = main(['certify', '--demo', 'planar2', *options, '--output', str(tmp_path / 'x.yaml')])
@@ -174,3 +175,17 @@ def test_bad_options_exit_2(tmp_path, capsys, options) -> None:
 def test_inspect_still_works(capsys) -> None:
     assert main(['inspect', '--demo', 'planar2', '--states', '0']) == EXIT_OK
     assert 'model hash' in capsys.readouterr().out
+
+
+def test_sampling_factor_reaches_the_settings(capsys) -> None:
+    from safety_filter.cli import _certify_settings, build_parser
+
+    parser = build_parser()
+    args = parser.parse_args(['certify', '--demo', 'planar2', '--sampling-factor', '2'])
+    settings = _certify_settings(args)
+    assert settings.sampling_factor == 2.0
+    assert settings.hold_period_s == pytest.approx(2.0 / settings.control_rate_hz)
+    default = _certify_settings(parser.parse_args(['certify', '--demo', 'planar2']))
+    assert default.sampling_factor == 1.0
+    assert main(['certify', '--help']) == 0
+    assert '--sampling-factor' in capsys.readouterr().out

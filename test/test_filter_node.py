@@ -431,6 +431,43 @@ def test_stale_nominal_is_never_used(trigger: str, executor: str, planar2: Certi
     assert match_filtered_to_statuses(filtered, records) >= 150
 
 
+# ---------------------------------------------------------------------- measured loop
+@pytest.mark.parametrize('rate_factor', [1.0, 0.5], ids=['certified-rate', 'half-rate'])
+def test_diagnostics_warn_when_the_loop_is_slower_than_the_certified_hold(
+        rate_factor: float, harness: Harness, start_node: Any) -> None:
+    """Joint states at the certified rate: the measured step period is the certified hold and
+    no step-period warning; at half that rate the period is twice the hold: WARN. planar2 is
+    certified at 100 Hz here so that a loaded machine keeps the rates (a 1 kHz loop in this
+    one Python process would not); the diagnostics compare with ``control_period_s *
+    sampling_factor`` of whatever certificate is loaded."""
+    arm = certified_arm('planar2', control_rate_hz=100.0)
+    hold_ms = arm.certificate.control_period_s * arm.certificate.sampling_factor * 1e3
+    assert hold_ms == pytest.approx(10.0)
+    start_node(node_arguments(arm, joint_state_timeout_s=5.0, nominal_timeout_s=5.0,
+                              diagnostics_rate_hz=2.0))
+    activate(harness)
+    names = list(arm.model.joint_names)
+    q = mid_range(arm.model)
+    u = arm.reference_filter().dynamics.gravity_torque(q)
+    harness.nominal_first = True
+    harness.start_source(lambda k: (joint_state(names, q, np.zeros(2)), nominal(u)),
+                         rate_hz=rate_factor * arm.certificate.control_rate_hz)
+    started = time.monotonic() + 1.2  # a report window wholly inside the stream
+    assert wait_for(lambda: harness.latest_diagnostic(started) is not None, 20.0)
+    status = harness.latest_diagnostic(started)
+    values = {kv.key: kv.value for kv in status.values}
+    period = float(values['step_period.median_ms'])
+    assert float(values['step_period.certified_hold_ms']) == pytest.approx(hold_ms)
+    assert math.isfinite(float(values['step_period.jitter_ms']))
+    assert period == pytest.approx(hold_ms / rate_factor, rel=0.1), values
+    if rate_factor < 1.0:
+        assert LEVEL_NAMES[status.level] == 'WARN', status.message
+        assert 'step period' in status.message and 'certified hold' in status.message
+    else:
+        assert 'step period' not in status.message, status.message
+        assert LEVEL_NAMES[status.level] in ('OK', 'WARN'), status.message
+
+
 # ---------------------------------------------------------------------- 4. parameters
 def test_runtime_parameter_changes(planar2: CertifiedArm, harness: Harness,
                                    start_node: Any) -> None:

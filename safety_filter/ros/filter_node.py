@@ -58,7 +58,18 @@ Publications:
   mode, intervention (last and max since the last report), ``margin.<joint>`` (smallest
   since the last report), active constraints of the last step, solve time median/p99/max
   over the report window, step counts per mode and the reasons of non-filtered steps, input
-  ages [ms], invalid-message counts, certificate id.
+  ages [ms], invalid-message counts, certificate id, and the measured loop:
+  ``step_period.median_ms`` (median time between consecutive published steps over the report
+  window, on the steady clock at receipt: the hold the driver actually sees),
+  ``step_period.jitter_ms`` (its 99th percentile minus the median) and
+  ``step_period.certified_hold_ms`` (``control_period_s * sampling_factor`` of the
+  certificate, the longest hold its sampled-data margin covers). While active, the level is
+  at least WARN when the median step period exceeds the certified hold by more than 10 %
+  (:data:`STEP_PERIOD_TOLERANCE`; judged on 5 periods or more): the loop runs slower than the
+  certificate assumes (e.g. ``trigger: nominal`` with a 100 Hz command source, or a driver
+  publishing joint states below the certified rate), so its guarantee does not apply. The
+  tolerance leaves room for the clock of a real driver (a few per cent) and for a median
+  taken over receipt times, and is still far below the factor 2 of a loop at half rate.
 
 Quality of service
 ------------------
@@ -81,6 +92,17 @@ node has many services). ``--executor single_threaded`` selects the classic exec
 
 Timeouts and the watchdog
 -------------------------
+``joint_state_timeout_s`` defaults to 0.02 s: 20 periods of a 1 kHz loop. Until it runs out
+after the driver's last joint state, the driver keeps applying the last filtered torque,
+which the certificate covers for one period only, so it must be short; it must also be a real
+timeout, not tripped by the scheduling jitter of a Python process on a non-real-time kernel
+(latency spikes of a few milliseconds: garbage collection, page faults, other load), since
+every stale step sends gravity compensation without damping and restarts the disturbance
+observer. 20 ms is several times those spikes and still bounds the uncovered hold to 20
+control periods (the old default, 50 ms, let 50 joint states at 1 kHz go missing before
+anything happened). Raise it for a loop on simulated time that runs
+slower than wall time (``config/sim_demo.yaml`` does).
+
 A watchdog timer counts down from the trigger topic's timeout (``nominal_timeout_s`` with
 ``trigger: nominal``, ``joint_state_timeout_s`` with ``trigger: joint_state``); each message on
 the trigger topic restarts it, so it fires only after a full timeout of silence. It then ticks
@@ -136,7 +158,7 @@ covers only when that source runs at the control rate. ``config/filter.yaml`` (i
 ``launch/hardware.launch.py``, ``safety-filter node`` and ``safety-filter run-graph --graph
 hardware`` load it.
 
-Operational parameters: ``joint_state_timeout_s`` (0.05) and ``nominal_timeout_s`` (0.1)
+Operational parameters: ``joint_state_timeout_s`` (0.02) and ``nominal_timeout_s`` (0.1)
 [s] may change at any time (positive, finite); ``trigger`` (``'joint_state'``),
 ``watchdog_rate_hz`` (0 = the certificate's control rate), ``diagnostics_rate_hz`` (2.0) and
 ``margin_warn`` (0.01, in the barrier's units) are read at configure and can be changed only
@@ -210,6 +232,7 @@ TIMEOUT_PARAMETERS = ('joint_state_timeout_s', 'nominal_timeout_s')
 CONFIGURE_TIME_PARAMETERS = ('trigger', 'watchdog_rate_hz', 'diagnostics_rate_hz',
                              'margin_warn')
 TRIGGERS = ('nominal', 'joint_state')
+JOINT_STATE_TIMEOUT_S = 0.02  # [s] default joint_state_timeout_s (module docstring)
 
 # Status mode codes (the ``mode`` field of ~/status).
 MODE_FILTERED = 0
@@ -229,6 +252,10 @@ DIAGNOSTIC_NAME_SUFFIX = ': filter'
 EXIT_OK = 0
 EXIT_FAILED = 1
 EXECUTORS = ('single_threaded', 'events')
+# Diagnostics WARN when the median step period exceeds the certified hold by more than this
+# fraction (see the module docstring), judged on at least STEP_PERIOD_MIN_SAMPLES periods.
+STEP_PERIOD_TOLERANCE = 0.1
+STEP_PERIOD_MIN_SAMPLES = 5
 
 
 def control_qos() -> QoSProfile:
@@ -302,7 +329,7 @@ class SafetyFilterNode(LifecycleNode):
         self._model: RobotModel | None = None
         self._certificate: Certificate | None = None
         # Validated and read at configure; changed at runtime by _on_set_parameters.
-        self._joint_state_timeout = 0.05
+        self._joint_state_timeout = JOINT_STATE_TIMEOUT_S
         self._nominal_timeout = 0.1
 
     def _guard_change_state(self, callback: Any) -> Any:
@@ -341,8 +368,9 @@ class SafetyFilterNode(LifecycleNode):
             'to feed the node inputs that are not a real motion (tests, studies): the '
             'guarantee on an arm that differs from its model needs it; safety parameter, '
             'fixed'))
-        self.declare_parameter('joint_state_timeout_s', 0.05, _describe(
-            'joint states older than this [s] trip the watchdog (hold command)', dynamic=True))
+        self.declare_parameter('joint_state_timeout_s', JOINT_STATE_TIMEOUT_S, _describe(
+            'joint states older than this [s] trip the watchdog (hold command); default 0.02: '
+            '20 periods of a 1 kHz loop', dynamic=True))
         self.declare_parameter('nominal_timeout_s', 0.1, _describe(
             'a nominal older than this [s] is never used (hold-still nominal instead)',
             dynamic=True))
@@ -619,6 +647,7 @@ class SafetyFilterNode(LifecycleNode):
         self._invalid_nominals = 0
         self._last_output: FilterOutput | None = None
         self._last_code = -1
+        self._last_step_time: float | None = None
         self._reset_window()
 
     def _reset_window(self) -> None:
@@ -627,6 +656,7 @@ class SafetyFilterNode(LifecycleNode):
         self._window_solve_times: list[float] = []
         self._window_intervention = 0.0
         self._window_margin = np.full(self._n, math.inf)
+        self._window_periods: list[float] = []
 
     # ------------------------------------------------------------------ inputs
     def _on_joint_state(self, msg: JointState) -> None:
@@ -789,6 +819,9 @@ class SafetyFilterNode(LifecycleNode):
         np.fmin(self._window_margin, output.barrier_margin, out=self._window_margin)
         self._last_output = output
         self._last_code = code
+        if self._last_step_time is not None:  # the measured step period (hold) [s]
+            self._window_periods.append(now - self._last_step_time)
+        self._last_step_time = now
 
     # ------------------------------------------------------------------ diagnostics
     def _on_diagnostics(self) -> None:
@@ -833,6 +866,17 @@ class SafetyFilterNode(LifecycleNode):
             finite = self._window_margin[np.isfinite(self._window_margin)]
             if finite.size and float(finite.min()) < self._margin_warn:
                 warnings.append(f'barrier margin down to {float(finite.min()):.4g}')
+        hold_ms = certificate.control_period_s * certificate.sampling_factor * 1e3
+        periods = np.array(self._window_periods) * 1e3
+        period_ms = jitter_ms = math.nan
+        if periods.size >= STEP_PERIOD_MIN_SAMPLES:
+            period_ms = float(np.median(periods))
+            jitter_ms = float(np.percentile(periods, 99.0)) - period_ms
+            if self._active and period_ms > hold_ms * (1.0 + STEP_PERIOD_TOLERANCE):
+                warnings.append(
+                    f'step period {period_ms:.3g} ms exceeds the certified hold '
+                    f'{hold_ms:.3g} ms by more than {STEP_PERIOD_TOLERANCE:.0%}: the '
+                    'certificate does not cover this loop')
         if errors:
             level, parts = DiagnosticStatus.ERROR, errors + stale + warnings
         elif stale:
@@ -867,6 +911,9 @@ class SafetyFilterNode(LifecycleNode):
         values.append(('solve_time.max_us',
                        _format_number(float(times.max())) if times.size else 'nan'))
         values.append(('steps', str(sum(counts))))
+        values.append(('step_period.median_ms', _format_number(period_ms)))
+        values.append(('step_period.jitter_ms', _format_number(jitter_ms)))
+        values.append(('step_period.certified_hold_ms', _format_number(hold_ms)))
         for name, count in zip(MODE_NAMES, counts):
             values.append((f'count.{name}', str(count)))
         values.append(('reasons', '; '.join(f'{reason} (x{count})' for reason, count
