@@ -417,6 +417,7 @@ def main(argv: list[str] | None = None) -> int:
     Certificate.load(certificate_path).save(any_namespace, node_name='/**/safety_filter')
     node_command = [sys.executable, '-m', 'safety_filter.cli', 'node', '--certificate',
                     str(any_namespace), '--demo', args.arm, '--executor', args.executor,
+                    '--activate-at-start',
                     # One step per nominal: the latency is traced from each nominal.
                     '--ros-args', '-p', 'trigger:=nominal', '-r']
     extra = args.node_ros_args.split()

@@ -19,8 +19,11 @@ Arguments:
     payload_mass: the mounted payload [kg] (default -1: the middle of the certified range).
     control_rate_hz: the watchdog's rate [Hz] (default 0: the certificate's control rate;
         the driver must run at the certificate's control rate for its guarantee).
-    autostart: configure and activate the filter at start (default true); false leaves it
-        unconfigured for a lifecycle manager (``ros2 lifecycle set /safety_filter ...``).
+    activate_at_start: ``true`` activates the filter at start, so that it commands the driver
+        as soon as joint states arrive. Default ``false``: the filter is configured at start
+        (errors in the certificate or the robot show at once) and stays INACTIVE, publishing
+        no torque, until ``ros2 lifecycle set /safety_filter activate`` (or a lifecycle
+        manager) activates it.
 
 ``safety-filter run-graph --graph hardware`` starts the same node without ``ros2 launch``.
 """
@@ -54,8 +57,10 @@ def generate_launch_description() -> LaunchDescription:
                               description='mounted payload [kg]; negative: mid-range'),
         DeclareLaunchArgument('control_rate_hz', default_value='0.0',
                               description="watchdog rate [Hz]; 0: the certificate's rate"),
-        DeclareLaunchArgument('autostart', default_value='true',
-                              description='configure and activate the filter at start'),
+        DeclareLaunchArgument('activate_at_start', default_value='false',
+                              description='true: activate the filter at start; false '
+                              '(default): configured and inactive until `ros2 lifecycle set '
+                              '/safety_filter activate`'),
     ]
     parameters = [
         LaunchConfiguration('certificate'), config,
@@ -71,12 +76,13 @@ def generate_launch_description() -> LaunchDescription:
         ('joint_states', LaunchConfiguration('joint_states_topic')),
         ('nominal_torque', LaunchConfiguration('nominal_topic')),
     ]
-    autostarted = Node(
+    activated = Node(
         package='safety_filter', executable='filter_node', name='safety_filter',
         output='screen', arguments=['--autostart'], parameters=parameters,
-        remappings=remappings, condition=IfCondition(LaunchConfiguration('autostart')))
-    managed = Node(
+        remappings=remappings, condition=IfCondition(LaunchConfiguration('activate_at_start')))
+    inactive = Node(
         package='safety_filter', executable='filter_node', name='safety_filter',
-        output='screen', parameters=parameters, remappings=remappings,
-        condition=UnlessCondition(LaunchConfiguration('autostart')))
-    return LaunchDescription(arguments + [autostarted, managed])
+        output='screen', arguments=['--configure-at-start'], parameters=parameters,
+        remappings=remappings,
+        condition=UnlessCondition(LaunchConfiguration('activate_at_start')))
+    return LaunchDescription(arguments + [activated, inactive])

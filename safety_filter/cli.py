@@ -307,17 +307,24 @@ def _command_node(args: argparse.Namespace) -> int:
     if args.payload_mass is not None:
         ros_args += ['-p', f'payload_mass:={float(args.payload_mass)!r}']
     ros_args += list(args.ros_args or [])
-    own = ['--executor', args.executor] + ([] if args.no_autostart else ['--autostart'])
+    if args.no_autostart and args.activate_at_start:
+        raise SafetyFilterError('give --no-autostart or --activate-at-start, not both')
+    start = ('--autostart' if args.activate_at_start
+             else [] if args.no_autostart else '--configure-at-start')
+    own = ['--executor', args.executor] + ([start] if start else [])
     return filter_node.main(['safety-filter-node', *own, *ros_args])
 
 
 def _add_node_parser(commands: argparse._SubParsersAction) -> None:
     node = commands.add_parser(
-        'node', help='run the safety filter ROS 2 node (configures and activates itself)',
+        'node', help='run the safety filter ROS 2 node (configured, inactive until '
+        'activated)',
         description='Run the safety_filter lifecycle node in this process, with the '
         'certificate parameter file, the URDF and the limits file, and the operational '
-        'parameters of config/filter.yaml (one filter step per joint state). By default it '
-        'configures and activates itself at start-up; SIGINT or SIGTERM end it cleanly. Topics: '
+        'parameters of config/filter.yaml (one filter step per joint state). It configures '
+        'itself at start-up and stays inactive (publishing no torque) until activated with '
+        '`ros2 lifecycle set /safety_filter activate`, or at once with --activate-at-start; '
+        'SIGINT or SIGTERM end it cleanly. Topics: '
         'joint_states, nominal_torque in, filtered_torque, ~/status, /diagnostics out (remap '
         'with --ros-args -r filtered_torque:=/driver/commands). Exit code 0 on a clean stop, 1 '
         'when configure/activate failed (reason in the log), 2 on bad options.')
@@ -333,6 +340,9 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
     node.add_argument('--payload-mass', type=float, default=None, metavar='KG',
                       help='payload mass of the model [kg] (default: middle of the certified '
                       'range)')
+    node.add_argument('--activate-at-start', action='store_true',
+                      help='activate at start-up: the node starts commanding the driver as '
+                      'soon as joint states arrive (default: configured and inactive)')
     node.add_argument('--no-autostart', action='store_true',
                       help='start unconfigured; drive it with the lifecycle services')
     node.add_argument('--executor', choices=('events', 'single_threaded'),

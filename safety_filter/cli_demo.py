@@ -143,8 +143,12 @@ def _command_run_graph(args: argparse.Namespace) -> int:
             command_topic=args.command_topic, joint_states_topic=args.joint_states_topic,
             nominal_topic=args.nominal_topic, gravity_convention=args.gravity_convention,
             payload_mass=-1.0 if args.payload_mass is None else args.payload_mass,
-            control_rate_hz=args.control_rate)
+            control_rate_hz=args.control_rate, activate_at_start=args.activate_at_start)
         duration = args.duration
+        if not args.activate_at_start:
+            print('the filter starts configured and INACTIVE (it publishes no torque): '
+                  'activate it with `ros2 lifecycle set /safety_filter activate`, or give '
+                  '--activate-at-start', flush=True)
     how = 'one process per node' if args.processes else 'one process'
     print(f'running {[s.name for s in specs]} ({how}); Ctrl-C stops', flush=True)
     result = run_graph(specs, processes=args.processes, executor=args.executor,
@@ -196,6 +200,10 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
     hardware.add_argument('--nominal-topic', default='nominal_torque')
     hardware.add_argument('--gravity-convention', choices=('full', 'driver_compensated'),
                           default='full')
+    hardware.add_argument('--activate-at-start', action='store_true',
+                          help='activate the filter at once, so that it commands the driver '
+                          'as soon as joint states arrive (default: configured and inactive '
+                          'until `ros2 lifecycle set /safety_filter activate`)')
     hardware.add_argument('--control-rate', type=float, default=0.0, metavar='HZ',
                           help="the filter's watchdog rate (default 0: the certificate's "
                           'control rate)')

@@ -69,7 +69,8 @@ ANY_NAMESPACE_KEY = f'/**/{NODE_NAME}'  # parameter-file key matching the node i
 TRANSITIONS = {'configure': Transition.TRANSITION_CONFIGURE,
                'cleanup': Transition.TRANSITION_CLEANUP,
                'activate': Transition.TRANSITION_ACTIVATE,
-               'deactivate': Transition.TRANSITION_DEACTIVATE}
+               'deactivate': Transition.TRANSITION_DEACTIVATE,
+               'shutdown_from_active': Transition.TRANSITION_ACTIVE_SHUTDOWN}
 LEVEL_NAMES = {DiagnosticStatus.OK: 'OK', DiagnosticStatus.WARN: 'WARN',
                DiagnosticStatus.ERROR: 'ERROR', DiagnosticStatus.STALE: 'STALE'}
 

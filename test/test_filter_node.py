@@ -113,14 +113,18 @@ def stream(harness: Harness, source: Any, statuses: int, timeout: float = 60.0) 
 
 
 def stop_and_collect(harness: Harness, arm: CertifiedArm) -> tuple[list[StatusRecord], list]:
-    """Deactivate the node (outputs stop), then return its statuses and filtered torques."""
+    """Deactivate the node (outputs stop), then return its statuses and the filtered torques
+    of its steps (without the last command it sends on deactivate, which is not a step and
+    has no status: test_deactivate_and_shutdown_send_the_hold_command_last checks it)."""
     assert harness.change_state('deactivate')
     count = -1
     while count != len(harness.status):  # let the last messages arrive
         count = len(harness.status)
         wait_for(lambda: False, 0.3)
     records = [parse_status(msg, arm.model.joint_names) for msg in harness.status.messages()]
-    return records, harness.filtered.messages()
+    filtered = harness.filtered.messages()
+    assert filtered, 'no filtered torque, not even the last command'
+    return records, filtered[:-1]
 
 
 def random_inputs(arm: CertifiedArm, seed: int, driver_compensated: bool = False) -> Any:
@@ -541,6 +545,44 @@ def test_lifecycle_transitions_switch_the_outputs(planar2: CertifiedArm, harness
         assert harness.get_state() == 'unconfigured'
         if round_ == 0:
             assert harness.change_state('configure')
+
+
+@pytest.mark.parametrize(('transition', 'convention'), [
+    ('deactivate', 'full'), ('deactivate', 'driver_compensated'), ('shutdown', 'full')])
+def test_deactivate_and_shutdown_send_the_hold_command_last(
+        transition: str, convention: str, planar2: CertifiedArm, harness: Harness,
+        start_node: Any) -> None:
+    """Leaving active, the node publishes one last filtered_torque, the hold command
+    hold_torque(q, v) at the last valid joint state in the driver's convention, and then
+    nothing."""
+    arm = planar2
+    start_node(node_arguments(arm, gravity_convention=convention,
+                              joint_state_timeout_s=5.0, nominal_timeout_s=5.0))
+    activate(harness)
+    names = list(arm.model.joint_names)
+    q = mid_range(arm.model) + np.array([0.2, -0.3])
+    v = np.array([0.3, -0.2])
+    harness.nominal_first = True
+    harness.start_source(lambda k: (joint_state(names, q, v), nominal([0.5, -0.4])))
+    assert wait_for(lambda: len(harness.status) >= 50, 20.0)
+    harness.set_source(None)
+    wait_for(lambda: False, 0.2)
+    steps = len(harness.status)
+    assert harness.change_state('deactivate' if transition == 'deactivate'
+                                else 'shutdown_from_active')
+    wait_for(lambda: False, 0.5)
+    filtered = harness.filtered.messages()
+    hold = arm.reference_filter(gravity_convention=convention).hold_torque(q, v)
+    np.testing.assert_allclose(np.array(filtered[-1].data), hold, rtol=0, atol=1e-12)
+    assert len(harness.status) == steps, 'the last command is not a filter step'
+    last_step = parse_status(harness.status.messages()[-1], names)
+    assert not np.allclose(last_step.torque, hold)  # a different command than the steps'
+    if convention == 'driver_compensated':  # on top of the driver's gravity compensation
+        full = arm.reference_filter().hold_torque(q, v)
+        assert not np.allclose(hold, full)
+    count = len(harness.filtered)
+    wait_for(lambda: False, 0.5)
+    assert len(harness.filtered) == count, 'outputs continued after the last command'
 
 
 def test_configure_fails_with_a_certificate_for_another_model(

@@ -207,6 +207,10 @@ def test_the_runner_starts_the_same_graphs(tmp_path: Path) -> None:
         assert any(p.name == 'sim_demo.yaml' for p in spec.parameter_files)
     (hardware,) = hardware_graph(certificate=certificate, urdf_path=urdf,
                                  command_topic='/arm/commands')
+    assert hardware.transitions == ('configure',)  # inactive until the user activates it
+    (activated,) = hardware_graph(certificate=certificate, urdf_path=urdf,
+                                  activate_at_start=True)
+    assert activated.transitions == ('configure', 'activate')
     assert ('filtered_torque', '/arm/commands') in hardware.remappings
     assert [p.name for p in hardware.parameter_files] == ['certificate.yaml', 'filter.yaml']
 
@@ -220,3 +224,35 @@ def test_config_files_are_parameter_files_keyed_by_node_name() -> None:
         for node, section in document.items():
             assert set(section) == {'ros__parameters'}, (path.name, node)
             assert node in {'sim_arm', 'careless_operator', 'safety_filter'}, (path.name, node)
+
+
+def _default(launch: LaunchFile, argument: str) -> str | None:
+    for call in launch._calls('DeclareLaunchArgument'):
+        if call.args and _string(call.args[0]) == argument:
+            for keyword in call.keywords:
+                if keyword.arg == 'default_value':
+                    return _string(launch.resolve(keyword.value))
+            return None
+    raise AssertionError(f'no launch argument {argument!r}')
+
+
+def _node_arguments(launch: LaunchFile, node: NodeCall) -> list[str]:
+    return [_string(item) for item in _elements(launch, node.keywords.get('arguments',
+                                                                          ast.List([])))]
+
+
+def test_hardware_launch_does_not_activate_unless_asked() -> None:
+    """The filter starts configured and inactive; only activate_at_start:=true activates it."""
+    launch = LaunchFile(REPO / 'launch' / 'hardware.launch.py')
+    assert _default(launch, 'activate_at_start') == 'false'
+    assert 'autostart' not in launch.arguments
+    for node in launch.nodes:
+        condition = node.keywords['condition']
+        assert _call_name(condition) in ('IfCondition', 'UnlessCondition'), node.line
+        (configuration,) = condition.args
+        assert _string(configuration.args[0]) == 'activate_at_start', node.line
+        arguments = _node_arguments(launch, node)
+        if _call_name(condition) == 'IfCondition':
+            assert arguments == ['--autostart'], node.line
+        else:
+            assert '--autostart' not in arguments and arguments == ['--configure-at-start']

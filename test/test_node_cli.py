@@ -102,13 +102,14 @@ def test_cli_node_filters_and_exits_cleanly_on_sigint(
     certificate = arm.default_certificate_path if not namespace else arm.certificate_path
     node = node_process(['--certificate', str(certificate), '--urdf', str(arm.urdf_path),
                          '--limits', str(arm.limits_path), '--executor', executor,
+                         '--activate-at-start',
                          '--ros-args', '-r', f'__ns:={namespace or "/"}',
                          '-p', 'diagnostics_rate_hz:=5.0'])
     harness = Harness(domain_id, namespace)
     try:
         harness.wait_for_subscribers(START_TIMEOUT_S)
         harness.wait_for_publishers(START_TIMEOUT_S)
-        assert harness.get_state() == 'active'  # autostart
+        assert harness.get_state() == 'active'  # --activate-at-start
         names = list(arm.model.joint_names)
         gravity = arm.reference_filter().dynamics
 
@@ -133,7 +134,8 @@ def test_cli_node_filters_and_exits_cleanly_on_sigint(
         wait_for(lambda: False, 0.5)
         records = [parse_status(m, names) for m in harness.status.messages()]
         assert replay_statuses(records, arm.reference_filter()) >= 100
-        assert match_filtered_to_statuses(harness.filtered.messages(), records) >= 100
+        # The last message is the hold command sent on deactivate (not a step).
+        assert match_filtered_to_statuses(harness.filtered.messages()[:-1], records) >= 100
     finally:
         harness.close()
     code = node.interrupt()
@@ -171,3 +173,25 @@ def test_cli_node_exits_with_failure_for_another_models_certificate(
     assert code == 1, output
     assert 'configure failed' in output and 'hash' in output, output
     assert 'Traceback' not in output, output
+
+
+def test_cli_node_starts_configured_and_inactive_by_default(
+        planar2: CertifiedArm, domain_id: int, node_process: Any) -> None:
+    arm = planar2
+    namespace = unique_namespace()
+    node = node_process(['--certificate', str(arm.certificate_path), '--urdf',
+                         str(arm.urdf_path), '--limits', str(arm.limits_path),
+                         '--ros-args', '-r', f'__ns:={namespace}'])
+    harness = Harness(domain_id, namespace)
+    try:
+        assert harness.get_state_client.wait_for_service(timeout_sec=START_TIMEOUT_S), \
+            node.output()
+        assert wait_for(lambda: harness.get_state() == 'inactive', 30.0), node.output()
+        names = list(arm.model.joint_names)
+        q = mid_range(arm.model)
+        harness.start_source(lambda k: (joint_state(names, q, np.zeros(2)), nominal([0, 0])))
+        wait_for(lambda: False, 1.0)
+        assert len(harness.filtered) == 0, 'an inactive node published a torque'
+    finally:
+        harness.close()
+    assert node.interrupt() == 0, node.output()

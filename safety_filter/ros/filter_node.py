@@ -166,14 +166,36 @@ while the node is unconfigured.
 
 Lifecycle
 ---------
-``configure`` builds the model, rebuilds the certificate from the parameters, checks the
-model hash and creates the filter, publishers, subscriptions and timers (any error: logged,
-the transition fails and the node stays unconfigured). ``activate`` enables the publishers and
-starts filtering (fresh filter state and counters); ``deactivate`` stops it; ``cleanup`` and
-``shutdown`` destroy everything. Executables: ``ros2 run safety_filter filter_node
---ros-args --params-file certificate.yaml -p urdf_path:=arm.urdf -p limits_path:=limits.yaml``
-(add ``--autostart`` before ``--ros-args`` to configure and activate at start-up), or
-``safety-filter node --certificate certificate.yaml --urdf arm.urdf --limits limits.yaml``.
+What the node publishes in each state and at each transition:
+
+* **unconfigured** (at start, after ``cleanup``): nothing (no publishers).
+* ``configure``: builds the model, rebuilds the certificate from the parameters, checks the
+  model hash and creates the filter, publishers, subscriptions and timers (any error: logged,
+  the transition fails and the node stays unconfigured). Publishes nothing.
+* **inactive**: no ``filtered_torque`` and no ``~/status``; ``/diagnostics`` at its rate,
+  level STALE ('inactive: not filtering'). The driver's own command timeout applies.
+* ``activate``: fresh filter state and counters; a joint state already older than
+  ``joint_state_timeout_s`` is forgotten. Publishes nothing until the first valid joint
+  state after activation.
+* **active**: one ``filtered_torque`` and one ``~/status`` per step (per joint state with
+  the default trigger; the watchdog's steps when the trigger topic is silent, see above).
+* ``deactivate`` (and ``shutdown`` from active): ONE last ``filtered_torque``, then nothing:
+  the hold command :meth:`SafetyFilter.hold_torque` at the last valid joint state,
+  ``g(q) - hold_damping v`` clipped to the torque box (the velocity counts as unknown, so no
+  damping, when that state is older than ``joint_state_timeout_s``), in the driver's
+  convention (``gravity_convention``). It is not a filter step: no ``~/status`` record. So
+  the driver's last command from the filter is a defined hold, not whatever the last step
+  sent, until its own command timeout or the next command source takes over. Nothing is
+  sent when no valid joint state came since activation.
+* ``cleanup``, ``shutdown``: destroy publishers, subscriptions and timers (``shutdown`` from
+  active sends the last command first and waits up to 0.2 s for it to be acknowledged).
+
+Executables: ``ros2 run safety_filter filter_node --ros-args --params-file certificate.yaml
+--params-file <share>/config/filter.yaml -p urdf_path:=arm.urdf -p limits_path:=limits.yaml``
+starts unconfigured (drive it with ``ros2 lifecycle set``); add ``--configure-at-start``
+before ``--ros-args`` to configure at start-up (inactive), or ``--autostart`` to configure
+and activate. ``safety-filter node --certificate certificate.yaml --urdf arm.urdf --limits
+limits.yaml`` configures at start and stays inactive unless given ``--activate-at-start``.
 """
 
 from __future__ import annotations
@@ -194,6 +216,7 @@ from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from lifecycle_msgs.srv import ChangeState
 from rcl_interfaces.msg import ParameterDescriptor, SetParametersResult
 from rclpy.clock import Clock, ClockType
+from rclpy.duration import Duration
 from rclpy.executors import SingleThreadedExecutor
 from rclpy.impl.implementation_singleton import rclpy_implementation as _rclpy
 from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
@@ -477,6 +500,8 @@ class SafetyFilterNode(LifecycleNode):
         return TransitionCallbackReturn.SUCCESS
 
     def on_deactivate(self, state: LifecycleState) -> TransitionCallbackReturn:
+        if self._active:
+            self._publish_last_command()
         self._active = False
         if self._watchdog is not None:
             self._watchdog.cancel()
@@ -489,6 +514,8 @@ class SafetyFilterNode(LifecycleNode):
         return TransitionCallbackReturn.SUCCESS
 
     def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
+        if self._active:  # shutdown from active: the last command, as on deactivate
+            self._publish_last_command(wait_s=0.2)
         self._teardown()
         self.get_logger().info('shut down')
         return TransitionCallbackReturn.SUCCESS
@@ -497,6 +524,34 @@ class SafetyFilterNode(LifecycleNode):
         self.get_logger().error('error processing: tearing down (back to unconfigured)')
         self._teardown()
         return TransitionCallbackReturn.SUCCESS
+
+    def _publish_last_command(self, wait_s: float = 0.0) -> None:
+        """Publish the one defined last command before going quiet (module docstring).
+
+        The hold command :meth:`SafetyFilter.hold_torque` at the last valid joint state
+        (gravity compensation with damping toward rest; the velocity counts as unknown, so
+        no damping, when that state is older than ``joint_state_timeout_s``), in the
+        driver's convention. Nothing when no valid joint state came since activation.
+        ``wait_s``: wait this long at most for subscribers to acknowledge it (shutdown,
+        where the publisher is destroyed right after).
+        """
+        filt, publisher, q = self._filter, self._filtered_pub, self._last_valid_q
+        if filt is None or publisher is None or q is None:
+            return
+        fresh = time.monotonic() - self._js_valid_time <= self._joint_state_timeout
+        torque = filt.hold_torque(q, self._last_valid_v if fresh else self._nan)
+        msg = Float64MultiArray()
+        msg.layout = self._filtered_msg.layout
+        msg.data = array.array('d', np.asarray(torque, dtype=float).tobytes())
+        publisher.publish(msg)
+        if wait_s > 0.0:
+            try:
+                publisher.wait_for_all_acked(Duration(seconds=wait_s))
+            except Exception:  # noqa: BLE001 - best effort on the way out
+                pass
+        self.get_logger().info(
+            f'last command: the hold command at the last valid joint state '
+            f'({"fresh" if fresh else "stale: no damping"}) {np.round(torque, 4).tolist()}')
 
     @property
     def filter(self) -> SafetyFilter | None:
@@ -574,6 +629,7 @@ class SafetyFilterNode(LifecycleNode):
         self._q = self._nan
         self._v = self._nan
         self._last_valid_q: np.ndarray | None = None
+        self._last_valid_v = self._nan
         self._js_valid_time = -math.inf  # steady time of the last valid joint state
         self._js_time = -math.inf  # steady time of the last joint state (valid or not)
         self._u_nom = self._nan
@@ -686,6 +742,7 @@ class SafetyFilterNode(LifecycleNode):
             if self._last_valid_q is None and self._active:
                 self._start_watchdog()  # nothing to watch before the first valid state
             self._last_valid_q = self._q
+            self._last_valid_v = self._v
             self._js_valid_time = now
         if self._active and self._trigger == 'joint_state':
             self._feed_watchdog()
@@ -953,6 +1010,9 @@ def _parse_own_arguments(arguments: Sequence[str]) -> argparse.Namespace:
         'e.g. --ros-args --params-file certificate.yaml -p urdf_path:=arm.urdf')
     parser.add_argument('--autostart', action='store_true',
                         help='configure and activate at start-up (no lifecycle manager needed)')
+    parser.add_argument('--configure-at-start', action='store_true',
+                        help='configure at start-up and stay inactive (a lifecycle manager or '
+                        '`ros2 lifecycle set` activates it)')
     parser.add_argument('--executor', choices=EXECUTORS, default='events',
                         help="rclpy executor: 'events' (default; rclpy.experimental."
                         'EventsExecutor: about half the CPU per message, experimental in '
@@ -997,10 +1057,11 @@ def main(args: Sequence[str] | None = None) -> int:
     code = EXIT_OK
     try:
         node = SafetyFilterNode(context=context)
-        if own.autostart:
+        if own.autostart or own.configure_at_start:
             if node.trigger_configure() != TransitionCallbackReturn.SUCCESS:
-                node.get_logger().fatal('autostart: configure failed (see above)')
+                node.get_logger().fatal('configure at start failed (see above)')
                 return EXIT_FAILED
+        if own.autostart:
             if node.trigger_activate() != TransitionCallbackReturn.SUCCESS:
                 node.get_logger().fatal('autostart: activate failed')
                 return EXIT_FAILED

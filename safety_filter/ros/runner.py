@@ -12,7 +12,8 @@ parameter files from ``config/``, certificate and remappings:
 :func:`run_graph` starts a graph either in this process (every node in one
 ``MultiThreadedExecutor``) or as one subprocess per node, configures and activates the
 lifecycle filter node itself (in-process through its transitions, across processes through
-its ``change_state`` service), and stops everything cleanly on SIGINT/SIGTERM, when the
+its ``change_state`` service; the hardware graph's filter only configured, left inactive,
+unless asked to activate at start), and stops everything cleanly on SIGINT/SIGTERM, when the
 simulated arm has run its ``duration_s``, or after a wall-clock duration.
 
 The unfiltered baseline of the demo (the operator's torque sent straight to the simulated
@@ -92,6 +93,8 @@ class NodeSpec:
         parameters: parameters given last (they win over the files).
         remappings: ``(from, to)`` topic remappings.
         arguments: extra command-line arguments of the executable (subprocess only).
+        activate: a lifecycle node is configured and activated at start (True) or only
+            configured, left inactive for ``ros2 lifecycle set <name> activate`` (False).
     """
 
     executable: str
@@ -100,6 +103,14 @@ class NodeSpec:
     parameters: dict[str, Any] = field(default_factory=dict)
     remappings: list[tuple[str, str]] = field(default_factory=list)
     arguments: list[str] = field(default_factory=list)
+    activate: bool = True
+
+    @property
+    def transitions(self) -> tuple[str, ...]:
+        """The lifecycle transitions the runner triggers at start."""
+        if not self.lifecycle:
+            return ()
+        return ('configure', 'activate') if self.activate else ('configure',)
 
     @property
     def module(self) -> str:
@@ -203,7 +214,8 @@ def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
                    joint_states_topic: str = 'joint_states',
                    nominal_topic: str = 'nominal_torque', gravity_convention: str = 'full',
                    payload_mass: float = -1.0, control_rate_hz: float = 0.0,
-                   config: str | Path | None = None) -> list[NodeSpec]:
+                   config: str | Path | None = None, activate_at_start: bool = False
+                   ) -> list[NodeSpec]:
     """The filter alone (``launch/hardware.launch.py``), between a command source and a driver.
 
     Args:
@@ -215,6 +227,9 @@ def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
         payload_mass: mounted payload [kg]; negative: the middle of the certified range.
         control_rate_hz: the watchdog's rate (``watchdog_rate_hz``; 0: the certificate's).
         config: operational parameters (default ``config/filter.yaml``).
+        activate_at_start: activate the filter at start. Default False: it is configured and
+            stays inactive (no torque published) until ``ros2 lifecycle set /safety_filter
+            activate``: a real arm's driver gets commands only when the user says so.
     """
     config = Path(config) if config is not None else config_file(FILTER_CONFIG)
     return [NodeSpec('filter_node', FILTER_NODE_NAME, [Path(certificate), config], {
@@ -222,7 +237,7 @@ def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
         'gravity_convention': gravity_convention, 'payload_mass': float(payload_mass),
         'watchdog_rate_hz': float(control_rate_hz)}, [
         ('filtered_torque', command_topic), ('joint_states', joint_states_topic),
-        ('nominal_torque', nominal_topic)])]
+        ('nominal_torque', nominal_topic)], activate=bool(activate_at_start))]
 
 
 # ---------------------------------------------------------------------- running
@@ -382,7 +397,7 @@ def _run_in_process(specs: Sequence[NodeSpec], overrides: dict[str, Path | None]
                 nodes.append(node)
             for spec, node in zip(specs, nodes):
                 if spec.lifecycle:
-                    for transition in ('configure', 'activate'):
+                    for transition in spec.transitions:
                         outcome = getattr(node, f'trigger_{transition}')()
                         if outcome != TransitionCallbackReturn.SUCCESS:
                             raise GraphError(f'{spec.name}: {transition} failed (see its log)')
@@ -496,8 +511,7 @@ def _run_subprocesses(specs: Sequence[NodeSpec], overrides: dict[str, Path | Non
                     start_new_session=True)
                 _wait_for_node(watcher, spec.name, processes[spec.name], 60.0)
                 if spec.lifecycle:
-                    _call_lifecycle(watcher, spinner, spec.name, ('configure', 'activate'),
-                                    60.0)
+                    _call_lifecycle(watcher, spinner, spec.name, spec.transitions, 60.0)
                 if stop.raised:
                     break
             start = time.monotonic()
