@@ -2,10 +2,16 @@
 
     ros2 launch safety_filter sim_demo.launch.py certificate:=out/demo/bench6_certificate.yaml
 
-Nodes: ``sim_arm`` (the simulated arm and its driver: takes ``effort_command``, publishes
+Nodes: ``sim_arm`` (the simulated arm and its driver: takes ``sim_effort_command``, publishes
 ``joint_states`` and ``/clock``), ``careless_operator`` (publishes ``nominal_torque``) and
 ``safety_filter`` (the lifecycle filter node, configured and activated at start with
-``--autostart``), whose ``filtered_torque`` is remapped to the arm's ``effort_command``.
+``--autostart``), whose ``filtered_torque`` is remapped to the arm's ``sim_effort_command``
+(not ``effort_command``, the hardware launch file's default command topic).
+
+The graph runs on its own ROS domain (``domain_id``: by default a random one in 150..199,
+printed at start) with discovery limited to this machine (``ROS_AUTOMATIC_DISCOVERY_RANGE``
+``LOCALHOST``), like ``safety-filter demo``: its nodes cannot reach a real robot's nodes, nor
+be reached by them.
 Parameters come from ``config/sim_demo.yaml`` (installed to the package's share folder) and,
 for the filter, from the certificate.
 
@@ -16,12 +22,15 @@ Arguments:
         writes one anywhere).
     urdf_path, limits_path: the robot (default: the bench6 demo arm shipped in the package).
     seed: the operator's seed (default 0).
+    domain_id: the graph's ROS domain (default: a random one in 150..199).
 
 ``safety-filter run-graph`` starts the same graph without ``ros2 launch``.
 """
 
+import random
+
 from launch import LaunchDescription
-from launch.actions import DeclareLaunchArgument
+from launch.actions import DeclareLaunchArgument, LogInfo, SetEnvironmentVariable
 from launch.substitutions import LaunchConfiguration, PathJoinSubstitution
 from launch_ros.actions import Node
 from launch_ros.parameter_descriptions import ParameterValue
@@ -42,6 +51,16 @@ def generate_launch_description() -> LaunchDescription:
         DeclareLaunchArgument('limits_path', default_value=str(limits),
                               description='the limits file of the robot'),
         DeclareLaunchArgument('seed', default_value='0', description="the operator's seed"),
+        DeclareLaunchArgument('domain_id', default_value=str(random.SystemRandom().randint(
+            150, 199)), description='ROS domain of the graph (default: a random one in '
+            '150..199, discovery on this machine only)'),
+    ]
+    # Set before the nodes start (the middleware reads both when a process starts).
+    isolation = [
+        SetEnvironmentVariable('ROS_DOMAIN_ID', LaunchConfiguration('domain_id')),
+        SetEnvironmentVariable('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST'),
+        LogInfo(msg=['sim demo graph on ROS domain ', LaunchConfiguration('domain_id'),
+                     ', discovery on this machine only']),
     ]
     robot = {'urdf_path': LaunchConfiguration('urdf_path'),
              'limits_path': LaunchConfiguration('limits_path')}
@@ -57,5 +76,5 @@ def generate_launch_description() -> LaunchDescription:
         package='safety_filter', executable='filter_node', name='safety_filter',
         output='screen', arguments=['--autostart'],
         parameters=[LaunchConfiguration('certificate'), config, robot],
-        remappings=[('filtered_torque', 'effort_command')])
-    return LaunchDescription(arguments + [sim_arm, operator, safety_filter])
+        remappings=[('filtered_torque', 'sim_effort_command')])
+    return LaunchDescription(arguments + isolation + [sim_arm, operator, safety_filter])

@@ -9,7 +9,7 @@ Topics of a safety-filter graph (:data:`TOPIC_TYPES`):
 
 * ``/joint_states`` (``sensor_msgs/msg/JointState``): the arm's state;
 * ``/nominal_torque`` (``std_msgs/msg/Float64MultiArray``): the command source's torque;
-* ``/effort_command`` (``std_msgs/msg/Float64MultiArray``): what the driver was sent (the
+* ``/sim_effort_command`` (``std_msgs/msg/Float64MultiArray``): what the driver was sent (the
   filter's ``filtered_torque``, remapped);
 * ``/diagnostics`` (``diagnostic_msgs/msg/DiagnosticArray``): the filter's diagnostics;
 * ``/safety_filter/status`` (``std_msgs/msg/Float64MultiArray``): one record per filter
@@ -43,7 +43,7 @@ from safety_filter.errors import SafetyFilterError
 
 TOPIC_JOINT_STATES = '/joint_states'
 TOPIC_NOMINAL = '/nominal_torque'
-TOPIC_COMMAND = '/effort_command'
+TOPIC_COMMAND = '/sim_effort_command'
 TOPIC_DIAGNOSTICS = '/diagnostics'
 TOPIC_STATUS = '/safety_filter/status'
 

@@ -6,6 +6,7 @@ They need rclpy (the ``ros`` extra) at run time, not to build the parser.
 from __future__ import annotations
 
 import argparse
+import random
 import time
 from pathlib import Path
 
@@ -34,8 +35,9 @@ def _add_graph_options(parser: argparse.ArgumentParser) -> None:
                        help="executor of the nodes (default: events, rclpy's "
                        'EventsExecutor, the fastest for a 1 kHz loop in Python)')
     group.add_argument('--domain-id', type=int, default=None, metavar='N',
-                       help='ROS domain of the graph (demo default: a random one in '
-                       '150..199, discovery on this machine only)')
+                       help='ROS domain of the graph (demo and sim graph default: a random '
+                       'one in 150..199, discovery on this machine only; hardware graph '
+                       'default: ROS_DOMAIN_ID)')
     group.add_argument('--verbose', action='store_true', help="show the nodes' info logs")
 
 
@@ -118,10 +120,49 @@ def _robot_files(args: argparse.Namespace) -> tuple[Path, Path | str, str]:
     return urdf, limits, arm
 
 
+def _require_hardware_robot(args: argparse.Namespace) -> None:
+    """The hardware graph never falls back to a demo arm or a demo certificate: it needs
+    --urdf and --limits (or --demo <arm>, explicitly) and --certificate."""
+    missing = []
+    if args.arm is None:
+        if args.urdf is None:
+            missing.append('--urdf ARM.urdf')
+        if not args.limits:
+            missing.append('--limits ARM_LIMITS.yaml')
+    if not args.certificate:
+        missing.append('--certificate ARM_CERTIFICATE.yaml')
+    if missing:
+        raise SafetyFilterError(
+            f'--graph hardware needs {", ".join(missing)}: the robot the filter guards and '
+            'its certificate (there is no default robot for a real arm; --demo <arm> names '
+            'a demo arm explicitly)')
+    if args.urdf is not None and args.limits and not Path(args.limits).is_file():
+        raise SafetyFilterError(f'limits file not found: {args.limits}')
+
+
+def graph_domain(graph: str, domain_id: int | None) -> tuple[int | None, bool]:
+    """The ROS domain and localhost-only discovery of a graph run by ``run-graph``.
+
+    The sim graph runs isolated, like the demo: on ``domain_id`` or else a random domain of
+    :data:`safety_filter.ros.runner.SIM_DOMAIN_RANGE`, discovery on this machine only, so
+    that its nodes and a real arm's cannot meet. The hardware graph joins the user's
+    network: ``domain_id`` or the environment's ``ROS_DOMAIN_ID`` (None), any discovery.
+    """
+    from safety_filter.ros.runner import SIM_DOMAIN_RANGE
+
+    if graph != 'sim':
+        return domain_id, False
+    if domain_id is None:
+        domain_id = random.SystemRandom().randint(*SIM_DOMAIN_RANGE)
+    return domain_id, True
+
+
 def _command_run_graph(args: argparse.Namespace) -> int:
     _require_rclpy()
     from safety_filter.ros.runner import hardware_graph, run_graph, sim_demo_graph
 
+    if args.graph == 'hardware':
+        _require_hardware_robot(args)
     urdf, limits, name = _robot_files(args)
     certificate = (Path(args.certificate) if args.certificate
                    else Path('out/demo') / f'{name}_certificate.yaml')
@@ -150,10 +191,13 @@ def _command_run_graph(args: argparse.Namespace) -> int:
                   'activate it with `ros2 lifecycle set /safety_filter activate`, or give '
                   '--activate-at-start', flush=True)
     how = 'one process per node' if args.processes else 'one process'
-    print(f'running {[s.name for s in specs]} ({how}); Ctrl-C stops', flush=True)
+    domain, localhost_only = graph_domain(args.graph, args.domain_id)
+    where = (f'ROS domain {domain}, discovery on this machine only' if localhost_only
+             else f'ROS domain {domain if domain is not None else "of ROS_DOMAIN_ID"}')
+    print(f'running {[s.name for s in specs]} ({how}, {where}); Ctrl-C stops', flush=True)
     result = run_graph(specs, processes=args.processes, executor=args.executor,
-                       duration_s=duration, domain_id=args.domain_id,
-                       localhost_only=args.graph == 'sim',
+                       duration_s=duration, domain_id=domain,
+                       localhost_only=localhost_only,
                        log_level=None if args.verbose else 'warn')
     state = 'interrupted' if result.interrupted else 'done'
     simulated = f', {result.simulated_s:.2f} s simulated' if result.simulated_s else ''
@@ -174,13 +218,15 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
     run.add_argument('--graph', choices=GRAPHS, default='sim',
                      help='sim (default) or hardware')
     robot = run.add_argument_group('robot')
-    robot.add_argument('--arm', choices=DEMO_ARMS, default=None,
-                       help='a demo arm (default: bench6 when no --urdf)')
-    robot.add_argument('--urdf', help='the robot URDF')
-    robot.add_argument('--limits', help='its limits file')
+    robot.add_argument('--arm', '--demo', dest='arm', choices=DEMO_ARMS, default=None,
+                       help='a demo arm (sim default: bench6 when no --urdf; the hardware '
+                       'graph has no default robot)')
+    robot.add_argument('--urdf', help='the robot URDF (hardware: required, or --demo)')
+    robot.add_argument('--limits', help='its limits file (hardware: required with --urdf)')
     robot.add_argument('--certificate', metavar='PATH',
-                       help='certificate parameter file (default: out/demo/<arm or URDF '
-                       'stem>_certificate.yaml, where safety-filter demo writes it)')
+                       help='certificate parameter file (hardware: required; sim default: '
+                       'out/demo/<arm or URDF stem>_certificate.yaml, where safety-filter '
+                       'demo writes it)')
     robot.add_argument('--payload-mass', type=float, default=None, metavar='KG',
                        help='mounted payload [kg] (hardware default: the middle of the '
                        'certified range)')
@@ -193,7 +239,7 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
                      help='record the graph to this bag folder (must not exist)')
     sim.add_argument('--storage', choices=('mcap', 'sqlite3'), default='mcap')
     hardware = run.add_argument_group('hardware graph')
-    hardware.add_argument('--command-topic', default='effort_command',
+    hardware.add_argument('--command-topic', default='effort_command',  # not the sim arm's
                           help="the driver's effort-command topic (filtered_torque goes "
                           'there; default: effort_command)')
     hardware.add_argument('--joint-states-topic', default='joint_states')

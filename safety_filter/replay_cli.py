@@ -69,7 +69,7 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
                         help='nominal torque topic (default: /nominal_torque)')
     topics.add_argument('--filtered-topic', default='/filtered_torque', metavar='TOPIC',
                         help='recorded filtered torque, for the agreement check (default: '
-                        '/filtered_torque; the demo recorder uses /effort_command)')
+                        '/filtered_torque; the demo recorder uses /sim_effort_command)')
     output = replay.add_argument_group('output')
     output.add_argument('--out', default=str(DEFAULT_OUT), metavar='DIR',
                         help=f'output folder (default: {DEFAULT_OUT})')

@@ -155,7 +155,7 @@ def test_unfiltered_graph_exists_only_around_the_simulated_arm(tmp_path: Path) -
     specs = sim_demo_graph(urdf_path=arm.urdf_path, limits_path=arm.limits_path,
                            certificate=None, filtered=False, control_rate_hz=RATE_HZ)
     assert [s.executable for s in specs] == ['careless_operator', 'sim_arm']
-    assert specs[-1].remappings == [('effort_command', 'nominal_torque')]
+    assert specs[-1].remappings == [('sim_effort_command', 'nominal_torque')]
     # The filter node has no option to pass the nominal through.
     source = (Path(__file__).resolve().parent.parent / 'safety_filter' / 'ros'
               / 'filter_node.py').read_text(encoding='utf-8')

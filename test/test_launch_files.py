@@ -181,8 +181,8 @@ def test_sim_demo_feeds_the_filter_output_to_the_simulated_driver() -> None:
     assert set(executables) == {'sim_arm', 'careless_operator', 'filter_node'}
     remaps = [tuple(_string(e) for e in pair.elts) for pair in
               _elements(launch, executables['filter_node'].keywords['remappings'])]
-    assert ('filtered_torque', 'effort_command') in remaps
-    assert "'effort_command'" in _module_source('sim_arm')
+    assert ('filtered_torque', 'sim_effort_command') in remaps
+    assert "COMMAND_TOPIC = 'sim_effort_command'" in _module_source('sim_arm')
 
 
 def test_the_runner_starts_the_same_graphs(tmp_path: Path) -> None:
@@ -256,3 +256,50 @@ def test_hardware_launch_does_not_activate_unless_asked() -> None:
             assert arguments == ['--autostart'], node.line
         else:
             assert '--autostart' not in arguments and arguments == ['--configure-at-start']
+
+
+def test_sim_arm_command_topic_is_not_the_hardware_default() -> None:
+    """A sim graph's filter output and a real arm's driver cannot meet by default."""
+    from safety_filter.demo_arms import demo_arm_files
+    from safety_filter.ros.runner import COMMAND_TOPIC, hardware_graph
+
+    hardware = LaunchFile(REPO / 'launch' / 'hardware.launch.py')
+    default = _default(hardware, 'command_topic')
+    assert default and default != COMMAND_TOPIC
+    assert f"COMMAND_TOPIC = '{COMMAND_TOPIC}'" in _module_source('sim_arm')
+    urdf, _ = demo_arm_files('planar2')
+    (spec,) = hardware_graph(certificate='c.yaml', urdf_path=urdf)
+    assert dict(spec.remappings)['filtered_torque'] == default
+
+
+def test_sim_demo_launch_runs_on_an_isolated_domain() -> None:
+    launch = LaunchFile(REPO / 'launch' / 'sim_demo.launch.py')
+    settings = {}
+    for call in launch._calls('SetEnvironmentVariable'):
+        name, value = call.args
+        settings[_string(name)] = value
+    assert _string(settings['ROS_AUTOMATIC_DISCOVERY_RANGE']) == 'LOCALHOST'
+    domain = settings['ROS_DOMAIN_ID']
+    assert _call_name(domain) == 'LaunchConfiguration'
+    assert _string(domain.args[0]) == 'domain_id'
+    (declared,) = [c for c in launch._calls('DeclareLaunchArgument')
+                   if _string(c.args[0]) == 'domain_id']
+    default = next(k.value for k in declared.keywords if k.arg == 'default_value')
+    assert 'randint(150, 199)' in ast.unparse(default)
+    # The variables are set before any node starts: the isolation actions come first.
+    (function,) = [n for n in launch.tree.body if isinstance(n, ast.FunctionDef)]
+    returned = next(n for n in ast.walk(function) if isinstance(n, ast.Return)).value
+    order = [n.id for n in ast.walk(returned) if isinstance(n, ast.Name)]
+    assert order.index('isolation') < min(order.index(name) for name in
+                                          ('sim_arm', 'operator', 'safety_filter'))
+
+
+def test_run_graph_sim_gets_an_isolated_domain_and_hardware_does_not() -> None:
+    from safety_filter.cli_demo import graph_domain
+
+    for _ in range(20):
+        domain, localhost_only = graph_domain('sim', None)
+        assert 150 <= domain <= 199 and localhost_only
+    assert graph_domain('sim', 7) == (7, True)
+    assert graph_domain('hardware', None) == (None, False)
+    assert graph_domain('hardware', 3) == (3, False)

@@ -4,7 +4,7 @@ The graphs are the ones the launch files in ``launch/`` start, with the same exe
 parameter files from ``config/``, certificate and remappings:
 
 * :func:`sim_demo_graph`: the simulated arm (``sim_arm``), the careless operator and the
-  filter, the filter's ``filtered_torque`` remapped to the arm's ``effort_command``
+  filter, the filter's ``filtered_torque`` remapped to the arm's ``sim_effort_command``
   (``launch/sim_demo.launch.py``); optionally a bag recorder.
 * :func:`hardware_graph`: the filter alone, between the user's command source and driver
   (``launch/hardware.launch.py``).
@@ -19,7 +19,7 @@ simulated arm has run its ``duration_s``, or after a wall-clock duration.
 The unfiltered baseline of the demo (the operator's torque sent straight to the simulated
 arm) is **not** a mode of the filter node and cannot be asked of it: it is a graph without
 the filter, built only by :func:`sim_demo_graph` around the simulated arm (its
-``effort_command`` remapped to ``nominal_torque``), for ``safety-filter demo``.
+``sim_effort_command`` remapped to ``nominal_torque``), for ``safety-filter demo``.
 """
 
 from __future__ import annotations
@@ -45,7 +45,13 @@ from safety_filter.errors import SafetyFilterError
 PACKAGE = 'safety_filter'
 SIM_DEMO_CONFIG = 'sim_demo.yaml'
 FILTER_CONFIG = 'filter.yaml'
-COMMAND_TOPIC = 'effort_command'
+# The simulated arm's command topic, and the hardware graph's default command topic: they
+# differ, so that a sim graph cannot command a real arm's driver by accident.
+COMMAND_TOPIC = 'sim_effort_command'
+HARDWARE_COMMAND_TOPIC = 'effort_command'
+# A sim graph runs on a random ROS domain in this range, discovery on this machine only
+# (as the demo does), unless given a domain.
+SIM_DOMAIN_RANGE = (150, 199)
 
 # Executable (console script) -> (module, node class) of this package's nodes.
 NODES = {
@@ -210,7 +216,7 @@ def sim_demo_graph(*, urdf_path: str | Path, limits_path: str | Path,
 
 
 def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
-                   limits_path: str | Path = '', command_topic: str = COMMAND_TOPIC,
+                   limits_path: str | Path = '', command_topic: str = HARDWARE_COMMAND_TOPIC,
                    joint_states_topic: str = 'joint_states',
                    nominal_topic: str = 'nominal_torque', gravity_convention: str = 'full',
                    payload_mass: float = -1.0, control_rate_hz: float = 0.0,

@@ -7,7 +7,7 @@ the latest torque command, integrates the arm's dynamics over the period with RK
 
 Topics
 ------
-* ``effort_command`` (subscribed, ``std_msgs/Float64MultiArray``): torques in the model's
+* ``sim_effort_command`` (subscribed, ``std_msgs/Float64MultiArray``): torques in the model's
   joint order, as a ``ros2_control`` effort controller takes them. The driver **saturates**
   them to the effort limits; a command of the wrong length or with non-finite values is
   ignored (counted). Until the first valid command the arm is held still (brakes on) while
@@ -76,7 +76,9 @@ from safety_filter.sim_driver import GRAVITY_CONVENTIONS, SimulatedDriver
 from safety_filter.uncertainty import model_with_inertials
 
 NODE_NAME = 'sim_arm'
-COMMAND_TOPIC = 'effort_command'
+# Not the hardware launch's default command topic (effort_command): a sim graph's filter
+# and a real arm's driver cannot meet on it by accident.
+COMMAND_TOPIC = 'sim_effort_command'
 JOINT_STATES_TOPIC = 'joint_states'
 CLOCK_TOPIC = '/clock'
 
