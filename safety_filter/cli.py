@@ -13,7 +13,7 @@ import sys
 import tempfile
 from collections.abc import Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -282,14 +282,33 @@ def _command_node(args: argparse.Namespace) -> int:
         raise SafetyFilterError(
             f'the node needs rclpy and the ROS 2 message packages ({err}); install them with '
             "pip install -e '.[ros]' or source a ROS 2 Jazzy install") from err
-    if args.urdf is None:
+    # No fallback to a demo arm: the robot, its limits and its certificate are required
+    # (--demo <arm> names a demo arm explicitly).
+    given = [flag for flag, value in (('--demo', args.demo), ('--urdf', args.urdf),
+                                      ('--robot-description', args.robot_description))
+             if value is not None]
+    if len(given) > 1:
+        raise SafetyFilterError(f'give one of --urdf, --robot-description or --demo, not '
+                                f'{" and ".join(given)}')
+    description = None
+    if args.demo is not None:
         if args.limits:
-            raise SafetyFilterError('--limits needs --urdf')
-        urdf, limits = demo_arm_files(args.demo or 'bench6')
-    elif args.demo is not None:
-        raise SafetyFilterError('give either --demo or --urdf, not both')
+            raise SafetyFilterError('--demo brings its own limits file; drop --limits')
+        urdf, limits = demo_arm_files(args.demo)
+    elif not given or not args.limits:
+        missing = [text for text, absent in (
+            ('--urdf ARM.urdf (or --robot-description URDF_XML)', not given),
+            ('--limits ARM_LIMITS.yaml', not args.limits)) if absent]
+        raise SafetyFilterError(
+            f'the robot is required: give {" and ".join(missing)} (the robot the certificate '
+            'was computed for), or --demo <arm> for a demo arm')
     else:
-        urdf, limits = Path(args.urdf), Path(args.limits) if args.limits else None
+        urdf, limits = (Path(args.urdf) if args.urdf else None), Path(args.limits)
+        description = args.robot_description
+        if urdf is not None and not urdf.is_file():
+            raise SafetyFilterError(f'URDF file not found: {urdf}')
+        if not limits.is_file():
+            raise SafetyFilterError(f'limits file not found: {limits}')
     certificate = Path(args.certificate)
     if not certificate.is_file():
         raise SafetyFilterError(f'certificate file not found: {certificate}')
@@ -298,10 +317,23 @@ def _command_node(args: argparse.Namespace) -> int:
     # The operational parameters of config/filter.yaml (trigger joint_state, timeouts), as
     # the hardware launch file loads them; options and --ros-args given later win.
     ros_args = ['--ros-args', '--params-file', str(certificate),
-                '--params-file', str(config_file(FILTER_CONFIG)),
-                '-p', f'urdf_path:={Path(urdf).resolve()}']
-    if limits is not None:
+                '--params-file', str(config_file(FILTER_CONFIG))]
+    with tempfile.TemporaryDirectory(prefix='safety_filter_node_') as folder:
+        if description is not None:
+            # The URDF text through a parameter file: no shell or YAML quoting of XML.
+            import yaml
+
+            path = Path(folder) / 'robot_description.yaml'
+            path.write_text(yaml.safe_dump({'/**/safety_filter': {'ros__parameters': {
+                'robot_description': description}}}), encoding='utf-8')
+            ros_args += ['--params-file', str(path)]
+        else:
+            ros_args += ['-p', f'urdf_path:={Path(urdf).resolve()}']
         ros_args += ['-p', f'limits_path:={Path(limits).resolve()}']
+        return _run_node(filter_node, args, ros_args)
+
+
+def _run_node(filter_node: Any, args: argparse.Namespace, ros_args: list[str]) -> int:
     if args.gravity_convention is not None:
         ros_args += ['-p', f'gravity_convention:={args.gravity_convention}']
     if args.payload_mass is not None:
@@ -331,10 +363,14 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
     node.add_argument('--certificate', required=True, metavar='PATH',
                       help='certificate parameter file written by `safety-filter certify`')
     robot = node.add_argument_group('robot')
+    robot.add_argument('--urdf', help='path of the robot URDF (required, or '
+                       '--robot-description or --demo)')
+    robot.add_argument('--robot-description', metavar='URDF_XML',
+                       help='the URDF as XML text, instead of --urdf')
+    robot.add_argument('--limits', help='limits file (YAML; also selects the chain); required '
+                       'with --urdf or --robot-description')
     robot.add_argument('--demo', choices=DEMO_ARMS, default=None,
-                       help='a built-in demo arm (default: bench6 when no --urdf is given)')
-    robot.add_argument('--urdf', help='path of the robot URDF')
-    robot.add_argument('--limits', help='limits file (YAML; also selects the chain)')
+                       help='a built-in demo arm instead (its URDF and limits)')
     node.add_argument('--gravity-convention', choices=('full', 'driver_compensated'),
                       default=None, help="what the driver takes (default: 'full' torque)")
     node.add_argument('--payload-mass', type=float, default=None, metavar='KG',

@@ -195,3 +195,43 @@ def test_cli_node_starts_configured_and_inactive_by_default(
     finally:
         harness.close()
     assert node.interrupt() == 0, node.output()
+
+
+@pytest.mark.parametrize('missing', ['robot', 'limits', 'certificate'])
+@pytest.mark.parametrize('command', ['node', 'hardware'])
+def test_no_default_robot_or_certificate_for_a_real_arm(
+        command: str, missing: str, planar2: CertifiedArm, capsys: Any) -> None:
+    """`safety-filter node` and `run-graph --graph hardware` never fall back to a demo arm
+    or certificate: without the robot, its limits or the certificate they exit 2 and say
+    what is missing."""
+    from safety_filter.cli import EXIT_BAD_INPUT, main
+
+    arm = planar2
+    options = {'robot': ['--urdf', str(arm.urdf_path)],
+               'limits': ['--limits', str(arm.limits_path)],
+               'certificate': ['--certificate', str(arm.certificate_path)]}
+    arguments = [part for key, value in options.items() if key != missing for part in value]
+    prefix = ['node'] if command == 'node' else ['run-graph', '--graph', 'hardware']
+    assert main([*prefix, *arguments]) == EXIT_BAD_INPUT
+    err = capsys.readouterr().err
+    expected = {'robot': '--urdf', 'limits': '--limits', 'certificate': '--certificate'}
+    assert expected[missing] in err, err
+    if missing != 'certificate' or command == 'hardware':
+        assert 'error:' in err and '--demo' in err, err
+
+
+def test_robot_description_text_instead_of_a_urdf_file(
+        planar2: CertifiedArm, domain_id: int, node_process: Any) -> None:
+    arm = planar2
+    namespace = unique_namespace()
+    node = node_process(['--certificate', str(arm.certificate_path), '--robot-description',
+                         arm.urdf_path.read_text(encoding='utf-8'), '--limits',
+                         str(arm.limits_path), '--ros-args', '-r', f'__ns:={namespace}'])
+    harness = Harness(domain_id, namespace)
+    try:
+        assert harness.get_state_client.wait_for_service(timeout_sec=START_TIMEOUT_S), \
+            node.output()
+        assert wait_for(lambda: harness.get_state() == 'inactive', 30.0), node.output()
+    finally:
+        harness.close()
+    assert node.interrupt() == 0, node.output()
