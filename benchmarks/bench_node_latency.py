@@ -364,9 +364,10 @@ def main(argv: list[str] | None = None) -> int:
                         help="extra ROS arguments of the filter node, e.g. '-p "
                         "trigger:=joint_state'")
     parser.add_argument('--executor', choices=('single_threaded', 'events'),
-                        default='events',
+                        default='single_threaded',
                         help="rclpy executor of the node under test and of the echo (default "
-                        "events, the node's own default; this process always uses events)")
+                        "single_threaded, the node's own default; this process always uses "
+                        'events)')
     parser.add_argument('--echo-node', metavar='NAMESPACE', help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.echo_node is not None:

@@ -381,11 +381,11 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
                       'soon as joint states arrive (default: configured and inactive)')
     node.add_argument('--no-autostart', action='store_true',
                       help='start unconfigured; drive it with the lifecycle services')
-    node.add_argument('--executor', choices=('events', 'single_threaded'),
-                      default='events',
-                      help="rclpy executor (default events: rclpy's EventsExecutor, about half "
-                      "the CPU per message, experimental in Jazzy; 'single_threaded': rclpy's "
-                      'classic executor)')
+    node.add_argument('--executor', choices=('single_threaded', 'events'),
+                      default='single_threaded',
+                      help="rclpy executor (default single_threaded: rclpy's "
+                      "SingleThreadedExecutor; 'events': rclpy.experimental.EventsExecutor, "
+                      'experimental in Jazzy)')
     node.add_argument('--ros-args', dest='ros_args', nargs=argparse.REMAINDER, default=[],
                       metavar='ROS_ARGS', help='everything after this goes to ROS, e.g. '
                       '--ros-args -r filtered_torque:=/arm/commands -p payload_mass:=0.5')

@@ -31,9 +31,11 @@ def _add_graph_options(parser: argparse.ArgumentParser) -> None:
     group = parser.add_argument_group('how the graph runs')
     group.add_argument('--processes', action='store_true',
                        help='one process per node (default: every node in one process)')
-    group.add_argument('--executor', choices=EXECUTORS, default='events',
-                       help="executor of the nodes (default: events, rclpy's "
-                       'EventsExecutor, the fastest for a 1 kHz loop in Python)')
+    group.add_argument('--executor', choices=EXECUTORS, default=None,
+                       help="executor of the nodes: 'events' (rclpy's EventsExecutor, "
+                       "experimental in Jazzy; the demo's and sim graph's default), "
+                       "'single' (rclpy's SingleThreadedExecutor; the hardware graph's "
+                       "default: the filter on a real arm's safety path) or 'multi'")
     group.add_argument('--domain-id', type=int, default=None, metavar='N',
                        help='ROS domain of the graph (demo and sim graph default: a random '
                        'one in 150..199, discovery on this machine only; hardware graph '
@@ -54,7 +56,7 @@ def _command_demo(args: argparse.Namespace) -> int:
     _require_rclpy()
     options = DemoOptions(
         arm=args.arm, output=Path(args.output), duration_s=args.duration, seed=args.seed,
-        processes=args.processes, executor=args.executor, domain_id=args.domain_id,
+        processes=args.processes, executor=args.executor or 'events', domain_id=args.domain_id,
         storage=args.storage, recertify=args.recertify,
         falsifier_states=(DEMO_FALSIFIER_STATES if args.falsifier_states is None
                           else args.falsifier_states), verbose=args.verbose)
@@ -195,7 +197,8 @@ def _command_run_graph(args: argparse.Namespace) -> int:
     where = (f'ROS domain {domain}, discovery on this machine only' if localhost_only
              else f'ROS domain {domain if domain is not None else "of ROS_DOMAIN_ID"}')
     print(f'running {[s.name for s in specs]} ({how}, {where}); Ctrl-C stops', flush=True)
-    result = run_graph(specs, processes=args.processes, executor=args.executor,
+    executor = args.executor or ('events' if args.graph == 'sim' else 'single')
+    result = run_graph(specs, processes=args.processes, executor=executor,
                        duration_s=duration, domain_id=domain,
                        localhost_only=localhost_only,
                        log_level=None if args.verbose else 'warn')

@@ -235,3 +235,14 @@ def test_robot_description_text_instead_of_a_urdf_file(
     finally:
         harness.close()
     assert node.interrupt() == 0, node.output()
+
+
+def test_the_default_executor_is_the_single_threaded_one() -> None:
+    """Not the experimental EventsExecutor on the safety path (it stays an option)."""
+    from safety_filter.cli import build_parser
+    from safety_filter.ros.filter_node import _parse_own_arguments
+
+    assert _parse_own_arguments([]).executor == 'single_threaded'
+    assert _parse_own_arguments(['--executor', 'events']).executor == 'events'
+    args = build_parser().parse_args(['node', '--certificate', 'c.yaml', '--demo', 'planar2'])
+    assert args.executor == 'single_threaded'

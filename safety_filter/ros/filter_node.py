@@ -85,10 +85,11 @@ default QoS (reliable, depth 10), like every diagnostics publisher.
 
 Executor
 --------
-The executable spins the node with rclpy's EventsExecutor (``rclpy.experimental`` in Jazzy):
-in ``benchmarks/bench_node_latency.py`` it needed about half the CPU per message of the
-single-threaded executor, whose wait-set rebuild grows with the node's entities (a lifecycle
-node has many services). ``--executor single_threaded`` selects the classic executor.
+The executable spins the node with rclpy's SingleThreadedExecutor, the supported executor,
+on the safety path by default. ``--executor events`` selects rclpy's EventsExecutor, which
+is experimental in Jazzy (``rclpy.experimental``); it may need less CPU per message (no
+wait-set rebuild per callback), but the repository records no measurement of it for this
+node: measure with ``benchmarks/bench_node_latency.py --executor events`` before using it.
 
 Timeouts and the watchdog
 -------------------------
@@ -1013,10 +1014,11 @@ def _parse_own_arguments(arguments: Sequence[str]) -> argparse.Namespace:
     parser.add_argument('--configure-at-start', action='store_true',
                         help='configure at start-up and stay inactive (a lifecycle manager or '
                         '`ros2 lifecycle set` activates it)')
-    parser.add_argument('--executor', choices=EXECUTORS, default='events',
-                        help="rclpy executor: 'events' (default; rclpy.experimental."
-                        'EventsExecutor: about half the CPU per message, experimental in '
-                        "Jazzy) or 'single_threaded' (rclpy's classic executor)")
+    parser.add_argument('--executor', choices=EXECUTORS, default='single_threaded',
+                        help="rclpy executor: 'single_threaded' (default; rclpy's "
+                        "SingleThreadedExecutor) or 'events' (rclpy.experimental."
+                        'EventsExecutor, experimental in Jazzy; measure it with '
+                        'benchmarks/bench_node_latency.py first)')
     return parser.parse_args(list(arguments))
 
 
@@ -1039,8 +1041,8 @@ def main(args: Sequence[str] | None = None) -> int:
     Args:
         args: the command line like ``sys.argv`` (program name first); default ``sys.argv``.
             ``--autostart`` configures and activates the node at start-up; the node spins
-            with rclpy's (experimental) EventsExecutor unless ``--executor
-            single_threaded`` is given.
+            with rclpy's SingleThreadedExecutor unless ``--executor events`` (rclpy's
+            experimental EventsExecutor) is given.
 
     Returns:
         0 on a clean exit, 1 when the autostart transitions failed.
