@@ -44,7 +44,13 @@ import numpy as np
 from safety_filter.certificate import Certificate
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
-from safety_filter.simulate import ArmSimulator, NominalPolicy, limit_violations
+from safety_filter.simulate import (  # noqa: F401 (Push, PlantLog: part of this API too)
+    NominalPolicy,
+    PlantLog,
+    Push,
+    limit_violations,
+    run_plant_loop,
+)
 from safety_filter.uncertainty import (
     Plant,
     UncertaintySet,
@@ -67,158 +73,6 @@ NOMINALS = ('bang_bang', 'pd_beyond_limits', 'large_sinusoid', 'zero_torque',
             'safe_tracking', 'pushes')
 POSITION_TOLERANCE = 1e-6  # [rad or m]: float round-off, not an allowance
 TORQUE_TOLERANCE = 1e-6  # relative, times max(1, effort limit), as the filter's check
-
-
-# ---------------------------------------------------------------------- one run
-@dataclass(frozen=True)
-class Push:
-    """An external torque ``torque`` [N m] on the plant from ``start_s`` for ``duration_s``.
-
-    It acts at the control steps whose time lies in ``[start_s, start_s + duration_s)``
-    (held over each such control period, like the drive torque).
-    """
-
-    start_s: float
-    duration_s: float
-    torque: np.ndarray
-
-    @property
-    def end_s(self) -> float:
-        return self.start_s + self.duration_s
-
-
-@dataclass
-class PlantLog:
-    """Samples of one run, one row per control step (arrays (T,) or (T, n)).
-
-    Attributes:
-        time_s: step times [s]; q, v: the true state; measured_q, measured_v: what the
-            filter and the nominal saw (true state + noise); nominal: the nominal torque;
-            command: the filter's output (full-torque convention); applied: the torque the
-            driver applied (delayed command, gain and offset, saturated); demand: the
-            driver's ``gain * u + offset`` before saturation; external: push torque;
-            mode: filter mode names; margin: smallest barrier value per joint of the TRUE
-            state (NaN when no barrier function was given); pushback: the filter fell back
-            to the constructive push-back (its QP could not meet the bounds in the box).
-    """
-
-    time_s: np.ndarray
-    q: np.ndarray
-    v: np.ndarray
-    measured_q: np.ndarray
-    measured_v: np.ndarray
-    nominal: np.ndarray
-    command: np.ndarray
-    applied: np.ndarray
-    demand: np.ndarray
-    external: np.ndarray
-    mode: np.ndarray
-    margin: np.ndarray
-    pushback: np.ndarray | None = None
-
-
-class _PushedArm(ArmSimulator):
-    """:class:`ArmSimulator` with an external torque added after the driver's saturation."""
-
-    def __init__(self, model: RobotModel, payload_mass: float, internal_rate_hz: float
-                 ) -> None:
-        super().__init__(model, payload_mass, internal_rate_hz)
-        self.external = np.zeros(model.n_joints)
-
-    def _derivative(self, q: np.ndarray, v: np.ndarray, u: np.ndarray
-                    ) -> tuple[np.ndarray, np.ndarray]:
-        return v, self.dynamics.forward_dynamics(q, v, u + self.external)
-
-
-def run_plant_loop(
-    plant: Plant,
-    step: Callable[[np.ndarray, np.ndarray, np.ndarray], object] | None,
-    nominal: NominalPolicy,
-    duration_s: float,
-    control_rate_hz: float,
-    q0: np.ndarray,
-    v0: np.ndarray | None = None,
-    *,
-    rng: np.random.Generator | None = None,
-    pushes: Sequence[Push] = (),
-    barrier: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None,
-    internal_rate_hz: float = 10_000.0,
-) -> PlantLog:
-    """Closed loop of a plant, a nominal and a filter step, with the plant's imperfections.
-
-    At each control step ``k`` (time ``t_k = k T``):
-
-    1. the filter and the nominal see the measured state: the true state plus noise drawn
-       uniformly within ``+-plant.position_noise`` and ``+-plant.velocity_noise``;
-    2. ``nominal(t_k, q_meas, v_meas)`` gives ``u_nom``; ``step(q_meas, v_meas, u_nom)``
-       gives the command ``u_k`` (``step=None``: the nominal itself, simulation only);
-    3. the command acts ``plant.delay_periods = d`` periods later (a FIFO): the driver
-       applies ``clip(gain * u_{k-d} + offset, -effort_limit, effort_limit)``. Before the
-       first command arrives (``k < d``) the driver applies the FIRST command ``u_0``, as if
-       the arm had been under this control before the run began;
-    4. the plant (:class:`ArmSimulator` with the plant's model and payload, RK4 at
-       ``internal_rate_hz``) holds that torque, plus any active push, for one period.
-
-    Args:
-        plant: the arm (see :class:`safety_filter.uncertainty.Plant`).
-        step: a filter step (``SafetyFilter.step``) or None.
-        nominal: the command source ``nominal(t, q, v)``.
-        rng: the noise generator (default: seeded with 0).
-        pushes: external torque impulses.
-        barrier: ``barrier(q, v) -> smallest barrier value per joint`` (batched over rows),
-            evaluated on the true states, e.g. ``lambda q, v:
-            filt.constraint_bounds(q, v).smallest``.
-    """
-    if not (control_rate_hz > 0.0 and duration_s > 0.0):
-        raise SafetyFilterError('the control rate and the duration must be positive')
-    model = plant.model
-    n = model.n_joints
-    rng = np.random.default_rng(0) if rng is None else rng
-    arm = _PushedArm(model, plant.payload_mass, internal_rate_hz)
-    arm.reset(q0, v0)
-    period = 1.0 / control_rate_hz
-    steps = int(round(duration_s * control_rate_hz))
-    delay = int(plant.delay_periods)
-    umax = np.array(model.effort_limit)
-    gain, offset = np.asarray(plant.torque_gain, float), np.asarray(plant.torque_offset, float)
-    pos_noise, vel_noise = float(plant.position_noise), float(plant.velocity_noise)
-
-    def empty() -> np.ndarray:
-        return np.zeros((steps, n))
-
-    log = PlantLog(np.zeros(steps), empty(), empty(), empty(), empty(), empty(), empty(),
-                   empty(), empty(), empty(), np.empty(steps, dtype=object),
-                   np.full((steps, n), np.nan))
-    log.pushback = np.zeros(steps, dtype=bool)
-    zero = np.zeros(n)
-    for k in range(steps):
-        t, q, v = k * period, arm.q, arm.v
-        q_meas = q + rng.uniform(-pos_noise, pos_noise, n) if pos_noise > 0.0 else q.copy()
-        v_meas = v + rng.uniform(-vel_noise, vel_noise, n) if vel_noise > 0.0 else v.copy()
-        u_nom = np.asarray(nominal(t, q_meas, v_meas), dtype=float)
-        if step is None:
-            command, mode = u_nom, 'unfiltered'
-        else:
-            out = step(q_meas, v_meas, u_nom)
-            command = np.array(out.torque)  # type: ignore[attr-defined]
-            mode = str(out.mode)  # type: ignore[attr-defined]
-            log.pushback[k] = 'constructive push-back' in str(getattr(out, 'reason', ''))
-        log.command[k] = command
-        demand = gain * log.command[max(k - delay, 0)] + offset
-        applied = np.clip(demand, -umax, umax)
-        external = zero
-        for push in pushes:
-            if push.start_s - 1e-9 <= t < push.end_s - 1e-9:
-                external = external + push.torque
-        log.time_s[k], log.q[k], log.v[k] = t, q, v
-        log.measured_q[k], log.measured_v[k], log.nominal[k] = q_meas, v_meas, u_nom
-        log.applied[k], log.demand[k], log.external[k], log.mode[k] = (applied, demand,
-                                                                     external, mode)
-        arm.external = external
-        arm.advance(applied, period)
-    if barrier is not None and steps:
-        log.margin = np.asarray(barrier(log.q, log.v), dtype=float)
-    return log
 
 
 # ---------------------------------------------------------------------- measuring a run
