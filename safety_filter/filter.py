@@ -5,9 +5,10 @@ call (no ROS imports here). One :meth:`SafetyFilter.step` (METHOD sections 3, 4.
 
 1. **Validate** ``q``, ``v``, ``u_nom`` (shape ``(n,)``, finite) and reject positions more than
    ``rejection_distance`` beyond a limit (by default half the smallest joint range: no arm
-   gets there, so it is a sensor fault). Only such inputs, which cannot be a physical state,
-   are refused; a position beyond a limit but within that distance is recovered from (step
-   4). Rejected steps send the *hold* command: gravity compensation at the measured (or
+   gets there, so it is a sensor fault), and, while the observer runs, a position that jumped
+   farther since the last valid sample than ten periods at speed allow (until it stays for
+   three samples). Only such inputs, which cannot be a physical state, are refused; a
+   position beyond a limit but within that distance is recovered from (step 4). Rejected steps send the *hold* command: gravity compensation at the measured (or
    last valid) position plus damping toward rest, ``g(q) - hold_damping * v``, clipped to the
    torque box.
 1b. **Model error feedback** (``docs/method.md``, "Model error"): a disturbance observer
@@ -68,6 +69,8 @@ _CHECK_REASONS = {
 HOLD_TIME_CONSTANT_PERIODS = 20.0  # default hold damping: velocity time constant [periods]
 CHECK_TOLERANCE = 1e-6  # relative tolerance of the answer check (times max(1, scale))
 MAX_OBSERVER_GAIN = 1.0 / 3.0  # the disturbance observer's largest update per step
+JUMP_PERIODS = 10.0  # a position may move this many periods at speed between two samples
+JUMP_CONFIRM = 3  # agreeing samples after which a jumped position is accepted
 
 
 class FilterMode(str, Enum):
@@ -369,6 +372,10 @@ class SafetyFilter:
         self.observer_delay_periods = int(uncertainty.delay_periods) if uncertainty else 0
         self._obs_sent = np.zeros((self.observer_delay_periods + 1, n))
         self._obs_count = 0
+        self._velocity_limit = np.array(certificate.velocity_limit)
+        self._position_noise = float(uncertainty.position_noise) if uncertainty else 0.0
+        self._jump_candidate: tuple[np.ndarray, int] | None = None
+        self._steps_since_valid = 0
         # The range the estimate is kept in: where the certificate's authority accounts for
         # it (docs/method.md); a second model one kilogram heavier gives the payload's share.
         self._disturbance_parameters = certificate.disturbance_parameters
@@ -427,6 +434,7 @@ class SafetyFilter:
         self.step(q_mid, zeros, zeros)  # nominal checked, passed or filtered
         self.step(q_mid, zeros, 10.0 * self.torque_limit)  # outside the box: the QP
         beyond = np.array(self._upper) + 0.5 * self.rejection_distance
+        self.reset()  # (else that position would be a jump from the last one)
         self.step(beyond, zeros, zeros)  # outside S: recovery (constructive kernel)
         self.step(np.full(self.n, math.nan), zeros, zeros)  # rejected
 
@@ -439,6 +447,8 @@ class SafetyFilter:
         self._disturbance[:] = 0.0
         self._obs_valid = False
         self._obs_count = 0
+        self._jump_candidate = None
+        self._steps_since_valid = 0
         self.mode_counts = {mode: 0 for mode in FilterMode}
         self.reason_counts = Counter()
         self.steps = 0
@@ -513,6 +523,40 @@ class SafetyFilter:
                                         self._dyn.gravity(q), rigid, payload)
         return np.minimum(limit, self._k_torque_limit)
 
+    def _position_jump(self, q: np.ndarray, v: np.ndarray, period_s: float | None) -> str:
+        """Why ``q`` cannot follow the last valid position (empty when it can).
+
+        Between two samples a joint moves at most ``JUMP_PERIODS`` periods at the larger of its
+        rated and measured speed, per period since the last valid sample, plus ten times the
+        declared position noise. A position beyond that is a sensor fault unless it stays:
+        after ``JUMP_CONFIRM`` samples that agree with each other it is accepted (a re-homed
+        encoder) and the observer starts afresh. Only while the observer runs (the filter then
+        reads consecutive steps as one motion).
+        """
+        period = self.certificate.control_period_s if period_s is None else float(period_s)
+        if not (math.isfinite(period) and period > 0.0):
+            return ''
+        speed = np.maximum(self._velocity_limit, np.abs(v))
+        allowed = (JUMP_PERIODS * period * (1 + self._steps_since_valid) * speed
+                   + 10.0 * self._position_noise)
+        if np.all(np.abs(q - self._last_q) <= allowed):
+            self._jump_candidate = None
+            return ''
+        candidate = self._jump_candidate
+        if candidate is not None and np.all(np.abs(q - candidate[0]) <= allowed):
+            self._jump_candidate = (q.copy(), candidate[1] + 1)
+        else:
+            self._jump_candidate = (q.copy(), 1)
+        if self._jump_candidate[1] >= JUMP_CONFIRM:
+            self._jump_candidate = None
+            self._obs_valid = False
+            self._obs_count = 0
+            return ''
+        joints = [self.model.joint_names[i] for i in
+                  np.flatnonzero(np.abs(q - self._last_q) > allowed)]
+        return (f'position jumped at {", ".join(joints)} farther than the velocity allows '
+                'since the last valid sample (a sensor fault unless it stays)')
+
     @property
     def disturbance_estimate(self) -> np.ndarray:
         """The observer's estimate of the torque the model misses [N m], shape (n,)."""
@@ -570,8 +614,14 @@ class SafetyFilter:
             return self._reject(q, v, f'position more than {self.rejection_distance:g} beyond '
                                 f'a limit at {", ".join(far)}', 'position far outside limits',
                                 position=q, barrier_margin=barrier_margin, u_nom=u_nom_in)
+        if self._observing and self._has_last_q:
+            jumped = self._position_jump(q, v, period_s)
+            if jumped:
+                return self._reject(q, v, jumped, 'position jump', position=self._last_q.copy(),
+                                    barrier_margin=barrier_margin, u_nom=u_nom_in)
         self._last_q[:] = q
         self._has_last_q = True
+        self._steps_since_valid = 0
 
         mass, bias = self._mass, self._bias
         self._dyn.mass_and_bias(q, v, mass, bias)
@@ -770,6 +820,7 @@ class SafetyFilter:
         false = np.zeros(n, dtype=bool)
         self._obs_valid = False
         self._obs_count = 0
+        self._steps_since_valid += 1
         self.steps += 1
         self.mode_counts[FilterMode.REJECTED] += 1
         self.reason_counts[key] += 1

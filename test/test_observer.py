@@ -317,3 +317,26 @@ def test_recovery_meets_the_return_time_bound() -> None:
         assert plant.q[1] <= model.position_upper[1]
         plant.advance(np.clip(out.torque, -push, push), 1.0 / CONTROL_RATE_HZ)
     assert back is not None and back <= bound + 1.0 / CONTROL_RATE_HZ, (back, bound)
+
+
+def test_a_position_jump_is_refused_until_it_stays() -> None:
+    """One sample 0.5 rad off (a sensor glitch: ten periods at the rated speed allow 0.03 rad)
+    is refused with the hold at the last valid position; the next good sample is filtered
+    again; a jump that stays (three agreeing samples: a re-homed encoder) is accepted."""
+    model, certificate = demo_arm_and_certificate('planar2')
+    filt = SafetyFilter(model, certificate)
+    q = 0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
+    v = np.zeros(2)
+    hold = Dynamics(model, filt.payload_mass).gravity_torque(q)
+    assert str(filt.step(q, v, hold).mode) == 'filtered'
+    glitch = q + np.array([0.0, 0.5])
+    out = filt.step(glitch, v, hold)
+    assert str(out.mode) == 'rejected' and 'jumped' in out.reason and 'elbow' in out.reason
+    np.testing.assert_allclose(out.torque, filt.hold_torque(q, v))
+    assert str(filt.step(q, v, hold).mode) == 'filtered'
+    modes = [str(filt.step(glitch, v, hold).mode) for _ in range(4)]
+    assert modes == ['rejected', 'rejected', 'filtered', 'filtered'], modes
+    # without the observer (unrelated states on purpose) there is no jump check
+    plain = SafetyFilter(model, certificate, observer_time_constant_s=0.0)
+    plain.step(q, v, hold)
+    assert str(plain.step(glitch, v, hold).mode) != 'rejected'
