@@ -423,6 +423,9 @@ def build_parser() -> argparse.ArgumentParser:
     from safety_filter.stress import add_stress_parser
 
     add_stress_parser(commands)
+    from safety_filter.gravity_check import add_check_gravity_parser
+
+    add_check_gravity_parser(commands)
     return parser
 
 

@@ -1,0 +1,67 @@
+"""Listen to ``sensor_msgs/JointState`` for a while and keep every message (for
+``safety-filter check-gravity``, :mod:`safety_filter.gravity_check`).
+
+A plain node, ``safety_filter_check_gravity_<pid>``, in an rclpy context of its own,
+subscribes best-effort (which matches reliable and best-effort publishers alike), keep-last
+1000, and stores ``(receipt_time_ns, message)`` with a monotonic receipt time. SIGINT and
+SIGTERM end the listening early; what came until then is returned.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import time
+from typing import Any
+
+import rclpy
+from rclpy.executors import SingleThreadedExecutor
+from rclpy.node import Node
+from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
+from rclpy.signals import SignalHandlerOptions
+from sensor_msgs.msg import JointState
+
+
+def listen_qos() -> QoSProfile:
+    """Best-effort, volatile, keep-last 1000: takes what any publisher sends."""
+    return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1000,
+                      reliability=ReliabilityPolicy.BEST_EFFORT,
+                      durability=DurabilityPolicy.VOLATILE)
+
+
+def collect_joint_states(topic: str, duration_s: float, domain_id: int | None = None,
+                         node_name: str | None = None) -> list[tuple[int, Any]]:
+    """``(receipt_time_ns, JointState)`` of ``topic`` heard during ``duration_s`` [s]."""
+    received: list[tuple[int, Any]] = []
+    stop = {'raised': False}
+
+    def on_signal(signum: int, frame: Any) -> None:
+        stop['raised'] = True
+
+    previous = {signum: signal.signal(signum, on_signal)
+                for signum in (signal.SIGINT, signal.SIGTERM)}
+    context = rclpy.context.Context()
+    node = None
+    executor = None
+    try:
+        rclpy.init(args=['check_gravity'], context=context, domain_id=domain_id,
+                   signal_handler_options=SignalHandlerOptions.NO)
+        node = Node(node_name or f'safety_filter_check_gravity_{os.getpid()}',
+                    context=context)
+        node.create_subscription(
+            JointState, topic, lambda msg: received.append((time.monotonic_ns(), msg)),
+            listen_qos())
+        executor = SingleThreadedExecutor(context=context)
+        executor.add_node(node)
+        deadline = time.monotonic() + duration_s
+        while context.ok() and not stop['raised'] and time.monotonic() < deadline:
+            executor.spin_once(timeout_sec=0.05)
+    finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+        if executor is not None:
+            executor.shutdown(timeout_sec=1.0)
+        if node is not None:
+            node.destroy_node()
+        context.try_shutdown()
+    return received
