@@ -8,9 +8,10 @@ call (no ROS imports here). One :meth:`SafetyFilter.step` (METHOD sections 3, 4.
    gets there, so it is a sensor fault), and, while the observer runs, a position that jumped
    farther since the last valid sample than ten periods at speed allow (until it stays for
    three samples). Only such inputs, which cannot be a physical state, are refused; a
-   position beyond a limit but within that distance is recovered from (step 4). Rejected steps send the *hold* command: gravity compensation at the measured (or
-   last valid) position plus damping toward rest, ``g(q) - hold_damping * v``, clipped to the
-   torque box.
+   position beyond a limit but within that distance is recovered from (step 4). Rejected
+   steps send the *hold* command: gravity compensation at the measured (or last valid)
+   position plus damping toward rest, ``g(q) - hold_damping * v`` (no damping when the
+   velocity is not valid), clipped to the torque box.
 1b. **Model error feedback** (``docs/method.md``, "Model error"): a disturbance observer
    estimates the torque that the arm needs beyond the filter's model (payload, inertia and
    friction errors, the driver's torque error) from the measured velocity change over the last
