@@ -35,6 +35,49 @@ def test_readme_main_job_command_uses_an_existing_cli_command() -> None:
     build_parser().parse_args(command[1:])  # exits (fails the test) on unknown options
 
 
+def _readme_section(title: str) -> str:
+    text = (REPO / 'README.md').read_text(encoding='utf-8')
+    start = text.index(f'\n## {title}\n')
+    end = text.find('\n## ', start + 1)
+    return text[start:end if end >= 0 else len(text)]
+
+
+def _indented_commands(section: str, program: str) -> list[str]:
+    """The indented (code block) command lines of a README section that run ``program``,
+    with backslash continuations joined."""
+    commands: list[str] = []
+    lines = section.splitlines()
+    k = 0
+    while k < len(lines):
+        line = lines[k]
+        if line.startswith('    ') and line.strip().startswith(program + ' '):
+            command = line.strip()
+            while command.endswith('\\') and k + 1 < len(lines):
+                k += 1
+                command = command[:-1].rstrip() + ' ' + lines[k].strip()
+            commands.append(command)
+        k += 1
+    return commands
+
+
+def test_readme_commissioning_commands_parse() -> None:
+    # Every `safety-filter ...` line of the commissioning steps parses with the real parser
+    # (nothing runs: parse_args only).
+    import shlex
+
+    from safety_filter.cli import build_parser
+
+    commands = _indented_commands(_readme_section('Commissioning an arm'), 'safety-filter')
+    used = {shlex.split(command)[1] for command in commands}
+    assert {'inspect', 'certify', 'stress', 'check-gravity', 'node', 'monitor'} <= used, used
+    parser = build_parser()
+    for command in commands:
+        words = shlex.split(command)
+        assert words[0] == 'safety-filter', command
+        args = parser.parse_args(words[1:])  # exits (fails the test) on unknown options
+        assert args.command == words[1]
+
+
 def test_readme_opens_with_the_job_and_carries_the_cautions() -> None:
     text = (REPO / 'README.md').read_text(encoding='utf-8')
     first = text.split('\n\n')[1]
