@@ -17,8 +17,10 @@ Arguments:
     gravity_convention: ``full`` (the driver takes full torques, default) or
         ``driver_compensated`` (the driver adds gravity itself).
     payload_mass: the mounted payload [kg] (default -1: the middle of the certified range).
-    control_rate_hz: the watchdog's rate [Hz] (default 0: the certificate's control rate;
-        the driver must run at the certificate's control rate for its guarantee).
+    watchdog_rate_hz: the filter's watchdog rate [Hz] (parameter ``watchdog_rate_hz``,
+        ``--watchdog-rate`` of ``safety-filter run-graph``; default 0: the certificate's
+        control rate). It is not the control rate: that is the certificate's, and the driver
+        must run at it for the certificate's guarantee.
     activate_at_start: ``true`` activates the filter at start, so that it commands the driver
         as soon as joint states arrive. Default ``false``: the filter is configured at start
         (errors in the certificate or the robot show at once) and stays INACTIVE, publishing
@@ -55,8 +57,9 @@ def generate_launch_description() -> LaunchDescription:
                               description='full or driver_compensated'),
         DeclareLaunchArgument('payload_mass', default_value='-1.0',
                               description='mounted payload [kg]; negative: mid-range'),
-        DeclareLaunchArgument('control_rate_hz', default_value='0.0',
-                              description="watchdog rate [Hz]; 0: the certificate's rate"),
+        DeclareLaunchArgument('watchdog_rate_hz', default_value='0.0',
+                              description="the filter's watchdog rate [Hz]; 0: the "
+                              "certificate's control rate"),
         DeclareLaunchArgument('activate_at_start', default_value='false',
                               description='true: activate the filter at start; false '
                               '(default): configured and inactive until `ros2 lifecycle set '
@@ -68,7 +71,7 @@ def generate_launch_description() -> LaunchDescription:
          'limits_path': LaunchConfiguration('limits_path'),
          'gravity_convention': LaunchConfiguration('gravity_convention'),
          'payload_mass': ParameterValue(LaunchConfiguration('payload_mass'), value_type=float),
-         'watchdog_rate_hz': ParameterValue(LaunchConfiguration('control_rate_hz'),
+         'watchdog_rate_hz': ParameterValue(LaunchConfiguration('watchdog_rate_hz'),
                                             value_type=float)},
     ]
     remappings = [

@@ -18,6 +18,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from safety_filter._version import __version__
+from safety_filter.cli_options import GRAVITY_CONVENTIONS
 from safety_filter.demo_arms import DEMO_ARMS, load_demo_arm
 from safety_filter.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
@@ -180,7 +181,7 @@ def _command_certify(args: argparse.Namespace) -> int:
     output = Path(args.output) if args.output else Path(default_name)
     if output.is_dir():
         raise SafetyFilterError(f'--output {output} is a folder; give the file to write')
-    bar = _ProgressBar(enabled=not args.quiet)
+    bar = _ProgressBar(enabled=not (args.quiet or args.no_progress))
     try:
         outcome = certify_with_evidence(model, settings, progress=bar)
     finally:
@@ -239,11 +240,14 @@ def _add_certify_parser(commands: argparse._SubParsersAction) -> None:
                        help='report folder (default: <output stem>_report next to the output, '
                        '<output stem>.failed_report for a failed attempt)')
     files.add_argument('--no-report', action='store_true', help='do not write the report')
+    files.add_argument('--no-progress', action='store_true', help='no progress bar')
     files.add_argument('--quiet', action='store_true',
-                       help='no progress bar and no table: the verdict, reasons and files only')
+                       help='print only the verdict, the reasons and the files written (no '
+                       'table; implies --no-progress)')
     method = certify.add_argument_group('certification')
     method.add_argument('--control-rate', type=float, default=1000.0, metavar='HZ',
-                        help='control rate of the filter [Hz] (default: 1000)')
+                        help='the control rate to certify: one filter step per period of the '
+                        "driver's control loop [Hz] (default: 1000)")
     method.add_argument('--sampling-factor', type=float, default=1.0, metavar='K',
                         help='the sampled-data margin covers a zero-order hold of up to K '
                         'control periods, >= 1 (default: 1, one filter step per control '
@@ -371,7 +375,7 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
                        'with --urdf or --robot-description')
     robot.add_argument('--demo', choices=DEMO_ARMS, default=None,
                        help='a built-in demo arm instead (its URDF and limits)')
-    node.add_argument('--gravity-convention', choices=('full', 'driver_compensated'),
+    node.add_argument('--gravity-convention', choices=GRAVITY_CONVENTIONS,
                       default=None, help="what the driver takes (default: 'full' torque)")
     node.add_argument('--payload-mass', type=float, default=None, metavar='KG',
                       help='payload mass of the model [kg] (default: middle of the certified '
@@ -402,11 +406,19 @@ def build_parser() -> argparse.ArgumentParser:
                         help='print the package version and exit')
     commands = parser.add_subparsers(dest='command', required=True)
     inspect = commands.add_parser(
-        'inspect', help='load a robot and print its chain, limits and dynamics at a few states')
+        'inspect', help='load a robot and print its chain, limits and dynamics at a few states',
+        description='Load a robot (a demo arm, or a URDF with its limits file), check it, and '
+        'print its chain, limits, model hash, and the mass matrix, bias and gravity torques at '
+        'the middle of the joint ranges and at a few random states. Exit code 0: the robot '
+        'loaded; 2: bad input (options, URDF, limits file).')
     add_robot_arguments(inspect)
-    inspect.add_argument('--states', type=int, default=2, help='random states to evaluate')
-    inspect.add_argument('--seed', type=int, default=0)
-    inspect.add_argument('--backend', choices=('auto', 'numpy', 'pinocchio'), default='auto')
+    inspect.add_argument('--states', type=int, default=2,
+                         help='random states to evaluate (default: 2)')
+    inspect.add_argument('--seed', type=int, default=0,
+                         help='seed of the random states (default: 0)')
+    inspect.add_argument('--backend', choices=('auto', 'numpy', 'pinocchio'), default='auto',
+                         help='dynamics backend (default auto: Pinocchio when it is '
+                         'installed, else numpy)')
     inspect.set_defaults(handler=_command_inspect)
     _add_certify_parser(commands)
     _add_node_parser(commands)

@@ -10,10 +10,17 @@ import random
 import time
 from pathlib import Path
 
+from safety_filter.cli_options import (
+    EXECUTORS,
+    GRAVITY_CONVENTIONS,
+    LOG_LEVELS,
+    STORAGES,
+    deprecated,
+    executor_name,
+)
 from safety_filter.demo_arms import DEMO_ARMS, demo_arm_files
 from safety_filter.errors import SafetyFilterError
 
-EXECUTORS = ('events', 'single', 'multi')
 EXIT_INTERRUPTED = 130
 GRAPHS = ('sim', 'hardware')
 
@@ -31,16 +38,20 @@ def _add_graph_options(parser: argparse.ArgumentParser) -> None:
     group = parser.add_argument_group('how the graph runs')
     group.add_argument('--processes', action='store_true',
                        help='one process per node (default: every node in one process)')
-    group.add_argument('--executor', choices=EXECUTORS, default=None,
+    group.add_argument('--executor', type=executor_name, choices=EXECUTORS, default=None,
                        help="executor of the nodes: 'events' (rclpy's EventsExecutor, "
                        "experimental in Jazzy; the demo's and sim graph's default), "
-                       "'single' (rclpy's SingleThreadedExecutor; the hardware graph's "
-                       "default: the filter on a real arm's safety path) or 'multi'")
+                       "'single_threaded' (rclpy's SingleThreadedExecutor; the hardware "
+                       "graph's default: the filter on a real arm's safety path) or "
+                       "'multi_threaded' ('single' and 'multi': deprecated spellings)")
     group.add_argument('--domain-id', type=int, default=None, metavar='N',
                        help='ROS domain of the graph (demo and sim graph default: a random '
                        'one in 150..199, discovery on this machine only; hardware graph '
                        'default: ROS_DOMAIN_ID)')
-    group.add_argument('--verbose', action='store_true', help="show the nodes' info logs")
+    group.add_argument('--log-level', choices=LOG_LEVELS, default='warn',
+                       help="the nodes' log level (default: warn)")
+    group.add_argument('--verbose', dest='log_level', action='store_const', const='info',
+                       help=deprecated('the same as --log-level info', '--verbose'))
 
 
 # ---------------------------------------------------------------------- demo
@@ -55,11 +66,12 @@ def _command_demo(args: argparse.Namespace) -> int:
 
     _require_rclpy()
     options = DemoOptions(
-        arm=args.arm, output=Path(args.output), duration_s=args.duration, seed=args.seed,
-        processes=args.processes, executor=args.executor or 'events', domain_id=args.domain_id,
-        storage=args.storage, recertify=args.recertify,
+        arm=args.demo, output=Path(args.output_dir), duration_s=args.duration,
+        seed=args.seed, processes=args.processes, executor=args.executor or 'events',
+        domain_id=args.domain_id, storage=args.storage, recertify=args.recertify,
         falsifier_states=(DEMO_FALSIFIER_STATES if args.falsifier_states is None
-                          else args.falsifier_states), verbose=args.verbose)
+                          else args.falsifier_states), log_level=args.log_level,
+        progress=not args.quiet)
     start = time.monotonic()
     try:
         result = run_demo(options)
@@ -69,7 +81,7 @@ def _command_demo(args: argparse.Namespace) -> int:
     print()
     print(result.summary)
     print(f'\nreport: {result.report.resolve()}')
-    print(f'bags: {(Path(args.output) / "bags").resolve()}')
+    print(f'bags: {(Path(args.output_dir) / "bags").resolve()}')
     print(f'certificate: {result.certificate_path.resolve()}')
     print(f'wall time: {time.monotonic() - start:.1f} s')
     if not result.unfiltered_broke_some:
@@ -91,20 +103,23 @@ def add_demo_parser(commands: argparse._SubParsersAction) -> None:
         'simulation, then through the safety filter), record both runs to rosbag2 bags and '
         'write a report with the limit violations of each. Exit code 0: the filtered run '
         'kept every limit; 4: it did not; 2: bad input or a failed run.')
-    demo.add_argument('--arm', choices=DEMO_ARMS, default='bench6',
-                      help='the demo arm (default: bench6)')
-    demo.add_argument('--output', default='out/demo', metavar='DIR',
+    demo.add_argument('--demo', '--arm', dest='demo', choices=DEMO_ARMS, default='bench6',
+                      help=deprecated('the demo arm (default: bench6)', '--arm'))
+    demo.add_argument('--output-dir', default='out/demo', metavar='DIR',
                       help='output folder: certificate, bags, report (default: out/demo)')
     demo.add_argument('--duration', type=float, default=10.0, metavar='S',
                       help='simulated seconds of motion per run (default: 10)')
     demo.add_argument('--seed', type=int, default=None,
                       help="the operator's seed (default: config/sim_demo.yaml's)")
-    demo.add_argument('--storage', choices=('mcap', 'sqlite3'), default='mcap',
+    demo.add_argument('--storage', choices=STORAGES, default='mcap',
                       help='bag storage (default: mcap)')
     demo.add_argument('--recertify', action='store_true',
                       help='certify even when a valid certificate is in the output folder')
     demo.add_argument('--falsifier-states', type=int, default=None, metavar='N',
                       help='falsifier states of a new certification (default: 20000)')
+    demo.add_argument('--quiet', action='store_true',
+                      help='print only the summary and the files written, not what is going '
+                      'on')
     _add_graph_options(demo)
     demo.set_defaults(handler=_command_demo)
 
@@ -112,12 +127,12 @@ def add_demo_parser(commands: argparse._SubParsersAction) -> None:
 # ---------------------------------------------------------------------- run-graph
 def _robot_files(args: argparse.Namespace) -> tuple[Path, Path | str, str]:
     if args.urdf is not None:
-        if args.arm is not None:
-            raise SafetyFilterError('give either --arm or --urdf, not both')
+        if args.demo is not None:
+            raise SafetyFilterError('give either --demo or --urdf, not both')
         return Path(args.urdf), (Path(args.limits) if args.limits else ''), Path(args.urdf).stem
     if args.limits:
         raise SafetyFilterError('--limits needs --urdf')
-    arm = args.arm or 'bench6'
+    arm = args.demo or 'bench6'
     urdf, limits = demo_arm_files(arm)
     return urdf, limits, arm
 
@@ -126,7 +141,7 @@ def _require_hardware_robot(args: argparse.Namespace) -> None:
     """The hardware graph never falls back to a demo arm or a demo certificate: it needs
     --urdf and --limits (or --demo <arm>, explicitly) and --certificate."""
     missing = []
-    if args.arm is None:
+    if args.demo is None:
         if args.urdf is None:
             missing.append('--urdf ARM.urdf')
         if not args.limits:
@@ -175,18 +190,19 @@ def _command_run_graph(args: argparse.Namespace) -> int:
     if args.graph == 'sim':
         specs = sim_demo_graph(urdf_path=urdf, limits_path=limits, certificate=certificate,
                                duration_s=args.duration, seed=args.seed,
-                               payload_mass=args.payload_mass, bag_path=args.bag,
+                               payload_mass=args.payload_mass, bag_path=args.output_dir,
                                storage=args.storage)
         duration = 0.0  # the simulated arm stops itself
     else:
-        if args.bag:
-            raise SafetyFilterError('--bag records the sim graph only; use ros2 bag record')
+        if args.output_dir:
+            raise SafetyFilterError('--output-dir records the sim graph only; use ros2 bag '
+                                    'record')
         specs = hardware_graph(
             certificate=certificate, urdf_path=urdf, limits_path=limits,
             command_topic=args.command_topic, joint_states_topic=args.joint_states_topic,
             nominal_topic=args.nominal_topic, gravity_convention=args.gravity_convention,
             payload_mass=-1.0 if args.payload_mass is None else args.payload_mass,
-            control_rate_hz=args.control_rate, activate_at_start=args.activate_at_start)
+            watchdog_rate_hz=args.watchdog_rate, activate_at_start=args.activate_at_start)
         duration = args.duration
         if not args.activate_at_start:
             print('the filter starts configured and INACTIVE (it publishes no torque): '
@@ -197,11 +213,10 @@ def _command_run_graph(args: argparse.Namespace) -> int:
     where = (f'ROS domain {domain}, discovery on this machine only' if localhost_only
              else f'ROS domain {domain if domain is not None else "of ROS_DOMAIN_ID"}')
     print(f'running {[s.name for s in specs]} ({how}, {where}); Ctrl-C stops', flush=True)
-    executor = args.executor or ('events' if args.graph == 'sim' else 'single')
+    executor = args.executor or ('events' if args.graph == 'sim' else 'single_threaded')
     result = run_graph(specs, processes=args.processes, executor=executor,
                        duration_s=duration, domain_id=domain,
-                       localhost_only=localhost_only,
-                       log_level=None if args.verbose else 'warn')
+                       localhost_only=localhost_only, log_level=args.log_level)
     state = 'interrupted' if result.interrupted else 'done'
     simulated = f', {result.simulated_s:.2f} s simulated' if result.simulated_s else ''
     print(f'{state} after {result.wall_s:.1f} s{simulated}')
@@ -217,13 +232,16 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
         description='Start the nodes of launch/sim_demo.launch.py (--graph sim: simulated '
         'arm, careless operator, filter) or launch/hardware.launch.py (--graph hardware: '
         'the filter alone) with the same parameter files and remappings, configure and '
-        'activate the filter, and stop cleanly on Ctrl-C or after --duration.')
+        'activate the filter (the hardware graph: configure only, unless '
+        '--activate-at-start), and stop cleanly on Ctrl-C or after --duration. Exit code 0: '
+        'the graph ran and stopped (Ctrl-C, --duration, or the simulated arm finished); 2: '
+        'bad input (options, robot, certificate) or a graph that could not start.')
     run.add_argument('--graph', choices=GRAPHS, default='sim',
                      help='sim (default) or hardware')
     robot = run.add_argument_group('robot')
-    robot.add_argument('--arm', '--demo', dest='arm', choices=DEMO_ARMS, default=None,
-                       help='a demo arm (sim default: bench6 when no --urdf; the hardware '
-                       'graph has no default robot)')
+    robot.add_argument('--demo', '--arm', dest='demo', choices=DEMO_ARMS, default=None,
+                       help=deprecated('a demo arm (sim default: bench6 when no --urdf; the '
+                                       'hardware graph has no default robot)', '--arm'))
     robot.add_argument('--urdf', help='the robot URDF (hardware: required, or --demo)')
     robot.add_argument('--limits', help='its limits file (hardware: required with --urdf)')
     robot.add_argument('--certificate', metavar='PATH',
@@ -238,23 +256,29 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
                      '(default 0: until Ctrl-C)')
     sim = run.add_argument_group('sim graph')
     sim.add_argument('--seed', type=int, default=None, help="the operator's seed")
-    sim.add_argument('--bag', metavar='DIR', default=None,
-                     help='record the graph to this bag folder (must not exist)')
-    sim.add_argument('--storage', choices=('mcap', 'sqlite3'), default='mcap')
+    sim.add_argument('--output-dir', '--bag', dest='output_dir', metavar='DIR', default=None,
+                     help=deprecated('record the graph to a rosbag2 bag: the bag folder, which '
+                                     'must not exist (default: no recording)', '--bag'))
+    sim.add_argument('--storage', choices=STORAGES, default='mcap',
+                     help='storage of the recorded bag (default: mcap)')
     hardware = run.add_argument_group('hardware graph')
     hardware.add_argument('--command-topic', default='effort_command',  # not the sim arm's
                           help="the driver's effort-command topic (filtered_torque goes "
                           'there; default: effort_command)')
-    hardware.add_argument('--joint-states-topic', default='joint_states')
-    hardware.add_argument('--nominal-topic', default='nominal_torque')
-    hardware.add_argument('--gravity-convention', choices=('full', 'driver_compensated'),
-                          default='full')
+    hardware.add_argument('--joint-states-topic', default='joint_states', metavar='TOPIC',
+                          help="the driver's sensor_msgs/JointState topic (default: "
+                          'joint_states)')
+    hardware.add_argument('--nominal-topic', default='nominal_torque', metavar='TOPIC',
+                          help="the command source's torque topic (default: nominal_torque)")
+    hardware.add_argument('--gravity-convention', choices=GRAVITY_CONVENTIONS,
+                          default='full', help="what the driver takes (default: 'full' "
+                          'torque; driver_compensated: it adds gravity compensation itself)')
     hardware.add_argument('--activate-at-start', action='store_true',
                           help='activate the filter at once, so that it commands the driver '
                           'as soon as joint states arrive (default: configured and inactive '
                           'until `ros2 lifecycle set /safety_filter activate`)')
-    hardware.add_argument('--control-rate', type=float, default=0.0, metavar='HZ',
-                          help="the filter's watchdog rate (default 0: the certificate's "
-                          'control rate)')
+    hardware.add_argument('--watchdog-rate', type=float, default=0.0, metavar='HZ',
+                          help="the filter's watchdog rate [Hz] (parameter "
+                          "watchdog_rate_hz; default 0: the certificate's control rate)")
     _add_graph_options(run)
     run.set_defaults(handler=_command_run_graph)

@@ -71,12 +71,13 @@ class DemoOptions:
         duration_s: simulated seconds of motion per run.
         seed: the operator's seed (None: the parameter file's).
         processes: one process per node (else all in one process).
-        executor: ``'events'``, ``'single'`` or ``'multi'`` (see the runner).
+        executor: ``'events'``, ``'single_threaded'`` or ``'multi_threaded'`` (see the
+            runner).
         domain_id: DDS domain of the graph (None: a random one in 150..199).
         storage: bag storage, ``'mcap'`` or ``'sqlite3'``.
         recertify: certify even when a valid certificate exists.
         falsifier_states: falsifier states of a new certification.
-        verbose: show the nodes' info logs.
+        log_level: the nodes' log level (``'warn'``; ``'info'`` shows their info logs).
         wall_timeout_s: give up a run after this many wall seconds (0: no limit).
         progress: print what is going on.
     """
@@ -91,7 +92,7 @@ class DemoOptions:
     storage: str = 'mcap'
     recertify: bool = False
     falsifier_states: int = DEMO_FALSIFIER_STATES
-    verbose: bool = False
+    log_level: str = 'warn'
     wall_timeout_s: float = 600.0
     progress: bool = True
 
@@ -192,7 +193,7 @@ def _fresh_bag_path(path: Path) -> Path:
             shutil.rmtree(path)
         else:
             raise SafetyFilterError(f'{path} exists and is not a bag of a previous demo; '
-                                    'move it away or choose another --output')
+                                    'move it away or choose another --output-dir')
     return path
 
 
@@ -259,7 +260,7 @@ def run_demo(options: DemoOptions) -> DemoResult:
             start = time.monotonic()
             result = run_graph(specs, processes=options.processes, executor=options.executor,
                                domain_id=domain, localhost_only=True,
-                               log_level=None if options.verbose else 'warn',
+                               log_level=options.log_level,
                                log_dir=output / 'logs' / label if options.processes else None,
                                wall_timeout_s=options.wall_timeout_s)
             wall[label] = time.monotonic() - start

@@ -70,6 +70,7 @@ from typing import Any
 
 import numpy as np
 
+from safety_filter.cli_options import deprecated
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 
@@ -417,7 +418,8 @@ def read_bag_samples(path: str | Path, topic: str, joint_names: Sequence[str]
     summary = bags.topic_summary(folder)
     if name not in summary:
         found = ', '.join(f'{t} ({i.msgtype})' for t, i in sorted(summary.items())) or 'none'
-        raise SafetyFilterError(f'{folder} has no topic {name} (--topic); topics: {found}')
+        raise SafetyFilterError(f'{folder} has no topic {name} (--joint-states-topic); '
+                                f'topics: {found}')
     if summary[name].msgtype != bags.JOINT_STATE:
         raise SafetyFilterError(f'{name} in {folder} is {summary[name].msgtype}, not '
                                 f'{bags.JOINT_STATE}')
@@ -442,7 +444,8 @@ _DESCRIPTION = (
     "motion. Record the arm at rest, held by its driver's own controller or gravity "
     'compensation with the brakes released, from a few seconds to a minute, at one or more '
     'poses where the shoulder and elbow carry weight. The command reads sensor_msgs/'
-    'JointState (from a bag, or live from --topic for --duration seconds), keeps the '
+    'JointState (from a bag, or live from --joint-states-topic for --duration seconds), '
+    'keeps the '
     "samples at rest, maps joints by name to the model's chain and compares per joint the "
     "mean measured effort with the model's g(q) at the same positions: efforts equal to g "
     '(the driver reports total motor torque): gravity_convention full; efforts near zero '
@@ -461,7 +464,8 @@ def add_check_gravity_parser(commands: argparse._SubParsersAction) -> None:
         'rest (a bag or a live topic)', description=_DESCRIPTION)
     parser.add_argument('bag', nargs='?', default=None, metavar='BAG',
                         help='a rosbag2 bag (folder, or its .mcap/.db3 file) of the arm at '
-                        'rest; without it, listen live on --topic for --duration seconds')
+                        'rest; without it, listen live on --joint-states-topic for --duration '
+                        'seconds')
     robot = parser.add_argument_group('robot (required: --urdf and --limits, or --demo)')
     robot.add_argument('--urdf', help='path of the robot URDF')
     robot.add_argument('--limits', help='limits file (YAML): chain, payload range, '
@@ -477,9 +481,10 @@ def add_check_gravity_parser(commands: argparse._SubParsersAction) -> None:
                        "of the limits file's payload range; give the real one, 0 without "
                        'payload)')
     source = parser.add_argument_group('joint states')
-    source.add_argument('--topic', default=DEFAULT_TOPIC, metavar='TOPIC',
-                        help='sensor_msgs/JointState topic, live or in the bag (default: '
-                        f'{DEFAULT_TOPIC}; /{DEFAULT_TOPIC} in a bag)')
+    source.add_argument('--joint-states-topic', '--topic', dest='joint_states_topic',
+                        default=DEFAULT_TOPIC, metavar='TOPIC', help=deprecated(
+                            'sensor_msgs/JointState topic, live or in the bag (default: '
+                            f'{DEFAULT_TOPIC}; /{DEFAULT_TOPIC} in a bag)', '--topic'))
     source.add_argument('--duration', type=float, default=DEFAULT_DURATION_S, metavar='S',
                         help='live: seconds to listen (default: '
                         f'{DEFAULT_DURATION_S:g}); Ctrl-C stops early and checks what came')
@@ -515,8 +520,8 @@ def command_check_gravity(args: argparse.Namespace) -> int:
         bag_folder(args.bag)  # bad paths before the model loads
     model = load_robot(args)
     if args.bag is not None:
-        samples = read_bag_samples(args.bag, args.topic, model.joint_names)
-        where = f'{bag_topic(args.topic)} in {bag_folder(args.bag)}'
+        samples = read_bag_samples(args.bag, args.joint_states_topic, model.joint_names)
+        where = f'{bag_topic(args.joint_states_topic)} in {bag_folder(args.bag)}'
     else:
         try:
             from safety_filter.ros.joint_states import collect_joint_states
@@ -524,9 +529,10 @@ def command_check_gravity(args: argparse.Namespace) -> int:
             raise SafetyFilterError(
                 f'listening live needs rclpy and sensor_msgs ({err}); install them with '
                 "pip install -e '.[ros]', source a ROS 2 Jazzy install, or give a bag") from err
-        print(f'listening on {args.topic} for {args.duration:g} s ...', flush=True)
-        messages = collect_joint_states(args.topic, args.duration, domain_id=args.domain_id)
-        where = f'{args.topic} (live, {args.duration:g} s)'
+        topic = args.joint_states_topic
+        print(f'listening on {topic} for {args.duration:g} s ...', flush=True)
+        messages = collect_joint_states(topic, args.duration, domain_id=args.domain_id)
+        where = f'{topic} (live, {args.duration:g} s)'
         samples = require_chain(pair_samples(messages, model.joint_names), where)
     result = check_gravity(model, samples, payload_mass=args.payload_mass,
                            rest_velocity=args.rest_velocity, tolerance=args.tolerance,

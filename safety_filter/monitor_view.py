@@ -71,6 +71,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
 
+from safety_filter.cli_options import THIN_MARGIN, deprecated
 from safety_filter.errors import SafetyFilterError
 
 # The filter node's codes (safety_filter.ros.filter_node, which needs rclpy; a ROS test
@@ -85,7 +86,7 @@ MODE_STALE = 'stale'
 
 DEFAULT_NODE_NAME = 'safety_filter'
 DEFAULT_RATE_HZ = 4.0
-DEFAULT_THIN_MARGIN = 0.05
+DEFAULT_THIN_MARGIN = THIN_MARGIN  # the filter node's thin_margin default too
 DEFAULT_ABSENT_AFTER_S = 2.0
 DEFAULT_STATUS_SILENT_S = 1.0
 THIN_MARGIN_HYSTERESIS = 0.2
@@ -1007,11 +1008,14 @@ def add_monitor_arguments(parser: argparse.ArgumentParser) -> None:
                         '/arm1/safety_filter (default: safety_filter). Its diagnostics are '
                         "named by the node's base name only, so run filters in different "
                         'namespaces with different names or diagnostics topics')
-    parser.add_argument('--rate', type=float, default=DEFAULT_RATE_HZ, metavar='HZ',
-                        help=f'screen refreshes per second (default: {DEFAULT_RATE_HZ:g})')
+    parser.add_argument('--refresh-rate', '--rate', dest='refresh_rate', type=float,
+                        default=DEFAULT_RATE_HZ, metavar='HZ', help=deprecated(
+                            f'screen refreshes per second (default: {DEFAULT_RATE_HZ:g})',
+                            '--rate'))
     parser.add_argument('--thin-margin', type=float, default=DEFAULT_THIN_MARGIN,
                         metavar='VALUE', help='alarm when a barrier margin falls below this '
-                        f'(barrier units; default: {DEFAULT_THIN_MARGIN:g})')
+                        f'(barrier units; default: {DEFAULT_THIN_MARGIN:g}, the filter '
+                        "node's thin_margin default, below which its diagnostics WARN)")
     parser.add_argument('--certificate', metavar='PATH', default=None,
                         help='certificate parameter file: joint limits to show values against, '
                         'and the id the node must run (default: read the node parameters)')
@@ -1031,7 +1035,8 @@ def add_monitor_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument('--absent-after', type=float, default=DEFAULT_ABSENT_AFTER_S,
                         metavar='S', help='no message for this long: the filter is gone '
                         f'(default: {DEFAULT_ABSENT_AFTER_S:g})')
-    parser.add_argument('--diagnostics-topic', default='/diagnostics', metavar='TOPIC')
+    parser.add_argument('--diagnostics-topic', default='/diagnostics', metavar='TOPIC',
+                        help='diagnostic_msgs/DiagnosticArray topic (default: /diagnostics)')
     parser.add_argument('--status-topic', default=None, metavar='TOPIC',
                         help="default: the node's ~/status, /<node name>/status")
     parser.add_argument('--domain-id', type=int, default=None, metavar='N',
@@ -1040,8 +1045,8 @@ def add_monitor_arguments(parser: argparse.ArgumentParser) -> None:
 
 def check_monitor_arguments(args: argparse.Namespace) -> None:
     """Raise :class:`SafetyFilterError` for option values out of range."""
-    if not (math.isfinite(args.rate) and args.rate > 0):
-        raise SafetyFilterError(f'--rate must be positive, got {args.rate}')
+    if not (math.isfinite(args.refresh_rate) and args.refresh_rate > 0):
+        raise SafetyFilterError(f'--refresh-rate must be positive, got {args.refresh_rate}')
     if not math.isfinite(args.thin_margin):
         raise SafetyFilterError('--thin-margin must be finite')
     if not (math.isfinite(args.duration) and args.duration >= 0):
@@ -1069,7 +1074,9 @@ def add_monitor_parser(commands: argparse._SubParsersAction) -> None:
         'over DDS and show, a few times a second, its state and mode, each joint against its '
         'limits with the barrier margin, interventions, solve times, fallback and recovery '
         'counts, input ages and certificate id, with alarms (!!) for thin margins, the '
-        'watchdog and stale states. Plain frames when stdout is not a terminal. Ctrl-C quits.')
+        'watchdog and stale states. Plain frames when stdout is not a terminal. Ctrl-C quits. '
+        'Exit code 0: stopped (Ctrl-C, SIGTERM or --duration); 2: bad input (options, '
+        'certificate file).')
     add_monitor_arguments(parser)
     parser.add_argument('--ros-args', dest='ros_args', nargs=argparse.REMAINDER, default=[],
                         metavar='ROS_ARGS', help='everything after this goes to ROS')

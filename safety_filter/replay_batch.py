@@ -143,7 +143,7 @@ def _remove_old_replay_bag(path: Path) -> None:
         shutil.rmtree(path)
         return
     raise BagError(f'{path} exists and is not a replay bag written by safety_filter; '
-                   'move it or choose another --out')
+                   'move it or choose another --output-dir')
 
 
 def replay_bag(bag: str | Path, name: str, model: RobotModel,

@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from safety_filter.cli_options import GRAVITY_CONVENTIONS, STORAGES, deprecated
 from safety_filter.errors import SafetyFilterError
 
 EXIT_ALL_BAGS_FAILED = 1
@@ -19,8 +20,9 @@ _DESCRIPTION = (
     'files; a folder is searched for bags) through the filter with a certificate: open loop '
     "at the recorded times with the node's pairing rule, optionally against a second "
     'certificate (--compare) and in closed loop on the simulated arm (--closed-loop). Writes '
-    'per bag an HTML report with plots and a JSON report under --out, and a summary of the '
-    'run (index.html, replay_summary.json); prints a summary. Input bags are only read. '
+    'per bag an HTML report with plots and a JSON report under --output-dir, and a summary '
+    'of the run (index.html, replay_summary.json); prints a summary. Input bags are only '
+    'read. '
     'A bag that cannot be replayed is listed with its error and does not stop the others. '
     'Exit code 0: at least one bag replayed; 1: every bag failed; 2: bad input (options, '
     'robot, certificate, a path that does not exist or holds no bag).')
@@ -51,7 +53,7 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
     filt.add_argument('--trigger', choices=('nominal', 'joint_state'), default='nominal',
                       help="what starts a step, as the node's trigger parameter (default: "
                       'nominal)')
-    filt.add_argument('--gravity-convention', choices=('full', 'driver_compensated'),
+    filt.add_argument('--gravity-convention', choices=GRAVITY_CONVENTIONS,
                       default='full', help="what the driver takes (default: 'full' torque)")
     filt.add_argument('--payload-mass', type=float, default=None, metavar='KG',
                       help='payload mass of the model [kg] (default: middle of the certified '
@@ -71,13 +73,16 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
                         help='recorded filtered torque, for the agreement check (default: '
                         '/filtered_torque; the demo recorder uses /sim_effort_command)')
     output = replay.add_argument_group('output')
-    output.add_argument('--out', default=str(DEFAULT_OUT), metavar='DIR',
-                        help=f'output folder (default: {DEFAULT_OUT})')
+    output.add_argument('--output-dir', '--out', dest='output_dir', default=str(DEFAULT_OUT),
+                        metavar='DIR', help=deprecated(f'output folder (default: {DEFAULT_OUT})',
+                                                       '--out'))
     output.add_argument('--write-bags', action='store_true',
                         help='write a new bag per input: all of its messages plus '
                         '/replay/filtered_torque and /replay/status')
-    output.add_argument('--bag-storage', choices=('mcap', 'sqlite3'), default='mcap',
-                        help='storage of the written bags (default: mcap)')
+    output.add_argument('--storage', '--bag-storage', dest='storage', choices=STORAGES,
+                        default='mcap', help=deprecated('storage of the bags --write-bags '
+                                                        'writes (default: mcap)',
+                                                        '--bag-storage'))
     output.add_argument('--jobs', type=int, default=DEFAULT_JOBS, metavar='N',
                         help=f'bags replayed in parallel (processes; default: {DEFAULT_JOBS})')
     output.add_argument('--event-log', metavar='PATH',
@@ -87,6 +92,9 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
     output.add_argument('--no-plots', action='store_true',
                         help='reports without plots (JSON and tables: faster for big batches)')
     output.add_argument('--no-progress', action='store_true', help='no progress bar')
+    output.add_argument('--quiet', action='store_true',
+                        help='print only the count of bags replayed, the failed ones and the '
+                        'files written, not the per-bag summaries (implies --no-progress)')
     replay.set_defaults(handler=command_replay)
 
 
@@ -132,7 +140,7 @@ def command_replay(args: argparse.Namespace) -> int:
         choices = [CertificateChoice(f'{c.label} ({c.certificate.certificate_id})',
                                      c.certificate, c.source) for c in choices]
     source = Path(args.bags)
-    out = Path(args.out)
+    out = Path(args.output_dir)
     bags = find_bags(source, exclude=[out])
     if not bags:
         raise SafetyFilterError(f'{source}: no bags found (rosbag2 folders with metadata.yaml, '
@@ -141,7 +149,8 @@ def command_replay(args: argparse.Namespace) -> int:
     for bag in bags:
         root = bag.resolve()
         if bag.is_dir() and (resolved_out == root or root in resolved_out.parents):
-            raise SafetyFilterError(f'--out {out} lies inside the bag {bag}; the input is '
+            raise SafetyFilterError(f'--output-dir {out} lies inside the bag {bag}; the '
+                                    'input is '
                                     'never written to: choose another folder')
     if source.is_dir() and not (source / 'metadata.yaml').is_file():
         names = bag_names(bags, source)  # a folder of bags
@@ -154,19 +163,24 @@ def command_replay(args: argparse.Namespace) -> int:
         payload_mass=args.payload_mass, joint_state_timeout_s=args.joint_state_timeout,
         nominal_timeout_s=args.nominal_timeout, closed_loop=args.closed_loop,
         internal_rate_hz=args.sim_rate,
-        write_bags=args.write_bags, bag_storage=args.bag_storage, plots=not args.no_plots)
+        write_bags=args.write_bags, bag_storage=args.storage, plots=not args.no_plots)
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as err:
-        raise SafetyFilterError(f'cannot create --out {out}: {err}') from err
+        raise SafetyFilterError(f'cannot create --output-dir {out}: {err}') from err
     entries = replay_bags(bags, model, choices, options, out, names=names, jobs=args.jobs,
-                          events=events, progress=not args.no_progress)
+                          events=events, progress=not (args.quiet or args.no_progress))
     try:
         summary_path = write_batch_summary(out, entries, options=options.record(),
                                            events=events)
     except OSError as err:
         raise SafetyFilterError(f'cannot write the summary in {out}: {err}') from err
-    if len(entries) == 1:
+    if args.quiet:
+        ok = sum(entry['status'] == 'ok' for entry in entries)
+        print('\n'.join([f'FAILED {e["name"]}: {e["error"]}' for e in entries
+                         if e['status'] != 'ok']
+                        + [f'{ok} of {len(entries)} bags replayed, {len(entries) - ok} failed']))
+    elif len(entries) == 1:
         entry = entries[0]
         print(entry['summary'] if entry['status'] == 'ok' else f'FAILED {entry["name"]}: '
               f'{entry["error"]}')

@@ -42,6 +42,7 @@ from typing import Any
 import numpy as np
 
 from safety_filter.certificate import Certificate
+from safety_filter.cli_options import deprecated
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 from safety_filter.simulate import (  # noqa: F401 (Push, PlantLog: part of this API too)
@@ -642,7 +643,8 @@ def add_stress_parser(commands: argparse._SubParsersAction) -> None:
     filt.add_argument('--certificate', metavar='PATH',
                       help='certificate parameter file written by `safety-filter certify`; '
                       'required with --urdf; a demo arm without it is certified first (20000 '
-                      'falsifier states, as the demo) or its certificate in --out is reused')
+                      'falsifier states, as the demo) or its certificate in --output-dir is '
+                      'reused')
     runs = stress.add_argument_group('runs')
     runs.add_argument('--duration', type=float, default=DEFAULT_DURATION_S, metavar='S',
                       help=f'simulated seconds per run (default: {DEFAULT_DURATION_S:g})')
@@ -657,8 +659,9 @@ def add_stress_parser(commands: argparse._SubParsersAction) -> None:
     runs.add_argument('--seed', type=int, default=0,
                       help='seed of plants, nominals, noise and pushes (default: 0)')
     output = stress.add_argument_group('output')
-    output.add_argument('--out', default=str(DEFAULT_OUT), metavar='DIR',
-                        help=f'output folder (default: {DEFAULT_OUT})')
+    output.add_argument('--output-dir', '--out', dest='output_dir', default=str(DEFAULT_OUT),
+                        metavar='DIR', help=deprecated(f'output folder (default: {DEFAULT_OUT})',
+                                                       '--out'))
     output.add_argument('--jobs', type=int, default=DEFAULT_JOBS, metavar='N',
                         help='runs in parallel (processes; default: the number of cores, '
                         f'{DEFAULT_JOBS} here)')
@@ -666,7 +669,8 @@ def add_stress_parser(commands: argparse._SubParsersAction) -> None:
                         help='report without plots (JSON and tables only)')
     output.add_argument('--no-progress', action='store_true', help='no progress bar')
     output.add_argument('--quiet', action='store_true',
-                        help='no progress bar and no table: the verdict and files only')
+                        help='print only the verdict and the files written (no table; '
+                        'implies --no-progress)')
     stress.set_defaults(handler=command_stress)
 
 
@@ -705,11 +709,11 @@ def command_stress(args: argparse.Namespace) -> int:
         raise SafetyFilterError('--certificate is required with --urdf (write one with '
                                 '`safety-filter certify`)')
     model = load_robot(args)
-    out = Path(args.out)
+    out = Path(args.output_dir)
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as err:
-        raise SafetyFilterError(f'cannot create --out {out}: {err}') from err
+        raise SafetyFilterError(f'cannot create --output-dir {out}: {err}') from err
     bar = _ProgressBar(enabled=not (args.quiet or args.no_progress))
     try:
         if args.certificate is not None:

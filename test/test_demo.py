@@ -122,8 +122,8 @@ def test_graph_across_processes_stops_cleanly_on_sigint(tmp_path: Path, domain: 
     arm = certified_arm(ARM)
     bag = tmp_path / 'bag'
     env = dict(os.environ, ROS_DOMAIN_ID=str(domain), ROS_AUTOMATIC_DISCOVERY_RANGE='LOCALHOST')
-    command = [sys.executable, '-m', 'safety_filter.cli', 'run-graph', '--arm', ARM,
-               '--certificate', str(arm.certificate_path), '--bag', str(bag), '--processes',
+    command = [sys.executable, '-m', 'safety_filter.cli', 'run-graph', '--demo', ARM,
+               '--certificate', str(arm.certificate_path), '--output-dir', str(bag), '--processes',
                '--domain-id', str(domain)]
     process = subprocess.Popen(command, env=env, stdout=subprocess.PIPE,
                                stderr=subprocess.STDOUT, text=True)
@@ -172,7 +172,7 @@ def test_a_timed_sim_graph_in_one_process(tmp_path: Path, domain: int) -> None:
                            certificate=arm.certificate_path, duration_s=0.5, bag_path=bag,
                            storage='sqlite3')
     result = run_graph(specs, domain_id=domain, localhost_only=True, log_level='warn',
-                       wall_timeout_s=120.0, executor='single')
+                       wall_timeout_s=120.0, executor='single_threaded')
     assert result.finished and not result.interrupted
     assert result.simulated_s == pytest.approx(0.5, abs=1.5 / RATE_HZ)
     assert (bag / 'metadata.yaml').is_file() and any(bag.glob('*.db3'))

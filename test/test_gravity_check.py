@@ -285,18 +285,18 @@ def test_cli_bad_input(tmp_path: Path, planar2: RobotModel,
         (['check-gravity', str(tmp_path / 'nothing'), '--demo', 'planar2'], 'bag not found'),
         (['check-gravity', str(tmp_path), '--demo', 'planar2'], 'not a rosbag2 bag'),
         (['check-gravity', str(path), '--demo', 'planar2'], 'has no topic /joint_states'),
-        (['check-gravity', str(path), '--demo', 'bench6', '--topic', '/arm/joint_states'],
-         'carries every chain joint'),
+        (['check-gravity', str(path), '--demo', 'bench6', '--joint-states-topic',
+          '/arm/joint_states'], 'carries every chain joint'),
         (['check-gravity', str(path)], 'the robot is required'),
-        (['check-gravity', str(path), '--demo', 'planar2', '--topic', 'arm/joint_states',
-          '--tolerance', '2'], '--tolerance'),
+        (['check-gravity', str(path), '--demo', 'planar2', '--joint-states-topic',
+          'arm/joint_states', '--tolerance', '2'], '--tolerance'),
     ]
     for argv, message in cases:
         assert main(argv) == 2, argv
         _, err = capsys.readouterr()
         assert message in err, (argv, err)
     assert main(['check-gravity', str(path), '--demo', 'planar2',
-                 '--topic', 'arm/joint_states']) == 0
+                 '--joint-states-topic', 'arm/joint_states']) == 0
 
 
 # ---------------------------------------------------------------------- live

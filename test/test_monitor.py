@@ -351,13 +351,13 @@ def test_event_log_is_json_lines_the_replay_report_reads(tmp_path: Path) -> None
 def test_monitor_command_line() -> None:
     from safety_filter.cli import build_parser
 
-    args = build_parser().parse_args(['monitor', '--rate', '2', '--thin-margin', '0.1',
+    args = build_parser().parse_args(['monitor', '--refresh-rate', '2', '--thin-margin', '0.1',
                                       '--duration', '3', '--event-log', 'e.jsonl'])
-    assert (args.rate, args.thin_margin, args.duration, args.event_log) == (2.0, 0.1, 3.0,
-                                                                            'e.jsonl')
+    assert (args.refresh_rate, args.thin_margin, args.duration, args.event_log) == (
+        2.0, 0.1, 3.0, 'e.jsonl')
     assert args.node_name == 'safety_filter' and args.event_time == 'wall'
     check_monitor_arguments(args)
-    for option, value in (('--rate', '0'), ('--duration', '-1'), ('--absent-after', '0'),
+    for option, value in (('--refresh-rate', '0'), ('--duration', '-1'), ('--absent-after', '0'),
                           ('--node-name', '/')):
         bad = build_parser().parse_args(['monitor', option, value])
         with pytest.raises(SafetyFilterError):
@@ -487,7 +487,7 @@ def test_monitor_follows_a_live_graph_and_logs_the_watchdog_trip(tmp_path: Path)
             stderr=subprocess.STDOUT, start_new_session=True)
         monitor = subprocess.Popen(
             [sys.executable, '-m', 'safety_filter.ros.monitor', '--certificate',
-             str(arm.certificate_path), '--event-log', str(event_log), '--rate', '4',
+             str(arm.certificate_path), '--event-log', str(event_log), '--refresh-rate', '4',
              '--duration', '240'], env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
             text=True, start_new_session=True)
         reader = LineReader(monitor, SEPARATOR)

@@ -356,7 +356,7 @@ def test_cli_replays_one_bag_with_a_comparison_and_writes_the_report(
     out = tmp_path / 'out'
     code = main(['replay', str(bag), '--demo', 'planar2', '--certificate',
                  str(files['certificate']), '--compare', str(files['smaller_beta']),
-                 '--closed-loop', '--sim-rate', str(SIM_RATE_HZ), '--out', str(out),
+                 '--closed-loop', '--sim-rate', str(SIM_RATE_HZ), '--output-dir', str(out),
                  '--write-bags', '--event-log', str(events), '--no-progress'])
     printed = capsys.readouterr().out
     assert code == 0, printed
@@ -395,7 +395,7 @@ def test_cli_replays_one_bag_with_a_comparison_and_writes_the_report(
     assert (out / SUMMARY_HTML).is_file() and (out / SUMMARY_JSON).is_file()
     # Again into the same folder: the old replay bag is replaced, not an error.
     assert main(['replay', str(bag), '--demo', 'planar2', '--certificate',
-                 str(files['certificate']), '--out', str(out), '--write-bags',
+                 str(files['certificate']), '--output-dir', str(out), '--write-bags',
                  '--no-plots', '--no-progress']) == 0
     assert tree_digest(bag) == before
 
@@ -414,7 +414,7 @@ def test_batch_lists_bad_bags_and_goes_on(arm: Any, files: dict[str, Path], run:
     before = tree_digest(folder)
     out = tmp_path / 'out'
     code = main(['replay', str(folder), '--demo', 'planar2', '--certificate',
-                 str(files['certificate']), '--out', str(out), '--jobs', '2',
+                 str(files['certificate']), '--output-dir', str(out), '--jobs', '2',
                  '--no-plots', '--no-progress'])
     printed = capsys.readouterr().out
     assert code == 0, printed
@@ -440,7 +440,7 @@ def test_cli_exit_codes(files: dict[str, Path], tmp_path: Path,
     (tmp_path / 'bad' / 'one.mcap').write_text('not a bag')
     (tmp_path / 'bad' / 'two.db3').write_text('not a bag either')
     out = str(tmp_path / 'out')
-    common = ['--demo', 'planar2', '--out', out, '--no-progress', '--jobs', '1']
+    common = ['--demo', 'planar2', '--output-dir', out, '--no-progress', '--jobs', '1']
     assert main(['replay', str(tmp_path / 'bad'), '--certificate', str(files['certificate']),
                  *common]) == 1  # every bag failed
     printed = capsys.readouterr()
@@ -452,7 +452,7 @@ def test_cli_exit_codes(files: dict[str, Path], tmp_path: Path,
     assert main(['replay', str(tmp_path / 'empty'), '--certificate',
                  str(files['certificate']), *common]) == 2
     assert main(['replay', str(tmp_path / 'bad'), '--certificate',
-                 str(files['certificate']), '--demo', 'bench6', '--out', out]) == 2
+                 str(files['certificate']), '--demo', 'bench6', '--output-dir', out]) == 2
     assert main(['replay', str(tmp_path / 'bad'), '--certificate',
                  str(files['certificate']), '--jobs', '0', *common[:-2]]) == 2
     errors = capsys.readouterr().err

@@ -250,7 +250,7 @@ def test_cli_end_to_end_on_planar2(tmp_path, capsys, planar2) -> None:
     out = tmp_path / 'stress'
     code, stdout, stderr = _run_cli(
         ['stress', '--demo', 'planar2', '--certificate', str(path), '--duration', '0.4',
-         '--plants', '1', '--jobs', '2', '--seed', '3', '--out', str(out), '--no-progress'],
+         '--plants', '1', '--jobs', '2', '--seed', '3', '--output-dir', str(out), '--no-progress'],
         capsys)
     summary = json.loads((out / 'stress_summary.json').read_text(encoding='utf-8'))
     assert code == (stress.EXIT_OK if summary['passed'] else stress.EXIT_STRESS_FAILED)
@@ -277,7 +277,7 @@ def test_cli_failed_verdict_exits_5(tmp_path, capsys, planar2, monkeypatch) -> N
     monkeypatch.setattr(stress, 'run_failures', lambda *args: ['made to fail'])
     code, stdout, _ = _run_cli(
         ['stress', '--demo', 'planar2', '--certificate', str(path), '--duration', '0.05',
-         '--plants', '0', '--jobs', '1', '--out', str(tmp_path / 'o'), '--quiet',
+         '--plants', '0', '--jobs', '1', '--output-dir', str(tmp_path / 'o'), '--quiet',
          '--no-plots'], capsys)
     assert code == stress.EXIT_STRESS_FAILED == 5
     assert stdout.splitlines()[0].startswith('verdict: FAIL (36 of 36 runs')
@@ -286,7 +286,7 @@ def test_cli_failed_verdict_exits_5(tmp_path, capsys, planar2, monkeypatch) -> N
 def test_cli_demo_arm_without_certificate_certifies_then_reuses(tmp_path, capsys) -> None:
     out = tmp_path / 'stress'
     argv = ['stress', '--demo', 'planar2', '--duration', '0.05', '--plants', '0', '--jobs',
-            '1', '--out', str(out), '--no-plots', '--quiet']
+            '1', '--output-dir', str(out), '--no-plots', '--quiet']
     code, stdout, _ = _run_cli(argv, capsys)
     assert code in (stress.EXIT_OK, stress.EXIT_STRESS_FAILED)
     assert (out / 'planar2_certificate.yaml').is_file()
@@ -305,9 +305,10 @@ def test_cli_demo_arm_without_certificate_certifies_then_reuses(tmp_path, capsys
     (['--plants', '-2'], '--plants must be >= 0'),
 ])
 def test_bad_input_exits_2_with_a_clear_message(tmp_path, capsys, options, message) -> None:
-    code, _, stderr = _run_cli(['stress', '--demo', 'planar2', '--out', str(tmp_path), *options]
+    code, _, stderr = _run_cli(['stress', '--demo', 'planar2', '--output-dir', str(tmp_path),
+                                *options]
                                if '--urdf' not in options else
-                               ['stress', '--out', str(tmp_path), *options], capsys)
+                               ['stress', '--output-dir', str(tmp_path), *options], capsys)
     assert code == stress.EXIT_BAD_INPUT == 2
     assert message in stderr
 

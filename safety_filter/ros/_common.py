@@ -17,12 +17,12 @@ from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPo
 from rclpy.signals import SignalHandlerOptions
 from rclpy.utilities import remove_ros_args
 
+from safety_filter.cli_options import EXECUTORS, executor_name
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 
 EXIT_OK = 0
 EXIT_FAILED = 1
-EXECUTORS = ('events', 'single', 'multi')
 
 
 def state_qos() -> QoSProfile:
@@ -83,15 +83,17 @@ def make_executor(kind: str, context: Any) -> Any:
     ``'events'`` is rclpy's EventsExecutor (``rclpy.experimental`` in Jazzy): about twice
     as fast as the single-threaded executor, and four times as fast as the multi-threaded
     one, for a 1 kHz loop of Python nodes, because it does not rebuild a wait set for every
-    callback. ``'single'`` and ``'multi'`` are the classic executors.
+    callback. ``'single_threaded'`` and ``'multi_threaded'`` are the classic executors (the
+    deprecated names ``'single'`` and ``'multi'`` still work).
     """
+    kind = executor_name(kind)
     if kind == 'events':
         from rclpy.experimental import EventsExecutor
 
         return EventsExecutor(context=context)
-    if kind == 'single':
+    if kind == 'single_threaded':
         return SingleThreadedExecutor(context=context)
-    if kind == 'multi':
+    if kind == 'multi_threaded':
         from rclpy.executors import MultiThreadedExecutor
 
         return MultiThreadedExecutor(num_threads=2, context=context)
@@ -101,7 +103,8 @@ def make_executor(kind: str, context: Any) -> Any:
 def _executor_argument(argv: Sequence[str]) -> str:
     """The ``--executor`` option of a node executable (outside ``--ros-args``)."""
     parser = argparse.ArgumentParser(add_help=False)
-    parser.add_argument('--executor', choices=EXECUTORS, default='single')
+    parser.add_argument('--executor', type=executor_name, choices=EXECUTORS,
+                        default='single_threaded')
     known, _ = parser.parse_known_args(list(remove_ros_args(list(argv)))[1:])
     return str(known.executor)
 
@@ -114,8 +117,8 @@ def spin_node(node_factory: Callable[[Any], Any], args: Sequence[str] | None,
     Args:
         node_factory: ``factory(context) -> node``.
         args: the command line like ``sys.argv`` (program name first); default sys.argv.
-            ``--executor {events,single,multi}`` (before ``--ros-args``) picks the
-            executor (default single).
+            ``--executor {single_threaded,multi_threaded,events}`` (before
+            ``--ros-args``) picks the executor (default single_threaded).
         done: optional predicate that ends the spin.
 
     Returns:

@@ -54,7 +54,7 @@ Publications:
   joint-state watchdog has tripped or steps were rejected or recovering since the last
   report; STALE when inactive, when no joint state was ever received, or when the nominal is
   stale or was never received; WARN after a fallback since the last report or when a barrier
-  margin fell below ``margin_warn``; OK otherwise (ERROR > STALE > WARN > OK). Key values:
+  margin fell below ``thin_margin``; OK otherwise (ERROR > STALE > WARN > OK). Key values:
   mode, intervention (last and max since the last report), ``margin.<joint>`` (smallest
   since the last report), active constraints of the last step, solve time median/p99/max
   over the report window, step counts per mode and the reasons of non-filtered steps, input
@@ -162,8 +162,9 @@ hardware`` load it.
 Operational parameters: ``joint_state_timeout_s`` (0.02) and ``nominal_timeout_s`` (0.1)
 [s] may change at any time (positive, finite); ``trigger`` (``'joint_state'``),
 ``watchdog_rate_hz`` (0 = the certificate's control rate), ``diagnostics_rate_hz`` (2.0) and
-``margin_warn`` (0.01, in the barrier's units) are read at configure and can be changed only
-while the node is unconfigured.
+``thin_margin`` (0.01, in the barrier's units: ``safety_filter.cli_options.THIN_MARGIN``,
+also the monitor's default) are read at configure and can be changed only while the node is
+unconfigured.
 
 Lifecycle
 ---------
@@ -236,6 +237,7 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray, MultiArrayDimension
 
 from safety_filter.certificate import FILTER_NODE_NAME, Certificate
+from safety_filter.cli_options import THIN_MARGIN
 from safety_filter.errors import SafetyFilterError
 from safety_filter.filter import GRAVITY_CONVENTIONS, FilterMode, FilterOutput, SafetyFilter
 from safety_filter.model import RobotModel
@@ -254,7 +256,7 @@ MODEL_PARAMETERS = ('urdf_path', 'robot_description', 'limits_path', 'gravity_co
 SAFETY_PARAMETERS = frozenset(CERTIFICATE_PARAMETERS + MODEL_PARAMETERS)
 TIMEOUT_PARAMETERS = ('joint_state_timeout_s', 'nominal_timeout_s')
 CONFIGURE_TIME_PARAMETERS = ('trigger', 'watchdog_rate_hz', 'diagnostics_rate_hz',
-                             'margin_warn')
+                             'thin_margin')
 TRIGGERS = ('nominal', 'joint_state')
 JOINT_STATE_TIMEOUT_S = 0.02  # [s] default joint_state_timeout_s (module docstring)
 
@@ -275,7 +277,7 @@ RCLError = _rclpy.RCLError
 DIAGNOSTIC_NAME_SUFFIX = ': filter'
 EXIT_OK = 0
 EXIT_FAILED = 1
-EXECUTORS = ('single_threaded', 'events')
+EXECUTORS = ('single_threaded', 'events')  # of safety_filter.cli_options.EXECUTORS
 # Diagnostics WARN when the median step period exceeds the certified hold by more than this
 # fraction (see the module docstring), judged on at least STEP_PERIOD_MIN_SAMPLES periods.
 STEP_PERIOD_TOLERANCE = 0.1
@@ -408,9 +410,9 @@ class SafetyFilterNode(LifecycleNode):
             'configure', dynamic=True))
         self.declare_parameter('diagnostics_rate_hz', 2.0, _describe(
             'rate of /diagnostics [Hz]; read at configure', dynamic=True))
-        self.declare_parameter('margin_warn', 0.01, _describe(
-            'diagnostics WARN when a barrier margin falls below this (barrier units); read '
-            'at configure', dynamic=True))
+        self.declare_parameter('thin_margin', THIN_MARGIN, _describe(
+            'diagnostics WARN when a barrier margin falls below this (barrier units; the '
+            "monitor's --thin-margin default too); read at configure", dynamic=True))
 
     def _on_set_parameters(self, parameters: list[Parameter]) -> SetParametersResult:
         """Reject safety parameters; validate operational ones."""
@@ -452,10 +454,10 @@ class SafetyFilterNode(LifecycleNode):
             if isinstance(value, (int, float)) and not isinstance(value, bool) and value == 0:
                 return 0.0
             return _positive_finite(name, value)
-        if name == 'margin_warn':
+        if name == 'thin_margin':
             if isinstance(value, bool) or not isinstance(value, (int, float)) \
                     or not math.isfinite(value):
-                raise SafetyFilterError(f'margin_warn must be a finite number, got {value!r}')
+                raise SafetyFilterError(f'thin_margin must be a finite number, got {value!r}')
             return float(value)
         return _positive_finite(name, value)
 
@@ -616,7 +618,7 @@ class SafetyFilterNode(LifecycleNode):
         self._filter = filt
         self._joint_state_timeout, self._nominal_timeout = timeouts
         self._trigger = operational['trigger']
-        self._margin_warn = operational['margin_warn']
+        self._thin_margin = operational['thin_margin']
         watchdog_rate = operational['watchdog_rate_hz'] or certificate.control_rate_hz
         n = model.n_joints
         self._n = n
@@ -922,7 +924,7 @@ class SafetyFilterNode(LifecycleNode):
             if counts[MODE_FALLBACK]:
                 warnings.append(f'{counts[MODE_FALLBACK]} fallback steps')
             finite = self._window_margin[np.isfinite(self._window_margin)]
-            if finite.size and float(finite.min()) < self._margin_warn:
+            if finite.size and float(finite.min()) < self._thin_margin:
                 warnings.append(f'barrier margin down to {float(finite.min()):.4g}')
         hold_ms = certificate.control_period_s * certificate.sampling_factor * 1e3
         periods = np.array(self._window_periods) * 1e3

@@ -3,7 +3,7 @@
 ``safety-filter monitor`` (or the ``filter_monitor`` executable) starts a plain node,
 ``safety_filter_monitor_<pid>``, that subscribes to the filter node's ``/diagnostics`` status
 ``'<node>: filter'`` and its ``~/status`` array (both documented in
-:mod:`safety_filter.ros.filter_node`) and redraws a screen at ``--rate`` (4 Hz): state
+:mod:`safety_filter.ros.filter_node`) and redraws a screen at ``--refresh-rate`` (4 Hz): state
 (diagnostics level) and mode; per joint position, velocity and torque against their limits
 (bars and percentages) and the barrier margin; intervention; solve times; fallback and
 recovery counts; input ages; certificate id; the last events. Alarm lines start with ``!!``
@@ -284,7 +284,7 @@ def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
         ros_args = ['filter_monitor', '--ros-args', *list(getattr(args, 'ros_args', []) or [])]
         rclpy.init(args=ros_args, context=context, domain_id=args.domain_id,
                    signal_handler_options=SignalHandlerOptions.NO)
-        node = FilterMonitorNode(state, screen, event_log, rate_hz=args.rate,
+        node = FilterMonitorNode(state, screen, event_log, rate_hz=args.refresh_rate,
                                  diagnostics_topic=args.diagnostics_topic,
                                  status_topic_name=args.status_topic,
                                  read_parameters=limits is None, context=context)

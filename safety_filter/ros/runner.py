@@ -219,7 +219,7 @@ def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
                    limits_path: str | Path = '', command_topic: str = HARDWARE_COMMAND_TOPIC,
                    joint_states_topic: str = 'joint_states',
                    nominal_topic: str = 'nominal_torque', gravity_convention: str = 'full',
-                   payload_mass: float = -1.0, control_rate_hz: float = 0.0,
+                   payload_mass: float = -1.0, watchdog_rate_hz: float = 0.0,
                    config: str | Path | None = None, activate_at_start: bool = False
                    ) -> list[NodeSpec]:
     """The filter alone (``launch/hardware.launch.py``), between a command source and a driver.
@@ -231,7 +231,8 @@ def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
         joint_states_topic, nominal_topic: where the filter reads states and nominal torques.
         gravity_convention: ``'full'`` or ``'driver_compensated'``.
         payload_mass: mounted payload [kg]; negative: the middle of the certified range.
-        control_rate_hz: the watchdog's rate (``watchdog_rate_hz``; 0: the certificate's).
+        watchdog_rate_hz: the filter's watchdog rate [Hz] (parameter ``watchdog_rate_hz``;
+            0: the certificate's control rate).
         config: operational parameters (default ``config/filter.yaml``).
         activate_at_start: activate the filter at start. Default False: it is configured and
             stays inactive (no torque published) until ``ros2 lifecycle set /safety_filter
@@ -241,7 +242,7 @@ def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
     return [NodeSpec('filter_node', FILTER_NODE_NAME, [Path(certificate), config], {
         'urdf_path': str(urdf_path), 'limits_path': str(limits_path),
         'gravity_convention': gravity_convention, 'payload_mass': float(payload_mass),
-        'watchdog_rate_hz': float(control_rate_hz)}, [
+        'watchdog_rate_hz': float(watchdog_rate_hz)}, [
         ('filtered_torque', command_topic), ('joint_states', joint_states_topic),
         ('nominal_torque', nominal_topic)], activate=bool(activate_at_start))]
 
@@ -314,9 +315,10 @@ def run_graph(specs: Sequence[NodeSpec], *, processes: bool = False, executor: s
         specs: the nodes (from :func:`sim_demo_graph` or :func:`hardware_graph`), started in
             this order (a recorder first, the simulated arm last).
         processes: one subprocess per node (True) or every node in this process.
-        executor: ``'events'`` (default), ``'single'`` or ``'multi'``: the executor of the
-            in-process graph, and of each of this package's demo nodes in subprocess mode
-            (the filter node's executable always uses its own single-threaded one). See
+        executor: ``'events'`` (default), ``'single_threaded'`` or ``'multi_threaded'``
+            (:data:`safety_filter.cli_options.EXECUTORS`): the executor of the in-process
+            graph, and of each of this package's demo nodes in subprocess mode (the filter
+            node's executable always uses its own single-threaded one). See
             :func:`safety_filter.ros._common.make_executor`.
         duration_s: wall-clock seconds to run when the graph has no simulated arm with a
             ``duration_s`` of its own (0: until SIGINT/SIGTERM).
@@ -330,8 +332,9 @@ def run_graph(specs: Sequence[NodeSpec], *, processes: bool = False, executor: s
         GraphError: a node could not be created, or the filter not configured and
             activated.
     """
-    from safety_filter.ros._common import EXECUTORS
+    from safety_filter.cli_options import EXECUTORS, executor_name
 
+    executor = executor_name(executor)
     if not specs:
         raise GraphError('the graph has no nodes')
     unknown = [s.executable for s in specs if s.executable not in NODES]
