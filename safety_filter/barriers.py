@@ -81,3 +81,25 @@ def return_time_bound(barrier: np.ndarray, beta: np.ndarray, margin: np.ndarray,
     x = depth[..., None] * fraction
     rate = beta[..., None] * alpha2.value(x) + margin[..., None]
     return np.trapezoid(1.0 / rate, x, axis=-1)
+
+
+def safe_set_area(position_range: float, gamma: float, alpha1: ClassK,
+                  samples: int = 4001) -> float:
+    """Area of a joint's slice of S in its (q, v) plane [rad^2/s or m^2/s]:
+    ``integral_0^r gamma (alpha1(r - x) + alpha1(x)) dx`` (``gamma r^2`` for the linear
+    family)."""
+    x = np.linspace(0.0, float(position_range), samples)
+    width = gamma * (alpha1.value(position_range - x) + alpha1.value(x))
+    return float(np.trapezoid(width, x))
+
+
+def braking_set_area(position_range: float, deceleration: float, speed_limit: float,
+                     samples: int = 4001) -> float:
+    """Area of the set from which a joint that can decelerate at ``deceleration`` stops before
+    its limits without exceeding ``speed_limit``: ``|v| <= speed_limit`` and
+    ``v^2 <= 2 deceleration d`` toward the nearer limit in the direction of motion (d its
+    distance): ``integral_0^r min(sqrt(2 e (r - x)), vmax) + min(sqrt(2 e x), vmax) dx``."""
+    x = np.linspace(0.0, float(position_range), samples)
+    reach = np.sqrt(2.0 * max(float(deceleration), 0.0) * x)
+    width = np.minimum(reach, speed_limit) + np.minimum(reach[::-1], speed_limit)
+    return float(np.trapezoid(width, x))

@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 
 from safety_filter._report_common import BASE_CSS, json_ready
+from safety_filter.barriers import braking_set_area, safe_set_area
 from safety_filter.certify import CertificationOutcome, _slice_ratio, beta_star
 from safety_filter.model import RobotModel
 
@@ -58,7 +59,10 @@ def joint_rows(outcome: CertificationOutcome, model: RobotModel) -> list[dict[st
     Keys: ``joint``, ``authority`` and ``sampling_margin`` [rad/s^2], ``usable_authority``,
     ``gamma_star``, ``gamma``, ``certified_velocity`` (``gamma * alpha1(range)``) and
     ``rated_velocity`` [rad/s], ``velocity_percent``, ``beta_star``, ``beta``,
-    ``beta_floor``, ``beta_cap``, ``beta_set_by`` (margin, floor or cap), ``passed``.
+    ``beta_floor``, ``beta_cap``, ``beta_set_by`` (margin, floor or cap), ``passed``,
+    ``braking_percent``: the area of S in the joint's (q, v) plane over the area of the set
+    from which the joint can still brake to a stop before its limits at its usable
+    authority, within its rated speed (how permissive S is: 100 % is the braking limit).
     (m instead of rad for prismatic joints.)
     """
     cert = outcome.certificate
@@ -102,8 +106,18 @@ def joint_rows(outcome: CertificationOutcome, model: RobotModel) -> list[dict[st
             'beta_cap': cap,
             'beta_set_by': set_by,
             'passed': passed,
+            'braking_percent': _braking_percent(cert, i, r, usable, rated),
         })
     return rows
+
+
+def _braking_percent(cert: Any, i: int, r: float, usable: float, rated: float) -> float:
+    """Area of S over the braking set at the usable authority, in per cent (0 without
+    gains)."""
+    braking = braking_set_area(r, usable, rated)
+    if braking <= 0.0 or float(cert.gamma[i]) <= 0.0:
+        return 0.0
+    return 100.0 * safe_set_area(r, float(cert.gamma[i]), cert.alpha1) / braking
 
 
 def _fmt(value: float) -> str:
@@ -175,7 +189,7 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
     header = f'{"joint":<{width}}'
     for label, _ in _COLUMNS:
         header += f' {label:>6}'
-    header += f' {"%rat":>4}'
+    header += f' {"%rat":>4} {"%brk":>4}'
     for label, _ in _BETA_COLUMNS:
         header += f' {label:>6}'
     header += ' pass'
@@ -186,7 +200,7 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
         line = f'{name:<{width}}'
         for _, key in _COLUMNS:
             line += f' {_fmt(row[key]):>6}'
-        line += f' {row["velocity_percent"]:>3.0f}%'
+        line += f' {row["velocity_percent"]:>3.0f}% {row["braking_percent"]:>3.0f}%'
         for _, key in _BETA_COLUMNS:
             line += f' {_fmt(row[key]):>6}'
         line += ' ' + ('ok' if row['passed'] else 'FAIL')
@@ -195,7 +209,9 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
     lines += textwrap.wrap(
         'e: acceleration authority; margin: sampled-data margin reserved from it [rad/s^2]. '
         'gamma <= gamma* [1/s]. v_cert = gamma alpha1(range): certified velocity bound beside '
-        'the rated limit v_rat [rad/s]. beta >= beta*, kept between floor and cap. '
+        'the rated limit v_rat [rad/s]; %brk: area of S over the set from which the joint can '
+        'still brake before its limits at its usable authority (e - margin) within v_rat. '
+        'beta >= beta*, kept between floor and cap. '
         '(m for rad on prismatic joints.)', TABLE_WIDTH)
     lines.append('')
     lines.append(f'verdict: {_verdict(outcome)}')
@@ -421,6 +437,12 @@ def _plot_safe_set(outcome: CertificationOutcome, model: RobotModel, i: int, pat
         axes.axhline(bound, color='#2a8a2a', linestyle=':', linewidth=1.8, zorder=4,
                      label=f'certified bound +-{bound:.3g}')
         axes.axhline(-bound, color='#2a8a2a', linestyle=':', linewidth=1.8, zorder=4)
+        usable = max(float(cert.authority[i] - cert.sampling_margin[i]), 0.0)
+        brake_hi = np.minimum(np.sqrt(2.0 * usable * (upper - qs)), rated)
+        brake_lo = -np.minimum(np.sqrt(2.0 * usable * (qs - lower)), rated)
+        axes.plot(qs, brake_hi, color='#7a3db8', linestyle='-.', linewidth=1.3,
+                  label='braking curve at the usable authority')
+        axes.plot(qs, brake_lo, color='#7a3db8', linestyle='-.', linewidth=1.3)
     else:
         _no_gains(axes)
     axes.axhline(rated, color='#c05000', linestyle='--', linewidth=1.2,
@@ -538,7 +560,7 @@ def _html_table(rows: list[dict[str, Any]]) -> str:
             '<th>sampling margin<br>[rad/s&sup2;]</th><th>&gamma;*<br>[1/s]</th>'
             '<th>&gamma;<br>[1/s]</th><th>certified velocity<br>&gamma;&nbsp;&alpha;1(range) '
             '[rad/s]</th><th>rated velocity<br>[rad/s]</th><th>% of rated</th>'
-            '<th>&beta;*</th><th>&beta;</th><th>&beta; floor</th><th>&beta; cap</th>'
+            '<th>S / braking set</th><th>&beta;*</th><th>&beta;</th><th>&beta; floor</th><th>&beta; cap</th>'
             '<th>&beta; set by</th><th>result</th></tr>')
     body = []
     for row in rows:
@@ -547,6 +569,7 @@ def _html_table(rows: list[dict[str, Any]]) -> str:
                     'certified_velocity', 'rated_velocity'):
             cells.append(_cell(row[key]))
         cells.append(f'<td class="num">{row["velocity_percent"]:.0f} %</td>')
+        cells.append(f'<td class="num">{row["braking_percent"]:.0f} %</td>')
         for key in ('beta_star', 'beta', 'beta_floor', 'beta_cap'):
             cells.append(_cell(row[key]))
         cells.append(f'<td>{html.escape(row["beta_set_by"])}</td>')
