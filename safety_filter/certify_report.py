@@ -560,7 +560,8 @@ def _html_table(rows: list[dict[str, Any]]) -> str:
             '<th>sampling margin<br>[rad/s&sup2;]</th><th>&gamma;*<br>[1/s]</th>'
             '<th>&gamma;<br>[1/s]</th><th>certified velocity<br>&gamma;&nbsp;&alpha;1(range) '
             '[rad/s]</th><th>rated velocity<br>[rad/s]</th><th>% of rated</th>'
-            '<th>S / braking set</th><th>&beta;*</th><th>&beta;</th><th>&beta; floor</th><th>&beta; cap</th>'
+            '<th>S / braking set</th><th>&beta;*</th><th>&beta;</th><th>&beta; floor</th>'
+            '<th>&beta; cap</th>'
             '<th>&beta; set by</th><th>result</th></tr>')
     body = []
     for row in rows:
