@@ -102,7 +102,8 @@ def add_demo_parser(commands: argparse._SubParsersAction) -> None:
         'a simulated arm driven by a careless operator twice (unfiltered, possible only in '
         'simulation, then through the safety filter), record both runs to rosbag2 bags and '
         'write a report with the limit violations of each. Exit code 0: the filtered run '
-        'kept every limit; 4: it did not; 2: bad input or a failed run.')
+        'kept every limit; 4: it did not; 2: bad input or a failed run; 130: interrupted '
+        '(Ctrl-C).')
     demo.add_argument('--demo', '--arm', dest='demo', choices=DEMO_ARMS, default='bench6',
                       help=deprecated('the demo arm (default: bench6)', '--arm'))
     demo.add_argument('--output-dir', default='out/demo', metavar='DIR',
