@@ -506,10 +506,10 @@ class SafetyFilter:
                 gain = np.minimum(period / (period + self.observer_time_constant_s),
                                   MAX_OBSERVER_GAIN)
                 self._disturbance += gain * (measured - self._disturbance)
-            # Never beyond what a plant of the declared set can need at this state (so the
-            # certified authority holds), and never beyond the torque box.
-            limit = self._disturbance_limit(q, v, bias)
-            np.clip(self._disturbance, -limit, limit, out=self._disturbance)
+        # Never beyond what a plant of the declared set can need at this state (so the
+        # certified authority holds), and never beyond the torque box.
+        limit = self._disturbance_limit(q, v, bias)
+        np.clip(self._disturbance, -limit, limit, out=self._disturbance)
         self._obs_v[:] = v
         bias -= self._disturbance
 
