@@ -40,6 +40,8 @@ setup(
         'pin>=2.7',
         # Compiles the filter step's inner loops (safety_filter/_kernels.py).
         'numba>=0.57',
+        # Lays out and draws the live monitor's screen (safety_filter/monitor_screen.py).
+        'rich>=13',
     ],
     extras_require={
         # ROS 2 Jazzy client libraries as wheels (published for CPython 3.11 only);

@@ -10,6 +10,7 @@ simulated arm: the filter's joint-state watchdog must trip and the event log mus
 
 from __future__ import annotations
 
+import io
 import json
 import math
 import os
@@ -29,19 +30,17 @@ import yaml
 from safety_filter.alphas import ClassK
 from safety_filter.certificate import Certificate
 from safety_filter.errors import SafetyFilterError
-from safety_filter.monitor_view import (
-    ALARM_PREFIX,
+from safety_filter.monitor_cli import check_monitor_arguments
+from safety_filter.monitor_event_log import EventLogWriter
+from safety_filter.monitor_screen import ALARM_PREFIX, SEPARATOR, render_frame
+from safety_filter.monitor_state import (
     MODE_NAMES,
     DiagnosticSnapshot,
-    EventLogWriter,
     JointLimits,
     MonitorState,
     StatusLayout,
     StatusSnapshot,
-    check_monitor_arguments,
-    cut_line,
     diagnostic_name,
-    render_frame,
     split_node_name,
     status_topic,
 )
@@ -143,7 +142,8 @@ def test_limits_from_a_certificate_file(tmp_path: Path) -> None:
     assert limits.certificate_id == certificate.certificate_id
     # An edited file is refused, as the node refuses it.
     document = yaml.safe_load(path.read_text())
-    document['safety_filter']['ros__parameters']['effort_limit'] = [400.0, 20.0]
+    (key,) = document  # the file's one node key (its spelling is the certificate's business)
+    document[key]['ros__parameters']['effort_limit'] = [400.0, 20.0]
     path.write_text(yaml.safe_dump(document))
     with pytest.raises(SafetyFilterError, match='edited'):
         JointLimits.from_certificate_file(path)
@@ -227,11 +227,158 @@ def test_frame_without_limits_shows_values_without_bars() -> None:
     assert '+0.500' in row and '?%' in row
 
 
-def test_cut_line_keeps_escape_codes_out_of_the_count() -> None:
-    red = '\x1b[1;31m' + 'x' * 10 + '\x1b[0m'
-    assert cut_line(red, 20) == red
-    assert cut_line(red, 4) == '\x1b[1;31mxxxx\x1b[0m'
-    assert cut_line('abcdef', 3) == 'abc'
+ANSI = re.compile(r'\x1b\[[0-9;?]*[A-Za-z]')
+
+
+def _troubled_state() -> MonitorState:
+    """A filter in trouble: watchdog tripped (ERROR), a thin margin, an elbow torque past its
+    limit, and more events than a small screen holds."""
+    state = MonitorState(thin_margin=0.05, limits=LIMITS, expected_certificate_id='abcdef123456')
+    state.add_diagnostic(diagnostic(0.0, counts={'filtered': 490, 'fallback': 10}))
+    state.add_status(status(0.1, step=42, position=(0.4, -1.0), velocity=(1.5, -3.5),
+                            torque=(10.0, -25.0), margin=(0.02, 0.4)))
+    state.add_status(status(0.2, step=43, mode=1, margin=(0.03, 0.4)))
+    state.add_status(status(0.25, step=44, mode=4, joint_state_age_s=0.35, margin=(0.03, 0.4)))
+    state.add_diagnostic(diagnostic(0.3, level=2, mode='stale', message='joint-state watchdog '
+                                    'tripped: last valid joint state 350 ms ago; sending the '
+                                    'hold command'))
+    return state
+
+
+def _record(width: int, height: int, renderable: Any) -> list[str]:
+    """``renderable`` printed on a recording Rich console of that size; its lines."""
+    from rich.console import Console
+
+    console = Console(width=width, height=height, record=True, file=io.StringIO(),
+                      force_terminal=True, color_system='standard')
+    console.print(renderable, height=height)
+    return console.export_text(styles=False).splitlines()
+
+
+def test_frame_at_two_terminal_sizes() -> None:
+    from safety_filter.monitor_screen import MonitorFrame
+
+    state = _troubled_state()
+    frame = MonitorFrame(state, T0 + 0.35, rate_hz=4.0)
+    alarm = ('!! WATCHDOG TRIPPED: joint states 350 ms old; the filter sends its hold '
+             'command')
+    newest = state.recent_events[-1]
+
+    # A roomy terminal: everything, the bars included, each line whole.
+    wide = _record(120, 50, frame)
+    text = '\n'.join(wide)
+    assert all(len(line) <= 120 for line in wide) and len(wide) <= 50
+    assert 'position  % of range' in text
+    rows = {line.split()[0]: line for line in wide if line.split() and line.split()[0] in JOINTS}
+    assert '[<##|   ]' in rows['elbow'] and '-125%' in rows['elbow']
+    assert rows['shoulder'].rstrip().endswith('0.03!')  # thin: marked beside the colour
+    assert alarm in wide
+    assert f'events ({state.event_count}):' in text  # all of them
+    assert 'solve [us]' in text and 'report: 48 / 90 / 120 (500)' in text
+    assert 'units:' in text
+
+    # A small one: 60 x 24. The bars go, the numbers and percentages stay whole; alarms
+    # wrap (nothing of them lost); the figures and the older events give way to the height.
+    small = _record(60, 24, frame)
+    text = '\n'.join(small)
+    assert all(len(line) <= 60 for line in small) and len(small) <= 24
+    assert '% of range' not in text and '[<##|' not in text
+    rows = {line.split()[0]: line for line in small
+            if line.split() and line.split()[0] in JOINTS}
+    assert set(rows) == set(JOINTS)
+    assert rows['elbow'].split()[1:7] == ['-1.000', '30%', '+0.00', '+0%', '-25.00', '-125%']
+    assert alarm not in small  # longer than the width ...
+    assert alarm in ' '.join(line.strip() for line in small)  # ... so wrapped, not cut
+    assert 'solve [us]' not in text
+    shown = re.search(r'events \((\d+), last (\d+) shown\):', text)
+    assert shown is not None and int(shown.group(1)) == state.event_count
+    assert 0 < int(shown.group(2)) < len(state.recent_events)
+    assert newest.kind in small[-1]  # the newest event is the one kept last
+
+    # Narrower still (44 columns): the percentages go too; the values and margins stay.
+    narrow = _record(44, 50, frame)
+    row = next(line for line in narrow if line.startswith('elbow'))
+    assert row.split() == ['elbow', '-1.000', '+0.00', '-25.00', '0.4']
+
+
+def test_frame_styles_alarms_and_modes_on_a_terminal() -> None:
+    from safety_filter.monitor_screen import render_frame
+
+    coloured = render_frame(_troubled_state(), T0 + 0.35, color=True, width=100)
+    assert '\x1b[1;31m!! WATCHDOG TRIPPED' in coloured  # bold red
+    assert re.search(r'\x1b\[1;31mSTALE', coloured)  # the mode, bold red
+    plain = render_frame(_troubled_state(), T0 + 0.35, color=False, width=100)
+    assert '\x1b' not in plain
+    assert ANSI.sub('', coloured).splitlines() == plain.splitlines()
+    with pytest.raises(ValueError, match='width'):
+        render_frame(_troubled_state(), T0, width=0)
+
+
+def test_screen_plain_prints_frames_after_a_separator() -> None:
+    from safety_filter.monitor_screen import MonitorFrame, Screen, plain_output
+
+    class Pipe(io.StringIO):
+        def isatty(self) -> bool:
+            return False
+
+    assert plain_output(Pipe()) and plain_output(Pipe(), True)
+    stream = Pipe()
+    screen = Screen(stream, plain=True)
+    waiting = MonitorState()
+    screen.show(MonitorFrame(waiting, T0))
+    screen.show(MonitorFrame(waiting, T0 + 1.0))  # the same waiting frame: not repeated
+    screen.show(MonitorFrame(waiting, T0 + 6.0))  # ... until 5 s later
+    state = _troubled_state()
+    screen.show(MonitorFrame(state, T0 + 0.35))
+    screen.close()
+    out = stream.getvalue()
+    assert '\x1b' not in out
+    frames = [f for f in out.split(SEPARATOR + '\n') if f]
+    assert len(frames) == 3 and screen.frames == 3
+    assert 'waiting for safety_filter' in frames[0] and 'mode STALE' in frames[2]
+    assert all(len(line) <= len(SEPARATOR) for line in out.splitlines())
+
+
+def test_screen_on_a_terminal_repaints_in_place_and_follows_resizes(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    from safety_filter.monitor_screen import MonitorFrame, Screen
+
+    class Terminal(io.StringIO):
+        def isatty(self) -> bool:
+            return True
+
+    monkeypatch.setenv('TERM', 'xterm-256color')
+    monkeypatch.delenv('NO_COLOR', raising=False)
+    stream = Terminal()
+    screen = Screen(stream, plain=False, color=True)
+    assert screen.console is not None
+    screen.console.size = (110, 40)
+    state = _troubled_state()
+    screen.show(MonitorFrame(state, T0 + 0.35))
+    screen.console.size = (60, 20)  # the window shrinks: the next frame is laid out anew
+    screen.show(MonitorFrame(state, T0 + 0.6))
+    before_close = stream.getvalue()
+    screen.close()
+    out = stream.getvalue()
+
+    # Each frame is painted from the top left, over the whole screen.
+    repaints = [p for p in before_close.split('\x1b[H') if 'safety_filter monitor' in p]
+    assert len(repaints) == 2
+    first = ANSI.sub('', repaints[0]).splitlines()
+    second = ANSI.sub('', repaints[1]).splitlines()
+    assert any('[<##|   ]' in line for line in first)
+    assert len(first) == 40 and all(len(line) == 110 for line in first)  # the full screen
+    assert len(second) == 20 and all(len(line) == 60 for line in second)
+    assert not any('[<##|' in line for line in second)
+    assert '\x1b[1;31m!! WATCHDOG' in before_close  # coloured
+    # Nothing a plain SSH terminal lacks: no mouse, focus or paste reporting asked for.
+    for mode in ('?1000', '?1002', '?1003', '?1006', '?1004', '?2004'):
+        assert f'\x1b[{mode}h' not in out
+    # On exit the terminal is given back (main screen, cursor shown) and the last frame,
+    # laid out for the current size, stays on it.
+    after = out[len(before_close):]
+    assert '\x1b[?1049l' in after and '\x1b[?25h' in after
+    assert 'mode STALE' in ANSI.sub('', after.split('\x1b[?1049l')[-1])
 
 
 # ---------------------------------------------------------------------- events
@@ -452,7 +599,6 @@ def test_monitor_follows_a_live_graph_and_logs_the_watchdog_trip(tmp_path: Path)
     ros_fixtures = pytest.importorskip(
         'ros_fixtures', reason="rclpy is missing: pip install -e '.[ros]'")
     from safety_filter.ros import filter_node
-    from safety_filter.ros.monitor import SEPARATOR
     from safety_filter.ros.runner import config_file, sim_demo_graph
 
     # The monitor's copies of the node's codes agree with the node.

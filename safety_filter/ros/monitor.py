@@ -12,27 +12,28 @@ level ERROR or STALE, a certificate other than ``--certificate``.
 
 The limits come from ``--certificate`` (the certificate parameter file) or, without it, from
 the filter node's parameters (read once through its ``get_parameters`` service when it
-appears). Without either, values are shown without bars.
+appears). Without either, values are shown with ``?`` for bars and percentages.
 
-On a terminal the screen is redrawn in place with ANSI escape codes (no curses: it works in
-any terminal, over SSH, in tmux); when stdout is not a terminal (or with ``--plain``) each
-frame is printed after a separator line, without escape codes. When nothing is heard from
-the filter for ``--absent-after`` (2 s) the screen says so and waits.
+The screen is drawn with Rich (:mod:`safety_filter.monitor_screen`): on a terminal it is
+repainted in place and follows the window's size; it needs no mouse or special terminal
+features, so it works over SSH and in tmux. When stdout is not a terminal (or ``TERM`` is
+dumb, or with ``--plain``) each frame is printed after a separator line, without escape
+codes. When nothing is heard from the filter for ``--absent-after`` (2 s) the screen says so
+and waits.
 
 The monitor is meant to cost the filter nothing: ``~/status`` is subscribed best-effort (no
 acknowledgements or resends asked of the filter's publisher), ``/diagnostics`` with the
 default reliable QoS of diagnostics.
 
-Events (:mod:`safety_filter.monitor_view` lists the kinds and keys) go to ``--event-log`` as
-JSON lines, flushed as they happen. ``--duration`` stops after that many seconds; Ctrl-C
-(SIGINT) and SIGTERM stop cleanly.
+Events (:mod:`safety_filter.monitor_state` lists the kinds and keys) go to ``--event-log``
+as JSON lines, flushed as they happen (:mod:`safety_filter.monitor_event_log`).
+``--duration`` stops after that many seconds; Ctrl-C (SIGINT) and SIGTERM stop cleanly.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
-import shutil
 import signal
 import sys
 import time
@@ -51,23 +52,17 @@ from rclpy.utilities import remove_ros_args
 from std_msgs.msg import Float64MultiArray
 
 from safety_filter.errors import SafetyFilterError
-from safety_filter.monitor_view import (
-    ANSI_CLEAR_BELOW,
-    ANSI_CLEAR_LINE,
-    ANSI_HIDE_CURSOR,
-    ANSI_HOME,
-    ANSI_SHOW_CURSOR,
+from safety_filter.monitor_cli import add_monitor_arguments, check_monitor_arguments
+from safety_filter.monitor_event_log import EventLogWriter
+from safety_filter.monitor_screen import MonitorFrame, Screen, plain_output
+from safety_filter.monitor_state import (
     DiagnosticSnapshot,
-    EventLogWriter,
     JointLimits,
     MonitorEvent,
     MonitorState,
     StatusLayout,
     StatusSnapshot,
-    add_monitor_arguments,
-    check_monitor_arguments,
     diagnostic_name,
-    render_frame,
     split_node_name,
     status_topic,
 )
@@ -78,7 +73,6 @@ EXIT_BAD_INPUT = 2
 LIMIT_PARAMETERS = ('joint_names', 'position_lower', 'position_upper', 'velocity_limit',
                     'effort_limit', 'certificate_id')
 PARAMETER_RETRY_S = 3.0
-SEPARATOR = '-' * 100
 
 
 def status_qos() -> QoSProfile:
@@ -87,46 +81,6 @@ def status_qos() -> QoSProfile:
     return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=100,
                       reliability=ReliabilityPolicy.BEST_EFFORT,
                       durability=DurabilityPolicy.VOLATILE)
-
-
-class Screen:
-    """Writes frames: redrawn in place on a terminal, or one after another (plain)."""
-
-    def __init__(self, stream: IO[str], plain: bool, color: bool) -> None:
-        self.stream = stream
-        self.plain = plain
-        self.color = color and not plain
-        self._started = False
-        self._waiting_since: float | None = None
-        self._last_waiting_print = -1e9
-
-    def width(self) -> int:
-        if self.plain:
-            return 100
-        return max(60, shutil.get_terminal_size((100, 40)).columns)
-
-    def show(self, text: str, waiting: bool, now: float) -> None:
-        if self.plain:
-            # Waiting frames say the same thing: print them once, then every 5 s.
-            if waiting:
-                if now - self._last_waiting_print < 5.0:
-                    return
-                self._last_waiting_print = now
-            else:
-                self._last_waiting_print = -1e9
-            self.stream.write(SEPARATOR + '\n' + text + '\n')
-        else:
-            if not self._started:
-                self.stream.write(ANSI_HIDE_CURSOR + '\x1b[2J')
-                self._started = True
-            body = ''.join(line + ANSI_CLEAR_LINE + '\n' for line in text.splitlines())
-            self.stream.write(ANSI_HOME + body + ANSI_CLEAR_BELOW)
-        self.stream.flush()
-
-    def close(self) -> None:
-        if self._started and not self.plain:
-            self.stream.write(ANSI_SHOW_CURSOR)
-            self.stream.flush()
 
 
 class FilterMonitorNode(Node):
@@ -171,8 +125,10 @@ class FilterMonitorNode(Node):
                           clock=Clock(clock_type=ClockType.STEADY_TIME))
 
     # ---- inputs
-    def _on_status(self, msg: Float64MultiArray) -> None:
-        now = time.time()
+    def _decode_status(self, msg: Float64MultiArray, now: float) -> StatusSnapshot | None:
+        """The one place that knows the ``~/status`` wire format: field names in
+        ``layout.dim[0].label`` (parsed once per distinct label), values in ``data``. None
+        while no usable layout is known."""
         dims = msg.layout.dim
         label = dims[0].label if dims else ''
         if label != self._layout_label:
@@ -183,8 +139,13 @@ class FilterMonitorNode(Node):
                 self.get_logger().warning(f'status without a usable layout: {err}')
                 self._layout = None
         if self._layout is None:
-            return
-        self._record(self.state.add_status(StatusSnapshot(self._layout, msg.data, now)))
+            return None
+        return StatusSnapshot(self._layout, msg.data, now)
+
+    def _on_status(self, msg: Float64MultiArray) -> None:
+        snapshot = self._decode_status(msg, time.time())
+        if snapshot is not None:
+            self._record(self.state.add_status(snapshot))
 
     def _on_diagnostics(self, msg: DiagnosticArray) -> None:
         now = time.time()
@@ -235,10 +196,8 @@ class FilterMonitorNode(Node):
         self._record(self.state.poll(now))
         self._maybe_read_parameters(now)
         if self.screen is not None:
-            text = render_frame(self.state, now, color=self.screen.color,
-                                width=self.screen.width(),
-                                diagnostics_topic=self.diagnostics_topic, rate_hz=self.rate_hz)
-            self.screen.show(text, waiting=not self.state.present, now=now)
+            self.screen.show(MonitorFrame(self.state, now, rate_hz=self.rate_hz,
+                                          diagnostics_topic=self.diagnostics_topic))
         self.frames += 1
 
 
@@ -269,9 +228,9 @@ def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
     state = MonitorState(args.node_name, thin_margin=args.thin_margin, limits=limits,
                          absent_after_s=args.absent_after,
                          expected_certificate_id=limits.certificate_id if limits else None)
-    plain = bool(args.plain) or not stream.isatty()
-    color = not (args.no_color or os.environ.get('NO_COLOR'))
-    screen = Screen(stream, plain=plain, color=color)
+    plain = plain_output(stream, bool(args.plain))
+    # NO_COLOR is honoured by Rich itself.
+    screen = Screen(stream, plain=plain, color=not args.no_color)
     event_log = (EventLogWriter(args.event_log, split_node_name(args.node_name)[0],
                                 args.event_time) if args.event_log else None)
     stop = _StopRequest()
@@ -298,7 +257,7 @@ def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
     finally:
         for signum, handler in previous.items():
             signal.signal(signum, handler)
-        screen.close()
+        screen.close()  # leaves the terminal as it was, the last frame printed on it
         if event_log is not None:
             event_log.close()
         if executor is not None:
@@ -306,9 +265,6 @@ def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
         if node is not None:
             node.destroy_node()
         context.try_shutdown()
-    if not plain:
-        stream.write('\n')
-        stream.flush()
     return EXIT_OK
 
 
