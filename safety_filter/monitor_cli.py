@@ -26,8 +26,8 @@ def add_monitor_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument('--node-name', default=DEFAULT_NODE_NAME, metavar='NAME',
                         help='the filter node to watch, e.g. safety_filter or '
                         '/arm1/safety_filter (default: safety_filter). Its diagnostics are '
-                        "named by the node's base name only, so run filters in different "
-                        'namespaces with different names or diagnostics topics')
+                        "named by its fully qualified name ('/arm1/safety_filter: filter'), "
+                        'so filters in different namespaces are told apart')
     parser.add_argument('--refresh-rate', '--rate', dest='refresh_rate', type=float,
                         default=DEFAULT_RATE_HZ, metavar='HZ', help=deprecated(
                             f'screen refreshes per second (default: {DEFAULT_RATE_HZ:g})',

@@ -92,8 +92,9 @@ def split_node_name(node_name: str) -> tuple[str, str]:
 
 
 def diagnostic_name(node_name: str) -> str:
-    """The name of the filter's diagnostic status: ``'<node base name>: filter'``."""
-    return split_node_name(node_name)[0] + DIAGNOSTIC_NAME_SUFFIX
+    """The name of the filter's diagnostic status: ``'<fully qualified name>: filter'``
+    (``'/arm1/safety_filter: filter'``; :mod:`safety_filter.status_layout`)."""
+    return split_node_name(node_name)[1] + DIAGNOSTIC_NAME_SUFFIX
 
 
 def status_topic(node_name: str) -> str:

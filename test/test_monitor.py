@@ -96,7 +96,7 @@ def kinds(events: list[Any]) -> list[str]:
 def test_names_of_the_filter_topics_and_diagnostics() -> None:
     assert split_node_name('safety_filter') == ('safety_filter', '/safety_filter')
     assert split_node_name('/arm1/safety_filter') == ('safety_filter', '/arm1/safety_filter')
-    assert diagnostic_name('/arm1/safety_filter') == 'safety_filter: filter'
+    assert diagnostic_name('/arm1/safety_filter') == '/arm1/safety_filter: filter'
     assert status_topic('safety_filter') == '/safety_filter/status'
     for bad in ('', '/', 'arm/'):
         with pytest.raises(SafetyFilterError):
@@ -603,7 +603,8 @@ def test_monitor_follows_a_live_graph_and_logs_the_watchdog_trip(tmp_path: Path)
 
     # The monitor's copies of the node's codes agree with the node.
     assert MODE_NAMES == filter_node.MODE_NAMES
-    assert diagnostic_name('safety_filter') == 'safety_filter' + filter_node.DIAGNOSTIC_NAME_SUFFIX
+    assert diagnostic_name('safety_filter') == \
+        '/safety_filter' + filter_node.DIAGNOSTIC_NAME_SUFFIX
     layout = StatusLayout.from_label(','.join(filter_node.status_field_names(JOINTS)))
     assert layout.joint_names == JOINTS
 

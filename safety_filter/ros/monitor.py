@@ -1,14 +1,16 @@
 """Watch a running filter live: a terminal monitor over DDS, and an event log.
 
 ``safety-filter monitor`` (or the ``filter_monitor`` executable) starts a plain node,
-``safety_filter_monitor_<pid>``, that subscribes to the filter node's ``/diagnostics`` status
-``'<node>: filter'`` and its ``~/status`` array (both documented in
-:mod:`safety_filter.ros.filter_node`) and redraws a screen at ``--refresh-rate`` (4 Hz): state
-(diagnostics level) and mode; per joint position, velocity and torque against their limits
-(bars and percentages) and the barrier margin; intervention; solve times; fallback and
-recovery counts; input ages; certificate id; the last events. Alarm lines start with ``!!``
-(red on a terminal): a margin below ``--thin-margin``, the joint-state watchdog tripped,
-level ERROR or STALE, a certificate other than ``--certificate``.
+``safety_filter_monitor_<pid>``, that subscribes to the filter node's ``/diagnostics``
+status ``'<fully qualified node name>: filter'`` (or ``'<base name>: filter'``, the name of
+earlier releases), its ``~/status`` array and that array's field names on
+``~/status_fields`` (all documented in :mod:`safety_filter.ros.filter_node`) and redraws a
+screen at ``--refresh-rate`` (4 Hz): state (diagnostics level) and mode; per joint position,
+velocity and torque against their limits (bars and percentages) and the barrier margin;
+intervention; solve times; fallback and recovery counts; input ages; certificate id; the
+last events. Alarm lines start with ``!!`` (red on a terminal): a margin below
+``--thin-margin``, the joint-state watchdog tripped, level ERROR or STALE, a certificate
+other than ``--certificate``.
 
 The limits come from ``--certificate`` (the certificate parameter file) or, without it, from
 the filter node's parameters (read once through its ``get_parameters`` service when it
@@ -49,7 +51,7 @@ from rclpy.parameter import parameter_value_to_python
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 from rclpy.signals import SignalHandlerOptions
 from rclpy.utilities import remove_ros_args
-from std_msgs.msg import Float64MultiArray
+from std_msgs.msg import Float64MultiArray, String
 
 from safety_filter.errors import SafetyFilterError
 from safety_filter.monitor_cli import add_monitor_arguments, check_monitor_arguments
@@ -67,6 +69,7 @@ from safety_filter.monitor_state import (
     status_topic,
 )
 from safety_filter.ros._common import make_executor
+from safety_filter.status_layout import decode_fields, fields_topic, legacy_diagnostic_name
 
 EXIT_OK = 0
 EXIT_BAD_INPUT = 2
@@ -110,33 +113,55 @@ class FilterMonitorNode(Node):
         self.rate_hz = rate_hz
         self.diagnostics_topic = diagnostics_topic
         self.frames = 0
-        self._diagnostic_name = diagnostic_name(state.node_name)
+        # The node's diagnostic name (its fully qualified name), or the base-name form of
+        # earlier releases.
+        self._diagnostic_names = {diagnostic_name(state.node_name),
+                                  legacy_diagnostic_name(state.node_name)}
         self._layout: StatusLayout | None = None
-        self._layout_label = ''
+        self._layout_key: tuple[str, str | None, int] | None = None
+        self._announced_fields: str | None = None
         self._read_parameters = read_parameters
         self._parameter_future: Any = None
         self._parameter_asked_at = -1e9
         topic = status_topic_name or status_topic(state.node_name)
         self.create_subscription(DiagnosticArray, diagnostics_topic, self._on_diagnostics, 50)
         self.create_subscription(Float64MultiArray, topic, self._on_status, status_qos())
+        self._status_topic = topic
+        # The field names, sent once by the node (transient-local: received on joining).
+        self.create_subscription(String, fields_topic(topic), self._on_status_fields,
+                                 QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
+                                            reliability=ReliabilityPolicy.RELIABLE,
+                                            durability=DurabilityPolicy.TRANSIENT_LOCAL))
         self._parameters_client = self.create_client(
             GetParameters, split_node_name(state.node_name)[1] + '/get_parameters')
         self.create_timer(1.0 / rate_hz, self._on_timer,
                           clock=Clock(clock_type=ClockType.STEADY_TIME))
 
     # ---- inputs
+    def _on_status_fields(self, msg: String) -> None:
+        self._announced_fields = str(msg.data)
+
     def _decode_status(self, msg: Float64MultiArray, now: float) -> StatusSnapshot | None:
-        """The one place that knows the ``~/status`` wire format: field names in
-        ``layout.dim[0].label`` (parsed once per distinct label), values in ``data``. None
-        while no usable layout is known."""
+        """The one place that knows the ``~/status`` wire format: values in ``data``, field
+        names announced once on ``~/status_fields`` (or, from earlier releases, in each
+        message's ``layout.dim[0].label``; or, failing both, derived from the certificate's
+        joints), see :func:`safety_filter.status_layout.decode_fields`. The layout is built
+        once per distinct (label, announced names, length). None while no usable field
+        names are known."""
         dims = msg.layout.dim
         label = dims[0].label if dims else ''
-        if label != self._layout_label:
-            self._layout_label = label
+        key = (label, self._announced_fields, len(msg.data))
+        if key != self._layout_key:
+            self._layout_key = key
+            limits = self.state.limits
             try:
-                self._layout = StatusLayout.from_label(label)
+                fields = decode_fields(label, len(msg.data), self._announced_fields,
+                                       limits.joint_names if limits is not None else None,
+                                       source=self._status_topic)
+                self._layout = StatusLayout.from_label(','.join(fields))
             except SafetyFilterError as err:
-                self.get_logger().warning(f'status without a usable layout: {err}')
+                self.get_logger().warning(f'status without usable field names: {err}',
+                                          throttle_duration_sec=5.0)
                 self._layout = None
         if self._layout is None:
             return None
@@ -151,7 +176,7 @@ class FilterMonitorNode(Node):
         now = time.time()
         stamp = msg.header.stamp.sec + msg.header.stamp.nanosec * 1e-9
         for status in msg.status:
-            if status.name != self._diagnostic_name:
+            if status.name not in self._diagnostic_names:
                 continue
             level = status.level
             level = level[0] if isinstance(level, (bytes, bytearray)) else int(level)
