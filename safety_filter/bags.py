@@ -13,8 +13,11 @@ Topics of a safety-filter graph (:data:`TOPIC_TYPES`):
   filter's ``filtered_torque``, remapped);
 * ``/diagnostics`` (``diagnostic_msgs/msg/DiagnosticArray``): the filter's diagnostics;
 * ``/safety_filter/status`` (``std_msgs/msg/Float64MultiArray``): one record per filter
-  step; ``layout.dim[0].label`` lists the field names (see
-  :mod:`safety_filter.ros.filter_node`).
+  step, values only;
+* ``/safety_filter/status_fields`` (``std_msgs/msg/String``): their field names, sent once
+  by the node (transient-local; :mod:`safety_filter.status_layout`). Bags of earlier
+  releases have no such topic: their status records name the fields in
+  ``layout.dim[0].label``. :func:`read_status` and :func:`status_records` read both.
 
 Writing: :class:`BagWriter` takes either messages built with the Jazzy typestore
 (:func:`joint_state_message`, :func:`float64_array_message`, or any ``typestore().types``
@@ -24,6 +27,10 @@ received (the same bytes rosbag2 stores). Reading: :func:`topic_summary`,
 :func:`read_status` and :func:`read_diagnostics` return numpy arrays in time order; to read
 several topics in one pass, :func:`read_topics` and the matching ``*_series`` /
 ``*_records`` functions.
+
+Latched topics (``latched`` of :class:`BagWriter`; the status field names) are written with
+the transient-local offered QoS they were published with, so that ``ros2 bag play`` offers
+them to late subscribers as the node did.
 
 Times: every message has a log time (receipt on the recorder's clock) [ns];
 ``JointState`` also has its ``header.stamp``.
@@ -40,16 +47,19 @@ from typing import Any
 import numpy as np
 
 from safety_filter.errors import SafetyFilterError
+from safety_filter.status_layout import StatusLayoutError, decode_fields, fields_topic
 
 TOPIC_JOINT_STATES = '/joint_states'
 TOPIC_NOMINAL = '/nominal_torque'
 TOPIC_COMMAND = '/sim_effort_command'
 TOPIC_DIAGNOSTICS = '/diagnostics'
 TOPIC_STATUS = '/safety_filter/status'
+TOPIC_STATUS_FIELDS = fields_topic(TOPIC_STATUS)  # '/safety_filter/status_fields'
 
 JOINT_STATE = 'sensor_msgs/msg/JointState'
 FLOAT64_ARRAY = 'std_msgs/msg/Float64MultiArray'
 DIAGNOSTIC_ARRAY = 'diagnostic_msgs/msg/DiagnosticArray'
+STRING = 'std_msgs/msg/String'
 
 TOPIC_TYPES = {
     TOPIC_JOINT_STATES: JOINT_STATE,
@@ -57,7 +67,10 @@ TOPIC_TYPES = {
     TOPIC_COMMAND: FLOAT64_ARRAY,
     TOPIC_DIAGNOSTICS: DIAGNOSTIC_ARRAY,
     TOPIC_STATUS: FLOAT64_ARRAY,
+    TOPIC_STATUS_FIELDS: STRING,
 }
+# Topics published once with transient-local durability (recorded with that offered QoS).
+LATCHED_TOPICS = (TOPIC_STATUS_FIELDS,)
 STORAGES = ('mcap', 'sqlite3')
 BAG_VERSION = 9  # the rosbag2 metadata version of ROS 2 Jazzy
 
@@ -100,6 +113,30 @@ def joint_state_message(stamp_ns: int, names: Sequence[str], position: Sequence[
         effort=np.asarray(effort, dtype=np.float64).reshape(-1))
 
 
+def latched_qos() -> Any:
+    """The offered QoS of a latched topic as rosbag2 records it: reliable, transient-local,
+    keep-last 1 (a ``rosbags`` ``Qos``)."""
+    from rosbags.rosbag2.metadata import (
+        Qos,
+        QosDurability,
+        QosHistory,
+        QosLiveliness,
+        QosReliability,
+        QosTime,
+    )
+
+    forever = QosTime(sec=0x7FFFFFFF, nsec=0xFFFFFFFF)  # rosbag2's "infinite" duration
+    return Qos(history=QosHistory.KEEP_LAST, depth=1, reliability=QosReliability.RELIABLE,
+               durability=QosDurability.TRANSIENT_LOCAL, deadline=forever, lifespan=forever,
+               liveliness=QosLiveliness.AUTOMATIC, liveliness_lease_duration=forever,
+               avoid_ros_namespace_conventions=False)
+
+
+def string_message(text: str) -> Any:
+    """A ``std_msgs/msg/String`` of the Jazzy typestore."""
+    return typestore().types[STRING](data=str(text))
+
+
 def float64_array_message(values: Sequence[float], label: str = '') -> Any:
     """A ``std_msgs/msg/Float64MultiArray`` with one layout dimension named ``label``."""
     types = typestore().types
@@ -117,11 +154,14 @@ class BagWriter:
     Args:
         path: the bag folder to create (must not exist).
         storage: ``'mcap'`` or ``'sqlite3'``.
+        latched: topics recorded with the transient-local offered QoS of a latched topic
+            (default :data:`LATCHED_TOPICS`).
 
     Use as a context manager, or call :meth:`close` (the bag is unreadable until then).
     """
 
-    def __init__(self, path: str | Path, storage: str = 'mcap') -> None:
+    def __init__(self, path: str | Path, storage: str = 'mcap',
+                 latched: Sequence[str] = LATCHED_TOPICS) -> None:
         from rosbags.rosbag2 import StoragePlugin, Writer
 
         if storage not in STORAGES:
@@ -139,6 +179,7 @@ class BagWriter:
             raise BagError(f'cannot open {self.path} for writing: {err}') from err
         self._connections: dict[str, Any] = {}
         self._types: dict[str, str] = {}
+        self._latched = frozenset(latched)
         self.counts: dict[str, int] = {}
         self._open = True
 
@@ -154,7 +195,9 @@ class BagWriter:
             store = typestore()
             if msgtype not in store.types:
                 raise BagError(f'unknown message type {msgtype!r} (not in the Jazzy typestore)')
-            connection = self._writer.add_connection(topic, msgtype, typestore=store)
+            qos = [latched_qos()] if topic in self._latched else []
+            connection = self._writer.add_connection(topic, msgtype, typestore=store,
+                                                     offered_qos_profiles=qos)
             self._connections[topic] = connection
             self._types[topic] = msgtype
             self.counts[topic] = 0
@@ -376,25 +419,54 @@ def float64_array_series(messages: Iterable[tuple[int, Any]]) -> ArraySeries:
                        label)
 
 
-def read_status(path: str | Path, topic: str = TOPIC_STATUS) -> dict[str, np.ndarray]:
+def read_status(path: str | Path, topic: str = TOPIC_STATUS,
+                joint_names: Sequence[str] | None = None) -> dict[str, np.ndarray]:
     """The filter's status records as ``{field name: (T,) array}`` plus ``'log_time_ns'``.
 
-    Field names come from the messages' layout label (``stamp_s``, ``mode``,
-    ``margin.<joint>``, ...); empty dict when the topic is absent.
+    Field names (``stamp_s``, ``mode``, ``margin.<joint>``, ...) come from the
+    ``<topic>_fields`` message recorded with them, or from each record's layout label (bags
+    of earlier releases), or else from ``joint_names`` (the certificate's) when given;
+    empty dict when the topic is absent.
     """
-    return status_records(read_messages(path, topic), topic)
+    found = read_topics(path, [topic, fields_topic(topic)])
+    return status_records(found.get(topic, []), topic,
+                          fields=last_text(found.get(fields_topic(topic), [])),
+                          joint_names=joint_names)
 
 
-def status_records(messages: Iterable[tuple[int, Any]], topic: str = TOPIC_STATUS
-                   ) -> dict[str, np.ndarray]:
+def last_text(messages: Iterable[tuple[int, Any]]) -> str | None:
+    """The text of the last ``std_msgs/String`` of ``(log_time_ns, String)`` pairs (None
+    when there is none)."""
+    text = None
+    for _, msg in messages:
+        text = str(msg.data)
+    return text
+
+
+def status_records(messages: Iterable[tuple[int, Any]], topic: str = TOPIC_STATUS, *,
+                   fields: str | Sequence[str] | None = None,
+                   joint_names: Sequence[str] | None = None) -> dict[str, np.ndarray]:
     """The status records of ``(log_time_ns, Float64MultiArray)`` pairs (see
-    :func:`read_status`)."""
+    :func:`read_status`).
+
+    Args:
+        messages: the records.
+        topic: their topic (for errors).
+        fields: the field names published on ``<topic>_fields`` (text or names), if any.
+        joint_names: the chain's joints, to derive the names when neither the records nor
+            ``fields`` give them.
+
+    Raises:
+        BagError: no field names, or not one per value.
+    """
     series = float64_array_series(messages)
     if series.data.shape[0] == 0:
         return {}
-    names = series.label.split(',') if series.label else []
-    if len(names) != series.data.shape[1]:
-        raise BagError(f'{topic}: {len(names)} field names for {series.data.shape[1]} values')
+    try:
+        names = decode_fields(series.label, series.data.shape[1], fields, joint_names,
+                              source=topic)
+    except StatusLayoutError as err:
+        raise BagError(str(err)) from err
     status = {name: series.data[:, i] for i, name in enumerate(names)}
     status['log_time_ns'] = series.log_time_ns
     return status

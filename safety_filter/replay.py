@@ -35,6 +35,7 @@ from typing import Any
 import numpy as np
 
 from safety_filter import bags as _bags
+from safety_filter import status_layout as _status_layout
 from safety_filter.certificate import Certificate
 from safety_filter.errors import SafetyFilterError
 from safety_filter.filter import FilterMode, SafetyFilter
@@ -46,11 +47,11 @@ MODE_CODES = {FilterMode.FILTERED.value: 0, FilterMode.FALLBACK.value: 1,
 BAG_SUFFIXES = ('.mcap', '.db3')
 REPLAY_FILTERED_TOPIC = '/replay/filtered_torque'
 REPLAY_STATUS_TOPIC = '/replay/status'
-# The layout of the filter node's ``~/status`` records (safety_filter.ros.filter_node), so
+REPLAY_STATUS_FIELDS_TOPIC = _status_layout.fields_topic(REPLAY_STATUS_TOPIC)
+# The layout of the filter node's ``~/status`` records (safety_filter.status_layout), so
 # that one reader serves both: scalars, then one block per joint field.
-STATUS_SCALAR_FIELDS = ('stamp_s', 'step', 'mode', 'hold_nominal', 'intervention',
-                        'solve_time_s', 'joint_state_age_s', 'nominal_age_s')
-STATUS_JOINT_FIELDS = ('margin', 'torque', 'nominal', 'position', 'velocity')
+STATUS_SCALAR_FIELDS = _status_layout.STATUS_SCALAR_FIELDS
+STATUS_JOINT_FIELDS = _status_layout.STATUS_JOINT_FIELDS
 
 
 class BagError(_bags.BagError):
@@ -634,21 +635,20 @@ def find_bags(path: str | Path, *, exclude: Iterable[str | Path] = ()) -> list[P
 
 
 def status_field_names(joint_names: Sequence[str]) -> list[str]:
-    """Field names of a ``/replay/status`` record, in order (the node's status layout)."""
-    names = list(STATUS_SCALAR_FIELDS)
-    for item in STATUS_JOINT_FIELDS:
-        names.extend(f'{item}.{joint}' for joint in joint_names)
-    return names
+    """Field names of a ``/replay/status`` record, in order (the node's status layout,
+    :func:`safety_filter.status_layout.status_field_names`)."""
+    return _status_layout.status_field_names(joint_names)
 
 
-def _replay_records(result: ReplayResult, filtered_connection: Any, status_connection: Any
-                    ) -> Iterator[tuple[int, int, Any, bytes]]:
-    """``(stamp_ns, 1, connection, cdr)`` of the replay topics, in step order."""
+def _replay_records(result: ReplayResult, filtered_connection: Any, status_connection: Any,
+                    fields_connection: Any = None) -> Iterator[tuple[int, int, Any, bytes]]:
+    """``(stamp_ns, order, connection, cdr)`` of the replay topics, in step order: the field
+    names once (on ``fields_connection``, at the first step), then per step the torque and
+    the status record (values only, as the node sends them)."""
     store = _bags.typestore()
     n = result.torque.shape[1]
     names = list(result.joint_names) or [f'joint{i}' for i in range(n)]
     fields = status_field_names(names)
-    label = ','.join(fields)
     torque_label = ','.join(names)
     stamps = _stamps_ns(result.time, result.stamp_ns)
     nominal_age = (result.nominal_age if result.nominal_age is not None
@@ -659,6 +659,9 @@ def _replay_records(result: ReplayResult, filtered_connection: Any, status_conne
     step = 0
     for k in np.flatnonzero(result.published):
         stamp = int(stamps[k])
+        if step == 0 and fields_connection is not None:
+            text = _bags.string_message(_status_layout.format_fields(fields))
+            yield stamp, 1, fields_connection, store.serialize_cdr(text, _bags.STRING)
         filtered = _bags.float64_array_message(result.torque[k], torque_label)
         yield stamp, 1, filtered_connection, store.serialize_cdr(filtered, _bags.FLOAT64_ARRAY)
         row[:8] = (stamp * 1e-9, step, MODE_CODES.get(str(result.mode[k]), np.nan),
@@ -666,7 +669,7 @@ def _replay_records(result: ReplayResult, filtered_connection: Any, status_conne
                    result.state_age[k], nominal_age[k])
         row[8:] = np.concatenate([result.margin[k], result.torque[k], result.nominal[k],
                                   result.q[k], result.v[k]])
-        status = _bags.float64_array_message(row, label)
+        status = _bags.float64_array_message(row)
         yield stamp, 2, status_connection, store.serialize_cdr(status, _bags.FLOAT64_ARRAY)
         step += 1
 
@@ -683,11 +686,14 @@ def write_replay_bag(trial_path: str | Path, result: ReplayResult, out_path: str
     * ``/replay/filtered_torque`` (``std_msgs/Float64MultiArray``): the replayed torque;
       ``layout.dim[0].label`` is the comma-separated joint names.
     * ``/replay/status`` (``std_msgs/Float64MultiArray``): one record per step, in the
-      layout of the filter node's ``~/status``; ``layout.dim[0].label`` names the fields
-      (:func:`status_field_names`): ``stamp_s,step,mode,hold_nominal,intervention,
-      solve_time_s,joint_state_age_s,nominal_age_s,margin.<joint>...,torque.<joint>...,
-      nominal.<joint>...,position.<joint>...,velocity.<joint>...``; ``mode`` is a code of
+      layout of the filter node's ``~/status`` (values only); ``mode`` is a code of
       :data:`MODE_CODES` (0 filtered, 1 fallback, 2 recovering, 3 rejected, 4 stale).
+    * ``/replay/status_fields`` (``std_msgs/String``, once, at the first step, offered
+      transient-local as the node offers ``~/status_fields``): the comma-separated field
+      names of ``/replay/status`` (:func:`status_field_names`): ``stamp_s,step,mode,
+      hold_nominal,intervention,solve_time_s,joint_state_age_s,nominal_age_s,
+      margin.<joint>...,torque.<joint>...,nominal.<joint>...,position.<joint>...,
+      velocity.<joint>...``. :func:`safety_filter.bags.read_status` reads the pair.
 
     Connections of a previous replay (``/replay/...`` topics of the input) are not copied.
     The input is only read; ``out_path`` must not exist (nor lie inside the input bag).
@@ -728,7 +734,8 @@ def write_replay_bag(trial_path: str | Path, result: ReplayResult, out_path: str
         added: dict[tuple[str, str, str, str], Any] = {}
         dropped = []
         for connection in reader.connections:
-            if connection.topic in (REPLAY_FILTERED_TOPIC, REPLAY_STATUS_TOPIC):
+            if connection.topic in (REPLAY_FILTERED_TOPIC, REPLAY_STATUS_TOPIC,
+                                    REPLAY_STATUS_FIELDS_TOPIC):
                 dropped.append(connection.topic)
                 continue
             ext = connection.ext
@@ -750,9 +757,13 @@ def write_replay_bag(trial_path: str | Path, result: ReplayResult, out_path: str
                                                     _bags.FLOAT64_ARRAY, typestore=store)
         status_connection = writer.add_connection(REPLAY_STATUS_TOPIC, _bags.FLOAT64_ARRAY,
                                                   typestore=store)
+        fields_connection = writer.add_connection(
+            REPLAY_STATUS_FIELDS_TOPIC, _bags.STRING, typestore=store,
+            offered_qos_profiles=[_bags.latched_qos()])
         recorded = ((int(stamp), 0, mapping[c.id], raw)
                     for c, stamp, raw in reader.messages() if c.id in mapping)
-        replayed = _replay_records(result, filtered_connection, status_connection)
+        replayed = _replay_records(result, filtered_connection, status_connection,
+                                   fields_connection)
         for stamp, _, connection, raw in heapq.merge(recorded, replayed,
                                                      key=lambda m: (m[0], m[1])):
             writer.write(connection, stamp, raw)

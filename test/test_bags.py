@@ -145,3 +145,47 @@ def test_type_hashes_are_the_ones_ros_jazzy_generates(tmp_path: Path) -> None:
         checked += 1
     if not checked:
         pytest.skip('no ROS 2 type descriptions installed (pip install -e ".[ros]")')
+
+
+@pytest.mark.parametrize('storage', bags.STORAGES)
+def test_status_with_field_names_sent_once_reads_like_the_old_layout(
+        tmp_path: Path, storage: str) -> None:
+    """The node's layout since the field names moved to ~/status_fields: lean records plus
+    one String of names (offered transient-local); read back to the same columns as the
+    earlier self-describing records. Without the names topic the joint names supply them."""
+    from rosbags.highlevel import AnyReader
+
+    from safety_filter.status_layout import status_field_names
+
+    fields = status_field_names(JOINTS)
+    rows = np.arange(5 * len(fields), dtype=float).reshape(5, len(fields))
+    lean, old, bare = tmp_path / 'lean', tmp_path / 'old', tmp_path / 'bare'
+    with bags.BagWriter(lean, storage) as writer:
+        writer.write(bags.TOPIC_STATUS_FIELDS, 5, bags.string_message(','.join(fields)))
+        for k, row in enumerate(rows):
+            writer.write_float64_array(bags.TOPIC_STATUS, 10 + k, row)
+    with bags.BagWriter(old, storage) as writer:
+        for k, row in enumerate(rows):
+            writer.write_float64_array(bags.TOPIC_STATUS, 10 + k, row, label=','.join(fields))
+    with bags.BagWriter(bare, storage) as writer:
+        for k, row in enumerate(rows):
+            writer.write_float64_array(bags.TOPIC_STATUS, 10 + k, row)
+    new_layout, old_layout = bags.read_status(lean), bags.read_status(old)
+    assert list(new_layout) == fields + ['log_time_ns']
+    for name in [*fields, 'log_time_ns']:
+        np.testing.assert_array_equal(new_layout[name], old_layout[name])
+    np.testing.assert_array_equal(new_layout['velocity.j2'], rows[:, -1])
+    # A recording without the names: an error that says where they are, unless the joint
+    # names are given (and fit the record length).
+    with pytest.raises(bags.BagError, match='status_fields'):
+        bags.read_status(bare)
+    derived = bags.read_status(bare, joint_names=JOINTS)
+    np.testing.assert_array_equal(derived['margin.j0'], rows[:, 8])
+    with pytest.raises(bags.BagError, match='for records of'):
+        bags.read_status(bare, joint_names=JOINTS[:2])
+    # The names topic is offered transient-local, as the node publishes it.
+    with AnyReader([lean]) as reader:
+        (connection,) = [c for c in reader.connections
+                         if c.topic == bags.TOPIC_STATUS_FIELDS]
+        durability = connection.ext.offered_qos_profiles[0].durability
+    assert durability.name == 'TRANSIENT_LOCAL'

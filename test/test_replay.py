@@ -28,10 +28,12 @@ from replay_fixtures import (
 )
 
 from safety_filter import BoundSettings, CertifySettings, Dynamics, certify, load_demo_arm
+from safety_filter.bags import read_status
 from safety_filter.cli import main
 from safety_filter.nominal import PDBeyondLimits
 from safety_filter.replay import (
     REPLAY_FILTERED_TOPIC,
+    REPLAY_STATUS_FIELDS_TOPIC,
     REPLAY_STATUS_TOPIC,
     BagError,
     Trial,
@@ -213,10 +215,16 @@ def test_replay_bag_holds_the_input_and_the_replay_and_the_input_is_untouched(
     assert len(filtered) == len(status) == len(run.stamp_ns)
     np.testing.assert_array_equal([t for _, t, _ in filtered], result.stamp_ns)
     np.testing.assert_array_equal(np.array([m.data for _, _, m in filtered]), run.torque)
-    fields = status[0][2].layout.dim[0].label.split(',')
+    # The field names once, at the first step, on their own topic; the records lean.
+    (announced,) = [m for m in replay if m[0] == REPLAY_STATUS_FIELDS_TOPIC]
+    assert announced[1] == status[0][1]
+    fields = announced[2].data.split(',')
     assert fields == status_field_names(model.joint_names)
     assert fields[:3] == ['stamp_s', 'step', 'mode']
-    assert status[0][2].layout.dim[0].size == len(fields)
+    assert all(not m.layout.dim and len(m.data) == len(fields) for _, _, m in status)
+    read = read_status(out, REPLAY_STATUS_TOPIC)
+    assert set(read) == set(fields) | {'log_time_ns'}
+    np.testing.assert_array_equal(read['torque.elbow'], run.torque[:, 1])
     rows = np.array([m.data for _, _, m in status])
     np.testing.assert_array_equal(rows[:, fields.index('torque.elbow')], run.torque[:, 1])
     np.testing.assert_array_equal(rows[:, fields.index('step')], np.arange(len(rows)))
