@@ -17,8 +17,8 @@ figures (intervention, solve times, step and episode counts, input ages, status 
 active constraints); the last events. The frame fits the space it is given:
 
 * narrower than the table with bars: the bars go, then the percentages; values stay;
-* lower than the frame: the events go first (the newest kept), then the units line, then the
-  figures; title, state, alarms and joints stay.
+* lower than the frame: the events go first (the newest kept), then the figures from the
+  bottom up; title, state, alarms and joints go last.
 
 On a terminal, :class:`Screen` repaints the frame in place at each refresh through Rich's
 live display on the alternate screen (cursor home and full-width lines, so a resized window
@@ -171,49 +171,29 @@ class MonitorFrame:
         self.rate_hz = rate_hz
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
-        # Each section is rendered to lines at the full width first, so that the height it
-        # takes (after wrapping) is known before deciding which optional sections fit.
+        # The body is rendered to lines first, so that the height it takes once wrapped is
+        # known: the events get what is left (the newest kept). Below that, the bottom is
+        # cut: the figures go before the joints, and the title, state and alarms stay.
         height = options.height
         unbounded = options.update(height=None)
-
-        def lines_of(*parts: RenderableType) -> list[list[Segment]]:
-            return console.render_lines(Group(*parts), unbounded, pad=False)
-
         state = self.state
         if state.present:
-            # In display order; each optional section has its rank in dropping (the figures
-            # are kept longer than the units line below the joints).
-            sections: list[tuple[int | None, list[list[Segment]]]] = [
-                (None, lines_of(*self._head())),
-                (None, lines_of(Text(''), self._joints(console, unbounded),
-                                *self._limits_lines())),
-                (2, lines_of(self._units_line())),
-                (1, lines_of(Text(''), self._figures()))]
+            body = [*self._head(), Text(''), self._joints(console, unbounded),
+                    self._limits_line(), self._units_line(), Text(''), self._figures()]
         else:
-            sections = [(None, lines_of(*self._waiting()))]
-        used = sum(len(lines) for rank, lines in sections if rank is None)
-        keep = {rank for rank, _ in sections if rank is None}
-        for rank, lines in sorted((s for s in sections if s[0] is not None),
-                                  key=lambda s: s[0] or 0):
-            if height is None or used + len(lines) <= height:
-                keep.add(rank)
-                used += len(lines)
-        shown_sections = [lines for rank, lines in sections if rank in keep]
+            body = self._waiting()
+        lines = console.render_lines(Group(*body), unbounded, pad=False)
         events = list(state.recent_events)
-        if events:
-            room = len(events) if height is None else height - used - 2
-            if room > 0:
-                shown = events[-room:]
-                title = (f'events ({state.event_count}):' if len(shown) == len(events) else
-                         f'events ({state.event_count}, last {len(shown)} shown):')
-                cut = 'ellipsis' if options.encoding.startswith('utf') else 'crop'
-                shown_sections.append(lines_of(Text(''), Text(title), *(
-                    Text(f'  {_clock(e.t)} {e.kind:<18} {e.detail}', no_wrap=True,
-                         overflow=cut) for e in shown)))
-        lines = [line for section in shown_sections for line in section]
-        if height is not None:
-            lines = lines[:height]
-        for line in lines:
+        room = len(events) if height is None else height - len(lines) - 2
+        if events and room > 0:
+            shown = events[-room:]
+            title = (f'events ({state.event_count}):' if len(shown) == len(events) else
+                     f'events ({state.event_count}, last {len(shown)} shown):')
+            cut = 'ellipsis' if options.encoding.startswith('utf') else 'crop'
+            lines += console.render_lines(Group(Text(''), Text(title), *(
+                Text(f'  {_clock(e.t)} {e.kind:<18} {e.detail}', no_wrap=True, overflow=cut)
+                for e in shown)), unbounded, pad=False)
+        for line in lines[:height]:
             yield from line
             yield Segment.line()
 
@@ -318,11 +298,11 @@ class MonitorFrame:
                 margin_text)
         return table
 
-    def _limits_lines(self) -> list[Text]:
+    def _limits_line(self) -> Text:
         limits = self.state.limits
         if limits is not None:
-            return [Text(f'  limits: {limits.source}')]
-        return [Text('  limits: unknown (no --certificate; node parameters not read yet)')]
+            return Text(f'  limits: {limits.source}')
+        return Text('  limits: unknown (no --certificate; node parameters not read yet)')
 
     def _units_line(self) -> Text:
         return Text('  units: rad, rad/s, N m (prismatic: m, m/s, N); margin: smallest '

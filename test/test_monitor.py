@@ -152,6 +152,24 @@ def test_limits_from_a_certificate_file(tmp_path: Path) -> None:
                                      'position_upper': [1.0], 'effort_limit': [1.0]}, 'x')
 
 
+def test_the_state_is_kept_apart_from_drawing_and_from_ros() -> None:
+    import ast
+
+    package = Path(__file__).resolve().parents[1] / 'safety_filter'
+
+    def imported(name: str) -> set[str]:
+        tree = ast.parse((package / f'{name}.py').read_text(encoding='utf-8'))
+        names = {a.name for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names}
+        names |= {n.module for n in ast.walk(tree) if isinstance(n, ast.ImportFrom) and n.module}
+        return {name.split('.')[0] for name in names}
+
+    ros = {'rclpy', 'std_msgs', 'diagnostic_msgs', 'rcl_interfaces'}
+    for name in ('monitor_state', 'monitor_screen', 'monitor_event_log', 'monitor_cli'):
+        assert not imported(name) & ros, name
+    assert 'rich' not in imported('monitor_state') | imported('monitor_event_log')
+    assert 'rich' in imported('monitor_screen')
+
+
 # ---------------------------------------------------------------------- rendering
 def test_frame_shows_the_live_values_against_the_limits() -> None:
     state = MonitorState(thin_margin=0.05, limits=LIMITS,
@@ -277,11 +295,12 @@ def test_frame_at_two_terminal_sizes() -> None:
     assert 'solve [us]' in text and 'report: 48 / 90 / 120 (500)' in text
     assert 'units:' in text
 
-    # A small one: 60 x 24. The bars go, the numbers and percentages stay whole; alarms
-    # wrap (nothing of them lost); the figures and the older events give way to the height.
-    small = _record(60, 24, frame)
+    # A small one: 60 x 34. The bars go, the numbers and percentages stay whole; alarms
+    # wrap (nothing of them lost), a long figure wraps under its own column; the older
+    # events give way to the height, the newest stays.
+    small = _record(60, 34, frame)
     text = '\n'.join(small)
-    assert all(len(line) <= 60 for line in small) and len(small) <= 24
+    assert all(len(line) <= 60 for line in small) and len(small) <= 34
     assert '% of range' not in text and '[<##|' not in text
     rows = {line.split()[0]: line for line in small
             if line.split() and line.split()[0] in JOINTS}
@@ -289,11 +308,22 @@ def test_frame_at_two_terminal_sizes() -> None:
     assert rows['elbow'].split()[1:7] == ['-1.000', '30%', '+0.00', '+0%', '-25.00', '-125%']
     assert alarm not in small  # longer than the width ...
     assert alarm in ' '.join(line.strip() for line in small)  # ... so wrapped, not cut
-    assert 'solve [us]' not in text
+    solve = next(i for i, line in enumerate(small) if line.startswith('solve [us]'))
+    column = small[solve].index('median')
+    assert small[solve + 1][:column].strip() == ''  # the wrapped rest of the value ...
+    assert small[solve + 1][column:].startswith('report: 48 / 90 / 120 (500)')  # ... aligned
     shown = re.search(r'events \((\d+), last (\d+) shown\):', text)
     assert shown is not None and int(shown.group(1)) == state.event_count
     assert 0 < int(shown.group(2)) < len(state.recent_events)
-    assert newest.kind in small[-1]  # the newest event is the one kept last
+    assert newest.kind in small[-1]  # the newest event is the one kept, last
+
+    # Lower still (60 x 20): no events, the figures cut from the bottom; the alarms and the
+    # joints stay.
+    low = _record(60, 20, frame)
+    text = '\n'.join(low)
+    assert len(low) <= 20 and 'events' not in text and 'constraints' not in text
+    assert alarm in ' '.join(line.strip() for line in low)
+    assert {line.split()[0] for line in low if line.split()} >= set(JOINTS)
 
     # Narrower still (44 columns): the percentages go too; the values and margins stay.
     narrow = _record(44, 50, frame)
@@ -560,14 +590,17 @@ class LineReader:
             return list(self.frames)
 
 
-def _wait(condition: Any, timeout: float, what: str, step: float = 0.2) -> Any:
+def _wait(condition: Any, timeout: float, what: str | Any, step: float = 0.2) -> Any:
+    """``condition()`` once true; ``what`` (text, or a function giving it at the time-out,
+    e.g. the monitor's last lines) names what was awaited."""
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         value = condition()
         if value:
             return value
         time.sleep(step)
-    raise AssertionError(f'timed out after {timeout:g} s waiting for {what}')
+    raise AssertionError(f'timed out after {timeout:g} s waiting for '
+                         f'{what() if callable(what) else what}')
 
 
 def _live(frame: str) -> dict[str, Any] | None:
@@ -649,8 +682,8 @@ def test_monitor_follows_a_live_graph_and_logs_the_watchdog_trip(tmp_path: Path)
                     return live[0][1], live[i][1]
             return None
 
-        first, later = _wait(two_live_frames, 150.0, 'two frames of live values from the '
-                             'monitor:\n' + '\n'.join(reader.lines[-40:]))
+        first, later = _wait(two_live_frames, 150.0, lambda: 'two frames of live values from '
+                             'the monitor:\n' + '\n'.join(reader.lines[-40:]))
         certificate_id = arm.certificate.certificate_id
         for frame in (first, later):
             assert f'certificate {certificate_id} (= --certificate)' in frame
