@@ -50,7 +50,7 @@ from safety_filter.monitor_state import (
     LEVEL_STALE,
     LEVEL_WARN,
     MonitorState,
-    _fmt,
+    format_value,
     split_node_name,
 )
 
@@ -121,17 +121,12 @@ def _signed_bar(value: float, limit: float, half: int = 3) -> tuple[str, float]:
     if not (math.isfinite(value) and math.isfinite(limit) and limit > 0.0):
         return '[' + '?' * (2 * half + 1) + ']', math.nan
     fraction = value / limit
-    filled = min(half, int(math.ceil(abs(fraction) * half - 1e-9)))
-    over = abs(fraction) > 1.0 + 1e-9
+    cells = '#' * min(half, math.ceil(abs(fraction) * half - 1e-9))
+    if abs(fraction) > 1.0 + 1e-9:
+        cells = cells[:-1] + ('>' if fraction > 0 else '<')
     if fraction < 0:
-        left = ' ' * (half - filled) + (('<' if over else '#') + '#' * (filled - 1)
-                                        if filled else '')
-        right = ' ' * half
-    else:
-        left = ' ' * half
-        right = ('#' * (filled - 1) + ('>' if over else '#') if filled else '') \
-            + ' ' * (half - filled)
-    return '[' + left + '|' + right + ']', fraction
+        return '[' + cells[::-1].rjust(half) + '|' + ' ' * half + ']', fraction
+    return '[' + ' ' * half + '|' + cells.ljust(half) + ']', fraction
 
 
 def _quantity(value: float, decimals: int, bar: str, fraction: float, signed: bool,
@@ -284,10 +279,10 @@ class MonitorFrame:
             else:
                 q = v = u = math.nan
                 margin = diagnostic.number(f'margin.{joint}') if diagnostic else math.nan
-            margin_text = Text(_fmt(margin, 3))
+            margin_text = Text(format_value(margin, 3))
             if math.isfinite(margin) and margin < state.thin_margin:
                 # The '!' marks a thin margin where colour does not show (plain output).
-                margin_text = Text(_fmt(margin, 3) + '!', style=ALARM_STYLE)
+                margin_text = Text(format_value(margin, 3) + '!', style=ALARM_STYLE)
             elif joint in state.thin:
                 margin_text.stylize('yellow')
             table.add_row(

@@ -654,8 +654,8 @@ class MonitorState:
             current = math.nan
             if self.status is not None and not self.status_silent(now):
                 current = self.status.joint('margin', joint)
-            lines.append(f'thin margin {joint}: {_fmt(current, 4)} (min {episode.extreme:.4g}) '
-                         f'< {self.thin_margin:g}')
+            lines.append(f'thin margin {joint}: {format_value(current, 4)} '
+                         f'(min {episode.extreme:.4g}) < {self.thin_margin:g}')
         if self.certificate_mismatch and diagnostic is not None:
             lines.append(f'certificate mismatch: the node runs {diagnostic.certificate_id}, '
                          f'expected {self.expected_certificate_id}')
@@ -668,7 +668,8 @@ class MonitorState:
         return lines
 
 
-def _fmt(value: float, digits: int = 3, sign: bool = False) -> str:
+def format_value(value: float, digits: int = 3, sign: bool = False) -> str:
+    """``value`` with ``digits`` significant digits (``'nan'`` when not finite)."""
     if value is None or not math.isfinite(value):
         return 'nan'
     return f'{value:+.{digits}g}' if sign else f'{value:.{digits}g}'

@@ -331,6 +331,20 @@ def test_frame_at_two_terminal_sizes() -> None:
     assert row.split() == ['elbow', '-1.000', '+0.00', '-25.00', '0.4']
 
 
+def test_bars_fill_toward_the_limit_and_mark_what_is_past_it() -> None:
+    from safety_filter.monitor_screen import _range_bar, _signed_bar
+
+    assert _signed_bar(10.0, 20.0) == ('[   |## ]', 0.5)
+    assert _signed_bar(-20.0, 20.0) == ('[###|   ]', -1.0)  # at the limit: full, unmarked
+    assert _signed_bar(25.0, 20.0) == ('[   |##>]', 1.25)
+    assert _signed_bar(-0.1, 20.0)[0] == '[  #|   ]'  # anything non-zero shows
+    assert _signed_bar(1.0, 0.0)[0] == '[???????]'  # no limit known
+    assert _range_bar(0.0, -2.0, 2.0) == ('[---#--]', 0.5)
+    assert _range_bar(-2.5, -2.0, 2.0)[0] == '[<-----]'
+    assert _range_bar(2.5, -2.0, 2.0)[0] == '[----->]'
+    assert _range_bar(0.0, 1.0, 1.0)[0] == '[??????]'  # an empty range
+
+
 def test_frame_styles_alarms_and_modes_on_a_terminal() -> None:
     from safety_filter.monitor_screen import render_frame
 
