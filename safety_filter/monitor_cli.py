@@ -48,8 +48,9 @@ def add_monitor_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument('--duration', type=float, default=0.0, metavar='S',
                         help='stop after this many seconds (default: until Ctrl-C)')
     parser.add_argument('--plain', action='store_true',
-                        help='print frames one after another, without escape codes (the '
-                        'default when stdout is not a terminal)')
+                        help='print frames one after another, 100 columns wide, without '
+                        'escape codes (the default when stdout is not a terminal or TERM is '
+                        'dumb)')
     parser.add_argument('--no-color', action='store_true',
                         help='no colours (also when NO_COLOR is set)')
     parser.add_argument('--absent-after', type=float, default=DEFAULT_ABSENT_AFTER_S,
@@ -94,7 +95,8 @@ def add_monitor_parser(commands: argparse._SubParsersAction) -> None:
         'over DDS and show, a few times a second, its state and mode, each joint against its '
         'limits with the barrier margin, interventions, solve times, fallback and recovery '
         'counts, input ages and certificate id, with alarms (!!) for thin margins, the '
-        'watchdog and stale states. Plain frames when stdout is not a terminal. Ctrl-C quits. '
+        'watchdog and stale states. On a terminal the screen is repainted in place and fits '
+        "the window's size; plain frames when stdout is not a terminal. Ctrl-C quits. "
         'Exit code 0: stopped (Ctrl-C, SIGTERM or --duration); 2: bad input (options, '
         'certificate file).')
     add_monitor_arguments(parser)
