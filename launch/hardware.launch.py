@@ -4,13 +4,27 @@
         urdf_path:=arm.urdf limits_path:=arm_limits.yaml \
         command_topic:=/effort_controller/commands payload_mass:=0.5
 
+    ros2 launch safety_filter hardware.launch.py namespace:=/left \
+        certificate:=left_certificate.yaml robot_description_topic:=robot_description \
+        limits_path:=left_limits.yaml command_topic:=effort_controller/commands
+
 The filter reads ``joint_states_topic`` and ``nominal_topic`` and publishes the safe torque
 on ``command_topic`` (its ``filtered_torque``, remapped). Operational parameters come from
 ``config/filter.yaml`` (one filter step per joint state, timeouts, diagnostics).
 
 Arguments:
-    certificate: the certificate parameter file (``safety-filter certify``); required.
-    urdf_path, limits_path: the robot the certificate was computed for (hash-checked).
+    certificate: the certificate parameter file (``safety-filter certify``); required. Its
+        key (``/**``) applies it to the filter in any namespace.
+    urdf_path, limits_path: the robot the certificate was computed for (hash-checked);
+        ``urdf_path`` a URDF, or a ``.xacro`` file when the ``xacro`` package is installed.
+    robot_description_topic: instead of ``urdf_path``: read the URDF from this topic
+        (``std_msgs/String``, transient-local, as ``robot_state_publisher`` publishes
+        ``robot_description``; a relative name resolves in the namespace). Give one of the
+        two.
+    namespace: the filter's namespace (default: the root), e.g. ``/left`` for one of two
+        arms: its relative topics (joint states, nominal, commands unless given absolute),
+        ``~/status`` and lifecycle services resolve in it, and its diagnostics are named
+        ``'/left/safety_filter: filter'``.
     command_topic: the driver's effort-command topic (default ``effort_command``).
     joint_states_topic: the driver's joint states (default ``joint_states``).
     nominal_topic: the command source's torques (default ``nominal_torque``).
@@ -24,8 +38,8 @@ Arguments:
     activate_at_start: ``true`` activates the filter at start, so that it commands the driver
         as soon as joint states arrive. Default ``false``: the filter is configured at start
         (errors in the certificate or the robot show at once) and stays INACTIVE, publishing
-        no torque, until ``ros2 lifecycle set /safety_filter activate`` (or a lifecycle
-        manager) activates it.
+        no torque, until ``ros2 lifecycle set /<namespace>/safety_filter activate`` (or a
+        lifecycle manager) activates it.
 
 ``safety-filter run-graph --graph hardware`` starts the same node without ``ros2 launch``.
 """
@@ -44,7 +58,15 @@ def generate_launch_description() -> LaunchDescription:
     arguments = [
         DeclareLaunchArgument('certificate',
                               description='certificate parameter file (safety-filter certify)'),
-        DeclareLaunchArgument('urdf_path', description='the robot URDF'),
+        DeclareLaunchArgument('urdf_path', default_value='',
+                              description='the robot URDF or .xacro file (or give '
+                              'robot_description_topic)'),
+        DeclareLaunchArgument('robot_description_topic', default_value='',
+                              description='read the URDF from this std_msgs/String topic '
+                              '(transient-local, as robot_state_publisher publishes it) '
+                              'instead of urdf_path'),
+        DeclareLaunchArgument('namespace', default_value='',
+                              description="the filter's ROS namespace (default: the root)"),
         DeclareLaunchArgument('limits_path', default_value='',
                               description='the limits file of the robot'),
         DeclareLaunchArgument('command_topic', default_value='effort_command',
@@ -63,11 +85,12 @@ def generate_launch_description() -> LaunchDescription:
         DeclareLaunchArgument('activate_at_start', default_value='false',
                               description='true: activate the filter at start; false '
                               '(default): configured and inactive until `ros2 lifecycle set '
-                              '/safety_filter activate`'),
+                              '/<namespace>/safety_filter activate`'),
     ]
     parameters = [
         LaunchConfiguration('certificate'), config,
         {'urdf_path': LaunchConfiguration('urdf_path'),
+         'robot_description_topic': LaunchConfiguration('robot_description_topic'),
          'limits_path': LaunchConfiguration('limits_path'),
          'gravity_convention': LaunchConfiguration('gravity_convention'),
          'payload_mass': ParameterValue(LaunchConfiguration('payload_mass'), value_type=float),
@@ -81,10 +104,12 @@ def generate_launch_description() -> LaunchDescription:
     ]
     activated = Node(
         package='safety_filter', executable='filter_node', name='safety_filter',
+        namespace=LaunchConfiguration('namespace'),
         output='screen', arguments=['--autostart'], parameters=parameters,
         remappings=remappings, condition=IfCondition(LaunchConfiguration('activate_at_start')))
     inactive = Node(
         package='safety_filter', executable='filter_node', name='safety_filter',
+        namespace=LaunchConfiguration('namespace'),
         output='screen', arguments=['--configure-at-start'], parameters=parameters,
         remappings=remappings,
         condition=UnlessCondition(LaunchConfiguration('activate_at_start')))

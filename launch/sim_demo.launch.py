@@ -23,6 +23,8 @@ Arguments:
     urdf_path, limits_path: the robot (default: the bench6 demo arm shipped in the package).
     seed: the operator's seed (default 0).
     domain_id: the graph's ROS domain (default: a random one in 150..199).
+    namespace: the namespace of every node of the graph (default: the root); their topics
+        resolve in it (``/clock`` and ``/diagnostics`` stay global).
 
 ``safety-filter run-graph`` starts the same graph without ``ros2 launch``.
 """
@@ -54,6 +56,8 @@ def generate_launch_description() -> LaunchDescription:
         DeclareLaunchArgument('domain_id', default_value=str(random.SystemRandom().randint(
             150, 199)), description='ROS domain of the graph (default: a random one in '
             '150..199, discovery on this machine only)'),
+        DeclareLaunchArgument('namespace', default_value='',
+                              description="the graph's ROS namespace (default: the root)"),
     ]
     # Set before the nodes start (the middleware reads both when a process starts).
     isolation = [
@@ -64,17 +68,18 @@ def generate_launch_description() -> LaunchDescription:
     ]
     robot = {'urdf_path': LaunchConfiguration('urdf_path'),
              'limits_path': LaunchConfiguration('limits_path')}
+    namespace = LaunchConfiguration('namespace')
     sim_arm = Node(
-        package='safety_filter', executable='sim_arm', name='sim_arm', output='screen',
-        parameters=[config, robot])
+        package='safety_filter', executable='sim_arm', name='sim_arm', namespace=namespace,
+        output='screen', parameters=[config, robot])
     operator = Node(
         package='safety_filter', executable='careless_operator', name='careless_operator',
-        output='screen',
+        namespace=namespace, output='screen',
         parameters=[config, robot,
                     {'seed': ParameterValue(LaunchConfiguration('seed'), value_type=int)}])
     safety_filter = Node(
         package='safety_filter', executable='filter_node', name='safety_filter',
-        output='screen', arguments=['--autostart'],
+        namespace=namespace, output='screen', arguments=['--autostart'],
         parameters=[LaunchConfiguration('certificate'), config, robot],
         remappings=[('filtered_torque', 'sim_effort_command')])
     return LaunchDescription(arguments + isolation + [sim_arm, operator, safety_filter])

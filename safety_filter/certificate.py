@@ -1,11 +1,19 @@
 """The certificate: certified gains and everything needed to trust them, as a parameter file.
 
 A :class:`Certificate` is what :func:`safety_filter.certify` produces and what the filter
-loads. On disk it is a ROS 2 parameter file (the YAML that ``--params-file`` takes), keyed by
-the filter node's name, so the node reads its safety parameters straight from it.
+loads. On disk it is a ROS 2 parameter file (the YAML that ``--params-file`` takes), keyed
+``/**`` (:data:`PARAMETER_FILE_KEY`): ROS applies that key to the node it is given to,
+whatever the node's name and namespace, so the same file serves ``/safety_filter``,
+``/arm1/safety_filter`` or a renamed node without editing. Give it only to the filter node
+(``parameters=[certificate]`` of its ``Node`` in a launch file, ``--params-file`` of its
+process): every parameter it holds is a read-only safety parameter of that node. The key is
+not part of the content: the certificate id and the model hash are checked whatever it is,
+and files keyed by the node name (earlier releases) still load.
 
 The certificate is tied to one robot model by :meth:`RobotModel.content_hash`; loading it
-for a model with another hash raises :class:`CertificateMismatch`.
+for a model with another hash raises :class:`CertificateMismatch`, which names the likely
+cause from the model details the certificate records (joints, limits, friction, payload,
+declared uncertainty).
 """
 
 from __future__ import annotations
@@ -27,6 +35,9 @@ from safety_filter.model import RobotModel
 from safety_filter.uncertainty import UncertaintySet
 
 FILTER_NODE_NAME = 'safety_filter'
+# The parameter-file key of a certificate: every node in every namespace, i.e. the node the
+# file is given to (see the module docstring).
+PARAMETER_FILE_KEY = '/**'
 CERTIFICATE_FORMAT = 'safety_filter/certificate-1'
 CONDITIONS = ('acceleration_authority', 'torque_coupling')
 DEFAULT_OBSERVER_PERIODS = 20.0  # the observer's slowest time constant [control periods]
@@ -37,14 +48,21 @@ class CertificateError(SafetyFilterError):
 
 
 class CertificateMismatch(CertificateError):
-    """A certificate used with a robot model it was not computed for."""
+    """A certificate used with a robot model it was not computed for.
 
-    def __init__(self, expected: str, found: str, detail: str = '') -> None:
+    Attributes:
+        expected, found: the certificate's model hash and the model's.
+        cause: what differs and what to do about it (see :meth:`Certificate.mismatch_cause`).
+    """
+
+    def __init__(self, expected: str, found: str, cause: str = '') -> None:
         self.expected = expected
         self.found = found
+        self.cause = cause or ('the model differs from the one certified; certify this model '
+                               'again')
         super().__init__(
             f'the certificate was computed for model hash {expected[:16]}..., but the model in '
-            f'use has hash {found[:16]}...{detail}; certify this model again')
+            f'use has hash {found[:16]}...: {self.cause}')
 
 
 _VECTOR_FIELDS = (
@@ -184,14 +202,76 @@ class Certificate:
         return hashlib.sha256(text.encode()).hexdigest()[:12]
 
     def check_model(self, model: RobotModel) -> None:
-        """Raise :class:`CertificateMismatch` unless the certificate belongs to ``model``."""
+        """Raise :class:`CertificateMismatch` unless the certificate belongs to ``model``.
+
+        The error names the likely cause (:meth:`mismatch_cause`).
+        """
         found = model.content_hash()
         if found != self.model_hash:
-            detail = ''
-            if list(model.joint_names) != list(self.joint_names):
-                detail = (f' (joints {list(model.joint_names)} vs certificate '
-                          f'{list(self.joint_names)})')
-            raise CertificateMismatch(self.model_hash, found, detail)
+            raise CertificateMismatch(self.model_hash, found, self.mismatch_cause(model))
+
+    def mismatch_cause(self, model: RobotModel) -> str:
+        """What differs between ``model`` and the model this certificate was made for, and
+        the likely remedy, judged from the details the certificate records.
+
+        The checks go from the most to the least likely slip: another chain (the limits
+        file selects it, so a missing or different limits file shows here first), then the
+        limits, friction, payload and declared uncertainty (all from the limits file), and
+        only when every recorded detail agrees, the URDF's kinematics or inertials (or
+        gravity), which the certificate records only through its hash.
+        """
+        no_limits = getattr(model, 'limits_source', '') is None
+        limits_hint = ('the model was loaded WITHOUT a limits file (give the one the '
+                       'certificate was made with: --limits / limits_path)' if no_limits
+                       else 'give the limits file the certificate was made with')
+        names, recorded = list(model.joint_names), list(self.joint_names)
+        if names != recorded:
+            if set(names) == set(recorded):
+                what = f'the same joints in another order ({names} vs {recorded})'
+            else:
+                extra = [j for j in names if j not in recorded]
+                missing = [j for j in recorded if j not in names]
+                what = (f'another chain: the model has joints {names}, the certificate '
+                        f'{recorded}' + (f'; not certified: {extra}' if extra else '')
+                        + (f'; missing: {missing}' if missing else ''))
+            return (f'{what}. The chain comes from the limits file (chain: base_link, '
+                    f'tip_link or joints); {limits_hint}, or certify this chain')
+        differences = []
+        for label, ours, theirs in (
+                ('position limits', np.stack([model.position_lower, model.position_upper], 1),
+                 np.stack([self.position_lower, self.position_upper], 1)),
+                ('velocity limits', model.velocity_limit, self.velocity_limit),
+                ('effort limits', model.effort_limit, self.effort_limit),
+                ('viscous friction', model.viscous_friction, self.viscous_friction),
+                ('Coulomb friction', model.coulomb_friction, self.coulomb_friction)):
+            ours, theirs = np.asarray(ours, dtype=float), np.asarray(theirs, dtype=float)
+            changed = [i for i in range(len(names))
+                       if not np.allclose(ours[i], theirs[i], rtol=1e-9, atol=1e-12)]
+            if changed:
+                i = changed[0]
+                differences.append(
+                    f'{label} of {len(changed)} joint(s), e.g. {names[i]}: '
+                    f'{_show(ours[i])} in the model, {_show(theirs[i])} certified')
+        payload = (model.payload.mass_min, model.payload.mass_max)
+        if not np.allclose(payload, self.payload_mass_range, rtol=1e-9, atol=1e-12) or \
+                not np.allclose(model.payload.point, self.payload_point, rtol=1e-9,
+                                atol=1e-12):
+            differences.append(
+                f'payload: {list(payload)} kg at {list(model.payload.point)} m in the model, '
+                f'{list(self.payload_mass_range)} kg at {list(self.payload_point)} m '
+                'certified')
+        recorded_uncertainty = self.settings.get('uncertainty')
+        if recorded_uncertainty is not None and \
+                _rounded_record(model.uncertainty.record()) != \
+                _rounded_record(recorded_uncertainty):
+            differences.append('the declared uncertainty (the uncertainty section)')
+        if differences:
+            hint = limits_hint[0].upper() + limits_hint[1:]
+            return (f'the limits file differs: {"; ".join(differences)}. {hint}, or certify '
+                    'again for these limits')
+        return ('the URDF differs (kinematics, masses, inertias or gravity): the joints, '
+                'limits, friction, payload and uncertainty agree with the certificate. Use '
+                'the URDF the certificate was made with, or certify this one again')
 
     # ------------------------------------------------------------------ files
     def _plain(self) -> dict[str, Any]:
@@ -263,14 +343,17 @@ class Certificate:
                 f'({certificate.certificate_id}): the file was edited after certification')
         return certificate
 
-    def save(self, path: str | Path, node_name: str = FILTER_NODE_NAME) -> Path:
-        """Write the parameter file (``--params-file`` YAML keyed by ``node_name``)."""
+    def save(self, path: str | Path, node_name: str = PARAMETER_FILE_KEY) -> Path:
+        """Write the parameter file (``--params-file`` YAML keyed by ``node_name``; default
+        ``/**``: the node it is given to, in any namespace, under any name)."""
         path = Path(path)
         path.parent.mkdir(parents=True, exist_ok=True)
         header = (
             '# safety_filter certificate: ROS 2 parameter file for the filter node.\n'
             '# Generated by `safety-filter certify`; do not edit by hand (the certificate id\n'
-            '# covers the content and the node refuses an edited file).\n')
+            '# covers the content and the node refuses an edited file). The key below is\n'
+            '# not covered: "/**" applies it to the node it is given to, in any namespace;\n'
+            '# give it to the filter node only.\n')
         document = {node_name: {'ros__parameters': self.to_parameters()}}
         path.write_text(header + yaml.safe_dump(document, sort_keys=False, width=100),
                         encoding='utf-8')
@@ -298,3 +381,20 @@ class Certificate:
         plain['certificate_id'] = self.certificate_id
         return plain
 
+
+def _show(values: np.ndarray) -> str:
+    return '[' + ', '.join(f'{float(x):.6g}' for x in np.ravel(values)) + ']'
+
+
+def _rounded_record(record: Any) -> Any:
+    """A record with numbers rounded to 12 significant digits (as the model hash rounds)."""
+    if isinstance(record, dict):
+        return {str(k): _rounded_record(v) for k, v in record.items()}
+    if isinstance(record, (list, tuple)):
+        return [_rounded_record(v) for v in record]
+    if isinstance(record, bool) or record is None or isinstance(record, str):
+        return record
+    try:
+        return format(float(record), '.12g')
+    except (TypeError, ValueError):
+        return repr(record)

@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from safety_filter._version import __version__
-from safety_filter.cli_options import GRAVITY_CONVENTIONS
+from safety_filter.cli_options import GRAVITY_CONVENTIONS, namespace_argument
 from safety_filter.demo_arms import DEMO_ARMS, load_demo_arm
 from safety_filter.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
@@ -102,7 +102,7 @@ def _certify_settings(args: argparse.Namespace) -> CertifySettings:
     if args.beta_margin is not None:
         extra['beta_margin'] = args.beta_margin
     return CertifySettings(
-        alpha1=ClassK(args.alpha1, args.alpha1_scale),
+        alpha1=None if args.alpha1 == 'auto' else ClassK(args.alpha1, args.alpha1_scale),
         alpha2=ClassK(args.alpha2, args.alpha2_scale),
         control_rate_hz=args.control_rate,
         sampling_factor=args.sampling_factor,
@@ -254,10 +254,12 @@ def _add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         'period). Give 2 when the filter may step at half the control rate: '
                         'a larger margin, so less usable torque. The filter node warns when '
                         'its measured step period exceeds this hold')
-    method.add_argument('--alpha1', choices=ALPHA1_KINDS, default='linear',
-                        help='class-K family of the velocity barrier (default: linear)')
+    method.add_argument('--alpha1', choices=('auto',) + ALPHA1_KINDS, default='auto',
+                        help='class-K family of the velocity barrier (default: auto, the '
+                        'design with the largest safe set that certifies; see '
+                        'docs/method.md)')
     method.add_argument('--alpha1-scale', type=float, default=1.0,
-                        help='bend of atan/tanh alpha1 [rad or m] (default: 1)')
+                        help='bend of atan/tanh alpha1, eps of sqrt [rad or m] (default: 1)')
     method.add_argument('--alpha2', choices=ALPHA2_KINDS, default='linear',
                         help='class-K family of the rate condition (default: linear)')
     method.add_argument('--alpha2-scale', type=float, default=1.0,
@@ -289,10 +291,13 @@ def _command_node(args: argparse.Namespace) -> int:
     # No fallback to a demo arm: the robot, its limits and its certificate are required
     # (--demo <arm> names a demo arm explicitly).
     given = [flag for flag, value in (('--demo', args.demo), ('--urdf', args.urdf),
-                                      ('--robot-description', args.robot_description))
+                                      ('--robot-description', args.robot_description),
+                                      ('--robot-description-topic',
+                                       args.robot_description_topic))
              if value is not None]
     if len(given) > 1:
-        raise SafetyFilterError(f'give one of --urdf, --robot-description or --demo, not '
+        raise SafetyFilterError(f'give one of --urdf, --robot-description, '
+                                f'--robot-description-topic or --demo, not '
                                 f'{" and ".join(given)}')
     description = None
     if args.demo is not None:
@@ -301,7 +306,8 @@ def _command_node(args: argparse.Namespace) -> int:
         urdf, limits = demo_arm_files(args.demo)
     elif not given or not args.limits:
         missing = [text for text, absent in (
-            ('--urdf ARM.urdf (or --robot-description URDF_XML)', not given),
+            ('--urdf ARM.urdf (or --robot-description URDF_XML, or '
+             '--robot-description-topic TOPIC)', not given),
             ('--limits ARM_LIMITS.yaml', not args.limits)) if absent]
         raise SafetyFilterError(
             f'the robot is required: give {" and ".join(missing)} (the robot the certificate '
@@ -328,12 +334,16 @@ def _command_node(args: argparse.Namespace) -> int:
             import yaml
 
             path = Path(folder) / 'robot_description.yaml'
-            path.write_text(yaml.safe_dump({'/**/safety_filter': {'ros__parameters': {
+            path.write_text(yaml.safe_dump({'/**': {'ros__parameters': {
                 'robot_description': description}}}), encoding='utf-8')
             ros_args += ['--params-file', str(path)]
+        elif args.robot_description_topic is not None:
+            ros_args += ['-p', f'robot_description_topic:={args.robot_description_topic}']
         else:
             ros_args += ['-p', f'urdf_path:={Path(urdf).resolve()}']
         ros_args += ['-p', f'limits_path:={Path(limits).resolve()}']
+        if args.namespace:
+            ros_args += ['-r', f'__ns:={args.namespace}']
         return _run_node(filter_node, args, ros_args)
 
 
@@ -359,7 +369,8 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
         'certificate parameter file, the URDF and the limits file, and the operational '
         'parameters of config/filter.yaml (one filter step per joint state). It configures '
         'itself at start-up and stays inactive (publishing no torque) until activated with '
-        '`ros2 lifecycle set /safety_filter activate`, or at once with --activate-at-start; '
+        '`ros2 lifecycle set /safety_filter activate` (/<namespace>/safety_filter with '
+        '--namespace), or at once with --activate-at-start; '
         'SIGINT or SIGTERM end it cleanly. Topics: '
         'joint_states, nominal_torque in, filtered_torque, ~/status, /diagnostics out (remap '
         'with --ros-args -r filtered_torque:=/driver/commands). Exit code 0 on a clean stop, 1 '
@@ -367,14 +378,24 @@ def _add_node_parser(commands: argparse._SubParsersAction) -> None:
     node.add_argument('--certificate', required=True, metavar='PATH',
                       help='certificate parameter file written by `safety-filter certify`')
     robot = node.add_argument_group('robot')
-    robot.add_argument('--urdf', help='path of the robot URDF (required, or '
-                       '--robot-description or --demo)')
+    robot.add_argument('--urdf', help='path of the robot URDF, or a .xacro file when the '
+                       'xacro package is installed (required, or --robot-description, '
+                       '--robot-description-topic or --demo)')
     robot.add_argument('--robot-description', metavar='URDF_XML',
                        help='the URDF as XML text, instead of --urdf')
+    robot.add_argument('--robot-description-topic', metavar='TOPIC', default=None,
+                       help='read the URDF at configure from this std_msgs/String topic '
+                       '(transient-local, as robot_state_publisher publishes '
+                       'robot_description; relative names resolve in --namespace), instead '
+                       'of --urdf; configure waits up to 10 s for it')
     robot.add_argument('--limits', help='limits file (YAML; also selects the chain); required '
-                       'with --urdf or --robot-description')
+                       'with --urdf, --robot-description or --robot-description-topic')
     robot.add_argument('--demo', choices=DEMO_ARMS, default=None,
                        help='a built-in demo arm instead (its URDF and limits)')
+    node.add_argument('--namespace', type=namespace_argument, default='', metavar='NS',
+                      help="the node's ROS namespace, e.g. /arm1 (default: the root): its "
+                      'topics, ~/status and lifecycle services resolve in it (the same as '
+                      '--ros-args -r __ns:=/arm1)')
     node.add_argument('--gravity-convention', choices=GRAVITY_CONVENTIONS,
                       default=None, help="what the driver takes (default: 'full' torque)")
     node.add_argument('--payload-mass', type=float, default=None, metavar='KG',

@@ -9,6 +9,7 @@ import argparse
 import random
 import time
 from pathlib import Path
+from typing import Any
 
 from safety_filter.cli_options import (
     EXECUTORS,
@@ -17,12 +18,18 @@ from safety_filter.cli_options import (
     STORAGES,
     deprecated,
     executor_name,
+    namespace_argument,
 )
 from safety_filter.demo_arms import DEMO_ARMS, demo_arm_files
 from safety_filter.errors import SafetyFilterError
 
 EXIT_INTERRUPTED = 130
 GRAPHS = ('sim', 'hardware')
+# run-graph's exit codes (its description lists them).
+EXIT_GRAPH_OK = 0
+EXIT_NODE_FAILED = 1
+EXIT_BAD_INPUT = 2
+EXIT_LIMIT_BROKEN = 4
 
 
 def _require_rclpy() -> None:
@@ -126,13 +133,22 @@ def add_demo_parser(commands: argparse._SubParsersAction) -> None:
 
 
 # ---------------------------------------------------------------------- run-graph
-def _robot_files(args: argparse.Namespace) -> tuple[Path, Path | str, str]:
+def _robot_files(args: argparse.Namespace) -> tuple[Path | str, Path | str, str]:
+    given = [flag for flag, value in (('--demo', args.demo), ('--urdf', args.urdf),
+                                      ('--robot-description-topic',
+                                       args.robot_description_topic)) if value is not None]
+    if len(given) > 1:
+        raise SafetyFilterError(f'give one of {", ".join(given)}, not several')
+    if args.robot_description_topic is not None:
+        if args.graph == 'sim':
+            raise SafetyFilterError('--robot-description-topic is for the hardware graph: the '
+                                    "sim graph's simulated arm loads the robot from --urdf "
+                                    '(or --demo)')
+        return '', (Path(args.limits) if args.limits else ''), 'robot_description'
     if args.urdf is not None:
-        if args.demo is not None:
-            raise SafetyFilterError('give either --demo or --urdf, not both')
         return Path(args.urdf), (Path(args.limits) if args.limits else ''), Path(args.urdf).stem
     if args.limits:
-        raise SafetyFilterError('--limits needs --urdf')
+        raise SafetyFilterError('--limits needs --urdf or --robot-description-topic')
     arm = args.demo or 'bench6'
     urdf, limits = demo_arm_files(arm)
     return urdf, limits, arm
@@ -143,8 +159,8 @@ def _require_hardware_robot(args: argparse.Namespace) -> None:
     --urdf and --limits (or --demo <arm>, explicitly) and --certificate."""
     missing = []
     if args.demo is None:
-        if args.urdf is None:
-            missing.append('--urdf ARM.urdf')
+        if args.urdf is None and args.robot_description_topic is None:
+            missing.append('--urdf ARM.urdf (or --robot-description-topic TOPIC)')
         if not args.limits:
             missing.append('--limits ARM_LIMITS.yaml')
     if not args.certificate:
@@ -154,8 +170,10 @@ def _require_hardware_robot(args: argparse.Namespace) -> None:
             f'--graph hardware needs {", ".join(missing)}: the robot the filter guards and '
             'its certificate (there is no default robot for a real arm; --demo <arm> names '
             'a demo arm explicitly)')
-    if args.urdf is not None and args.limits and not Path(args.limits).is_file():
+    if args.limits and not Path(args.limits).is_file():
         raise SafetyFilterError(f'limits file not found: {args.limits}')
+    if args.urdf is not None and not Path(args.urdf).is_file():
+        raise SafetyFilterError(f'URDF file not found: {args.urdf}')
 
 
 def graph_domain(graph: str, domain_id: int | None) -> tuple[int | None, bool]:
@@ -181,6 +199,7 @@ def _command_run_graph(args: argparse.Namespace) -> int:
 
     if args.graph == 'hardware':
         _require_hardware_robot(args)
+    namespace = args.namespace
     urdf, limits, name = _robot_files(args)
     certificate = (Path(args.certificate) if args.certificate
                    else Path('out/demo') / f'{name}_certificate.yaml')
@@ -192,7 +211,7 @@ def _command_run_graph(args: argparse.Namespace) -> int:
         specs = sim_demo_graph(urdf_path=urdf, limits_path=limits, certificate=certificate,
                                duration_s=args.duration, seed=args.seed,
                                payload_mass=args.payload_mass, bag_path=args.output_dir,
-                               storage=args.storage)
+                               storage=args.storage, namespace=namespace)
         duration = 0.0  # the simulated arm stops itself
     else:
         if args.output_dir:
@@ -203,17 +222,19 @@ def _command_run_graph(args: argparse.Namespace) -> int:
             command_topic=args.command_topic, joint_states_topic=args.joint_states_topic,
             nominal_topic=args.nominal_topic, gravity_convention=args.gravity_convention,
             payload_mass=-1.0 if args.payload_mass is None else args.payload_mass,
-            watchdog_rate_hz=args.watchdog_rate, activate_at_start=args.activate_at_start)
+            watchdog_rate_hz=args.watchdog_rate, activate_at_start=args.activate_at_start,
+            namespace=namespace, robot_description_topic=args.robot_description_topic or '')
         duration = args.duration
         if not args.activate_at_start:
             print('the filter starts configured and INACTIVE (it publishes no torque): '
-                  'activate it with `ros2 lifecycle set /safety_filter activate`, or give '
-                  '--activate-at-start', flush=True)
+                  f'activate it with `ros2 lifecycle set {specs[0].fully_qualified_name} '
+                  'activate`, or give --activate-at-start', flush=True)
     how = 'one process per node' if args.processes else 'one process'
     domain, localhost_only = graph_domain(args.graph, args.domain_id)
     where = (f'ROS domain {domain}, discovery on this machine only' if localhost_only
              else f'ROS domain {domain if domain is not None else "of ROS_DOMAIN_ID"}')
-    print(f'running {[s.name for s in specs]} ({how}, {where}); Ctrl-C stops', flush=True)
+    print(f'running {[s.fully_qualified_name for s in specs]} ({how}, {where}); Ctrl-C '
+          'stops', flush=True)
     executor = args.executor or ('events' if args.graph == 'sim' else 'single_threaded')
     result = run_graph(specs, processes=args.processes, executor=executor,
                        duration_s=duration, domain_id=domain,
@@ -223,7 +244,24 @@ def _command_run_graph(args: argparse.Namespace) -> int:
     print(f'{state} after {result.wall_s:.1f} s{simulated}')
     if result.counts:
         print('recorded: ' + ', '.join(f'{t} {c}' for t, c in sorted(result.counts.items())))
-    return 0
+    return graph_exit_code(result)
+
+
+def graph_exit_code(result: Any) -> int:
+    """run-graph's exit code for a :class:`safety_filter.ros.runner.GraphResult`, after
+    printing what failed: 1 when a node failed (first: a crash explains what follows it), 4
+    when the simulated arm broke a limit, else 0."""
+    for failure in result.failures:
+        print(f'NODE FAILED: {failure}', flush=True)
+    broken = result.broken_limits
+    if broken:
+        print('SIMULATED ARM BROKE LIMITS (largest excursion past each): '
+              + '; '.join(broken), flush=True)
+    elif result.excursions:
+        print('the simulated arm kept every limit (position, velocity, commanded torque)')
+    if result.failures:
+        return EXIT_NODE_FAILED
+    return EXIT_LIMIT_BROKEN if broken else EXIT_GRAPH_OK
 
 
 def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
@@ -234,17 +272,31 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
         'arm, careless operator, filter) or launch/hardware.launch.py (--graph hardware: '
         'the filter alone) with the same parameter files and remappings, configure and '
         'activate the filter (the hardware graph: configure only, unless '
-        '--activate-at-start), and stop cleanly on Ctrl-C or after --duration. Exit code 0: '
-        'the graph ran and stopped (Ctrl-C, --duration, or the simulated arm finished); 2: '
-        'bad input (options, robot, certificate) or a graph that could not start.')
+        '--activate-at-start), and stop cleanly on Ctrl-C or after --duration. --namespace '
+        'runs every node of the graph in that namespace. Exit code 0: the graph ran and '
+        'stopped (Ctrl-C, --duration, or the simulated arm finished) with every node '
+        'healthy and, in the sim graph, every limit of the simulated arm kept; 1: a node '
+        'failed while the graph ran (raised an exception, exited early or with an error '
+        'code, or did not stop); 2: bad input (options, robot, certificate) or a graph that '
+        'could not start (a node not created, the filter not configured); 4: sim graph: the '
+        'simulated arm went past a position or velocity limit, or was sent a torque beyond '
+        'its effort limit.')
     run.add_argument('--graph', choices=GRAPHS, default='sim',
                      help='sim (default) or hardware')
     robot = run.add_argument_group('robot')
     robot.add_argument('--demo', '--arm', dest='demo', choices=DEMO_ARMS, default=None,
                        help=deprecated('a demo arm (sim default: bench6 when no --urdf; the '
                                        'hardware graph has no default robot)', '--arm'))
-    robot.add_argument('--urdf', help='the robot URDF (hardware: required, or --demo)')
-    robot.add_argument('--limits', help='its limits file (hardware: required with --urdf)')
+    robot.add_argument('--urdf', help='the robot URDF, or a .xacro file when the xacro '
+                       'package is installed (hardware: required, or --demo or '
+                       '--robot-description-topic)')
+    robot.add_argument('--robot-description-topic', metavar='TOPIC', default=None,
+                       help='hardware graph: read the URDF from this std_msgs/String topic '
+                       '(transient-local, as robot_state_publisher publishes '
+                       'robot_description; relative names resolve in --namespace) instead '
+                       'of --urdf')
+    robot.add_argument('--limits', help='its limits file (hardware: required with --urdf or '
+                       '--robot-description-topic)')
     robot.add_argument('--certificate', metavar='PATH',
                        help='certificate parameter file (hardware: required; sim default: '
                        'out/demo/<arm or URDF stem>_certificate.yaml, where safety-filter '
@@ -252,6 +304,11 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
     robot.add_argument('--payload-mass', type=float, default=None, metavar='KG',
                        help='mounted payload [kg] (hardware default: the middle of the '
                        'certified range)')
+    run.add_argument('--namespace', type=namespace_argument, default='', metavar='NS',
+                     help="the ROS namespace of the graph's nodes, e.g. /arm1 (default: the "
+                     'root); their relative and ~/ topics and services resolve in it, the '
+                     'certificate and config files apply there too; the sim graph records '
+                     'its topics under it')
     run.add_argument('--duration', type=float, default=0.0, metavar='S',
                      help='sim: simulated seconds of motion; hardware: wall seconds '
                      '(default 0: until Ctrl-C)')

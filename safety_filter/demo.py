@@ -127,7 +127,8 @@ def _say(options: DemoOptions, text: str) -> None:
 
 def _demo_config(path: Path) -> dict[str, Any]:
     document = yaml.safe_load(path.read_text(encoding='utf-8')) or {}
-    return {node: (section or {}).get('ros__parameters', {})
+    # Keys are '/**/<node name>' (any namespace) or plain node names: by node name.
+    return {str(node).rsplit('/', 1)[-1]: (section or {}).get('ros__parameters', {})
             for node, section in document.items() if isinstance(section, dict)}
 
 

@@ -113,6 +113,7 @@ def load_run(bag: str | Path, model: RobotModel, label: str, command_topic: str
     counts = {t: i.count for t, i in bags.topic_summary(bag).items()}
     messages = bags.read_topics(bag, sorted({bags.TOPIC_JOINT_STATES, bags.TOPIC_NOMINAL,
                                              command_topic, bags.TOPIC_STATUS,
+                                             bags.TOPIC_STATUS_FIELDS,
                                              bags.TOPIC_DIAGNOSTICS}))
     states = bags.joint_state_series(messages.get(bags.TOPIC_JOINT_STATES, []),
                                      model.joint_names)
@@ -135,7 +136,10 @@ def load_run(bag: str | Path, model: RobotModel, label: str, command_topic: str
 
     command_time, command = arrays(command_topic)
     nominal_time, nominal = arrays(bags.TOPIC_NOMINAL)
-    status = bags.status_records(messages.get(bags.TOPIC_STATUS, []))
+    status = bags.status_records(
+        messages.get(bags.TOPIC_STATUS, []),
+        fields=bags.last_text(messages.get(bags.TOPIC_STATUS_FIELDS, [])),
+        joint_names=model.joint_names)
     if status:
         status['time_s'] = relative(status['log_time_ns'])
     diagnostics = bags.diagnostic_records(messages.get(bags.TOPIC_DIAGNOSTICS, []))

@@ -73,7 +73,14 @@ class PayloadRange:
 
 
 class RobotModel:
-    """Joint-space model of an arm's actuated serial chain. Build it with :meth:`from_urdf`."""
+    """Joint-space model of an arm's actuated serial chain. Build it with :meth:`from_urdf`.
+
+    ``limits_source`` says where the limits came from (not part of :meth:`content_hash`):
+    the limits file's path, ``'<limits mapping>'``, ``None`` when :meth:`from_urdf` got no
+    limits (the URDF's alone), ``''`` when unknown (a model built otherwise).
+    """
+
+    limits_source: str | None = ''
 
     def __init__(
         self,
@@ -146,7 +153,9 @@ class RobotModel:
         """Load the actuated chain of a URDF file (or URDF text) and its limits.
 
         Args:
-            urdf: path of a URDF file, or the URDF XML text itself.
+            urdf: path of a URDF file, or the URDF XML text itself. A ``.xacro`` file is
+                expanded first with the ``xacro`` package (``pip install xacro``) when it is
+                installed; without it the error says how to expand the file.
             limits: optional limits file (path) or its parsed content; see ``docs`` for the
                 format. Its ``chain`` and ``locked_joints`` entries are used unless the
                 keyword arguments below are given.
@@ -168,7 +177,10 @@ class RobotModel:
             tip_link = chain.get('tip_link')
         locked = dict(spec.get('locked_joints', {}))
         locked.update(locked_positions or {})
-        return _build_model(xml_text, source, spec, base_link, tip_link, joints, locked)
+        model = _build_model(xml_text, source, spec, base_link, tip_link, joints, locked)
+        model.limits_source = (None if limits is None else '<limits mapping>'
+                               if isinstance(limits, Mapping) else str(limits))
+        return model
 
     # ------------------------------------------------------------------ queries
     @property
@@ -274,14 +286,55 @@ class RobotModel:
 
 
 # ---------------------------------------------------------------------- URDF reading
+XACRO_SUFFIX = '.xacro'
+# A URDF that still holds xacro macros: urdf_parser_py would skip the macro elements
+# silently and build a model without the links they define.
+_XACRO_MARKERS = ('xmlns:xacro=', '<xacro:')
+
+
 def _read_urdf_text(urdf: str | Path) -> tuple[str, str]:
     text = str(urdf)
     if isinstance(urdf, Path) or not text.lstrip().startswith('<'):
         path = Path(text)
         if not path.is_file():
             raise RobotDescriptionError(f'URDF file not found: {path}')
-        return path.read_text(encoding='utf-8'), str(path)
+        if path.suffix == XACRO_SUFFIX:
+            return expand_xacro(path), str(path)
+        content = path.read_text(encoding='utf-8')
+        if any(marker in content for marker in _XACRO_MARKERS):
+            return expand_xacro(path), str(path)
+        return content, str(path)
+    if any(marker in text for marker in _XACRO_MARKERS):
+        raise RobotDescriptionError(
+            'the robot description text holds xacro macros, not plain URDF: expand it first '
+            '(xacro arm.urdf.xacro > arm.urdf, as robot_state_publisher users do), or give '
+            'the .xacro file path')
     return text, '<urdf string>'
+
+
+def expand_xacro(path: str | Path) -> str:
+    """The URDF text of a xacro file, expanded with the ``xacro`` package (no arguments:
+    every ``xacro:arg`` takes its default).
+
+    Raises:
+        RobotDescriptionError: ``xacro`` is not installed (the message says how to install
+            it or expand the file by hand), or the expansion failed.
+    """
+    path = Path(path)
+    try:
+        import xacro
+    except ImportError as err:
+        raise RobotDescriptionError(
+            f'{path} is a xacro file and the xacro package is not installed: install it '
+            '(python3 -m pip install xacro, or the ros-jazzy-xacro package), or expand the '
+            f'file yourself and give the URDF: xacro {path} > {path.with_suffix("").name}'
+            + ('' if path.with_suffix('').suffix == '.urdf' else '.urdf')) from err
+    try:
+        document = xacro.process_file(str(path))
+        return str(document.toxml())
+    except Exception as err:  # xacro raises its own and XML errors of many types
+        raise RobotDescriptionError(f'{path}: xacro could not expand the file: '
+                                    f'{type(err).__name__}: {err}') from err
 
 
 def _parse_urdf(xml_text: str, source: str) -> Any:

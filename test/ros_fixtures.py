@@ -44,9 +44,9 @@ from lifecycle_msgs.msg import Transition  # noqa: E402
 from lifecycle_msgs.srv import ChangeState, GetState  # noqa: E402
 from rcl_interfaces.srv import GetParameters, SetParameters  # noqa: E402
 from rclpy.parameter import Parameter, parameter_value_to_python  # noqa: E402
-from rclpy.qos import QoSProfile, ReliabilityPolicy  # noqa: E402
+from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy  # noqa: E402
 from sensor_msgs.msg import JointState  # noqa: E402
-from std_msgs.msg import Float64MultiArray  # noqa: E402
+from std_msgs.msg import Float64MultiArray, String  # noqa: E402
 
 from safety_filter.bounds import BoundSettings  # noqa: E402
 from safety_filter.certificate import Certificate  # noqa: E402
@@ -80,10 +80,10 @@ LEVEL_NAMES = {DiagnosticStatus.OK: 'OK', DiagnosticStatus.WARN: 'WARN',
 class CertifiedArm:
     """A demo arm with its certificate parameter files.
 
-    ``default_certificate_path`` is the file as :meth:`Certificate.save` writes it (keyed by
-    the node name, which ROS matches only for a node in the root namespace);
-    ``certificate_path`` is the same content keyed ``/**/safety_filter``, which matches the
-    node in any namespace (the tests give each node its own namespace).
+    ``default_certificate_path`` is the file as :meth:`Certificate.save` (and so
+    ``safety-filter certify``) writes it, keyed ``/**``: the node it is given to, in any
+    namespace; ``certificate_path`` is the same content keyed ``/**/safety_filter``, the
+    node of that name in any namespace (the tests give each node its own namespace).
     """
 
     name: str
@@ -267,17 +267,22 @@ class Harness:
         deep = QoSProfile(depth=100_000, reliability=ReliabilityPolicy.RELIABLE)
         self.filtered = Recorder()
         self.status = Recorder()
+        self.status_fields = Recorder()
         self.diagnostics = Recorder()
         self.filtered_sub = node.create_subscription(
             Float64MultiArray, 'filtered_torque', self.filtered, deep)
         self.status_sub = node.create_subscription(
             Float64MultiArray, f'{prefix}/status', self.status, deep)
+        # The field names, sent once (transient-local): received even when sent earlier.
+        node.create_subscription(String, f'{prefix}/status_fields', self.status_fields,
+                                 QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                                            durability=DurabilityPolicy.TRANSIENT_LOCAL))
         node.create_subscription(DiagnosticArray, '/diagnostics', self.diagnostics, 100)
         self.change_state_client = node.create_client(ChangeState, f'{prefix}/change_state')
         self.get_state_client = node.create_client(GetState, f'{prefix}/get_state')
         self.set_parameters_client = node.create_client(SetParameters, f'{prefix}/set_parameters')
         self.get_parameters_client = node.create_client(GetParameters, f'{prefix}/get_parameters')
-        self.diagnostic_name = f'{node_name}: filter'
+        self.diagnostic_name = f'{namespace}/{node_name}: filter'  # the fully qualified name
         self._source: Callable[[int], tuple[Any, Any]] | None = None
         self._tick = 0
         self.published: list[tuple[int, Any, Any]] = []  # (tick, joint state, nominal)
@@ -405,10 +410,11 @@ class StatusRecord:
 
 
 def parse_status(msg: Float64MultiArray, joint_names: Sequence[str]) -> StatusRecord:
-    """Check the self-describing layout and split the data into a :class:`StatusRecord`."""
-    fields = msg.layout.dim[0].label.split(',')
-    assert fields == status_field_names(joint_names)
-    assert msg.layout.dim[0].size == len(fields) == len(msg.data)
+    """Check the lean layout (values only: the names go once on ~/status_fields) and split
+    the data into a :class:`StatusRecord`."""
+    fields = status_field_names(joint_names)
+    assert not msg.layout.dim, 'the status carries its field names in every message'
+    assert len(fields) == len(msg.data)
     data = np.array(msg.data)
     n = len(joint_names)
     base = len(STATUS_SCALAR_FIELDS)

@@ -40,7 +40,7 @@ from scipy.optimize import linprog
 from safety_filter.alphas import ClassK
 from safety_filter.bounds import BoundSettings, estimate_bounds
 from safety_filter.certificate import (
-    FILTER_NODE_NAME,
+    PARAMETER_FILE_KEY,
     Certificate,
     CertificateError,
     CertificateMismatch,
@@ -363,8 +363,9 @@ def test_certificate_save_load_round_trip(planar2_certified, tmp_path) -> None: 
     c = outcome.certificate
     path = c.save(tmp_path / 'planar2_certificate.yaml')
     document = yaml.safe_load(path.read_text(encoding='utf-8'))
-    assert list(document) == [FILTER_NODE_NAME] == ['safety_filter']
-    params = document['safety_filter']['ros__parameters']
+    # Keyed '/**': ROS applies it to the node it is given to, in any namespace.
+    assert list(document) == [PARAMETER_FILE_KEY] == ['/**']
+    params = document['/**']['ros__parameters']
     assert params['certificate_id'] == c.certificate_id
     assert params['gamma'] == [float(x) for x in c.gamma]
     loaded = Certificate.load(path, model)
@@ -391,7 +392,7 @@ def test_hand_edited_certificate_is_refused(planar2_certified, tmp_path) -> None
     model, outcome = planar2_certified
     path = outcome.certificate.save(tmp_path / 'planar2_certificate.yaml')
     document = yaml.safe_load(path.read_text(encoding='utf-8'))
-    document['safety_filter']['ros__parameters']['gamma'][0] *= 1.5
+    document['/**']['ros__parameters']['gamma'][0] *= 1.5
     path.write_text(yaml.safe_dump(document, sort_keys=False), encoding='utf-8')
     with pytest.raises(CertificateError, match='certificate id') as raised:
         Certificate.load(path, model)

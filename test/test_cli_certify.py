@@ -100,7 +100,7 @@ def test_failed_certify_leaves_a_good_certificate_untouched(tmp_path, capsys,
     assert report.read_bytes() == good_report
     assert Certificate.load(output, load_demo_arm('planar2')).certified
     failed = tmp_path / 'arm.failed.yaml'
-    assert not yaml.safe_load(failed.read_text(encoding='utf-8'))['safety_filter'][
+    assert not yaml.safe_load(failed.read_text(encoding='utf-8'))['/**'][
         'ros__parameters']['certified']
     assert (tmp_path / 'arm.failed_report' / 'certificate_report.html').is_file()
     assert str(failed.resolve()) in captured.out

@@ -39,6 +39,8 @@ CONCEPTS = {
     "nodes' log level": '--log-level',
     'thin-margin threshold': '--thin-margin',
     'joint states topic': '--joint-states-topic',
+    'ROS namespace': '--namespace',
+    'robot description topic': '--robot-description-topic',
 }
 # known other spellings -> the concept's spelling (allowed only as deprecated aliases)
 ALTERNATIVES = {
@@ -55,6 +57,9 @@ ALTERNATIVES = {
     '--silent': '--quiet', '--verbose': '--log-level',
     '--margin-warn': '--thin-margin', '--thin-margin-threshold': '--thin-margin',
     '--topic': '--joint-states-topic', '--joint-state-topic': '--joint-states-topic',
+    '--ns': '--namespace', '--ros-namespace': '--namespace', '--node-namespace': '--namespace',
+    '--description-topic': '--robot-description-topic',
+    '--urdf-topic': '--robot-description-topic',
 }
 NO_PROGRESS_HELP = 'no progress bar'
 
@@ -182,6 +187,45 @@ def test_deprecated_spellings_still_parse_to_the_new_options() -> None:
     assert parser.parse_args(['check-gravity', '--topic', 't']).joint_states_topic == 't'
 
 
+def test_the_executables_own_options_have_help_too() -> None:
+    """Beyond the safety-filter subcommands: the filter_node executable's own options and
+    the --executor option every node executable takes."""
+    pytest.importorskip('rclpy', reason="the node executables need rclpy: pip install -e "
+                        "'.[ros]'")
+    import inspect
+
+    from safety_filter.ros import _common, filter_node
+
+    assert option_problems('filter_node', _with_exit_codes(
+        filter_node.own_argument_parser())) == []
+    source = inspect.getsource(_common._executor_argument)
+    assert "help='" in source and 'add_argument' in source
+
+
+def _with_exit_codes(parser: argparse.ArgumentParser) -> argparse.ArgumentParser:
+    # The executables document their exit codes in their main() docstrings, not in an
+    # argparse description: check only the options here.
+    parser.description = (parser.description or '') + ' Exit code 0, 2.'
+    return parser
+
+
+def test_namespace_option_takes_ros_namespaces_only() -> None:
+    from safety_filter.cli_options import ros_namespace
+
+    parser = build_parser()
+    for command in (['run-graph'], ['node', '--certificate', 'c.yaml', '--demo', 'planar2']):
+        assert parser.parse_args([*command, '--namespace', 'left']).namespace == '/left'
+        assert parser.parse_args([*command, '--namespace', '/cell_2/left']).namespace == \
+            '/cell_2/left'
+        assert parser.parse_args(command).namespace == ''
+        for bad in ('2arm', 'a b', '/a//b', 'left/', '~/x'):
+            with pytest.raises(SystemExit):
+                parser.parse_args([*command, '--namespace', bad])
+    with pytest.raises(ValueError, match='not a ROS namespace'):
+        ros_namespace('arm-1')
+    assert ros_namespace('/') == ''
+
+
 def test_run_graph_control_rate_is_gone_and_the_watchdog_rate_has_its_name() -> None:
     options = {o for a in COMMANDS['run-graph']._actions for o in a.option_strings}
     assert '--watchdog-rate' in options and '--control-rate' not in options
@@ -196,7 +240,7 @@ def test_one_thin_margin_for_the_node_and_the_monitor() -> None:
     assert "declare_parameter('thin_margin', THIN_MARGIN," in source
     assert 'margin_warn' not in source
     config = yaml.safe_load((REPO / 'config' / 'filter.yaml').read_text(encoding='utf-8'))
-    assert config['safety_filter']['ros__parameters']['thin_margin'] == THIN_MARGIN
+    assert config['/**/safety_filter']['ros__parameters']['thin_margin'] == THIN_MARGIN
 
 
 def _launch_arguments(path: Path) -> list[str]:

@@ -185,7 +185,7 @@ def test_defaults_are_the_values_of_config_filter_yaml(planar2: CertifiedArm,
     from safety_filter.ros.runner import FILTER_CONFIG, config_file
 
     values = yaml.safe_load(config_file(FILTER_CONFIG).read_text(encoding='utf-8'))
-    values = values['safety_filter']['ros__parameters']
+    values = values['/**/safety_filter']['ros__parameters']
     assert values['trigger'] == 'joint_state'
     node = start_node(node_arguments(planar2)).node
     for name, value in values.items():
@@ -510,8 +510,8 @@ def test_runtime_parameter_changes(planar2: CertifiedArm, harness: Harness,
 @pytest.mark.parametrize('namespace', [''], ids=['root-namespace'])
 def test_lifecycle_transitions_switch_the_outputs(planar2: CertifiedArm, harness: Harness,
                                                   start_node: Any) -> None:
-    """Also: the certificate file exactly as Certificate.save writes it (keyed by the node
-    name: ROS matches that key for the node in the root namespace)."""
+    """Also: the certificate file exactly as Certificate.save writes it (keyed /**), for the
+    node in the root namespace."""
     arm = planar2
     start_node(node_arguments(arm, arm.default_certificate_path, diagnostics_rate_hz=20.0))
     names = list(arm.model.joint_names)

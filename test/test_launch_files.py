@@ -215,7 +215,9 @@ def test_the_runner_starts_the_same_graphs(tmp_path: Path) -> None:
     assert [p.name for p in hardware.parameter_files] == ['certificate.yaml', 'filter.yaml']
 
 
-def test_config_files_are_parameter_files_keyed_by_node_name() -> None:
+def test_config_files_are_parameter_files_keyed_by_node_name_in_any_namespace() -> None:
+    """Keyed '/**/<node name>': a section applies to its node in any namespace (a key of
+    the bare name would apply only in the root namespace)."""
     import yaml
 
     for path in (REPO / 'config').glob('*.yaml'):
@@ -223,7 +225,8 @@ def test_config_files_are_parameter_files_keyed_by_node_name() -> None:
         assert isinstance(document, dict) and document, path.name
         for node, section in document.items():
             assert set(section) == {'ros__parameters'}, (path.name, node)
-            assert node in {'sim_arm', 'careless_operator', 'safety_filter'}, (path.name, node)
+            assert node in {'/**/sim_arm', '/**/careless_operator', '/**/safety_filter'}, \
+                (path.name, node)
 
 
 def _default(launch: LaunchFile, argument: str) -> str | None:
@@ -303,3 +306,60 @@ def test_run_graph_sim_gets_an_isolated_domain_and_hardware_does_not() -> None:
     assert graph_domain('sim', 7) == (7, True)
     assert graph_domain('hardware', None) == (None, False)
     assert graph_domain('hardware', 3) == (3, False)
+
+
+@pytest.mark.parametrize('launch_name', ['hardware.launch.py', 'sim_demo.launch.py'])
+def test_launch_files_take_a_namespace_for_every_node(launch_name: str) -> None:
+    """A `namespace` argument (default: the root) that every Node(...) of the file uses, so
+    that two arms (or two graphs) can run side by side."""
+    launch = LaunchFile(REPO / 'launch' / launch_name)
+    assert _default(launch, 'namespace') == ''
+    assert launch.nodes
+    for node in launch.nodes:
+        value = launch.resolve(node.keywords.get('namespace', ast.Constant(None)))
+        assert _call_name(value) == 'LaunchConfiguration', f'line {node.line}: no namespace'
+        assert _string(value.args[0]) == 'namespace', node.line
+
+
+def test_hardware_launch_reads_the_robot_from_a_file_or_a_topic() -> None:
+    launch = LaunchFile(REPO / 'launch' / 'hardware.launch.py')
+    assert _default(launch, 'urdf_path') == '' and _default(launch, 'robot_description_topic') \
+        == ''
+    for node in launch.nodes:
+        inline = [item for item in _elements(launch, node.keywords['parameters'])
+                  if isinstance(item, ast.Dict)]
+        keys = {_string(k) for item in inline for k in item.keys}
+        assert {'urdf_path', 'robot_description_topic', 'limits_path'} <= keys, node.line
+
+
+def test_the_runner_puts_a_graph_in_a_namespace(tmp_path: Path) -> None:
+    from safety_filter.demo_arms import demo_arm_files
+    from safety_filter.ros.runner import GraphError, hardware_graph, sim_demo_graph
+
+    urdf, limits = demo_arm_files('planar2')
+    certificate = tmp_path / 'certificate.yaml'
+    (spec,) = hardware_graph(certificate=certificate, urdf_path=urdf, namespace='left')
+    assert spec.namespace == '/left' and spec.fully_qualified_name == '/left/safety_filter'
+    arguments = spec.ros_arguments(None, 'warn')
+    assert arguments[arguments.index('__ns:=/left') - 1] == '-r'
+    assert 'left.safety_filter:=warn' in arguments  # rclpy's logger name of the node
+    (root,) = hardware_graph(certificate=certificate, urdf_path=urdf)
+    assert not any(a.startswith('__ns:=') for a in root.ros_arguments(None))
+    (topic,) = hardware_graph(certificate=certificate, robot_description_topic='robot_description',
+                              limits_path=limits, namespace='/cell2/left')
+    assert topic.parameters['robot_description_topic'] == 'robot_description'
+    assert topic.parameters['urdf_path'] == ''
+    with pytest.raises(GraphError, match='one of them'):
+        hardware_graph(certificate=certificate, urdf_path=urdf,
+                       robot_description_topic='robot_description')
+    with pytest.raises(GraphError, match='not a ROS namespace'):
+        hardware_graph(certificate=certificate, urdf_path=urdf, namespace='a b')
+    specs = sim_demo_graph(urdf_path=urdf, limits_path=limits, certificate=certificate,
+                           control_rate_hz=1000.0, bag_path=tmp_path / 'bag', namespace='/sim1')
+    assert {s.namespace for s in specs} == {'/sim1'}
+    (recorder,) = [s for s in specs if s.executable == 'bag_recorder']
+    topics = recorder.parameters['topics']
+    assert '/diagnostics' in topics and '/sim1/joint_states' in topics
+    assert '/sim1/safety_filter/status' in topics
+    assert recorder.parameters['latched_topics'] == ['/sim1/safety_filter/status_fields']
+    assert len(recorder.parameters['types']) == len(topics)

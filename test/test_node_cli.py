@@ -96,10 +96,10 @@ def node_process(tmp_path: Path) -> Any:
 def test_cli_node_filters_and_exits_cleanly_on_sigint(
         executor: str, planar2: CertifiedArm, domain_id: int, node_process: Any) -> None:
     arm = planar2
-    # The certificate file as `safety-filter certify` writes it, the URDF and limits by path.
-    # single_threaded: the node in the root namespace, where that file's key matches.
+    # The certificate file as `safety-filter certify` writes it (keyed /**: any namespace),
+    # the URDF and limits by path. single_threaded: the node in the root namespace.
     namespace = '' if executor == 'single_threaded' else unique_namespace()
-    certificate = arm.default_certificate_path if not namespace else arm.certificate_path
+    certificate = arm.default_certificate_path
     node = node_process(['--certificate', str(certificate), '--urdf', str(arm.urdf_path),
                          '--limits', str(arm.limits_path), '--executor', executor,
                          '--activate-at-start',

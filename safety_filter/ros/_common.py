@@ -104,7 +104,8 @@ def _executor_argument(argv: Sequence[str]) -> str:
     """The ``--executor`` option of a node executable (outside ``--ros-args``)."""
     parser = argparse.ArgumentParser(add_help=False)
     parser.add_argument('--executor', type=executor_name, choices=EXECUTORS,
-                        default='single_threaded')
+                        default='single_threaded',
+                        help='the rclpy executor of the node (default: single_threaded)')
     known, _ = parser.parse_known_args(list(remove_ros_args(list(argv)))[1:])
     return str(known.executor)
 

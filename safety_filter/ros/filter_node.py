@@ -33,9 +33,13 @@ Publications:
   ``-r filtered_torque:=/effort_controller/commands``. Nothing is published before the first
   valid joint state: without a state there is no safe command to give (the driver's own
   command timeout applies then, as it does when this node stops).
-* ``~/status`` (``std_msgs/Float64MultiArray``, one per published torque, for bags):
-  ``layout.dim[0].label`` is the comma-separated list of field names and ``layout.dim[0].size``
-  their number (see :data:`STATUS_SCALAR_FIELDS` and :func:`status_field_names`)::
+* ``~/status`` (``std_msgs/Float64MultiArray``, one per published torque, for bags): the
+  values only, with an empty layout (no field names in each message: at 1 kHz they would be
+  most of the traffic). The field names go out once, at configure, on
+* ``~/status_fields`` (``std_msgs/String``, transient-local: late subscribers and bag
+  recorders still get it): the comma-separated field names of ``~/status``, in order (see
+  :mod:`safety_filter.status_layout`, :data:`STATUS_SCALAR_FIELDS` and
+  :func:`status_field_names`)::
 
       stamp_s,step,mode,hold_nominal,intervention,solve_time_s,joint_state_age_s,
       nominal_age_s,margin.<joint>...,torque.<joint>...,nominal.<joint>...,
@@ -50,7 +54,9 @@ Publications:
   the arrays given to and returned by :meth:`SafetyFilter.step` (NaN where the input was
   invalid), so a bag of this topic replays the filter step by step.
 * ``/diagnostics`` (``diagnostic_msgs/DiagnosticArray``, at ``diagnostics_rate_hz``, also
-  while inactive): one status named ``'<node name>: filter'``. Level ERROR when the
+  while inactive): one status named ``'<fully qualified node name>: filter'`` (e.g.
+  ``'/safety_filter: filter'``, ``'/arm1/safety_filter: filter'``: filters in different
+  namespaces report under different names). Level ERROR when the
   joint-state watchdog has tripped or steps were rejected or recovering since the last
   report; STALE when inactive, when no joint state was ever received, or when the nominal is
   stale or was never received; WARN after a fallback since the last report or when a barrier
@@ -81,7 +87,9 @@ keeps samples from being dropped on a lossy link while the writer still holds th
 that publishes joint states best-effort (sensor-data QoS) needs the standard override
 ``-p qos_overrides./joint_states.subscription.reliability:=best_effort`` (QoS overrides are
 enabled for reliability, history and depth on these four topics). ``/diagnostics``: the
-default QoS (reliable, depth 10), like every diagnostics publisher.
+default QoS (reliable, depth 10), like every diagnostics publisher. ``~/status_fields`` and the
+``robot_description`` subscription: reliable, transient-local, depth 1, the QoS of latched
+descriptions (``robot_state_publisher`` publishes ``robot_description`` so).
 
 Executor
 --------
@@ -135,11 +143,17 @@ reason; change them by starting the node again):
 
 * every entry of the certificate parameter file (:meth:`Certificate.to_parameters`, given
   with ``--params-file``; declared read-only). The node refuses an uncertified certificate,
-  an edited one (its id covers the content) and one computed for another model (hash).
-  ROS applies a file keyed ``safety_filter`` (as ``Certificate.save`` writes it) only to a
-  node in the root namespace; for a namespaced node key it ``/**/safety_filter`` or with the
-  full name (``Certificate.save(path, node_name='/**/safety_filter')``).
-* ``urdf_path`` (a URDF file) or ``robot_description`` (the URDF XML text); ``limits_path``
+  an edited one (its id covers the content) and one computed for another model (hash; the
+  error names the likely cause: another chain, a missing or different limits file, another
+  URDF). ``safety-filter certify`` keys the file ``/**``, which ROS applies to the node it is
+  given to in any namespace and under any name; files keyed by the node name (earlier
+  releases) apply only to a node of that name in the root namespace.
+* the robot: ``urdf_path`` (a URDF file, or a ``.xacro`` file when the ``xacro`` package is
+  installed), or ``robot_description`` (the URDF XML text), or ``robot_description_topic``
+  (a topic carrying the URDF as ``std_msgs/String``, transient-local, as
+  ``robot_state_publisher`` publishes ``robot_description``; read once at configure, which
+  waits up to ``robot_description_timeout_s`` (10 s) for it; relative names resolve in the
+  node's namespace). Exactly one of the three. ``limits_path``
   (the limits YAML, which also selects the chain); ``gravity_convention`` (``'full'``: the
   driver takes the full torque, ``'driver_compensated'``: the driver adds ``g(q)`` itself,
   both nominal and output are then on top of gravity); ``payload_mass`` [kg] (negative: the
@@ -233,14 +247,24 @@ from rclpy.qos import (
 from rclpy.qos_overriding_options import QoSOverridingOptions
 from rclpy.signals import SignalHandlerOptions
 from rclpy.utilities import remove_ros_args
+from rclpy.wait_for_message import wait_for_message
 from sensor_msgs.msg import JointState
-from std_msgs.msg import Float64MultiArray, MultiArrayDimension
+from std_msgs.msg import Float64MultiArray, MultiArrayDimension, String
 
 from safety_filter.certificate import FILTER_NODE_NAME, Certificate
 from safety_filter.cli_options import THIN_MARGIN
 from safety_filter.errors import SafetyFilterError
 from safety_filter.filter import GRAVITY_CONVENTIONS, FilterMode, FilterOutput, SafetyFilter
 from safety_filter.model import RobotModel
+from safety_filter.status_layout import (  # noqa: F401 - re-exported: the node's interface
+    DIAGNOSTIC_NAME_SUFFIX,
+    STATUS_JOINT_FIELDS,
+    STATUS_SCALAR_FIELDS,
+    diagnostic_name,
+    fields_topic,
+    format_fields,
+    status_field_names,
+)
 
 # Every key of Certificate.to_parameters() (a test checks they agree).
 CERTIFICATE_PARAMETERS = (
@@ -251,7 +275,8 @@ CERTIFICATE_PARAMETERS = (
     'created', 'certified', 'alpha1_kind', 'alpha1_scale', 'alpha2_kind', 'alpha2_scale',
     'payload_mass_range', 'payload_point', 'settings_json', 'falsifier_json', 'reasons',
     'certificate_id')
-MODEL_PARAMETERS = ('urdf_path', 'robot_description', 'limits_path', 'gravity_convention',
+MODEL_PARAMETERS = ('urdf_path', 'robot_description', 'robot_description_topic',
+                    'robot_description_timeout_s', 'limits_path', 'gravity_convention',
                     'payload_mass', 'disturbance_observer')
 SAFETY_PARAMETERS = frozenset(CERTIFICATE_PARAMETERS + MODEL_PARAMETERS)
 TIMEOUT_PARAMETERS = ('joint_state_timeout_s', 'nominal_timeout_s')
@@ -269,12 +294,11 @@ MODE_STALE = 4
 MODE_CODES = {FilterMode.FILTERED: MODE_FILTERED, FilterMode.FALLBACK: MODE_FALLBACK,
               FilterMode.RECOVERING: MODE_RECOVERING, FilterMode.REJECTED: MODE_REJECTED}
 MODE_NAMES = ('filtered', 'fallback', 'recovering', 'rejected', 'stale')
-STATUS_SCALAR_FIELDS = ('stamp_s', 'step', 'mode', 'hold_nominal', 'intervention',
-                        'solve_time_s', 'joint_state_age_s', 'nominal_age_s')
-STATUS_JOINT_FIELDS = ('margin', 'torque', 'nominal', 'position', 'velocity')
+STATUS_TOPIC = '~/status'
+STATUS_FIELDS_TOPIC = fields_topic(STATUS_TOPIC)  # '~/status_fields'
+ROBOT_DESCRIPTION_TIMEOUT_S = 10.0  # [s] default robot_description_timeout_s
 
 RCLError = _rclpy.RCLError
-DIAGNOSTIC_NAME_SUFFIX = ': filter'
 EXIT_OK = 0
 EXIT_FAILED = 1
 EXECUTORS = ('single_threaded', 'events')  # of safety_filter.cli_options.EXECUTORS
@@ -291,12 +315,12 @@ def control_qos() -> QoSProfile:
                       durability=DurabilityPolicy.VOLATILE)
 
 
-def status_field_names(joint_names: Sequence[str]) -> list[str]:
-    """Field names of the ``~/status`` array, in order (see the module docstring)."""
-    names = list(STATUS_SCALAR_FIELDS)
-    for field in STATUS_JOINT_FIELDS:
-        names.extend(f'{field}.{joint}' for joint in joint_names)
-    return names
+def latched_qos() -> QoSProfile:
+    """Reliable, transient-local, keep-last 1: a description sent once, kept for late
+    subscribers (``~/status_fields``; ``robot_description`` as robot_state_publisher sends it)."""
+    return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
+                      reliability=ReliabilityPolicy.RELIABLE,
+                      durability=DurabilityPolicy.TRANSIENT_LOCAL)
 
 
 def _qos_overrides() -> QoSOverridingOptions:
@@ -347,6 +371,7 @@ class SafetyFilterNode(LifecycleNode):
         self._timers_made: list[Any] = []
         self._filtered_pub: Any = None
         self._status_pub: Any = None
+        self._status_fields_pub: Any = None
         self._diagnostics_pub: Any = None
         self._watchdog: Any = None
         self._watchdog_holding = False  # the watchdog ticks at the hold rate (trigger silent)
@@ -378,9 +403,17 @@ class SafetyFilterNode(LifecycleNode):
                 'certificate entry (from the certificate parameter file); fixed',
                 read_only=True, dynamic=True))
         self.declare_parameter('urdf_path', '', _describe(
-            'path of the robot URDF (or give robot_description); safety parameter, fixed'))
+            'path of the robot URDF or .xacro file (or give robot_description or '
+            'robot_description_topic); safety parameter, fixed'))
         self.declare_parameter('robot_description', '', _describe(
-            'URDF XML text, used when urdf_path is empty; safety parameter, fixed'))
+            'URDF XML text, instead of urdf_path; safety parameter, fixed'))
+        self.declare_parameter('robot_description_topic', '', _describe(
+            'read the URDF at configure from this std_msgs/String topic (transient-local, '
+            'as robot_state_publisher publishes robot_description), instead of urdf_path; '
+            'safety parameter, fixed'))
+        self.declare_parameter('robot_description_timeout_s', ROBOT_DESCRIPTION_TIMEOUT_S,
+                               _describe('configure waits this long [s] for the URDF on '
+                                         'robot_description_topic; fixed', dynamic=True))
         self.declare_parameter('limits_path', '', _describe(
             'limits YAML of the robot (also selects the chain); safety parameter, fixed'))
         self.declare_parameter('gravity_convention', 'full', _describe(
@@ -568,20 +601,12 @@ class SafetyFilterNode(LifecycleNode):
             name = self.get_fully_qualified_name()
             raise SafetyFilterError(
                 'no certificate parameters: start the node with --params-file <certificate '
-                'YAML written by safety-filter certify>; ROS matches its key '
-                f'{self.get_name()!r} only for a node in the root namespace, so for {name!r} '
-                f"key it {name!r} or '/**/{self.get_name()}'")
+                'YAML written by safety-filter certify> (keyed /**, it applies to this node '
+                f'wherever it runs); a file keyed by a node name applies only to that name: '
+                f"for {name!r} key it '/**' or {name!r}")
         certificate = Certificate.from_parameters(values)
-        urdf_path = str(self.get_parameter('urdf_path').value)
-        description = str(self.get_parameter('robot_description').value)
         limits_path = str(self.get_parameter('limits_path').value)
-        if urdf_path and description:
-            raise SafetyFilterError('give urdf_path or robot_description, not both')
-        if not urdf_path and not description.strip():
-            raise SafetyFilterError('no robot model: set urdf_path or robot_description')
-        if description and not description.lstrip().startswith('<'):
-            raise SafetyFilterError('robot_description must be URDF XML text')
-        model = RobotModel.from_urdf(urdf_path or description, limits=limits_path or None)
+        model = RobotModel.from_urdf(self._robot_description(), limits=limits_path or None)
         certificate.check_model(model)
 
         convention = self.get_parameter('gravity_convention').value
@@ -615,6 +640,7 @@ class SafetyFilterNode(LifecycleNode):
         self._model = model
         self._certificate = certificate
         self._certificate_id = certificate.certificate_id  # a hash of the content: compute once
+        self._diagnostic_name = diagnostic_name(self.get_fully_qualified_name())
         self._filter = filt
         self._joint_state_timeout, self._nominal_timeout = timeouts
         self._trigger = operational['trigger']
@@ -643,9 +669,8 @@ class SafetyFilterNode(LifecycleNode):
 
         fields = status_field_names(self._joint_names)
         self._status_buffer = np.zeros(len(fields))
+        # No layout in each status message: the field names go out once, on ~/status_fields.
         self._status_msg = Float64MultiArray()
-        self._status_msg.layout.dim = [MultiArrayDimension(
-            label=','.join(fields), size=len(fields), stride=len(fields))]
         self._filtered_msg = Float64MultiArray()
         self._filtered_msg.layout.dim = [MultiArrayDimension(
             label='joints', size=n, stride=n)]
@@ -654,7 +679,12 @@ class SafetyFilterNode(LifecycleNode):
         self._filtered_pub = self.create_lifecycle_publisher(
             Float64MultiArray, 'filtered_torque', qos, qos_overriding_options=_qos_overrides())
         self._status_pub = self.create_lifecycle_publisher(
-            Float64MultiArray, '~/status', qos, qos_overriding_options=_qos_overrides())
+            Float64MultiArray, STATUS_TOPIC, qos, qos_overriding_options=_qos_overrides())
+        # A plain publisher, not a lifecycle one: transient-local keeps the one message for
+        # subscribers that come later, active or not.
+        self._status_fields_pub = self.create_publisher(String, STATUS_FIELDS_TOPIC,
+                                                        latched_qos())
+        self._status_fields_pub.publish(String(data=format_fields(fields)))
         self._diagnostics_pub = self.create_publisher(DiagnosticArray, '/diagnostics', 10)
         self._subscriptions_made = [
             self.create_subscription(JointState, 'joint_states', self._on_joint_state, qos,
@@ -679,6 +709,46 @@ class SafetyFilterNode(LifecycleNode):
             f'{certificate.certificate_id}, gravity convention {convention}, payload '
             f'{filt.payload_mass:g} kg, trigger {self._trigger}, watchdog {watchdog_rate:g} Hz')
 
+    def _robot_description(self) -> str:
+        """The URDF path or text from ``urdf_path``, ``robot_description`` or
+        ``robot_description_topic`` (exactly one; the topic is read now, waiting up to
+        ``robot_description_timeout_s`` for its transient-local message)."""
+        urdf_path = str(self.get_parameter('urdf_path').value)
+        description = str(self.get_parameter('robot_description').value)
+        topic = str(self.get_parameter('robot_description_topic').value).strip()
+        given = [name for name, value in (('urdf_path', urdf_path),
+                                          ('robot_description', description.strip()),
+                                          ('robot_description_topic', topic)) if value]
+        if len(given) > 1:
+            raise SafetyFilterError(f'give one of urdf_path, robot_description and '
+                                    f'robot_description_topic, not {" and ".join(given)}')
+        if not given:
+            raise SafetyFilterError('no robot model: set urdf_path, robot_description or '
+                                    'robot_description_topic')
+        if urdf_path:
+            return urdf_path
+        if description:
+            if not description.lstrip().startswith('<'):
+                raise SafetyFilterError('robot_description must be URDF XML text')
+            return description
+        timeout = _positive_finite('robot_description_timeout_s',
+                                   self.get_parameter('robot_description_timeout_s').value)
+        resolved = self.resolve_topic_name(topic)
+        self.get_logger().info(f'waiting up to {timeout:g} s for the URDF on {resolved}')
+        # rclpy's wait_for_message waits on a wait set of its own: it works inside a
+        # transition callback, while the executor that called it is busy.
+        received, message = wait_for_message(String, self, topic, qos_profile=latched_qos(),
+                                             time_to_wait=timeout)
+        if not received or message is None:
+            raise SafetyFilterError(
+                f'no robot description on {resolved} within {timeout:g} s: start '
+                'robot_state_publisher (or whatever publishes it, transient-local), remap '
+                'robot_description_topic, or give urdf_path')
+        text = str(message.data)
+        if not text.lstrip().startswith('<'):
+            raise SafetyFilterError(f'{resolved} did not carry URDF XML text')
+        return text
+
     def _teardown(self) -> None:
         self._active = False
         self._configured = False
@@ -693,9 +763,11 @@ class SafetyFilterNode(LifecycleNode):
         for publisher in (self._filtered_pub, self._status_pub):
             if publisher is not None:
                 self.destroy_lifecycle_publisher(publisher)
-        if self._diagnostics_pub is not None:
-            self.destroy_publisher(self._diagnostics_pub)
+        for plain in (self._diagnostics_pub, self._status_fields_pub):
+            if plain is not None:
+                self.destroy_publisher(plain)
         self._filtered_pub = self._status_pub = self._diagnostics_pub = None
+        self._status_fields_pub = None
         self._filter = None
         self._model = None
         self._certificate = None
@@ -945,7 +1017,7 @@ class SafetyFilterNode(LifecycleNode):
             level, parts = DiagnosticStatus.WARN, warnings
         else:
             level, parts = DiagnosticStatus.OK, ['filtering']
-        status = DiagnosticStatus(level=level, name=self.get_name() + DIAGNOSTIC_NAME_SUFFIX,
+        status = DiagnosticStatus(level=level, name=self._diagnostic_name,
                                   message='; '.join(parts), hardware_id=model.name)
         values = [('mode', MODE_NAMES[self._last_code] if self._last_code >= 0 else 'none'),
                   ('active', str(self._active).lower())]
@@ -1006,7 +1078,8 @@ class SafetyFilterNode(LifecycleNode):
 
 
 # ---------------------------------------------------------------------- executable
-def _parse_own_arguments(arguments: Sequence[str]) -> argparse.Namespace:
+def own_argument_parser() -> argparse.ArgumentParser:
+    """The parser of the executable's own options (those before ``--ros-args``)."""
     parser = argparse.ArgumentParser(
         prog='filter_node',
         description='The safety_filter lifecycle node. ROS arguments go after --ros-args, '
@@ -1021,7 +1094,11 @@ def _parse_own_arguments(arguments: Sequence[str]) -> argparse.Namespace:
                         "SingleThreadedExecutor) or 'events' (rclpy.experimental."
                         'EventsExecutor, experimental in Jazzy; measure it with '
                         'benchmarks/bench_node_latency.py first)')
-    return parser.parse_args(list(arguments))
+    return parser
+
+
+def _parse_own_arguments(arguments: Sequence[str]) -> argparse.Namespace:
+    return own_argument_parser().parse_args(list(arguments))
 
 
 def make_executor(kind: str, context: Any) -> Any:

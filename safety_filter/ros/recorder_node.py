@@ -10,12 +10,15 @@ good part of a core).
 
 Log times are the receipt times on the node's clock (simulated time under
 ``use_sim_time``). Queues are deep (1000) and reliable so that nothing is lost when the
-node falls behind for a moment.
+node falls behind for a moment. Latched topics (sent once, transient-local: the filter's
+``~/status_fields``) are subscribed transient-local, so that their message arrives even when
+it was sent before the recorder subscribed, and recorded with that offered QoS.
 
 Parameters (read at start): ``bag_path`` (the bag folder to create; must not exist),
 ``storage`` (``'mcap'`` or ``'sqlite3'``), ``topics`` (absolute topic names; default
 :data:`safety_filter.bags.TOPIC_TYPES`), ``types`` (their message types, same order; may be
-left empty for the known topics).
+left empty for the known topics), ``latched_topics`` (those of ``topics`` that are latched;
+default :data:`safety_filter.bags.LATCHED_TOPICS`).
 """
 
 from __future__ import annotations
@@ -28,7 +31,7 @@ from typing import Any
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 
-from safety_filter.bags import TOPIC_TYPES, BagWriter
+from safety_filter.bags import LATCHED_TOPICS, TOPIC_TYPES, BagWriter
 from safety_filter.errors import SafetyFilterError
 from safety_filter.ros._common import describe, spin_node
 
@@ -62,6 +65,8 @@ class BagRecorderNode(Node):
         self.declare_parameter('topics', list(TOPIC_TYPES), describe('topics to record'))
         self.declare_parameter('types', [''], describe(
             'message types of the topics (same order); empty for the known topics'))
+        self.declare_parameter('latched_topics', list(LATCHED_TOPICS) or [''], describe(
+            'topics of topics published once, transient-local (subscribed and recorded so)'))
         path = str(self.get_parameter('bag_path').value)
         if not path:
             raise SafetyFilterError('bag_path is not set')
@@ -75,12 +80,20 @@ class BagRecorderNode(Node):
                 raise SafetyFilterError(f'give the types of {unknown} (parameter types)')
             types = [TOPIC_TYPES[t] for t in topics]
         classes = [message_class(t) for t in types]
-        self.writer = BagWriter(path, str(self.get_parameter('storage').value))
+        latched = [str(t) for t in self.get_parameter('latched_topics').value if str(t)]
+        self.writer = BagWriter(path, str(self.get_parameter('storage').value),
+                                latched=latched)
         qos = QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=QUEUE_DEPTH,
                          reliability=ReliabilityPolicy.RELIABLE,
                          durability=DurabilityPolicy.VOLATILE)
+        # Transient-local only where the publisher offers it: a transient-local subscription
+        # does not match a volatile publisher.
+        latched_qos = QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=1,
+                                 reliability=ReliabilityPolicy.RELIABLE,
+                                 durability=DurabilityPolicy.TRANSIENT_LOCAL)
         for topic, msgtype, cls in zip(topics, types, classes):
-            self.create_subscription(cls, topic, self._callback(topic, msgtype), qos, raw=True)
+            self.create_subscription(cls, topic, self._callback(topic, msgtype),
+                                     latched_qos if topic in latched else qos, raw=True)
         self.get_logger().info(f'recording {topics} to {path}')
 
     def _callback(self, topic: str, msgtype: str) -> Any:

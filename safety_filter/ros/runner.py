@@ -9,12 +9,21 @@ parameter files from ``config/``, certificate and remappings:
 * :func:`hardware_graph`: the filter alone, between the user's command source and driver
   (``launch/hardware.launch.py``).
 
-:func:`run_graph` starts a graph either in this process (every node in one
-``MultiThreadedExecutor``) or as one subprocess per node, configures and activates the
-lifecycle filter node itself (in-process through its transitions, across processes through
-its ``change_state`` service; the hardware graph's filter only configured, left inactive,
-unless asked to activate at start), and stops everything cleanly on SIGINT/SIGTERM, when the
-simulated arm has run its ``duration_s``, or after a wall-clock duration.
+Both graphs take a ``namespace``: every node of the graph runs in it (its relative topics,
+``~/`` topics and services with it; ``/diagnostics`` and ``/clock`` stay global), as the
+launch files' ``namespace`` argument does. Parameter files apply there too: the config files
+are keyed ``/**/<node name>`` and certificates ``/**``.
+
+:func:`run_graph` starts a graph either in this process (every node in one executor) or as
+one subprocess per node, configures and activates the lifecycle filter node itself
+(in-process through its transitions, across processes through its ``change_state``
+service; the hardware graph's filter only configured, left inactive, unless asked to
+activate at start), and stops everything cleanly on SIGINT/SIGTERM, when the simulated arm
+has run its ``duration_s``, or after a wall-clock duration. What went wrong while it ran is
+in its :class:`GraphResult`: nodes that failed (an exception out of a callback in this
+process, a node process that exited early or with an error code) and, for a graph with a
+simulated arm, the largest excursion past each of the arm's limits
+(:attr:`GraphResult.broken_limits`).
 
 The unfiltered baseline of the demo (the operator's torque sent straight to the simulated
 arm) is **not** a mode of the filter node and cannot be asked of it: it is a graph without
@@ -25,6 +34,7 @@ the filter, built only by :func:`sim_demo_graph` around the simulated arm (its
 from __future__ import annotations
 
 import importlib
+import json
 import os
 import signal
 import subprocess
@@ -52,6 +62,9 @@ HARDWARE_COMMAND_TOPIC = 'effort_command'
 # A sim graph runs on a random ROS domain in this range, discovery on this machine only
 # (as the demo does), unless given a domain.
 SIM_DOMAIN_RANGE = (150, 199)
+# An excursion past a limit of the simulated arm larger than this counts as a broken limit
+# (the demo report's tolerance, safety_filter.demo_report.VIOLATION_TOLERANCE).
+LIMIT_TOLERANCE = 1e-6
 
 # Executable (console script) -> (module, node class) of this package's nodes.
 NODES = {
@@ -88,6 +101,28 @@ def config_file(name: str) -> Path:
                      f'{", ".join(str(c.parent) for c in candidates)})')
 
 
+def check_namespace(namespace: str) -> str:
+    """``namespace`` as a ROS namespace: ``''`` (the root) or ``'/a/b'``.
+
+    A leading ``/`` is added; tokens are letters, digits and underscores, not starting with
+    a digit (the ROS 2 name rules).
+
+    Raises:
+        GraphError: any other text, with the rule it breaks.
+    """
+    from safety_filter.cli_options import ros_namespace
+
+    try:
+        return ros_namespace(namespace)
+    except ValueError as err:
+        raise GraphError(str(err)) from err
+
+
+def in_namespace(namespace: str, topic: str) -> str:
+    """The absolute topic ``topic`` (``'/joint_states'``) inside ``namespace``."""
+    return (namespace.rstrip('/') + topic) if namespace else topic
+
+
 @dataclass
 class NodeSpec:
     """One node of a graph, as a launch file's ``Node(...)`` describes it.
@@ -101,6 +136,7 @@ class NodeSpec:
         arguments: extra command-line arguments of the executable (subprocess only).
         activate: a lifecycle node is configured and activated at start (True) or only
             configured, left inactive for ``ros2 lifecycle set <name> activate`` (False).
+        namespace: the node's namespace (``''``: the root).
     """
 
     executable: str
@@ -110,6 +146,17 @@ class NodeSpec:
     remappings: list[tuple[str, str]] = field(default_factory=list)
     arguments: list[str] = field(default_factory=list)
     activate: bool = True
+    namespace: str = ''
+
+    @property
+    def fully_qualified_name(self) -> str:
+        """``'/<namespace>/<name>'``, e.g. ``'/arm1/safety_filter'``."""
+        return f'{self.namespace.rstrip("/")}/{self.name}'
+
+    @property
+    def logger_name(self) -> str:
+        """The node's logger name (rclpy joins namespace and name with dots)."""
+        return '.'.join([*self.namespace.strip('/').split('/'), self.name]).lstrip('.')
 
     @property
     def transitions(self) -> tuple[str, ...]:
@@ -131,6 +178,8 @@ class NodeSpec:
                       ) -> list[str]:
         """``--ros-args ...`` for this node: name, parameter files, overrides, remappings."""
         args = ['--ros-args', '-r', f'__node:={self.name}']
+        if self.namespace:
+            args += ['-r', f'__ns:={self.namespace}']
         for path in self.parameter_files:
             args += ['--params-file', str(path)]
         if overrides_file is not None:
@@ -138,16 +187,17 @@ class NodeSpec:
         for source, target in self.remappings:
             args += ['-r', f'{source}:={target}']
         if log_level:
-            args += ['--log-level', f'{self.name}:={log_level}']
+            args += ['--log-level', f'{self.logger_name}:={log_level}']
         return args
 
 
 def _write_overrides(spec: NodeSpec, folder: Path) -> Path | None:
     if not spec.parameters:
         return None
-    path = folder / f'{spec.name}_overrides.yaml'
+    path = folder / f'{spec.fully_qualified_name.strip("/").replace("/", "_")}_overrides.yaml'
     plain = {k: (list(v) if isinstance(v, tuple) else v) for k, v in spec.parameters.items()}
-    path.write_text(yaml.safe_dump({spec.name: {'ros__parameters': plain}}), encoding='utf-8')
+    # Keyed '/**': the file goes to this one node, in whatever namespace it runs.
+    path.write_text(yaml.safe_dump({'/**': {'ros__parameters': plain}}), encoding='utf-8')
     return path
 
 
@@ -157,7 +207,8 @@ def sim_demo_graph(*, urdf_path: str | Path, limits_path: str | Path,
                    duration_s: float = 0.0, seed: int | None = None,
                    payload_mass: float | None = None, bag_path: str | Path | None = None,
                    storage: str = 'mcap', config: str | Path | None = None,
-                   control_rate_hz: float | None = None) -> list[NodeSpec]:
+                   control_rate_hz: float | None = None, namespace: str = ''
+                   ) -> list[NodeSpec]:
     """The simulated demo graph (``launch/sim_demo.launch.py``), optionally recorded.
 
     Args:
@@ -174,7 +225,12 @@ def sim_demo_graph(*, urdf_path: str | Path, limits_path: str | Path,
         storage: bag storage, ``'mcap'`` or ``'sqlite3'``.
         config: the parameter file (default ``config/sim_demo.yaml``).
         control_rate_hz: the arm's control rate (default: the certificate's).
+        namespace: every node's namespace (the recorder records the graph's topics in it).
+
+    Raises:
+        GraphError: an invalid namespace, or a filtered graph without a certificate.
     """
+    namespace = check_namespace(namespace)
     config = Path(config) if config is not None else config_file(SIM_DEMO_CONFIG)
     robot = {'urdf_path': str(urdf_path), 'limits_path': str(limits_path)}
     if control_rate_hz is None and certificate is not None:
@@ -192,22 +248,28 @@ def sim_demo_graph(*, urdf_path: str | Path, limits_path: str | Path,
             parameters['payload_mass'] = float(payload_mass)
     if seed is not None:
         operator_parameters['seed'] = int(seed)
-    sim = NodeSpec('sim_arm', 'sim_arm', [config], sim_parameters)
+    sim = NodeSpec('sim_arm', 'sim_arm', [config], sim_parameters, namespace=namespace)
     operator = NodeSpec('careless_operator', 'careless_operator', [config],
-                        operator_parameters)
+                        operator_parameters, namespace=namespace)
     specs = []
     if bag_path is not None:
-        topics = [bags.TOPIC_JOINT_STATES, bags.TOPIC_NOMINAL, bags.TOPIC_COMMAND,
-                  bags.TOPIC_DIAGNOSTICS, bags.TOPIC_STATUS]
+        # The graph's topics as they are named in the namespace (/diagnostics is global).
+        topics = [bags.TOPIC_DIAGNOSTICS] + [in_namespace(namespace, topic) for topic in (
+            bags.TOPIC_JOINT_STATES, bags.TOPIC_NOMINAL, bags.TOPIC_COMMAND, bags.TOPIC_STATUS,
+            bags.TOPIC_STATUS_FIELDS)]
         specs.append(NodeSpec('bag_recorder', 'bag_recorder', [], {
             'bag_path': str(bag_path), 'storage': storage, 'topics': topics,
-            'use_sim_time': True}))
+            'types': [bags.TOPIC_TYPES[topic] for topic in (
+                bags.TOPIC_DIAGNOSTICS, bags.TOPIC_JOINT_STATES, bags.TOPIC_NOMINAL,
+                bags.TOPIC_COMMAND, bags.TOPIC_STATUS, bags.TOPIC_STATUS_FIELDS)],
+            'latched_topics': [in_namespace(namespace, t) for t in bags.LATCHED_TOPICS],
+            'use_sim_time': True}, namespace=namespace))
     if filtered:
         if certificate is None:
             raise GraphError('the filtered graph needs a certificate')
         specs.append(NodeSpec('filter_node', FILTER_NODE_NAME, [Path(certificate), config],
                               filter_parameters,
-                              [('filtered_torque', COMMAND_TOPIC)]))
+                              [('filtered_torque', COMMAND_TOPIC)], namespace=namespace))
     else:
         # The unfiltered baseline: the arm takes the operator's torque directly.
         sim.remappings.append((COMMAND_TOPIC, 'nominal_torque'))
@@ -215,18 +277,19 @@ def sim_demo_graph(*, urdf_path: str | Path, limits_path: str | Path,
     return specs
 
 
-def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
+def hardware_graph(*, certificate: str | Path, urdf_path: str | Path = '',
                    limits_path: str | Path = '', command_topic: str = HARDWARE_COMMAND_TOPIC,
                    joint_states_topic: str = 'joint_states',
                    nominal_topic: str = 'nominal_torque', gravity_convention: str = 'full',
                    payload_mass: float = -1.0, watchdog_rate_hz: float = 0.0,
-                   config: str | Path | None = None, activate_at_start: bool = False
+                   config: str | Path | None = None, activate_at_start: bool = False,
+                   namespace: str = '', robot_description_topic: str = ''
                    ) -> list[NodeSpec]:
     """The filter alone (``launch/hardware.launch.py``), between a command source and a driver.
 
     Args:
         certificate: the certificate parameter file.
-        urdf_path, limits_path: the robot.
+        urdf_path, limits_path: the robot (``urdf_path`` a URDF or ``.xacro`` file).
         command_topic: the driver's effort-command topic (``filtered_torque`` goes there).
         joint_states_topic, nominal_topic: where the filter reads states and nominal torques.
         gravity_convention: ``'full'`` or ``'driver_compensated'``.
@@ -235,16 +298,31 @@ def hardware_graph(*, certificate: str | Path, urdf_path: str | Path,
             0: the certificate's control rate).
         config: operational parameters (default ``config/filter.yaml``).
         activate_at_start: activate the filter at start. Default False: it is configured and
-            stays inactive (no torque published) until ``ros2 lifecycle set /safety_filter
-            activate``: a real arm's driver gets commands only when the user says so.
+            stays inactive (no torque published) until ``ros2 lifecycle set
+            /<namespace>/safety_filter activate``: a real arm's driver gets commands only
+            when the user says so.
+        namespace: the filter's namespace (its relative topics resolve in it).
+        robot_description_topic: read the URDF from this topic (``std_msgs/String``,
+            transient-local, as robot_state_publisher publishes ``robot_description``)
+            instead of ``urdf_path``.
+
+    Raises:
+        GraphError: an invalid namespace, or not exactly one of ``urdf_path`` and
+            ``robot_description_topic``.
     """
+    namespace = check_namespace(namespace)
+    if bool(str(urdf_path)) == bool(robot_description_topic):
+        raise GraphError('give the robot as urdf_path or robot_description_topic (one of '
+                         'them)')
     config = Path(config) if config is not None else config_file(FILTER_CONFIG)
     return [NodeSpec('filter_node', FILTER_NODE_NAME, [Path(certificate), config], {
         'urdf_path': str(urdf_path), 'limits_path': str(limits_path),
+        'robot_description_topic': str(robot_description_topic),
         'gravity_convention': gravity_convention, 'payload_mass': float(payload_mass),
         'watchdog_rate_hz': float(watchdog_rate_hz)}, [
         ('filtered_torque', command_topic), ('joint_states', joint_states_topic),
-        ('nominal_torque', nominal_topic)], activate=bool(activate_at_start))]
+        ('nominal_torque', nominal_topic)], activate=bool(activate_at_start),
+        namespace=namespace)]
 
 
 # ---------------------------------------------------------------------- running
@@ -259,9 +337,16 @@ class GraphResult:
         interrupted: stopped by SIGINT/SIGTERM.
         exit_codes: per node name, the subprocess's exit code (subprocess mode only).
         counts: per topic, messages the recorder wrote (when there was one).
-        sim_stats: the simulated driver's counters (in-process mode only): ``ticks``,
-            ``stale_ticks`` (zero torque: stale command), ``invalid_commands``,
-            ``lockstep_timeouts`` (ticks with the held command: no answer in time).
+        sim_stats: the simulated driver's counters: ``ticks``, ``stale_ticks`` (zero
+            torque: stale command), ``invalid_commands``, ``lockstep_timeouts`` (ticks with
+            the held command: no answer in time).
+        failures: what went wrong with the nodes while the graph ran, one line each (an
+            exception out of a node's callback, a node process that exited early, with an
+            error code, or had to be killed); empty when every node ran and stopped cleanly.
+        excursions: with a simulated arm, its largest excursion past each limit since its
+            release, ``{'position'|'velocity'|'torque': [per joint]}`` (0: kept; torque:
+            the commands it was sent), in the order of ``joint_names``.
+        joint_names: the simulated arm's joints.
     """
 
     wall_s: float
@@ -271,6 +356,28 @@ class GraphResult:
     exit_codes: dict[str, int | None] = field(default_factory=dict)
     counts: dict[str, int] = field(default_factory=dict)
     sim_stats: dict[str, int] = field(default_factory=dict)
+    failures: list[str] = field(default_factory=list)
+    excursions: dict[str, list[float]] = field(default_factory=dict)
+    joint_names: list[str] = field(default_factory=list)
+
+    @property
+    def broken_limits(self) -> list[str]:
+        """Each limit of the simulated arm broken by more than :data:`LIMIT_TOLERANCE`, as
+        ``'<joint> <limit> by <excursion>'`` (empty: every limit kept, or no simulated arm)."""
+        broken = []
+        for kind, values in self.excursions.items():
+            for joint, value in zip(self.joint_names, values):
+                if value > LIMIT_TOLERANCE:
+                    broken.append(f'{joint} {kind} by {value:.4g}')
+        return broken
+
+    def _take_sim_report(self, report: dict[str, Any]) -> None:
+        self.sim_stats = {key: int(report[key]) for key in (
+            'ticks', 'stale_ticks', 'invalid_commands', 'lockstep_timeouts')}
+        self.excursions = {kind: [float(x) for x in values]
+                           for kind, values in report['excursions'].items()}
+        self.joint_names = list(report['joint_names'])
+        self.simulated_s = float(report['released_for_s'])
 
 
 class _StopFlag:
@@ -340,18 +447,29 @@ def run_graph(specs: Sequence[NodeSpec], *, processes: bool = False, executor: s
     unknown = [s.executable for s in specs if s.executable not in NODES]
     if unknown:
         raise GraphError(f'unknown executables {unknown}; known: {sorted(NODES)}')
-    names = [s.name for s in specs]
+    names = [s.fully_qualified_name for s in specs]
     if len(set(names)) != len(names):
         raise GraphError(f'node names must be unique, got {names}')
     if executor not in EXECUTORS:
         raise GraphError(f'executor must be one of {EXECUTORS}, got {executor!r}')
     with tempfile.TemporaryDirectory(prefix='safety_filter_graph_') as folder:
-        overrides = {s.name: _write_overrides(s, Path(folder)) for s in specs}
+        if processes:  # the simulated arm reports its counters and excursions in a file
+            specs = [_with_report_path(s, Path(folder)) if s.executable == 'sim_arm' else s
+                     for s in specs]
+        overrides = {s.fully_qualified_name: _write_overrides(s, Path(folder)) for s in specs}
         runner = _run_subprocesses if processes else _run_in_process
         return runner(specs, overrides, executor=executor, duration_s=duration_s,
                       wall_timeout_s=wall_timeout_s, domain_id=domain_id,
                       localhost_only=localhost_only, log_level=log_level,
                       log_dir=Path(log_dir) if log_dir is not None else None)
+
+
+def _with_report_path(spec: NodeSpec, folder: Path) -> NodeSpec:
+    from dataclasses import replace
+
+    name = spec.fully_qualified_name.strip('/').replace('/', '_')
+    return replace(spec, parameters=dict(spec.parameters,
+                                         report_path=str(folder / f'{name}_report.json')))
 
 
 def _has_timed_sim(specs: Sequence[NodeSpec]) -> bool:
@@ -396,20 +514,22 @@ def _run_in_process(specs: Sequence[NodeSpec], overrides: dict[str, Path | None]
         with _StopFlag() as stop:
             for spec in specs:
                 if log_level:
-                    set_logger_level(spec.name, get_logging_severity_from_string(log_level))
+                    set_logger_level(spec.logger_name,
+                                     get_logging_severity_from_string(log_level))
                 cls = getattr(importlib.import_module(spec.module), NODES[spec.executable][1])
                 try:
                     node = cls(spec.name, context=context, use_global_arguments=False,
-                               cli_args=spec.ros_arguments(overrides[spec.name]))
+                               cli_args=spec.ros_arguments(overrides[spec.fully_qualified_name]))
                 except SafetyFilterError as err:
-                    raise GraphError(f'node {spec.name}: {err}') from err
+                    raise GraphError(f'node {spec.fully_qualified_name}: {err}') from err
                 nodes.append(node)
             for spec, node in zip(specs, nodes):
                 if spec.lifecycle:
                     for transition in spec.transitions:
                         outcome = getattr(node, f'trigger_{transition}')()
                         if outcome != TransitionCallbackReturn.SUCCESS:
-                            raise GraphError(f'{spec.name}: {transition} failed (see its log)')
+                            raise GraphError(f'{spec.fully_qualified_name}: {transition} '
+                                             'failed (see its log)')
             sims = [n for s, n in zip(specs, nodes) if s.executable == 'sim_arm']
             timed_sim = _has_timed_sim(specs)
             spinner = make_executor(executor, context)
@@ -421,17 +541,19 @@ def _run_in_process(specs: Sequence[NodeSpec], overrides: dict[str, Path | None]
                     break
                 if _should_stop(start, duration_s, wall_timeout_s, timed_sim):
                     break
-                spinner.spin_once(timeout_sec=0.05)
+                try:
+                    spinner.spin_once(timeout_sec=0.05)
+                except Exception as err:  # noqa: BLE001 - a node's callback raised: stop
+                    # The executor cannot say which node raised; the traceback's last frame
+                    # can.
+                    result.failures.append(f'a node raised {type(err).__name__}: {err} '
+                                           f'({_where(err)}); the graph was stopped')
+                    break
             result.interrupted = stop.raised
             result.wall_s = time.monotonic() - start
             if sims:
-                sim = sims[0]
-                result.simulated_s = sim.released_for_s
+                result._take_sim_report(sims[0].report())
                 result.finished = all(s.finished for s in sims)
-                result.sim_stats = {
-                    'ticks': sim.driver.ticks, 'stale_ticks': sim.driver.stale_ticks,
-                    'invalid_commands': sim.driver.invalid_commands,
-                    'lockstep_timeouts': sim.lockstep_timeouts}
     finally:
         if spinner is not None:
             spinner.shutdown(timeout_sec=1.0)
@@ -449,6 +571,17 @@ def _run_in_process(specs: Sequence[NodeSpec], overrides: dict[str, Path | None]
     return result
 
 
+def _where(err: BaseException) -> str:
+    """``file:line in function`` of the frame that raised ``err``."""
+    import traceback
+
+    frames = traceback.extract_tb(err.__traceback__)
+    if not frames:
+        return 'no traceback'
+    last = frames[-1]
+    return f'{Path(last.filename).name}:{last.lineno} in {last.name}'
+
+
 def _call_lifecycle(node: Any, spinner: Any, name: str, transitions: Sequence[str],
                     timeout_s: float) -> None:
     from lifecycle_msgs.msg import Transition
@@ -456,7 +589,7 @@ def _call_lifecycle(node: Any, spinner: Any, name: str, transitions: Sequence[st
 
     ids = {'configure': Transition.TRANSITION_CONFIGURE,
            'activate': Transition.TRANSITION_ACTIVATE}
-    client = node.create_client(ChangeState, f'/{name}/change_state')
+    client = node.create_client(ChangeState, f'{name}/change_state')
     try:
         if not client.wait_for_service(timeout_sec=timeout_s):
             raise GraphError(f'{name}: no lifecycle service after {timeout_s:g} s')
@@ -471,11 +604,13 @@ def _call_lifecycle(node: Any, spinner: Any, name: str, transitions: Sequence[st
         node.destroy_client(client)
 
 
-def _wait_for_node(node: Any, name: str, process: subprocess.Popen[bytes], timeout_s: float
-                   ) -> None:
+def _wait_for_node(node: Any, spec: NodeSpec, process: subprocess.Popen[bytes],
+                   timeout_s: float) -> None:
+    name = spec.fully_qualified_name
+    wanted = (spec.name, spec.namespace or '/')
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
-        if name in node.get_node_names():
+        if wanted in node.get_node_names_and_namespaces():
             return
         if process.poll() is not None:
             raise GraphError(f'node {name} exited at start (code {process.returncode}); see '
@@ -496,6 +631,7 @@ def _run_subprocesses(specs: Sequence[NodeSpec], overrides: dict[str, Path | Non
     logs: list[Any] = []
     result = GraphResult(wall_s=0.0)
     timed_sim = _has_timed_sim(specs)
+    sims = [s.fully_qualified_name for s in specs if s.executable == 'sim_arm']
     if log_dir is not None:
         log_dir.mkdir(parents=True, exist_ok=True)
     context = _init_context(domain_id, localhost_only)
@@ -507,24 +643,25 @@ def _run_subprocesses(specs: Sequence[NodeSpec], overrides: dict[str, Path | Non
             # One at a time, each once it is up: the recorder hears everything, the arm
             # starts last.
             for spec in specs:
+                name = spec.fully_qualified_name
                 own = [] if spec.lifecycle else ['--executor', executor]
                 command = [sys.executable, '-m', spec.module, *own, *spec.arguments,
-                           *spec.ros_arguments(overrides[spec.name], log_level)]
+                           *spec.ros_arguments(overrides[name], log_level)]
                 output = None
                 if log_dir is not None:
-                    output = open(log_dir / f'{spec.name}.log', 'wb')  # noqa: SIM115
+                    log_name = name.strip('/').replace('/', '_')
+                    output = open(log_dir / f'{log_name}.log', 'wb')  # noqa: SIM115
                     logs.append(output)
-                processes[spec.name] = subprocess.Popen(
+                processes[name] = subprocess.Popen(
                     command, env=env, stdout=output,
                     stderr=subprocess.STDOUT if output is not None else None,
                     start_new_session=True)
-                _wait_for_node(watcher, spec.name, processes[spec.name], 60.0)
+                _wait_for_node(watcher, spec, processes[name], 60.0)
                 if spec.lifecycle:
-                    _call_lifecycle(watcher, spinner, spec.name, spec.transitions, 60.0)
+                    _call_lifecycle(watcher, spinner, name, spec.transitions, 60.0)
                 if stop.raised:
                     break
             start = time.monotonic()
-            sims = [s.name for s in specs if s.executable == 'sim_arm']
             while not stop.raised:
                 exited = [n for n, p in processes.items() if p.poll() is not None]
                 if timed_sim and all(n in exited for n in sims):
@@ -532,8 +669,10 @@ def _run_subprocesses(specs: Sequence[NodeSpec], overrides: dict[str, Path | Non
                     break
                 early = [n for n in exited if n not in sims]
                 if early:
-                    raise GraphError(f'nodes {early} exited early (codes '
-                                     f'{[processes[n].returncode for n in early]})')
+                    # A node gone while the graph runs: stop the rest and say so.
+                    result.failures += [f'{n} exited early (code {processes[n].returncode})'
+                                        for n in early]
+                    break
                 if _should_stop(start, duration_s, wall_timeout_s, timed_sim):
                     break
                 time.sleep(0.05)
@@ -541,16 +680,24 @@ def _run_subprocesses(specs: Sequence[NodeSpec], overrides: dict[str, Path | Non
             result.wall_s = time.monotonic() - start
     finally:
         # Stop in reverse start order: the arm and the operator first, the recorder last.
+        stopped_by_us = set()
         for name in reversed(list(processes)):
             process = processes[name]
             if process.poll() is None:
+                stopped_by_us.add(name)
                 process.send_signal(signal.SIGINT)
                 try:
                     process.wait(timeout=15.0)
                 except subprocess.TimeoutExpired:
                     process.kill()
                     process.wait()
+                    result.failures.append(f'{name} did not stop within 15 s of SIGINT; '
+                                           'killed')
             result.exit_codes[name] = process.returncode
+            early = any(f.startswith(f'{name} exited early') for f in result.failures)
+            if process.returncode not in (0, None) and not early and (
+                    name in stopped_by_us or name in sims):
+                result.failures.append(f'{name} exited with code {process.returncode}')
         for handle in logs:
             handle.close()
         spinner.shutdown(timeout_sec=1.0)
@@ -561,4 +708,8 @@ def _run_subprocesses(specs: Sequence[NodeSpec], overrides: dict[str, Path | Non
             path = Path(spec.parameters['bag_path'])
             if (path / 'metadata.yaml').is_file():
                 result.counts = {t: i.count for t, i in bags.topic_summary(path).items()}
+        if spec.executable == 'sim_arm':
+            report = Path(str(spec.parameters.get('report_path', '')))
+            if report.is_file():
+                result._take_sim_report(json.loads(report.read_text(encoding='utf-8')))
     return result

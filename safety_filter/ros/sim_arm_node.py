@@ -41,6 +41,15 @@ the zero-order hold the certificate's sampled-data margin assumes, however slow 
 released: the node stops publishing and :attr:`SimArmNode.finished` becomes true (the
 executable then exits).
 
+Limits
+------
+The node keeps the largest excursion past the arm's limits since its release
+(:attr:`SimArmNode.excursions`): of the true position and velocity after each tick (no
+noise) and of each valid torque command before the driver saturates it, per joint, in the
+limits' units (0: kept). ``safety-filter run-graph`` turns them into its exit code. With
+``report_path`` set, the node writes them and its counters as JSON to that file when it
+finishes or stops (:meth:`SimArmNode.report`), for a runner in another process.
+
 Parameters (read at start): ``urdf_path``, ``limits_path`` (the robot), ``payload_mass``
 [kg] (negative: the top of the payload range), ``link_mass_scale`` (1: every link mass and
 inertia as in the URDF; the demo uses 1.1 so that the arm is not the filter's model),
@@ -49,13 +58,15 @@ inertia as in the URDF; the demo uses 1.1 so that the arm is not the filter's mo
 ``velocity_noise_std`` [rad/s], ``noise_seed``, ``latency_s``, ``command_timeout_s`` (0.1 s),
 ``gravity_convention`` (``'full'``, or ``'driver_compensated'``: the driver adds ``g(q)`` to
 each command), ``lockstep`` (false), ``lockstep_timeout_s`` (0.1 s), ``publish_clock``
-(false), ``duration_s`` (0: run until stopped).
+(false), ``duration_s`` (0: run until stopped), ``report_path`` ('': no report file).
 """
 
 from __future__ import annotations
 
 import array
+import json
 import math
+import os
 import sys
 import time
 from collections.abc import Sequence
@@ -123,6 +134,8 @@ class SimArmNode(Node):
         declare('publish_clock', False, describe('publish the simulated time on /clock'))
         declare('duration_s', 0.0, describe(
             'stop this long after the arm was released [s, simulated]; 0: never'))
+        declare('report_path', '', describe(
+            'write the counters and limit excursions as JSON here when finished or stopped'))
 
         def value(name: str) -> Any:
             return self.get_parameter(name).value
@@ -162,6 +175,10 @@ class SimArmNode(Node):
             raise SafetyFilterError('lockstep_timeout_s must be positive')
         self.finished = False
         self.lockstep_timeouts = 0
+        self._report_path = str(value('report_path'))
+        n = model.n_joints
+        self.excursions = {'position': np.zeros(n), 'velocity': np.zeros(n),
+                           'torque': np.zeros(n)}
         self._release_time_s: float | None = None
         self._answered = False  # a command arrived since the last publish
         self._published_at = time.monotonic()
@@ -217,6 +234,11 @@ class SimArmNode(Node):
         if not was_released:
             self._release_time_s = self.driver.time_s
             self.get_logger().info('first command received: arm released')
+        # The command as sent, before the driver saturates it: a torque beyond the limits
+        # is a broken limit of the command source (the filter), even though it is clipped.
+        np.maximum(self.excursions['torque'],
+                   np.abs(np.asarray(msg.data, dtype=float)) - self.model.effort_limit,
+                   out=self.excursions['torque'])
         self._answered = True
         if self._lockstep:
             self._tick()
@@ -233,6 +255,14 @@ class SimArmNode(Node):
     def _tick(self) -> None:
         measurement = self.driver.tick()
         self._answered = False
+        if self._release_time_s is not None:
+            model, driver = self.model, self.driver
+            q, v = driver.position, driver.velocity
+            np.maximum(self.excursions['position'], np.maximum(
+                q - model.position_upper, model.position_lower - q),
+                out=self.excursions['position'])
+            np.maximum(self.excursions['velocity'], np.abs(v) - model.velocity_limit,
+                       out=self.excursions['velocity'])
         self._publish_clock()
         msg = JointState()
         sec, nanosec = divmod(self._stamp_ns(measurement.stamp_s), 1_000_000_000)
@@ -259,6 +289,34 @@ class SimArmNode(Node):
             f'ticks, {driver.stale_ticks} at zero torque (stale command), '
             f'{driver.invalid_commands} invalid commands, {self.lockstep_timeouts} lockstep '
             'timeouts')
+        self.write_report()
+
+    def report(self) -> dict[str, Any]:
+        """Counters and limit excursions, JSON-ready: ``joint_names``, ``ticks``,
+        ``stale_ticks``, ``invalid_commands``, ``lockstep_timeouts``, ``released_for_s``,
+        ``finished``, ``excursions`` (``{'position'|'velocity'|'torque': [per joint]}``)."""
+        driver = self.driver
+        return {'joint_names': list(self._names), 'ticks': int(driver.ticks),
+                'stale_ticks': int(driver.stale_ticks),
+                'invalid_commands': int(driver.invalid_commands),
+                'lockstep_timeouts': int(self.lockstep_timeouts),
+                'released_for_s': float(self.released_for_s), 'finished': bool(self.finished),
+                'excursions': {kind: [float(x) for x in values]
+                               for kind, values in self.excursions.items()}}
+
+    def write_report(self) -> None:
+        """Write :meth:`report` to ``report_path`` (if set), replacing the file at once."""
+        if not self._report_path:
+            return
+        temporary = f'{self._report_path}.tmp'
+        with open(temporary, 'w', encoding='utf-8') as handle:
+            json.dump(self.report(), handle)
+        os.replace(temporary, self._report_path)
+
+    def close(self) -> None:
+        """Called by the executable on the way out: the report, if not written yet."""
+        if not self.finished:
+            self.write_report()
 
 
 # ---------------------------------------------------------------------- executable
