@@ -23,7 +23,7 @@ import math
 import numpy as np
 from numba import njit
 
-ALPHA_CODES = {'linear': 0, 'atan': 1, 'tanh': 2, 'cubic': 3}
+ALPHA_CODES = {'linear': 0, 'atan': 1, 'tanh': 2, 'cubic': 3, 'sqrt': 4}
 
 # Flags returned by stage_inputs (bit per problem).
 NONFINITE_Q = 1
@@ -70,6 +70,9 @@ def _alpha(code: int, scale: float, x: float) -> float:
         return scale * math.atan(x / scale)
     if code == 2:
         return scale * math.tanh(x / scale)
+    if code == 4:
+        root = math.sqrt(2.0 * (abs(x) + scale)) - math.sqrt(2.0 * scale)
+        return root if x >= 0.0 else -root
     return x * x * x
 
 
@@ -83,19 +86,25 @@ def _alpha_slope(code: int, scale: float, x: float) -> float:
     if code == 2:
         t = math.tanh(x / scale)
         return 1.0 - t * t
+    if code == 4:
+        return 1.0 / math.sqrt(2.0 * (abs(x) + scale))
     return 3.0 * x * x
 
 
 @njit(**_JIT)
 def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndarray,
                  gamma: np.ndarray, beta: np.ndarray, margin: np.ndarray,
+                 speed_bound: np.ndarray, speed_beta: np.ndarray, accel_bound: np.ndarray,
                  code1: int, scale1: float, code2: int, scale2: float,
                  rows: np.ndarray, smallest: np.ndarray) -> tuple[float, float]:
-    """Barrier rows ``[hp; hn; bp; bn; Ap; An]`` into ``rows`` (6, n) (METHOD 2).
+    """Barrier rows ``[hp; hn; bp; bn; Ap; An; sp; sn]`` into ``rows`` (8, n) (METHOD 2).
 
-    The same formulas, in the same order, as :func:`safety_filter.barriers.evaluate_barriers`.
-    ``smallest[i] = min(hp, hn, bp, bn)``. Returns the smallest of those over all joints and
-    the smallest position margin ``min(hp, hn)``.
+    The same formulas, in the same order, as :func:`safety_filter.barriers.evaluate_barriers`:
+    where ``speed_beta > 0`` the velocity barriers ``sp = vS - v``, ``sn = vS + v`` bound
+    ``Ap`` by ``speed_beta sp - margin`` and ``An`` by ``-speed_beta sn + margin``; elsewhere
+    ``sp = sn = inf``. ``Ap <= accel_bound``, ``An >= -accel_bound`` (inf: no bound).
+    ``smallest[i]`` is the smallest of the joint's barriers. Returns the
+    smallest of those over all joints and the smallest position margin ``min(hp, hn)``.
     """
     worst = math.inf
     deepest = math.inf
@@ -109,14 +118,25 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
             - margin[i]
         an = -beta[i] * _alpha(code2, scale2, bn) - g * _alpha_slope(code1, scale1, hn) * v[i] \
             + margin[i]
+        sp = math.inf
+        sn = math.inf
+        if speed_beta[i] > 0.0:
+            sp = speed_bound[i] - v[i]
+            sn = speed_bound[i] + v[i]
+            ap = min(ap, speed_beta[i] * sp - margin[i])
+            an = max(an, -speed_beta[i] * sn + margin[i])
+        ap = min(ap, accel_bound[i])
+        an = max(an, -accel_bound[i])
         rows[0, i] = hp
         rows[1, i] = hn
         rows[2, i] = bp
         rows[3, i] = bn
         rows[4, i] = ap
         rows[5, i] = an
+        rows[6, i] = sp
+        rows[7, i] = sn
         position = min(hp, hn)
-        least = min(position, min(bp, bn))
+        least = min(min(position, min(bp, bn)), min(sp, sn))
         smallest[i] = least
         worst = min(worst, least)
         deepest = min(deepest, position)
@@ -126,7 +146,9 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
 @njit(**_JIT)
 def stage_and_bound(q: np.ndarray, v: np.ndarray, u: np.ndarray, inputs: np.ndarray,
                     lower: np.ndarray, upper: np.ndarray, gamma: np.ndarray, beta: np.ndarray,
-                    margin: np.ndarray, code1: int, scale1: float, code2: int, scale2: float,
+                    margin: np.ndarray, speed_bound: np.ndarray, speed_beta: np.ndarray,
+                    accel_bound: np.ndarray, code1: int, scale1: float, code2: int,
+                    scale2: float,
                     rows: np.ndarray, smallest: np.ndarray) -> tuple[int, float, float]:
     """:func:`stage_inputs` then, if the inputs are usable, :func:`barrier_rows` on the
     staged ``q, v`` (one call instead of two on the per-step path).
@@ -138,7 +160,8 @@ def stage_and_bound(q: np.ndarray, v: np.ndarray, u: np.ndarray, inputs: np.ndar
     if flags:
         return flags, math.nan, math.nan
     worst, deepest = barrier_rows(inputs[0], inputs[1], lower, upper, gamma, beta, margin,
-                                  code1, scale1, code2, scale2, rows, smallest)
+                                  speed_bound, speed_beta, accel_bound, code1, scale1, code2,
+                                  scale2, rows, smallest)
     return 0, worst, deepest
 
 
@@ -295,14 +318,16 @@ def constructive(acceleration_nominal: np.ndarray, accel_lower: np.ndarray,
     """:func:`safety_filter.filter.constructive_acceleration` for one state (METHOD 4.4).
 
     The side to push back from, where the interval is empty, is the one whose barrier is
-    more negative: ``min(hp, bp) < min(hn, bn)`` (rows as :func:`barrier_rows` writes them).
+    more negative: ``min(hp, bp, sp) < min(hn, bn, sn)`` (rows as :func:`barrier_rows`
+    writes them).
     """
     for i in range(out.shape[0]):
         e = authority[i]
         low = max(accel_lower[i], -e)
         high = min(accel_upper[i], e)
         if low > high:
-            if min(rows[0, i], rows[2, i]) < min(rows[1, i], rows[3, i]):
+            if min(min(rows[0, i], rows[2, i]), rows[6, i]) < \
+                    min(min(rows[1, i], rows[3, i]), rows[7, i]):
                 out[i] = max(high, -e)
             else:
                 out[i] = min(low, e)

@@ -5,6 +5,12 @@ margin ``h`` [rad or m]; ``alpha2`` shapes the ZCBF rate condition
 ``db/dt >= -beta * alpha2(b)``. Each family is odd, strictly increasing and zero at zero.
 A ``scale`` sets where the saturating families (atan, tanh) bend, in the units of their
 argument; the linear and cubic families ignore it.
+
+The ``sqrt`` family ``alpha(x) = sqrt(2 (x + eps)) - sqrt(2 eps)`` (odd extension for
+``x < 0``, ``eps`` = ``scale``) makes the velocity barrier's boundary the braking parabola:
+``alpha' alpha = 1 - sqrt(eps / (x + eps)) < 1``, so ``gamma* = sqrt(e)`` up to that factor
+and ``v <= gamma alpha(h)`` approaches ``v <= sqrt(2 e h)``; ``eps`` bounds its slope
+``alpha'(0) = 1 / sqrt(2 eps)`` (``docs/method.md``, the braking-curve barrier).
 """
 
 from __future__ import annotations
@@ -15,8 +21,8 @@ import numpy as np
 
 from safety_filter.errors import SafetyFilterError
 
-ALPHA_KINDS = ('linear', 'atan', 'tanh', 'cubic')
-ALPHA1_KINDS = ('linear', 'atan', 'tanh')  # concave on [0, inf): the gamma* formula applies
+ALPHA_KINDS = ('linear', 'atan', 'tanh', 'cubic', 'sqrt')
+ALPHA1_KINDS = ('linear', 'atan', 'tanh', 'sqrt')  # concave on [0, inf): the gamma* formula applies
 ALPHA2_KINDS = ('linear', 'cubic', 'atan', 'tanh')
 
 
@@ -44,6 +50,8 @@ class ClassK:
             return s * np.arctan(x / s)
         if self.kind == 'tanh':
             return s * np.tanh(x / s)
+        if self.kind == 'sqrt':
+            return np.sign(x) * (np.sqrt(2.0 * (np.abs(x) + s)) - np.sqrt(2.0 * s))
         return x ** 3
 
     def derivative(self, x: np.ndarray | float) -> np.ndarray:
@@ -56,6 +64,8 @@ class ClassK:
             return 1.0 / (1.0 + (x / s) ** 2)
         if self.kind == 'tanh':
             return 1.0 - np.tanh(x / s) ** 2
+        if self.kind == 'sqrt':
+            return 1.0 / np.sqrt(2.0 * (np.abs(x) + s))
         return 3.0 * x ** 2
 
     def second_derivative(self, x: np.ndarray | float) -> np.ndarray:
@@ -69,6 +79,8 @@ class ClassK:
         if self.kind == 'tanh':
             t = np.tanh(x / s)
             return -2.0 / s * t * (1.0 - t ** 2)
+        if self.kind == 'sqrt':
+            return -np.sign(x) * (2.0 * (np.abs(x) + s)) ** -1.5
         return 6.0 * x
 
     def max_value_times_slope(self, upper: float, samples: int = 4001) -> float:
@@ -79,6 +91,8 @@ class ClassK:
         """
         if self.kind == 'linear':
             return float(upper)
+        if self.kind == 'sqrt':  # 1 - sqrt(eps / (x + eps)), increasing in x
+            return 1.0 - float(np.sqrt(self.scale / (float(upper) + self.scale)))
         grid = np.linspace(0.0, upper, samples)
         product = self.derivative(grid) * self.value(grid)
         k = int(np.argmax(product))
@@ -100,6 +114,8 @@ class ClassK:
         """``sup_{0 < x <= upper} alpha(x) / x``: the slope that the sampled-data cap uses."""
         if self.kind in ('linear', 'atan', 'tanh'):
             return 1.0  # concave through the origin with slope 1 there
+        if self.kind == 'sqrt':
+            return float(self.derivative(0.0))  # concave: the slope at 0, 1 / sqrt(2 eps)
         return float(upper) ** 2  # cubic: x^3 / x = x^2, largest at the upper end
 
     def to_dict(self) -> dict[str, float | str]:

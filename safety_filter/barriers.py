@@ -8,8 +8,16 @@ For each joint (METHOD section 2)::
     An = -beta alpha2(bn) - gamma alpha1'(hn) v + margin   lower acceleration bound
 
 so that ``An <= a <= Ap`` keeps ``db/dt >= -beta alpha2(b)`` with ``margin`` [rad/s^2] to
-spare, which the sampled-data design reserves for the drift over one hold period. The safe
-set S is where all four of hp, hn, bp, bn are non-negative.
+spare, which the sampled-data design reserves for the drift over one hold period.
+
+With a velocity bound ``vS`` and rate ``beta_v > 0`` (certificates that carry them), the
+velocity box has barriers of its own, first-order ZCBFs on ``sp = vS - v`` and
+``sn = vS + v``::
+
+    Ap <- min(Ap, beta_v sp - margin),   An <- max(An, -beta_v sn + margin)
+
+The safe set S is where every barrier (hp, hn, bp, bn and, if present, sp, sn) is
+non-negative.
 """
 
 from __future__ import annotations
@@ -31,12 +39,15 @@ class BarrierState:
     barrier_lower: np.ndarray  # bn
     accel_upper: np.ndarray  # Ap [rad/s^2 or m/s^2]
     accel_lower: np.ndarray  # An
+    speed_upper: np.ndarray | float = np.inf  # sp = vS - v (inf without a velocity barrier)
+    speed_lower: np.ndarray | float = np.inf  # sn = vS + v
 
     @property
     def smallest(self) -> np.ndarray:
-        """Smallest of the four barrier values per joint (negative: outside S)."""
-        return np.minimum(np.minimum(self.margin_upper, self.margin_lower),
-                          np.minimum(self.barrier_upper, self.barrier_lower))
+        """Smallest barrier value per joint (negative: outside S)."""
+        return np.minimum(np.minimum(np.minimum(self.margin_upper, self.margin_lower),
+                                     np.minimum(self.barrier_upper, self.barrier_lower)),
+                          np.minimum(self.speed_upper, self.speed_lower))
 
 
 def evaluate_barriers(
@@ -49,15 +60,51 @@ def evaluate_barriers(
     alpha1: ClassK,
     alpha2: ClassK,
     accel_margin: np.ndarray | float = 0.0,
+    speed_bound: np.ndarray | None = None,
+    speed_beta: np.ndarray | None = None,
+    accel_bound: np.ndarray | None = None,
 ) -> BarrierState:
-    """Barrier values and acceleration bounds; all arrays broadcast (batch allowed)."""
+    """Barrier values and acceleration bounds; all arrays broadcast (batch allowed).
+
+    ``speed_bound`` (vS) and ``speed_beta`` (beta_v) add the velocity barriers on the joints
+    where ``speed_beta > 0`` (module docstring); ``accel_bound`` keeps ``|a|`` within it.
+    """
     hp = upper - q
     hn = q - lower
     bp = gamma * alpha1.value(hp) - v
     bn = gamma * alpha1.value(hn) + v
     ap = beta * alpha2.value(bp) - gamma * alpha1.derivative(hp) * v - accel_margin
     an = -beta * alpha2.value(bn) - gamma * alpha1.derivative(hn) * v + accel_margin
-    return BarrierState(hp, hn, bp, bn, ap, an)
+    if accel_bound is not None:
+        ap = np.minimum(ap, accel_bound)
+        an = np.maximum(an, -np.asarray(accel_bound))
+    if speed_bound is None or speed_beta is None:
+        return BarrierState(hp, hn, bp, bn, ap, an)
+    active = np.asarray(speed_beta) > 0.0
+    sp = speed_bound - v
+    sn = speed_bound + v
+    ap = np.where(active, np.minimum(ap, speed_beta * sp - accel_margin), ap)
+    an = np.where(active, np.maximum(an, -speed_beta * sn + accel_margin), an)
+    if accel_bound is not None:  # (after the velocity rows, as the step's kernel does)
+        ap = np.minimum(ap, accel_bound)
+        an = np.maximum(an, -np.asarray(accel_bound))
+    return BarrierState(hp, hn, bp, bn, ap, an, np.where(active, sp, np.inf),
+                        np.where(active, sn, np.inf))
+
+
+def safe_velocity_interval(q: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                           gamma: np.ndarray, alpha1: ClassK,
+                           speed_bound: np.ndarray | None = None,
+                           speed_beta: np.ndarray | None = None
+                           ) -> tuple[np.ndarray, np.ndarray]:
+    """The velocities of S at positions ``q`` (inside the limits): ``(low, high)`` with
+    ``bp, bn >= 0`` and, on joints with velocity barriers, ``|v| <= vS``."""
+    high = gamma * alpha1.value(upper - q)
+    low = -gamma * alpha1.value(q - lower)
+    if speed_bound is not None and speed_beta is not None:
+        box = np.where(np.asarray(speed_beta) > 0.0, speed_bound, np.inf)
+        high, low = np.minimum(high, box), np.maximum(low, -box)
+    return low, high
 
 
 def return_time_bound(barrier: np.ndarray, beta: np.ndarray, margin: np.ndarray,
@@ -84,12 +131,15 @@ def return_time_bound(barrier: np.ndarray, beta: np.ndarray, margin: np.ndarray,
 
 
 def safe_set_area(position_range: float, gamma: float, alpha1: ClassK,
-                  samples: int = 4001) -> float:
+                  speed_bound: float | None = None, samples: int = 4001) -> float:
     """Area of a joint's slice of S in its (q, v) plane [rad^2/s or m^2/s]:
-    ``integral_0^r gamma (alpha1(r - x) + alpha1(x)) dx`` (``gamma r^2`` for the linear
-    family)."""
+    ``integral_0^r min(gamma alpha1(r - x), vS) + min(gamma alpha1(x), vS) dx`` with
+    ``vS = speed_bound`` when S has velocity barriers (``gamma r^2`` for the linear family
+    without them)."""
     x = np.linspace(0.0, float(position_range), samples)
-    width = gamma * (alpha1.value(position_range - x) + alpha1.value(x))
+    cap = np.inf if speed_bound is None else float(speed_bound)
+    width = (np.minimum(gamma * alpha1.value(position_range - x), cap)
+             + np.minimum(gamma * alpha1.value(x), cap))
     return float(np.trapezoid(width, x))
 
 

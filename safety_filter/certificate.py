@@ -78,8 +78,10 @@ class Certificate:
     Attributes (units: rad, rad/s, rad/s^2, N m; m, m/s, m/s^2, N for prismatic joints):
         joint_names: the chain's joints, base to tip.
         position_lower, position_upper, velocity_limit, effort_limit: the model's limits.
-        velocity_bound: certified velocity box; the velocity lemma bound
-            ``gamma * alpha1(range)`` is inside it and inside ``velocity_limit``.
+        velocity_bound: certified velocity box vS, inside ``velocity_limit``. With
+            ``velocity_beta`` the filter keeps it by velocity barriers of its own; without
+            (older certificates) the velocity lemma bound ``gamma * alpha1(range)`` is inside
+            it.
         gamma, beta: the gains the filter uses; gamma_star, beta_star the certified bounds
             (``gamma <= gamma_star``, ``beta >= beta_star``); beta_floor, beta_cap the
             practical range for beta (METHOD 4.3).
@@ -93,6 +95,9 @@ class Certificate:
         model_hash: content hash of the model; package_version, created: provenance.
         settings: sampling and refinement settings of the bounds; falsifier: its summary.
         certified: whether every check passed; reasons: per-joint findings when not.
+        velocity_beta: rate of the velocity barriers ``vS -+ v >= 0`` [1/s] per joint (0:
+            none; ``docs/method.md``).
+        acceleration_bound: the filter keeps ``|a|`` within it [rad/s^2] (inf: no bound).
     """
 
     joint_names: list[str]
@@ -125,9 +130,24 @@ class Certificate:
     falsifier: dict[str, Any] = field(default_factory=dict)
     certified: bool = True
     reasons: list[str] = field(default_factory=list)
+    velocity_beta: np.ndarray | None = None
+    acceleration_bound: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         n = len(self.joint_names)
+        bound = np.full(n, np.inf) if self.acceleration_bound is None else np.array(
+            self.acceleration_bound, dtype=float).reshape(-1)
+        if bound.shape != (n,) or np.any(np.isnan(bound)) or np.any(bound <= 0.0):
+            raise CertificateError(f'acceleration_bound must have {n} positive entries')
+        bound.flags.writeable = False
+        self.acceleration_bound = bound
+        speed_beta = np.zeros(n) if self.velocity_beta is None else np.array(
+            self.velocity_beta, dtype=float).reshape(-1)
+        if speed_beta.shape != (n,) or not np.all(np.isfinite(speed_beta)) \
+                or np.any(speed_beta < 0.0):
+            raise CertificateError(f'velocity_beta must have {n} finite non-negative entries')
+        speed_beta.flags.writeable = False
+        self.velocity_beta = speed_beta
         for name in _VECTOR_FIELDS:
             array = np.array(getattr(self, name), dtype=float).reshape(-1)
             if array.shape != (n,):
@@ -221,8 +241,8 @@ class Certificate:
         gravity), which the certificate records only through its hash.
         """
         no_limits = getattr(model, 'limits_source', '') is None
-        limits_hint = ('the model was loaded WITHOUT a limits file (give the one the '
-                       'certificate was made with: --limits / limits_path)' if no_limits
+        limits_hint = ('no limits file was given: give the one the certificate was made '
+                       'with (--limits / limits_path)' if no_limits
                        else 'give the limits file the certificate was made with')
         names, recorded = list(model.joint_names), list(self.joint_names)
         if names != recorded:
@@ -265,18 +285,43 @@ class Certificate:
                 _rounded_record(model.uncertainty.record()) != \
                 _rounded_record(recorded_uncertainty):
             differences.append('the declared uncertainty (the uncertainty section)')
+        if differences and no_limits:
+            return ('no limits file was given, and the values of the URDF differ from the '
+                    f'certified ones: {"; ".join(differences)}. Give the limits file the '
+                    'certificate was made with (--limits / limits_path)')
         if differences:
-            hint = limits_hint[0].upper() + limits_hint[1:]
-            return (f'the limits file differs: {"; ".join(differences)}. {hint}, or certify '
-                    'again for these limits')
+            return (f'the limits file differs: {"; ".join(differences)}. Give the limits file '
+                    'the certificate was made with, or certify again for these limits')
         return ('the URDF differs (kinematics, masses, inertias or gravity): the joints, '
                 'limits, friction, payload and uncertainty agree with the certificate. Use '
                 'the URDF the certificate was made with, or certify this one again')
 
     # ------------------------------------------------------------------ files
+    def safe_velocity_interval(self, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The velocities of the safe set S at positions ``q``: ``(low, high)`` per joint."""
+        from safety_filter.barriers import safe_velocity_interval
+
+        return safe_velocity_interval(np.asarray(q, dtype=float), self.position_lower,
+                                      self.position_upper, self.gamma, self.alpha1,
+                                      self.velocity_bound, self.velocity_beta)
+
+    @property
+    def has_acceleration_bound(self) -> bool:
+        """Whether the filter bounds the joint accelerations."""
+        return bool(np.all(np.isfinite(self.acceleration_bound)))
+
+    @property
+    def has_velocity_barriers(self) -> bool:
+        """Whether the filter keeps the velocity box by barriers of its own."""
+        return bool(np.any(self.velocity_beta > 0.0))
+
     def _plain(self) -> dict[str, Any]:
         plain: dict[str, Any] = {}
         for item in fields(self):
+            if item.name == 'velocity_beta' and not self.has_velocity_barriers:
+                continue  # certificates without velocity barriers keep their ids
+            if item.name == 'acceleration_bound' and not self.has_acceleration_bound:
+                continue
             value = getattr(self, item.name)
             if isinstance(value, np.ndarray):
                 value = [float(x) for x in value]
@@ -305,6 +350,10 @@ class Certificate:
         params['settings_json'] = json.dumps(self.settings, sort_keys=True)
         params['falsifier_json'] = json.dumps(self.falsifier, sort_keys=True)
         params['reasons'] = list(self.reasons) or ['']
+        if self.has_velocity_barriers:
+            params['velocity_beta'] = plain['velocity_beta']
+        if self.has_acceleration_bound:
+            params['acceleration_bound'] = plain['acceleration_bound']
         params['certificate_id'] = self.certificate_id
         return params
 
@@ -331,6 +380,10 @@ class Certificate:
             kwargs['settings'] = json.loads(params.get('settings_json', '{}'))
             kwargs['falsifier'] = json.loads(params.get('falsifier_json', '{}'))
             kwargs['reasons'] = [str(r) for r in params.get('reasons', []) if str(r)]
+            if params.get('velocity_beta') is not None:
+                kwargs['velocity_beta'] = [float(x) for x in params['velocity_beta']]
+            if params.get('acceleration_bound') is not None:
+                kwargs['acceleration_bound'] = [float(x) for x in params['acceleration_bound']]
         except KeyError as err:
             raise CertificateError(f'the certificate lacks the entry {err.args[0]!r}') from err
         except (TypeError, ValueError) as err:

@@ -31,6 +31,7 @@ from scipy.optimize import linprog, minimize
 
 from safety_filter._version import __version__
 from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
+from safety_filter.barriers import braking_set_area, safe_set_area
 from safety_filter.bounds import BoundSettings, DynamicsBounds, estimate_bounds
 from safety_filter.certificate import DEFAULT_OBSERVER_PERIODS, Certificate
 from safety_filter.errors import SafetyFilterError
@@ -39,6 +40,14 @@ from safety_filter.sampling import Gains, estimate_sampling_margin
 from safety_filter.uncertainty import DisturbanceBound, disturbance_bound, payload_error
 
 ProgressCallback = Callable[[str, float], None]
+LEMMA_SUFFIX = ':lemma'
+
+
+def _split_family(name: str) -> tuple[str, bool]:
+    """``(alpha1 kind, velocity barriers)`` of a family name (``'linear:lemma'``: none)."""
+    if name.endswith(LEMMA_SUFFIX):
+        return name[:-len(LEMMA_SUFFIX)], False
+    return name, True
 _BETA_MIN_MARGIN = 1.02  # beta may sit at the cap if that is still 2 % above beta*
 
 
@@ -47,8 +56,23 @@ class CertifySettings:
     """Choices and margins of the certification (all recorded in the certificate).
 
     Attributes:
-        alpha1, alpha2: class-K families (alpha1: linear, atan, tanh; alpha2: linear,
-            cubic, atan, tanh).
+        alpha1, alpha2: class-K families (alpha1: linear, atan, tanh, sqrt; alpha2: linear,
+            cubic, atan, tanh). ``alpha1 = None`` (the default) tries each of ``families``
+            and keeps the one whose safe set is largest among those that certify.
+        families: the alpha1 families tried when ``alpha1`` is None; a family named with
+            the suffix ``:lemma`` keeps the velocity box by the velocity lemma (no velocity
+            barriers), the others by velocity barriers of their own.
+        velocity_barrier: for an explicit ``alpha1``: give the velocity box barriers of its
+            own (then gamma is not held by the velocity lemma and S reaches the braking
+            curve); False: the lemma.
+        per_joint_envelopes: search each joint's velocity bound, not only a common scale.
+        braking_slope_share: the automatic sqrt family's eps keeps the drift of its slope
+            term over one hold at about this share of the authority.
+        braking_distance_share: authority is not spent beyond what brakes a joint from its
+            rated speed within this share of its range (``useful_authority``).
+        acceleration_bound_factor: the filter keeps each joint's acceleration within this
+            many times its authority (0: no bound); the sampled-data margin then covers
+            only accelerations within it.
         gamma_margin: ``gamma <= gamma_margin * gamma*`` (< 1).
         beta_margin: ``beta >= beta_margin * beta*`` (> 1).
         beta_sampling_limit: cap ``beta * max(alpha2(b)/b) * T_hold <= beta_sampling_limit``.
@@ -69,8 +93,14 @@ class CertifySettings:
             joint's torque limit (recorded per joint; the filter uses them).
     """
 
-    alpha1: ClassK = ClassK('linear')
+    alpha1: ClassK | None = None
     alpha2: ClassK = ClassK('linear')
+    families: tuple[str, ...] = ('sqrt', 'linear', 'linear' + LEMMA_SUFFIX)
+    velocity_barrier: bool = True
+    per_joint_envelopes: bool = True
+    braking_slope_share: float = 0.1
+    braking_distance_share: float = 0.02
+    acceleration_bound_factor: float = 2.0
     gamma_margin: float = 0.9
     beta_margin: float = 1.2
     beta_sampling_limit: float = 0.1
@@ -88,8 +118,13 @@ class CertifySettings:
     observer_noise_share: float = 0.01
 
     def __post_init__(self) -> None:
-        if self.alpha1.kind not in ALPHA1_KINDS:
+        if self.alpha1 is not None and self.alpha1.kind not in ALPHA1_KINDS:
             raise SafetyFilterError(f'alpha1 must be one of {ALPHA1_KINDS}')
+        if not self.families or any(_split_family(kind)[0] not in ALPHA1_KINDS
+                                    for kind in self.families):
+            raise SafetyFilterError(f'families must be a non-empty choice of {ALPHA1_KINDS}')
+        if not 0.0 < self.braking_slope_share <= 1.0:
+            raise SafetyFilterError('braking_slope_share must be in (0, 1]')
         if self.alpha2.kind not in ALPHA2_KINDS:
             raise SafetyFilterError(f'alpha2 must be one of {ALPHA2_KINDS}')
         if not 0.0 < self.gamma_margin < 1.0:
@@ -113,7 +148,8 @@ class CertifySettings:
     def record(self) -> dict[str, Any]:
         """Plain form for the certificate's provenance."""
         plain = asdict(self)
-        plain['alpha1'] = self.alpha1.to_dict()
+        plain['alpha1'] = None if self.alpha1 is None else self.alpha1.to_dict()
+        plain['families'] = list(self.families)
         plain['alpha2'] = self.alpha2.to_dict()
         return plain
 
@@ -137,30 +173,45 @@ class CertificationOutcome:
 
 # ---------------------------------------------------------------------- authorities
 def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.ndarray,
-                       weights: np.ndarray) -> np.ndarray | None:
+                       weights: np.ndarray, cap: np.ndarray | None = None
+                       ) -> np.ndarray | None:
     """Acceleration authority from the row-sum condition (METHOD 4.2), or None.
 
     Solves ``max t`` s.t. ``Mbar e + hbar <= umax``, ``e >= t w``, then, with ``t`` fixed at
     its optimum, spends the remaining slack: ``max sum e_i / w_i``. Every ``a`` with
     ``|a_i| <= e_i`` then maps to a torque inside the box at every state of the boxes.
+    With a ``cap``, a joint whose share ``t w_i`` would exceed its cap is held at the cap
+    and the others share again (authority a joint has no use for goes to the others); the
+    second phase keeps every ``e_i`` at most its cap.
     """
     n = len(effort)
     room = effort - bias_max
     if np.any(room <= 0.0):
         return None
-    # Variables (e_1..e_n, t). Phase 1: maximise t.
-    a_ub = np.vstack([np.hstack([mass_max, np.zeros((n, 1))]),
-                      np.hstack([-np.eye(n), weights[:, None]])])
-    b_ub = np.concatenate([room, np.zeros(n)])
-    c = np.zeros(n + 1)
-    c[-1] = -1.0
-    first = linprog(c, A_ub=a_ub, b_ub=b_ub, bounds=[(0, None)] * (n + 1), method='highs')
-    if first.status != 0 or first.x[-1] <= 0.0:
-        return None
-    t_best = first.x[-1] * (1.0 - 1e-9)
-    # Phase 2: keep every e_i >= t_best w_i, maximise the weighted sum.
+    held = np.zeros(n, dtype=bool)  # joints held at their cap
+    cap = np.full(n, np.inf) if cap is None else np.asarray(cap, dtype=float)
+    for _ in range(n + 1):
+        # Variables (e_1..e_n, t). Phase 1: maximise t.
+        share = np.where(held, 0.0, weights)
+        a_ub = np.vstack([np.hstack([mass_max, np.zeros((n, 1))]),
+                          np.hstack([-np.eye(n), share[:, None]])])
+        b_ub = np.concatenate([room, np.where(held, -cap, 0.0)])
+        c = np.zeros(n + 1)
+        c[-1] = -1.0
+        first = linprog(c, A_ub=a_ub, b_ub=b_ub, bounds=[(0, None)] * (n + 1),
+                        method='highs')
+        if first.status != 0 or first.x[-1] <= 0.0:
+            return None
+        t_best = first.x[-1] * (1.0 - 1e-9)
+        over = ~held & (t_best * weights > cap)
+        if not over.any():
+            break
+        held |= over
+    floor = np.where(held, cap, t_best * weights)
+    # Phase 2: keep every e_i >= its phase-1 share, maximise the weighted sum.
     second = linprog(-1.0 / weights, A_ub=mass_max, b_ub=room,
-                     bounds=[(t_best * w, None) for w in weights], method='highs')
+                     bounds=[(lo, None if not np.isfinite(hi) else max(hi, lo))
+                             for lo, hi in zip(floor, cap)], method='highs')
     authority = second.x if second.status == 0 else first.x[:n]
     # Guard against LP round-off: scale down until the inequality holds exactly.
     usage = mass_max @ authority
@@ -185,40 +236,62 @@ def gamma_star(authority: np.ndarray, position_range: np.ndarray, alpha1: ClassK
 
 
 def _slice_ratio(x: np.ndarray, t: np.ndarray, r: float, e_eff: float, gamma: float,
-                 margin: float, alpha1: ClassK, alpha2: ClassK) -> np.ndarray:
+                 margin: float, alpha1: ClassK, alpha2: ClassK, speed_bound: float = np.inf,
+                 speed_beta: float = 0.0) -> np.ndarray:
     """The ratio whose maximum over joint i's slice of S is beta*.
 
     ``x = hp`` in [0, r] and ``t`` in [0, 1] parametrise the slice: v runs from
-    ``-gamma alpha1(hn)`` (bn = 0) to ``gamma alpha1(hp)`` (bp = 0).
+    ``max(-gamma alpha1(hn), -vS)`` to ``min(gamma alpha1(hp), vS)`` (``vS = speed_bound``
+    when the velocity box has barriers of its own, ``speed_beta > 0``).
     """
     hp, hn = x, r - x
     a1p, a1n = alpha1.value(hp), alpha1.value(hn)
-    v = gamma * (-a1n + t * (a1p + a1n))
+    top, bottom = gamma * a1p, -gamma * a1n
+    rows = speed_beta > 0.0
+    if rows:
+        top, bottom = np.minimum(top, speed_bound), np.maximum(bottom, -speed_bound)
+    v = bottom + t * (top - bottom)
     bp, bn = gamma * a1p - v, gamma * a1n + v
-    psi_p = gamma * alpha1.derivative(hp) * v - e_eff
-    psi_n = -gamma * alpha1.derivative(hn) * v - e_eff
+    slope_p, slope_n = gamma * alpha1.derivative(hp) * v, gamma * alpha1.derivative(hn) * v
     a2p, a2n = alpha2.value(bp), alpha2.value(bn)
+
+    def needed(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
+        # beta alpha2(b) >= numerator; at alpha2(b) = 0 only a non-positive one is met.
+        with np.errstate(divide='ignore', invalid='ignore'):
+            return np.where(denominator > 0.0, numerator / denominator,
+                            np.where(numerator <= 0.0, -np.inf, np.inf))
+
+    # Ap >= -e and An <= e (with the margin reserved), An + delta <= Ap - delta.
+    ratio = np.maximum(needed(slope_p - e_eff, a2p), needed(-slope_n - e_eff, a2n))
     with np.errstate(divide='ignore', invalid='ignore'):
-        ratio_p = np.where(a2p > 0.0, psi_p / a2p, np.where(psi_p < 0.0, -np.inf, np.inf))
-        ratio_n = np.where(a2n > 0.0, psi_n / a2n, np.where(psi_n < 0.0, -np.inf, np.inf))
-        # An + delta <= Ap - delta: beta (alpha2(bp) + alpha2(bn)) >= 2 delta + ...
-        gap = 2.0 * margin + gamma * v * (alpha1.derivative(hp) - alpha1.derivative(hn))
-        ratio_c = gap / (a2p + a2n)
-    return np.maximum(np.maximum(ratio_p, ratio_n), ratio_c)
+        gap = (2.0 * margin + gamma * v * (alpha1.derivative(hp) - alpha1.derivative(hn))) \
+            / (a2p + a2n)
+    ratio = np.maximum(ratio, gap)
+    if rows:
+        # The velocity barriers' bounds against the position barriers' (docs/method.md):
+        # -beta_v (vS + v) + delta <= Ap - delta and An + delta <= beta_v (vS - v) - delta.
+        ratio = np.maximum(ratio, needed(2.0 * margin + slope_p - speed_beta * (speed_bound + v),
+                                         a2p))
+        ratio = np.maximum(ratio, needed(2.0 * margin - slope_n - speed_beta * (speed_bound - v),
+                                         a2n))
+    return ratio
 
 
 def beta_star(position_range: float, effective_authority: float, gamma: float, margin: float,
-              alpha1: ClassK, alpha2: ClassK, grid: int = 401) -> tuple[float, float, float]:
+              alpha1: ClassK, alpha2: ClassK, grid: int = 401, speed_bound: float = np.inf,
+              speed_beta: float = 0.0) -> tuple[float, float, float]:
     """``beta*`` for one joint: dense grid over its slice of S, then local refinement.
 
     Returns ``(beta*, hp, t)`` with the maximiser's coordinates (``inf`` when some state on
-    the boundary cannot be made feasible by any beta: gamma is too large).
+    the boundary cannot be made feasible by any beta: gamma is too large). ``speed_bound``
+    and ``speed_beta`` describe the velocity barriers when S has them.
     """
     r = float(position_range)
     xs = np.linspace(0.0, r, grid)
     ts = np.linspace(0.0, 1.0, grid)
     x, t = np.meshgrid(xs, ts, indexing='ij')
-    values = _slice_ratio(x, t, r, effective_authority, gamma, margin, alpha1, alpha2)
+    extra = (float(speed_bound), float(speed_beta))
+    values = _slice_ratio(x, t, r, effective_authority, gamma, margin, alpha1, alpha2, *extra)
     k = np.unravel_index(int(np.argmax(values)), values.shape)
     best = float(values[k])
     if not np.isfinite(best):
@@ -230,7 +303,7 @@ def beta_star(position_range: float, effective_authority: float, gamma: float, m
 
         def negative(z: np.ndarray) -> float:
             return -float(_slice_ratio(np.array(z[0]), np.array(z[1]), r, effective_authority,
-                                       gamma, margin, alpha1, alpha2))
+                                       gamma, margin, alpha1, alpha2, *extra))
 
         found = minimize(negative, np.array([x[i, j], t[i, j]]), method='L-BFGS-B',
                          bounds=[(0.0, r), (0.0, 1.0)])
@@ -248,6 +321,15 @@ class _Design:
     gamma_star: np.ndarray
     gamma: np.ndarray
     disturbance: DisturbanceBound | None = None
+    alpha1: ClassK = field(default_factory=ClassK)
+    speed_beta: np.ndarray | None = None  # rate of the velocity barriers (None: lemma)
+    usable: np.ndarray | None = None  # authority - margin
+    fractions: np.ndarray | None = None  # velocity box / rated speed
+    accel_bound: np.ndarray | None = None  # |a| the filter allows (None: any)
+
+    @property
+    def has_speed_rows(self) -> bool:
+        return self.speed_beta is not None and bool(np.any(self.speed_beta > 0.0))
 
 
 def model_error_bound(model: RobotModel, bounds: DynamicsBounds, velocity_box: np.ndarray,
@@ -299,44 +381,209 @@ def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: Certi
     return mass, bias, disturbance
 
 
-def _design_for_scale(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
-                      scale: float, margin: np.ndarray, exact_model: bool = False
-                      ) -> tuple[_Design | None, dict]:
-    velocity_box = scale * np.array(model.velocity_limit)
+def _family_for(settings: CertifySettings, kind: str, usable: np.ndarray,
+                position_range: np.ndarray) -> ClassK:
+    """The class-K function of family ``kind`` for a design with usable authority ``usable``.
+
+    An explicit ``settings.alpha1`` is used as given. The automatic ``sqrt`` family takes
+    ``eps`` from the hold period: the slope term ``gamma alpha1'(h) v`` of the bounds may
+    drift by ``gamma alpha1'(0) e T = sqrt(e) e T / sqrt(2 eps)`` over a hold ``T`` at
+    ``gamma ~ sqrt(e)``; ``eps = (sqrt(e) T / share)^2 / 2`` keeps that at ``share`` of the
+    authority (``docs/method.md``, the braking-curve barrier).
+    """
+    if settings.alpha1 is not None:
+        return settings.alpha1
+    if kind != 'sqrt':
+        return ClassK(kind)
+    hold = settings.hold_period_s
+    eps = float(np.max(0.5 * (np.sqrt(np.maximum(usable, 0.0)) * hold
+                              / settings.braking_slope_share) ** 2))
+    return ClassK('sqrt', float(np.clip(eps, 1e-6, 0.1 * float(np.min(position_range)))))
+
+
+def useful_authority(model: RobotModel, settings: CertifySettings) -> np.ndarray:
+    """Authority beyond which a joint gains little: at its rated speed it then brakes within
+    ``braking_distance_share`` of its range, ``vmax^2 / (2 share r)``. More only enlarges the
+    accelerations the filter lets through, and with them the sampled-data margin (through
+    damping and the coupling of light links), without enlarging S noticeably."""
+    vmax = np.array(model.velocity_limit)
+    return vmax ** 2 / (2.0 * settings.braking_distance_share * np.array(model.position_range))
+
+
+def velocity_barrier_rate(authority: np.ndarray, margin: np.ndarray, velocity_box: np.ndarray,
+                          settings: CertifySettings) -> np.ndarray:
+    """Rate ``beta_v`` [1/s] of the velocity barriers per joint.
+
+    Where the braking curve meets the velocity box (``v = vS``, ``bp = 0``) the position
+    barrier asks for a deceleration up to about the authority, while the lower velocity
+    barrier allows at most ``beta_v (vS + v) = 2 beta_v vS``: so ``beta_v >= (e + 2 delta) /
+    vS``, at least ``beta_sampling_limit / T`` (that of beta). At most ``1 / (2 T)``: the
+    velocity barriers stay invariant under a held acceleration for ``beta_v T <= 1``
+    (``docs/method.md``); beyond, ``beta*`` says the box is too slow for the authority.
+    """
+    hold = settings.hold_period_s
+    wanted = (authority + 2.0 * margin) / np.maximum(velocity_box, 1e-300)
+    return np.clip(wanted, settings.beta_sampling_limit / hold, 0.5 / hold)
+
+
+def _design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                    fractions: np.ndarray, margin: np.ndarray, kind: str,
+                    exact_model: bool = False) -> tuple[_Design | None, dict]:
+    """The best design (over the sufficient conditions) for the velocity box
+    ``fractions * vmax`` and the class-K family ``kind``, with ``margin`` reserved."""
+    kind, rows = _split_family(kind)
+    rows = rows and settings.velocity_barrier
+    fractions = np.broadcast_to(np.asarray(fractions, dtype=float), (model.n_joints,))
+    velocity_box = fractions * np.array(model.velocity_limit)
     mass, bias, disturbance = authority_problem(model, bounds, settings, velocity_box,
                                                 exact_model)
     umax = np.array(model.effort_limit)
     weights = umax / np.diag(bounds.mass_max)
     candidates: dict[str, np.ndarray | None] = {}
     if settings.condition in ('auto', 'acceleration_authority'):
-        candidates['acceleration_authority'] = authority_row_sums(mass, bias, umax, weights)
+        candidates['acceleration_authority'] = authority_row_sums(
+            mass, bias, umax, weights, useful_authority(model, settings) if rows else None)
     if settings.condition in ('auto', 'torque_coupling'):
         coupled = authority_torque_coupling(bounds.inverse_mass_max, bounds.coupling_min, bias)
+        if coupled is not None and rows:
+            coupled = np.minimum(coupled, np.maximum(useful_authority(model, settings),
+                                                     1e-9 * coupled))
         if coupled is not None:  # one step of e = rho - nu - Winv I e (conservative)
             coupled = coupled - bounds.inverse_mass_max @ disturbance.inertial_total @ coupled
             coupled = coupled if np.all(coupled > 0.0) else None
         candidates['torque_coupling'] = coupled
     best: _Design | None = None
     r = np.array(model.position_range)
-    reach = np.array([settings.alpha1.value(x) for x in r], dtype=float)
     for condition, authority in candidates.items():
         if authority is None:
             continue
         usable = authority - margin
         if np.any(usable <= 0.0):
             continue
-        g_star = gamma_star(usable, r, settings.alpha1)
-        gamma = np.minimum(settings.gamma_margin * g_star, velocity_box / reach)
-        design = _Design(scale, condition, authority, velocity_box, g_star, gamma, disturbance)
-        if best is None or _score(model, design, settings) > _score(model, best, settings):
+        alpha1 = _family_for(settings, kind, usable, r)
+        g_star = gamma_star(usable, r, alpha1)
+        gamma = settings.gamma_margin * g_star
+        speed_beta = np.zeros(model.n_joints)
+        if rows:
+            speed_beta = velocity_barrier_rate(usable + margin, margin, velocity_box,
+                                               settings)
+        else:  # the velocity lemma: S inside the box by gamma alone
+            reach = np.array([alpha1.value(x) for x in r], dtype=float)
+            gamma = np.minimum(gamma, velocity_box / reach)
+        design = _Design(float(np.min(fractions)), condition, authority, velocity_box, g_star,
+                         gamma, disturbance, alpha1, speed_beta, usable)
+        if rows and settings.acceleration_bound_factor > 0.0:
+            design.accel_bound = settings.acceleration_bound_factor * authority
+        if best is None or _design_score(model, design) > _design_score(model, best):
             best = design
     return best, candidates
 
 
+def _design_for_scale(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                      scale: float, margin: np.ndarray, exact_model: bool = False,
+                      kind: str = 'linear') -> tuple[_Design | None, dict]:
+    """:func:`_design_for_box` with one common velocity fraction ``scale``."""
+    return _design_for_box(model, bounds, settings, np.full(model.n_joints, scale), margin,
+                           kind, exact_model)
+
+
+def safe_set_areas(model: RobotModel, design: _Design) -> np.ndarray:
+    """Area of each joint's slice of S in its (q, v) plane (``barriers.safe_set_area``)."""
+    r = np.array(model.position_range)
+    box = design.velocity_box if design.has_speed_rows else None
+    return np.array([safe_set_area(r[i], float(design.gamma[i]), design.alpha1,
+                                   None if box is None else float(box[i]))
+                     for i in range(len(r))])
+
+
+def permissiveness(model: RobotModel, design: _Design, reference_authority: np.ndarray
+                   ) -> np.ndarray:
+    """Per joint: the area of S over the area of the braking set at ``reference_authority``
+    and the rated speed (1: S is as large as any set a joint braking at that authority can
+    be kept in)."""
+    r = np.array(model.position_range)
+    vmax = np.array(model.velocity_limit)
+    reference = np.array([braking_set_area(r[i], float(reference_authority[i]), vmax[i])
+                          for i in range(len(r))])
+    return safe_set_areas(model, design) / np.maximum(reference, 1e-300)
+
+
+def _design_score(model: RobotModel, design: _Design) -> float:
+    """How permissive a design is: the mean over the joints of the log of the area of S
+    (designs for one robot compare by the geometric mean of their safe-set areas)."""
+    return float(np.mean(np.log(np.maximum(safe_set_areas(model, design), 1e-300))))
+
+
+def envelope_fraction(model: RobotModel, design: _Design) -> np.ndarray:
+    """Fastest speed in each joint's slice of S over its rated speed."""
+    r = np.array(model.position_range)
+    reach = design.gamma * np.array([design.alpha1.value(x) for x in r], dtype=float)
+    if design.has_speed_rows:
+        reach = np.minimum(reach, design.velocity_box)
+    return reach / np.array(model.velocity_limit)
+
+
 def _score(model: RobotModel, design: _Design, settings: CertifySettings) -> float:
-    """Smallest certified velocity fraction over the joints (velocity lemma bound / vmax)."""
-    reach = np.array([settings.alpha1.value(x) for x in model.position_range], dtype=float)
-    return float(np.min(design.gamma * reach / np.array(model.velocity_limit)))
+    """Smallest certified velocity fraction over the joints."""
+    return float(np.min(envelope_fraction(model, design)))
+
+
+def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                        kind: str, exact_model: bool = False
+                        ) -> tuple[_Design | None, dict]:
+    """The most permissive velocity box for family ``kind`` before the sampled-data margin.
+
+    A common fraction of the rated speeds first (the grid of ``velocity_scales``), then,
+    when ``per_joint_envelopes``, a coordinate search on each joint's fraction: the Coriolis
+    bound couples the joints, but a light joint need not be slowed to a heavy one's pace.
+    The objective is :func:`permissiveness` against the braking set at the authority of
+    the slowest box tried (a fixed reference for the whole search), as a geometric mean.
+    """
+    n = model.n_joints
+    zero = np.zeros(n)
+    floor = 1.0 / settings.velocity_scales
+    slow, _ = _design_for_scale(model, bounds, settings, floor, zero, exact_model, kind)
+    if slow is None:
+        return None, {}
+    reference = slow.usable
+
+    def score(design: _Design | None) -> float:
+        if design is None:
+            return -np.inf
+        share = permissiveness(model, design, reference)
+        return float(np.mean(np.log(np.maximum(share, 1e-12))))
+
+    best, best_found, best_value = slow, {}, -np.inf
+    best_fractions = np.full(n, floor)
+    for scale in np.linspace(1.0, floor, settings.velocity_scales):
+        design, found = _design_for_scale(model, bounds, settings, scale, zero, exact_model,
+                                          kind)
+        value = score(design)
+        if value > best_value + 1e-12:
+            best, best_found, best_value = design, found, value
+            best_fractions = np.full(n, scale)
+    if settings.per_joint_envelopes and _split_family(kind)[1] and settings.velocity_barrier:
+        step = 0.2
+        while step > 0.01:
+            improved = False
+            for i in range(n):
+                for sign in (1.0, -1.0):
+                    trial = best_fractions.copy()
+                    trial[i] = float(np.clip(trial[i] * (1.0 + sign * step), floor, 1.0))
+                    if trial[i] == best_fractions[i]:
+                        continue
+                    design, found = _design_for_box(model, bounds, settings, trial, zero,
+                                                    kind, exact_model)
+                    value = score(design)
+                    if value > best_value + 1e-9:
+                        best, best_found, best_value = design, found, value
+                        best_fractions = trial
+                        improved = True
+                        break
+            if not improved:
+                step *= 0.5
+    best.fractions = best_fractions
+    return best, best_found
 
 
 # ---------------------------------------------------------------------- driver
@@ -359,8 +606,6 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     n = model.n_joints
     names = list(model.joint_names)
     umax = np.array(model.effort_limit)
-    vmax = np.array(model.velocity_limit)
-    r = np.array(model.position_range)
     seconds: dict[str, float] = {}
     reasons: list[str] = []
     notes: list[str] = []
@@ -370,116 +615,48 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'bounds: ' + s, f))
     seconds['bounds'] = time.perf_counter() - clock
 
-    # ---- velocity scale search, authority and the sampled-data margin
-    # Without a margin the best scale s0 maximises the smallest certified velocity fraction.
-    # The margin (estimated from rollouts, which depend on the gains) only shrinks what a
-    # scale can certify, and shrinks less at smaller scales (the drift is mostly driven by
-    # velocity), so: at a given scale iterate margin -> gains -> margin until it settles,
-    # and bisect for the largest scale below s0 at which that succeeds.
+    # ---- per family: velocity box, authority, the sampled-data margin, gains
     clock = time.perf_counter()
-    scales = np.linspace(1.0, 1.0 / settings.velocity_scales, settings.velocity_scales)
-    best_scale, best_score, candidates = None, -np.inf, {}
-    for scale in scales:
-        design, found = _design_for_scale(model, bounds, settings, scale, np.zeros(n))
-        if design is not None and _score(model, design, settings) > best_score + 1e-12:
-            best_scale, best_score, candidates = scale, _score(model, design, settings), found
-    report('authority', 1.0)
-    seconds['authority'] = time.perf_counter() - clock
-
-    clock = time.perf_counter()
-    rounds = {'count': 0}
-
-    def settle(scale: float) -> tuple[_Design | None, np.ndarray, _Design | None]:
-        margin = np.zeros(n)
-        design, _ = _design_for_scale(model, bounds, settings, scale, margin)
-        last = design
-        for _ in range(6):
-            if design is None:
-                return None, margin, last
-            beta = _choose_beta(design, margin, r, settings)[3]
-            gains = Gains(design.gamma, beta, settings.alpha1, settings.alpha2)
-            new_margin = estimate_sampling_margin(
-                model, gains, settings.hold_period_s, settings.margin_samples,
-                inflation=settings.margin_inflation, current_margin=margin,
-                seed=settings.seed)  # same draws each round: the margin settles monotonically
-            rounds['count'] += 1
-            report('sampling margin', min(0.95, rounds['count'] / 12))
-            if np.all(new_margin <= margin * (1.0 + 1e-9)):
-                return design, margin, design
-            # The margin and the gains approach their fixed point geometrically; stepping 5 %
-            # past each new estimate lets the next estimate fall inside and settle.
-            margin = np.maximum(margin, 1.05 * new_margin)
-            last = design
-            design, _ = _design_for_scale(model, bounds, settings, scale, margin)
-        return None, margin, last
-
-    design, margin, last_design = (None, np.zeros(n), None)
-    if best_scale is not None:
-        design, margin, last_design = settle(best_scale)
-        if design is None:
-            low = 1.0 / settings.velocity_scales
-            low_design, low_margin, low_last = settle(low)
-            if low_design is None:
-                margin, last_design = low_margin, low_last
-            else:
-                design, margin, high = low_design, low_margin, best_scale
-                for step in range(4):
-                    middle = 0.5 * (low + high)
-                    trial, trial_margin, _ = settle(middle)
-                    if trial is not None:
-                        design, margin, low = trial, trial_margin, middle
-                    else:
-                        high = middle
-            if design is not None:
-                candidates = _design_for_scale(model, bounds, settings, design.scale,
-                                               margin)[1]
-    report('sampling margin', 1.0)
-    seconds['sampling margin'] = time.perf_counter() - clock
-
-    # ---- beta* and beta, and what fails
-    clock = time.perf_counter()
-    if design is None:
-        reasons.extend(_explain_no_design(model, bounds, settings, margin, last_design))
-        b_star = b_floor = b_cap = beta = np.zeros(n)
-        if last_design is not None:
-            # Keep the numbers of the last attempt: they show which joint ran short.
-            gamma, g_star, authority = (last_design.gamma, last_design.gamma_star,
-                                        last_design.authority)
-            velocity_box, condition = last_design.velocity_box, last_design.condition
-            scale = last_design.scale
+    kinds = settings.families if settings.alpha1 is None else (
+        settings.alpha1.kind + ('' if settings.velocity_barrier else LEMMA_SUFFIX),)
+    attempts = []
+    for index, kind in enumerate(kinds):
+        attempts.append(_attempt_family(
+            model, bounds, settings, kind,
+            lambda stage, f, k=index: report(stage, (k + f) / len(kinds))))
+    seconds['authority, margin and gains'] = time.perf_counter() - clock
+    certifiable = [a for a in attempts if a.design is not None and not a.reasons]
+    chosen = (max(certifiable, key=lambda a: _design_score(model, a.design)) if certifiable
+              else attempts[0])
+    tried = []
+    for attempt in attempts:
+        entry = attempt.record(model)
+        if attempt is chosen:
+            entry['outcome'] = 'chosen'
+        elif attempt in certifiable:
+            entry['outcome'] = 'certifies, smaller safe set'
         else:
-            gamma = g_star = authority = velocity_box = np.zeros(n)
-            condition, scale = 'acceleration_authority', 0.0
+            entry['outcome'] = 'does not certify: ' + '; '.join(attempt.reasons)
+        tried.append(entry)
+    design, margin, last_design = chosen.design, chosen.margin, chosen.last_design
+    reasons.extend(chosen.reasons)
+    notes.extend(chosen.notes)
+    candidates = chosen.candidates
+    b_star, b_floor, b_cap, beta = chosen.betas
+    shown = design or last_design
+    if shown is not None:
+        # Keep the numbers of the last attempt when it failed: they show which joint ran short.
+        gamma, g_star, authority = shown.gamma, shown.gamma_star, shown.authority
+        velocity_box, condition, scale = shown.velocity_box, shown.condition, shown.scale
+        alpha1 = shown.alpha1
+        speed_beta = shown.speed_beta if shown.speed_beta is not None else np.zeros(n)
+        accel_bound = shown.accel_bound
     else:
-        gamma, g_star, authority = design.gamma, design.gamma_star, design.authority
-        velocity_box, condition, scale = design.velocity_box, design.condition, design.scale
-        b_star, b_floor, b_cap, beta = _choose_beta(design, margin, r, settings)
-        for i in np.flatnonzero(b_floor > b_cap):
-            notes.append(f'joint {names[i]!r}: beta is held at the sampled-data cap '
-                         f'{b_cap[i]:.4g}, below the floor {b_floor[i]:.4g} at which the bound '
-                         'at rest mid-range reaches the authority: the filter brakes this joint '
-                         'earlier than it needs to (a faster control rate raises the cap)')
-        for i in range(n):
-            if np.isfinite(b_star[i]) and b_star[i] * _BETA_MIN_MARGIN <= b_cap[i] \
-                    < settings.beta_margin * b_star[i]:
-                notes.append(f'joint {names[i]!r}: beta is held at the sampled-data cap '
-                             f'{b_cap[i]:.4g}, only {100 * (b_cap[i] / b_star[i] - 1):.1f} % '
-                             f'above beta* = {b_star[i]:.4g} (wanted '
-                             f'{100 * (settings.beta_margin - 1):.0f} %)')
-            elif not np.isfinite(b_star[i]) or b_star[i] * _BETA_MIN_MARGIN > b_cap[i]:
-                factor = settings.beta_margin * b_star[i] / b_cap[i]
-                reasons.append(
-                    f'joint {names[i]!r}: beta* = {b_star[i]:.4g} needs beta above the '
-                    f'sampled-data cap {b_cap[i]:.4g} at {settings.control_rate_hz:g} Hz; '
-                    f'raise the control rate to at least '
-                    f'{settings.control_rate_hz * factor:.0f} Hz, or lower gamma_margin')
-        fraction = gamma * np.array([settings.alpha1.value(x) for x in r]) / vmax
-        for i in np.flatnonzero(fraction < settings.min_velocity_fraction):
-            reasons.append(
-                f'joint {names[i]!r}: only {100 * fraction[i]:.1f} % of its rated velocity '
-                f'{vmax[i]:g} can be certified (minimum {100 * settings.min_velocity_fraction:g}'
-                f' %): the torque limits leave too little authority; see the authority table')
-    seconds['gains'] = time.perf_counter() - clock
+        gamma = g_star = authority = velocity_box = speed_beta = np.zeros(n)
+        accel_bound = None
+        condition, scale = 'acceleration_authority', 0.0
+        first = _split_family(kinds[0])[0]
+        alpha1 = settings.alpha1 or ClassK(first, 1.0 if first != 'sqrt' else 0.01)
 
     if design is None or reasons:
         gamma = np.where(gamma > 0, gamma, 0.0)
@@ -488,6 +665,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         **bounds.record(),
         'certify': settings.record(),
         'velocity_scale': float(scale),
+        'designs_tried': tried,
         'authority_row_sums': _plain(candidates.get('acceleration_authority')),
         'authority_torque_coupling': _plain(candidates.get('torque_coupling')),
         'torque_coupling_rho': _plain(bounds.coupling_min),
@@ -500,9 +678,11 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         joint_names=names,
         position_lower=model.position_lower,
         position_upper=model.position_upper,
-        velocity_limit=vmax,
+        velocity_limit=np.array(model.velocity_limit),
         effort_limit=umax,
         velocity_bound=velocity_box,
+        velocity_beta=speed_beta,
+        acceleration_bound=accel_bound,
         gamma=gamma,
         gamma_star=g_star,
         beta=beta,
@@ -514,7 +694,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         viscous_friction=model.viscous_friction,
         coulomb_friction=model.coulomb_friction,
         condition=condition,
-        alpha1=settings.alpha1,
+        alpha1=alpha1,
         alpha2=settings.alpha2,
         control_rate_hz=settings.control_rate_hz,
         sampling_factor=settings.sampling_factor,
@@ -553,6 +733,135 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
                                 falsifier_result)
 
 
+@dataclass
+class _Attempt:
+    """One class-K family taken through the velocity box search, the sampled-data margin and
+    the choice of beta."""
+
+    kind: str
+    design: _Design | None = None
+    last_design: _Design | None = None
+    margin: np.ndarray | None = None
+    candidates: dict = field(default_factory=dict)
+    betas: tuple = ()
+    reasons: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+    def record(self, model: RobotModel) -> dict[str, Any]:
+        """Plain summary for the certificate (the report's table of designs tried)."""
+        shown = self.design or self.last_design
+        entry: dict[str, Any] = {'alpha1': self.kind}
+        if shown is not None:
+            entry['alpha1_scale'] = float(shown.alpha1.scale)
+            entry['envelope_fraction'] = _plain(envelope_fraction(model, shown))
+            entry['safe_set_area'] = _plain(safe_set_areas(model, shown))
+        return entry
+
+
+def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                    kind: str, report: ProgressCallback) -> _Attempt:
+    """Design, margin and gains for one class-K family (the module docstring's steps 2-5).
+
+    The margin (estimated from rollouts, which depend on the gains) only shrinks what a box
+    can certify, and shrinks less at slower boxes (the drift is mostly driven by velocity),
+    so: at a given box iterate margin -> gains -> margin until it settles, and bisect on a
+    common factor of the box for the largest one at which that succeeds.
+    """
+    n = model.n_joints
+    names = list(model.joint_names)
+    r = np.array(model.position_range)
+    vmax = np.array(model.velocity_limit)
+    attempt = _Attempt(kind)
+    start, candidates = search_velocity_box(model, bounds, settings, kind)
+    report('authority', 0.2)
+    attempt.candidates = candidates
+    rounds = {'count': 0}
+
+    def settle(fractions: np.ndarray) -> tuple[_Design | None, np.ndarray, _Design | None]:
+        margin = np.zeros(n)
+        design, _ = _design_for_box(model, bounds, settings, fractions, margin, kind)
+        last = design
+        for _ in range(6):
+            if design is None:
+                return None, margin, last
+            beta = _choose_beta(design, margin, r, settings)[3]
+            gains = Gains(design.gamma, beta, design.alpha1, settings.alpha2,
+                          design.velocity_box, design.speed_beta, design.accel_bound)
+            new_margin = estimate_sampling_margin(
+                model, gains, settings.hold_period_s, settings.margin_samples,
+                inflation=settings.margin_inflation, current_margin=margin,
+                seed=settings.seed)  # same draws each round: the margin settles monotonically
+            rounds['count'] += 1
+            report('sampling margin', 0.2 + 0.7 * min(1.0, rounds['count'] / 12))
+            if np.all(new_margin <= margin * (1.0 + 1e-9)):
+                design.fractions = fractions
+                return design, margin, design
+            # The margin and the gains approach their fixed point geometrically; stepping 5 %
+            # past each new estimate lets the next estimate fall inside and settle.
+            margin = np.maximum(margin, 1.05 * new_margin)
+            last = design
+            design, _ = _design_for_box(model, bounds, settings, fractions, margin, kind)
+        return None, margin, last
+
+    design, margin, last_design = None, np.zeros(n), None
+    if start is not None:
+        top = start.fractions
+        design, margin, last_design = settle(top)
+        if design is None:
+            floor = 1.0 / settings.velocity_scales
+            low_factor = float(np.max(floor / top))
+            low_design, low_margin, low_last = settle(top * low_factor)
+            if low_design is None:
+                margin, last_design = low_margin, low_last
+            else:
+                design, margin, high = low_design, low_margin, 1.0
+                low = low_factor
+                for _ in range(4):
+                    middle = 0.5 * (low + high)
+                    trial, trial_margin, _ = settle(np.maximum(top * middle, floor))
+                    if trial is not None:
+                        design, margin, low = trial, trial_margin, middle
+                    else:
+                        high = middle
+        if design is not None:
+            attempt.candidates = _design_for_box(model, bounds, settings, design.fractions,
+                                                 margin, kind)[1]
+    attempt.design, attempt.margin, attempt.last_design = design, margin, last_design
+    reasons, notes = attempt.reasons, attempt.notes
+    if design is None:
+        reasons.extend(_explain_no_design(model, bounds, settings, margin, last_design))
+        attempt.betas = (np.zeros(n),) * 4
+        return attempt
+    b_star, b_floor, b_cap, beta = _choose_beta(design, margin, r, settings)
+    attempt.betas = (b_star, b_floor, b_cap, beta)
+    for i in np.flatnonzero(b_floor > b_cap):
+        notes.append(f'joint {names[i]!r}: beta is held at the sampled-data cap '
+                     f'{b_cap[i]:.4g}, below the floor {b_floor[i]:.4g} at which the bound '
+                     'at rest mid-range reaches the authority: the filter brakes this joint '
+                     'earlier than it needs to (a faster control rate raises the cap)')
+    for i in range(n):
+        if np.isfinite(b_star[i]) and b_star[i] * _BETA_MIN_MARGIN <= b_cap[i] \
+                < settings.beta_margin * b_star[i]:
+            notes.append(f'joint {names[i]!r}: beta is held at the sampled-data cap '
+                         f'{b_cap[i]:.4g}, only {100 * (b_cap[i] / b_star[i] - 1):.1f} % '
+                         f'above beta* = {b_star[i]:.4g} (wanted '
+                         f'{100 * (settings.beta_margin - 1):.0f} %)')
+        elif not np.isfinite(b_star[i]) or b_star[i] * _BETA_MIN_MARGIN > b_cap[i]:
+            factor = settings.beta_margin * b_star[i] / b_cap[i]
+            reasons.append(
+                f'joint {names[i]!r}: beta* = {b_star[i]:.4g} needs beta above the '
+                f'sampled-data cap {b_cap[i]:.4g} at {settings.control_rate_hz:g} Hz; '
+                f'raise the control rate to at least '
+                f'{settings.control_rate_hz * factor:.0f} Hz, or lower gamma_margin')
+    fraction = envelope_fraction(model, design)
+    for i in np.flatnonzero(fraction < settings.min_velocity_fraction):
+        reasons.append(
+            f'joint {names[i]!r}: only {100 * fraction[i]:.1f} % of its rated velocity '
+            f'{vmax[i]:g} can be certified (minimum {100 * settings.min_velocity_fraction:g}'
+            f' %): the torque limits leave too little authority; see the authority table')
+    return attempt
+
+
 def _model_error_record(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
                         design: _Design | None) -> dict[str, Any]:
     """What the declared uncertainty costs, for the certificate and its report: the torque
@@ -576,19 +885,12 @@ def _model_error_record(model: RobotModel, bounds: DynamicsBounds, settings: Cer
         'authority_without_uncertainty': _plain(exact),
     }
     # The certified velocity fractions (before the sampled-data margin) with and without
-    # the uncertainty, each at its own best velocity scale.
+    # the uncertainty, each at its own best velocity box, for the chosen family.
     for label, exact_model in (('with', False), ('without', True)):
-        best = None
-        for scale in np.linspace(1.0, 1.0 / settings.velocity_scales, settings.velocity_scales):
-            found, _ = _design_for_scale(model, bounds, settings, scale, np.zeros(len(umax)),
-                                         exact_model=exact_model)
-            if found is not None and (best is None or _score(model, found, settings)
-                                      > _score(model, best, settings)):
-                best = found
-        reach = np.array([settings.alpha1.value(x) for x in model.position_range])
+        kind = design.alpha1.kind + ('' if design.has_speed_rows else LEMMA_SUFFIX)
+        best, _ = search_velocity_box(model, bounds, settings, kind, exact_model)
         record[f'velocity_fraction_{label}_uncertainty'] = (
-            None if best is None
-            else _plain(best.gamma * reach / np.array(model.velocity_limit)))
+            None if best is None else _plain(envelope_fraction(model, best)))
     return record
 
 
@@ -606,19 +908,24 @@ def _choose_beta(design: _Design, margin: np.ndarray, r: np.ndarray, settings: C
     of ``beta_margin * beta*`` and the floor, never above the cap.
     """
     n = len(r)
+    alpha1, alpha2 = design.alpha1, settings.alpha2
     usable = design.authority - margin
     hold = settings.hold_period_s
     b_star = np.zeros(n)
     b_cap = np.zeros(n)
-    mid = settings.alpha2.value(design.gamma * settings.alpha1.value(0.5 * r))
+    mid = alpha2.value(design.gamma * alpha1.value(0.5 * r))
     # At rest mid-range the upper bound is beta alpha2(b) - margin: make it reach e.
     b_floor = (design.authority + margin) / np.maximum(mid, 1e-300)
     for i in range(n):
-        b_star[i], _, _ = beta_star(r[i], usable[i], design.gamma[i], margin[i],
-                                    settings.alpha1, settings.alpha2)
-        b_max = 2.0 * design.gamma[i] * float(settings.alpha1.value(r[i]))
-        b_cap[i] = settings.beta_sampling_limit / (
-            hold * settings.alpha2.max_ratio_to_identity(b_max))
+        speed = ((float(design.velocity_box[i]), float(design.speed_beta[i]))
+                 if design.has_speed_rows else (np.inf, 0.0))
+        b_star[i], _, _ = beta_star(r[i], usable[i], design.gamma[i], margin[i], alpha1, alpha2,
+                                    speed_bound=speed[0], speed_beta=speed[1])
+        b_max = 2.0 * design.gamma[i] * float(alpha1.value(r[i]))
+        if design.has_speed_rows:
+            b_max = min(b_max, design.gamma[i] * float(alpha1.value(r[i]))
+                        + design.velocity_box[i])
+        b_cap[i] = settings.beta_sampling_limit / (hold * alpha2.max_ratio_to_identity(b_max))
     beta = np.minimum(np.maximum(settings.beta_margin * b_star, b_floor), b_cap)
     return b_star, b_floor, b_cap, beta
 

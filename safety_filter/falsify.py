@@ -22,7 +22,6 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import linprog
 
-from safety_filter.barriers import evaluate_barriers
 from safety_filter.certificate import Certificate
 from safety_filter.model import RobotModel
 from safety_filter.sampling import BatchPlant, Gains, sample_safe_states
@@ -125,7 +124,8 @@ def falsify(
     rng = np.random.default_rng(seed)
     umax = np.array(model.effort_limit)
     gains = Gains(np.array(certificate.gamma), np.array(certificate.beta),
-                  certificate.alpha1, certificate.alpha2)
+                  certificate.alpha1, certificate.alpha2, np.array(certificate.velocity_bound),
+                  np.array(certificate.velocity_beta), np.array(certificate.acceleration_bound))
     delta = np.array(certificate.sampling_margin)
     parameters = certificate.disturbance_parameters
     uncertainty = certificate.uncertainty
@@ -152,8 +152,7 @@ def falsify(
         estimate = _disturbance_estimates(model, plant, payload, q, v, bias, parameters,
                                           umax, rng)
         bias = bias - estimate  # what the filter's QP uses (docs/method.md, model error)
-        barrier = evaluate_barriers(q, v, model.position_lower, model.position_upper,
-                                    gains.gamma, gains.beta, gains.alpha1, gains.alpha2, delta)
+        barrier = gains.barriers(model, q, v, delta)
         lower, upper = barrier.accel_lower, barrier.accel_upper
         empty = np.any(lower > upper, axis=1)
         # Witness 1: the acceleration closest to zero; witness 2: closest to free fall.
@@ -180,8 +179,7 @@ def falsify(
         plant = BatchPlant(model, np.array([m]))
         mass = plant.mass_matrix(q[None])[0]
         bias = plant.bias(q[None], v[None])[0] - estimate
-        barrier = evaluate_barriers(q, v, model.position_lower, model.position_upper,
-                                    gains.gamma, gains.beta, gains.alpha1, gains.alpha2, delta)
+        barrier = gains.barriers(model, q, v, delta)
         slack = _lp_slack(mass, bias, barrier.accel_lower, barrier.accel_upper, umax)
         results.append((slack, q, v, m))
         if progress is not None and index % 20 == 0:

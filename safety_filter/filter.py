@@ -399,6 +399,9 @@ class SafetyFilter:
         self._k_gamma = np.array(self._gamma)
         self._k_beta = np.array(self._beta)
         self._k_margin = np.array(self._margin)
+        self._k_speed_bound = np.array(certificate.velocity_bound, dtype=float)
+        self._k_speed_beta = np.array(certificate.velocity_beta, dtype=float)
+        self._k_accel_bound = np.array(certificate.acceleration_bound, dtype=float)
         self._k_alpha = (_kernels.ALPHA_CODES[self._alpha1.kind], float(self._alpha1.scale),
                          _kernels.ALPHA_CODES[self._alpha2.kind], float(self._alpha2.scale))
         self._k_torque_limit = np.array(self.torque_limit)
@@ -410,8 +413,9 @@ class SafetyFilter:
 
         # Preallocated per-step buffers.
         self._inputs = np.empty((3, n))
-        # Barrier rows [hp; hn; bp; bn; Ap; An] (METHOD 2), written by _kernels.barrier_rows.
-        self._rows = np.empty((6, n))
+        # Barrier rows [hp; hn; bp; bn; Ap; An; sp; sn] (METHOD 2), written by
+        # _kernels.barrier_rows.
+        self._rows = np.empty((8, n))
         self._accel_upper = self._rows[4]
         self._accel_lower = self._rows[5]
         self._mass = np.empty((n, n))
@@ -466,15 +470,17 @@ class SafetyFilter:
         c = self.certificate
         return evaluate_barriers(np.asarray(q, dtype=float), np.asarray(v, dtype=float),
                                  c.position_lower, c.position_upper, c.gamma, c.beta,
-                                 c.alpha1, c.alpha2, c.sampling_margin)
+                                 c.alpha1, c.alpha2, c.sampling_margin, c.velocity_bound,
+                                 c.velocity_beta, c.acceleration_bound)
 
     # ------------------------------------------------------------------ the step
     def _evaluate_barriers(self, q: np.ndarray, v: np.ndarray) -> None:
-        """Fill ``_rows = [hp; hn; bp; bn; Ap; An]`` (shape (6, n)) at one state (the step
-        does the same inside its first kernel; the tests use this one)."""
+        """Fill ``_rows = [hp; hn; bp; bn; Ap; An; sp; sn]`` (shape (8, n)) at one state (the
+        step does the same inside its first kernel; the tests use this one)."""
         code1, scale1, code2, scale2 = self._k_alpha
         _kernels.barrier_rows(q, v, self._k_lower, self._k_upper, self._k_gamma, self._k_beta,
-                              self._k_margin, code1, scale1, code2, scale2, self._rows,
+                              self._k_margin, self._k_speed_bound, self._k_speed_beta,
+                              self._k_accel_bound, code1, scale1, code2, scale2, self._rows,
                               np.empty(self.n))
 
     def _observe(self, q: np.ndarray, v: np.ndarray, mass: np.ndarray, bias: np.ndarray,
@@ -597,7 +603,8 @@ class SafetyFilter:
         code1, scale1, code2, scale2 = self._k_alpha
         flags, worst, deepest = _kernels.stage_and_bound(
             q_in, v_in, u_in, inputs, self._k_lower, self._k_upper, self._k_gamma, self._k_beta,
-            self._k_margin, code1, scale1, code2, scale2, self._rows, barrier_margin)
+            self._k_margin, self._k_speed_bound, self._k_speed_beta, self._k_accel_bound, code1,
+            scale1, code2, scale2, self._rows, barrier_margin)
         if flags:
             names = [name for name, bit in (('q', _kernels.NONFINITE_Q),
                                             ('v', _kernels.NONFINITE_V),

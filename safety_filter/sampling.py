@@ -28,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from safety_filter.alphas import ClassK
-from safety_filter.barriers import evaluate_barriers
+from safety_filter.barriers import BarrierState, evaluate_barriers, safe_velocity_interval
 from safety_filter.dynamics import mass_matrix_batch, rnea_batch
 from safety_filter.model import RobotModel
 
@@ -41,6 +41,16 @@ class Gains:
     beta: np.ndarray
     alpha1: ClassK
     alpha2: ClassK
+    speed_bound: np.ndarray | None = None  # vS of the velocity barriers (None: none)
+    speed_beta: np.ndarray | None = None  # their rate beta_v [1/s]
+    accel_bound: np.ndarray | None = None  # |a| the filter allows [rad/s^2] (None: any)
+
+    def barriers(self, model: RobotModel, q: np.ndarray, v: np.ndarray,
+                 margin: np.ndarray | float) -> BarrierState:
+        """:func:`evaluate_barriers` with these gains and ``model``'s position limits."""
+        return evaluate_barriers(q, v, model.position_lower, model.position_upper, self.gamma,
+                                 self.beta, self.alpha1, self.alpha2, margin, self.speed_bound,
+                                 self.speed_beta, self.accel_bound)
 
 
 class BatchPlant:
@@ -106,8 +116,8 @@ def sample_safe_states(
     closeness = rng.random((count, n)) ** 4
     fraction = np.where(near, np.abs(edge - closeness), u)
     q = lower + fraction * span
-    v_hi = gains.gamma * gains.alpha1.value(upper - q)
-    v_lo = -gains.gamma * gains.alpha1.value(q - lower)
+    v_lo, v_hi = safe_velocity_interval(q, lower, upper, gains.gamma, gains.alpha1,
+                                        gains.speed_bound, gains.speed_beta)
     t = rng.random((count, n))
     on_edge = rng.random((count, n)) < boundary_fraction
     t = np.where(on_edge, np.where(rng.random((count, n)) < 0.5, 0.0, 1.0), t)
@@ -150,8 +160,13 @@ def estimate_sampling_margin(
     levels = np.linspace(model.payload.mass_min, model.payload.mass_max, 3)
     payload = levels[rng.integers(0, 3, samples)]
     plant = BatchPlant(model, payload)
-    start = evaluate_barriers(q, v, model.position_lower, model.position_upper, gains.gamma,
-                              gains.beta, gains.alpha1, gains.alpha2, margin)
+    start = gains.barriers(model, q, v, margin)
+    # The velocity barriers need only the acceleration's own drift, not their bounds' drift
+    # (docs/method.md, sampled data): so the bounds' drift is that of the position barriers.
+    position_gains = Gains(gains.gamma, gains.beta, gains.alpha1, gains.alpha2)
+    if acceleration_envelope is None:
+        acceleration_envelope = gains.accel_bound
+    position_start = position_gains.barriers(model, q, v, margin)
     mass = plant.mass_matrix(q)
     bias = plant.bias(q, v)
     # Accelerations the filter may command: inside the bounds, torque inside the box. Draw
@@ -182,10 +197,9 @@ def estimate_sampling_margin(
         k4q = vk + dt * k3v
         qk = qk + dt / 6.0 * (k1q + 2 * k2q + 2 * k3q + k4q)
         vk = vk + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v)
-        now = evaluate_barriers(qk, vk, model.position_lower, model.position_upper,
-                                gains.gamma, gains.beta, gains.alpha1, gains.alpha2, margin)
+        now = position_gains.barriers(model, qk, vk, margin)
         k1v = plant.acceleration(qk, vk, torque)  # the acceleration now; next step's k1
-        bound_drift = np.maximum(np.abs(now.accel_upper - start.accel_upper),
-                                 np.abs(now.accel_lower - start.accel_lower))
+        bound_drift = np.maximum(np.abs(now.accel_upper - position_start.accel_upper),
+                                 np.abs(now.accel_lower - position_start.accel_lower))
         drift = np.maximum(drift, np.max(np.abs(k1v - accel0) + bound_drift, axis=0))
     return inflation * drift

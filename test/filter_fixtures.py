@@ -146,11 +146,9 @@ def uncertified(certificate: Certificate) -> Certificate:
 
 
 def velocity_interval(certificate: Certificate, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The velocities ``v`` with ``bp, bn >= 0`` at positions ``q`` (S's slice)."""
-    hp = certificate.position_upper - q
-    hn = q - certificate.position_lower
-    alpha1 = certificate.alpha1
-    return (-certificate.gamma * alpha1.value(hn), certificate.gamma * alpha1.value(hp))
+    """The velocities ``v`` of S's slice at positions ``q`` (``bp, bn >= 0``, and inside the
+    velocity box when the certificate keeps it by barriers)."""
+    return certificate.safe_velocity_interval(q)
 
 
 def random_state_in_safe_set(rng: np.random.Generator, certificate: Certificate,

@@ -62,9 +62,8 @@ def _start_on_boundary(certificate) -> tuple[np.ndarray, np.ndarray]:  # noqa: A
     n = len(lower)
     toward_upper = np.arange(n) % 2 == 0
     q0 = lower + np.where(toward_upper, 0.995, 0.005) * (upper - lower)
-    speed_up = certificate.gamma * certificate.alpha1.value(upper - q0)
-    speed_down = certificate.gamma * certificate.alpha1.value(q0 - lower)
-    v0 = (1.0 - 1e-9) * np.where(toward_upper, speed_up, -speed_down)
+    speed_down, speed_up = certificate.safe_velocity_interval(q0)
+    v0 = (1.0 - 1e-9) * np.where(toward_upper, speed_up, speed_down)
     return q0, v0
 
 

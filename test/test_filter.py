@@ -133,7 +133,9 @@ def test_step_dynamics_and_barriers_match_public_api(arm: str) -> None:
             atol=1e-9 * np.abs(np.linalg.solve(mass, torque - bias)).max())
         state = filt.constraint_bounds(q, v)
         expected = [state.margin_upper, state.margin_lower, state.barrier_upper,
-                    state.barrier_lower, state.accel_upper, state.accel_lower]
+                    state.barrier_lower, state.accel_upper, state.accel_lower,
+                    np.broadcast_to(state.speed_upper, (filt.n,)),
+                    np.broadcast_to(state.speed_lower, (filt.n,))]
         np.testing.assert_allclose(filt._rows, expected, rtol=1e-12, atol=1e-12)
         out = filt.step(q, v, np.zeros(filt.n))
         np.testing.assert_allclose(out.barrier_margin, state.smallest, atol=1e-13)

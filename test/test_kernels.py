@@ -28,26 +28,36 @@ def random_spd(rng: np.random.Generator, n: int) -> np.ndarray:
     return factor @ factor.T + 1e-3 * np.eye(n)
 
 
-@pytest.mark.parametrize('kind1', ['linear', 'atan', 'tanh'])
+@pytest.mark.parametrize('kind1', ['linear', 'atan', 'tanh', 'sqrt'])
 @pytest.mark.parametrize('kind2', ['linear', 'cubic', 'atan', 'tanh'])
-def test_barrier_rows_match_evaluate_barriers(kind1: str, kind2: str) -> None:
+@pytest.mark.parametrize('speed_rows', [False, True])
+def test_barrier_rows_match_evaluate_barriers(kind1: str, kind2: str, speed_rows: bool) -> None:
     rng = np.random.default_rng(1)
     n = 5
     lower, upper = -rng.uniform(0.5, 2.0, n), rng.uniform(0.5, 2.0, n)
     gamma, beta = rng.uniform(0.5, 5.0, n), rng.uniform(0.5, 50.0, n)
     margin = rng.uniform(0.0, 0.5, n)
+    speed_bound = rng.uniform(0.5, 3.0, n)
+    # Some joints without velocity barriers or acceleration bound (0 and inf mean none).
+    speed_beta = np.where(rng.random(n) < 0.7, rng.uniform(10.0, 500.0, n), 0.0) \
+        if speed_rows else np.zeros(n)
+    accel_bound = np.where(rng.random(n) < 0.7, rng.uniform(1.0, 30.0, n), np.inf) \
+        if speed_rows else np.full(n, np.inf)
     alpha1, alpha2 = ClassK(kind1, 0.7), ClassK(kind2, 1.3)
-    rows = np.empty((6, n))
+    rows = np.empty((8, n))
     smallest = np.empty(n)
     for _ in range(50):
         q = rng.uniform(lower - 0.3, upper + 0.3)
         v = rng.normal(scale=2.0, size=n)
         worst, deepest = _kernels.barrier_rows(
-            q, v, lower, upper, gamma, beta, margin, _kernels.ALPHA_CODES[kind1], 0.7,
-            _kernels.ALPHA_CODES[kind2], 1.3, rows, smallest)
-        state = evaluate_barriers(q, v, lower, upper, gamma, beta, alpha1, alpha2, margin)
+            q, v, lower, upper, gamma, beta, margin, speed_bound, speed_beta, accel_bound,
+            _kernels.ALPHA_CODES[kind1], 0.7, _kernels.ALPHA_CODES[kind2], 1.3, rows, smallest)
+        state = evaluate_barriers(q, v, lower, upper, gamma, beta, alpha1, alpha2, margin,
+                                  speed_bound, speed_beta, accel_bound)
         expected = np.array([state.margin_upper, state.margin_lower, state.barrier_upper,
-                             state.barrier_lower, state.accel_upper, state.accel_lower])
+                             state.barrier_lower, state.accel_upper, state.accel_lower,
+                             np.broadcast_to(state.speed_upper, (n,)),
+                             np.broadcast_to(state.speed_lower, (n,))])
         np.testing.assert_allclose(rows, expected, rtol=1e-13, atol=1e-13)
         np.testing.assert_allclose(smallest, state.smallest, rtol=1e-13, atol=1e-13)
         assert worst == pytest.approx(state.smallest.min(), abs=1e-13)
@@ -143,12 +153,13 @@ def test_constructive_matches_public_function() -> None:
     out = np.empty(n)
     empties = 0
     for _ in range(300):
-        rows = rng.normal(size=(6, n))
+        rows = rng.normal(size=(8, n))  # [hp; hn; bp; bn; Ap; An; sp; sn]
         lower = rng.normal(scale=8.0, size=n)
         upper = lower + rng.normal(loc=2.0, scale=6.0, size=n)  # sometimes empty
         a_nom = rng.normal(scale=20.0, size=n)
         _kernels.constructive(a_nom, lower, upper, authority, rows, out)
-        upper_worse = np.minimum(rows[0], rows[2]) < np.minimum(rows[1], rows[3])
+        upper_worse = np.minimum(np.minimum(rows[0], rows[2]), rows[6]) \
+            < np.minimum(np.minimum(rows[1], rows[3]), rows[7])
         expected = constructive_acceleration(a_nom, lower, upper, authority, upper_worse)
         np.testing.assert_array_equal(out, expected)
         empties += int(np.any(np.maximum(lower, -authority) > np.minimum(upper, authority)))
@@ -210,18 +221,24 @@ def test_stage_and_bound_is_stage_then_rows() -> None:
     n = 3
     lower, upper = -np.ones(n), np.ones(n)
     gamma, beta, margin = np.full(n, 2.0), np.full(n, 5.0), np.full(n, 0.1)
-    rows, smallest = np.empty((6, n)), np.empty(n)
-    rows_ref, smallest_ref = np.empty((6, n)), np.empty(n)
+    rows, smallest = np.empty((8, n)), np.empty(n)
+    rows_ref, smallest_ref = np.empty((8, n)), np.empty(n)
+    speed_bound, speed_beta, accel_bound = np.full(n, 1.5), np.full(n, 100.0), np.full(n, 9.0)
     inputs = np.empty((3, n))
     q, v, u = rng.normal(size=n), rng.normal(size=n), rng.normal(size=n)
     flags, worst, deepest = _kernels.stage_and_bound(q, v, u, inputs, lower, upper, gamma, beta,
-                                                     margin, 2, 0.5, 3, 1.0, rows, smallest)
-    expected = _kernels.barrier_rows(q, v, lower, upper, gamma, beta, margin, 2, 0.5, 3, 1.0,
-                                     rows_ref, smallest_ref)
+                                                     margin, speed_bound, speed_beta,
+                                                     accel_bound, 2, 0.5, 3, 1.0, rows,
+                                                     smallest)
+    expected = _kernels.barrier_rows(q, v, lower, upper, gamma, beta, margin, speed_bound,
+                                     speed_beta, accel_bound, 2, 0.5, 3, 1.0, rows_ref,
+                                     smallest_ref)
     assert flags == 0 and (worst, deepest) == expected
     np.testing.assert_array_equal(rows, rows_ref)
     np.testing.assert_array_equal(inputs, [q, v, u])
     q[1] = math.nan
     flags, worst, deepest = _kernels.stage_and_bound(q, v, u, inputs, lower, upper, gamma, beta,
-                                                     margin, 2, 0.5, 3, 1.0, rows, smallest)
+                                                     margin, speed_bound, speed_beta,
+                                                     accel_bound, 2, 0.5, 3, 1.0, rows,
+                                                     smallest)
     assert flags == _kernels.NONFINITE_Q and math.isnan(worst) and math.isnan(deepest)
