@@ -785,3 +785,71 @@ def test_model_survives_pickling_for_worker_processes() -> None:
     assert copy.content_hash() == model.content_hash()
     with pytest.raises(ValueError):
         copy.position_lower[0] = 0.0
+
+
+# ---------------------------------------------------------------------- xacro
+PLANAR2_XACRO = """<?xml version="1.0"?>
+<robot xmlns:xacro="http://www.ros.org/wiki/xacro" name="planar2">
+  <xacro:property name="upper_mass" value="1.2"/>
+  <xacro:macro name="frame" params="name">
+    <link name="${name}"/>
+  </xacro:macro>
+  BODY
+</robot>
+"""
+
+
+def _planar2_as_xacro(folder: Path, name: str = 'planar2.urdf.xacro') -> Path:
+    """planar2.urdf turned into a xacro file: the elbow link's mass from a property, the
+    tool frame from a macro (so that both must be expanded to give the same model)."""
+    from xml.etree import ElementTree
+
+    urdf_text = demo_urdf_path('planar2').read_text(encoding='utf-8')
+    root = ElementTree.fromstring(urdf_text)
+    parts = []
+    for child in root:
+        if child.tag == 'link' and child.get('name') == 'tool':
+            parts.append('<xacro:frame name="tool"/>')
+            continue
+        text = ElementTree.tostring(child, encoding='unicode')
+        parts.append(text.replace('<mass value="1.2" />', '<mass value="${upper_mass}"/>'))
+    assert any('${upper_mass}' in part for part in parts)
+    path = folder / name
+    path.write_text(PLANAR2_XACRO.replace('BODY', '\n  '.join(parts)), encoding='utf-8')
+    return path
+
+
+def test_a_xacro_file_gives_the_same_model_as_its_urdf(tmp_path: Path) -> None:
+    pytest.importorskip('xacro', reason='the xacro package is not installed (pip install '
+                        'xacro)')
+    limits = demo_limits_path('planar2')
+    reference = RobotModel.from_urdf(demo_urdf_path('planar2'), limits=limits)
+    expanded = RobotModel.from_urdf(_planar2_as_xacro(tmp_path), limits=limits)
+    assert expanded.content_hash() == reference.content_hash()
+    # A file that holds xacro macros under a .urdf name is expanded too (not parsed as it
+    # is, which would drop the macro's links silently).
+    disguised = _planar2_as_xacro(tmp_path, 'disguised.urdf')
+    assert RobotModel.from_urdf(disguised, limits=limits).content_hash() == \
+        reference.content_hash()
+
+
+def test_xacro_without_the_package_or_as_text_says_how_to_expand(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import sys
+
+    path = _planar2_as_xacro(tmp_path)
+    monkeypatch.setitem(sys.modules, 'xacro', None)  # as if not installed
+    with pytest.raises(RobotDescriptionError, match='xacro package is not installed') as raised:
+        RobotModel.from_urdf(path)
+    message = str(raised.value)
+    assert 'pip install xacro' in message
+    assert f'xacro {path} > planar2.urdf' in message
+    with pytest.raises(RobotDescriptionError, match='holds xacro macros'):
+        RobotModel.from_urdf(path.read_text(encoding='utf-8'))
+    monkeypatch.delitem(sys.modules, 'xacro')
+    broken = tmp_path / 'broken.urdf.xacro'
+    broken.write_text(PLANAR2_XACRO.replace('BODY', '<xacro:undefined_macro/>'),
+                      encoding='utf-8')
+    pytest.importorskip('xacro', reason='the xacro package is not installed')
+    with pytest.raises(RobotDescriptionError, match='xacro could not expand'):
+        RobotModel.from_urdf(broken)
