@@ -1,10 +1,63 @@
-"""Packaging for the safety_filter ROS 2 package (ament_python)."""
+"""Packaging for the safety_filter ROS 2 package (ament_python).
 
+Console scripts go to ``<prefix>/lib/safety_filter`` when setup.cfg's ``install_scripts`` /
+``script_dir`` apply (a colcon build), where ``ros2 run safety_filter <executable>`` finds
+them; but that folder is not on ``PATH``, and the README's commands call ``safety-filter``.
+So such an install also puts a copy of ``safety-filter`` (only that one: the node
+executables have generic names) in ``<prefix>/bin``, which a sourced ``install/setup.bash``
+puts on ``PATH`` (colcon adds a package's ``bin`` to ``PATH`` when it holds files). pip
+installs (wheels, editable) put every console script in ``<prefix>/bin`` already and are
+left alone.
+"""
+
+import os
+import shutil
 from glob import glob
 
 from setuptools import find_packages, setup
+from setuptools.command.develop import develop
+from setuptools.command.install_scripts import install_scripts
 
 PACKAGE_NAME = 'safety_filter'
+# Console scripts that must be on PATH as well as in lib/<package> (see the docstring).
+PATH_SCRIPTS = ('safety-filter',)
+
+
+def _copy_to_bin(script_dir):
+    """Copy PATH_SCRIPTS from ``<base>/lib/safety_filter`` to ``<base>/bin``; the copies."""
+    script_dir = os.path.abspath(script_dir)
+    lib = os.path.dirname(script_dir)
+    if os.path.basename(script_dir) != PACKAGE_NAME or os.path.basename(lib) != 'lib':
+        return []  # the scripts went elsewhere (a bin folder already): nothing to add
+    bin_dir = os.path.join(os.path.dirname(lib), 'bin')
+    copies = []
+    for name in PATH_SCRIPTS:
+        source = os.path.join(script_dir, name)
+        if os.path.isfile(source):
+            os.makedirs(bin_dir, exist_ok=True)
+            target = os.path.join(bin_dir, name)
+            shutil.copy2(source, target)  # keeps the interpreter line and the mode
+            copies.append(target)
+    return copies
+
+
+class InstallScripts(install_scripts):
+    """``setup.py install`` (colcon): the console scripts, then the PATH copies."""
+
+    def run(self):
+        super().run()
+        if not getattr(self, 'no_ep', False):  # wheels: pip writes the scripts itself
+            self.outfiles.extend(_copy_to_bin(self.install_dir))  # recorded: uninstallable
+
+
+class Develop(develop):
+    """``setup.py develop`` (colcon --symlink-install): the wrappers, then the PATH copies."""
+
+    def install_wrapper_scripts(self, dist):
+        result = super().install_wrapper_scripts(dist)
+        _copy_to_bin(self.script_dir)
+        return result
+
 DESCRIPTION = 'A certified control-barrier-function safety filter for torque-controlled arms.'
 
 setup(
@@ -56,10 +109,13 @@ setup(
             'ros-jazzy-rcl-interfaces',
             'ros-jazzy-rmw-fastrtps-cpp',
         ],
+        # Expands .xacro robot descriptions given as --urdf / urdf_path.
+        'xacro': ['xacro>=2'],
         # Test tooling and the reference implementations the tests compare against.
-        'test': ['pytest>=7', 'highspy>=1.5', 'cvxpy>=1.4', 'ruff'],
+        'test': ['pytest>=7', 'highspy>=1.5', 'cvxpy>=1.4', 'ruff', 'xacro>=2'],
     },
     zip_safe=False,
+    cmdclass={'install_scripts': InstallScripts, 'develop': Develop},
     entry_points={
         'console_scripts': [
             'safety-filter = safety_filter.cli:main',

@@ -7,6 +7,8 @@ import re
 import xml.etree.ElementTree as ElementTree
 from pathlib import Path
 
+import pytest
+
 import safety_filter
 
 REPO = Path(__file__).resolve().parent.parent
@@ -76,6 +78,108 @@ def test_readme_commissioning_commands_parse() -> None:
         assert words[0] == 'safety-filter', command
         args = parser.parse_args(words[1:])  # exits (fails the test) on unknown options
         assert args.command == words[1]
+
+
+def _colcon_style_install(prefix: Path, build: Path) -> dict[str, str]:
+    """Install the package into ``prefix`` the way ``colcon build`` does for an ament_python
+    package, and return the environment a sourced ``install/setup.bash`` would give.
+
+    The command is colcon-core's (its python build task, without ``--symlink-install``):
+    ``setup.py egg_info ... build ... install --record ... --install-scripts <setup.cfg's
+    install_scripts> --single-version-externally-managed install_data``, with the prefix
+    given by ``--prefix`` (colcon sets it through a sitecustomize; the layout is the same).
+    The environment follows colcon's hooks: the prefix's site-packages on PYTHONPATH, the
+    prefix on AMENT_PREFIX_PATH, and ``<prefix>/bin`` on PATH only if it holds a file (so
+    ``safety-filter`` is found there or not at all, not through this machine's own
+    install).
+    """
+    import configparser
+    import os
+    import subprocess
+    import sys
+    import sysconfig
+
+    build.mkdir(parents=True, exist_ok=True)  # egg_info needs its base to exist
+    config = configparser.ConfigParser()
+    config.read(REPO / 'setup.cfg')
+    install_scripts = config.get('install', 'install_scripts')
+    command = [sys.executable, 'setup.py', 'egg_info', '--egg-base', str(build),
+               'build', '--build-base', str(build / 'build'),
+               'install', '--record', str(build / 'install.log'),
+               '--install-scripts', install_scripts, '--single-version-externally-managed',
+               '--prefix', str(prefix), 'install_data']
+    done = subprocess.run(command, cwd=REPO, capture_output=True, text=True)
+    assert done.returncode == 0, done.stdout[-2000:] + done.stderr[-2000:]
+    site = Path(sysconfig.get_path('purelib', vars={'base': str(prefix)}))
+    env = dict(os.environ)
+    env['PYTHONPATH'] = os.pathsep.join([str(site)] + [p for p in [env.get('PYTHONPATH')]
+                                                       if p])
+    env['AMENT_PREFIX_PATH'] = os.pathsep.join(
+        [str(prefix)] + [p for p in [env.get('AMENT_PREFIX_PATH')] if p])
+    # Only the install's bin and the system folders: this machine's own safety-filter (an
+    # editable pip install) must not be what the test finds.
+    system = [p for p in env.get('PATH', '').split(os.pathsep)
+              if p and not (Path(p) / 'safety-filter').exists()]
+    bin_dir = prefix / 'bin'
+    has_file = bin_dir.is_dir() and any(f.is_file() for f in bin_dir.iterdir())
+    env['PATH'] = os.pathsep.join(([str(bin_dir)] if has_file else []) + system)
+    env['PYTHONDONTWRITEBYTECODE'] = '1'
+    return env
+
+
+@pytest.mark.slow
+def test_readme_commissioning_commands_run_in_a_colcon_install_layout(tmp_path: Path) -> None:
+    """After `colcon build` and `source install/setup.bash`, the README's commissioning
+    commands find `safety-filter` on PATH (not only through `ros2 run`), every subcommand
+    they use answers --help, and the file-only steps (inspect, certify) run as written, on a
+    copy of the planar2 demo arm named as in the README."""
+    import shlex
+    import shutil
+    import subprocess
+    import sys
+
+    from safety_filter.demo_arms import demo_arm_files
+
+    prefix = tmp_path / 'install' / 'safety_filter'
+    env = _colcon_style_install(prefix, tmp_path / 'build')
+    found = shutil.which('safety-filter', path=env['PATH'])
+    assert found == str(prefix / 'bin' / 'safety-filter'), found
+    for executable in ('safety-filter', 'filter_node'):  # `ros2 run safety_filter <exe>`
+        assert (prefix / 'lib' / 'safety_filter' / executable).is_file(), executable
+    record = (tmp_path / 'build' / 'install.log').read_text(encoding='utf-8')
+    assert str(prefix / 'bin' / 'safety-filter') in record  # colcon can uninstall it
+    work = tmp_path / 'work'
+    work.mkdir()
+    urdf, limits = demo_arm_files('planar2')
+    shutil.copy(urdf, work / 'arm.urdf')
+    shutil.copy(limits, work / 'arm_limits.yaml')
+
+    def run(words: list[str]) -> subprocess.CompletedProcess[str]:
+        return subprocess.run(words, cwd=work, env=env, capture_output=True, text=True,
+                              timeout=300)
+
+    where = run([sys.executable, '-c', 'import safety_filter, sys; '
+                 'from safety_filter.ros.runner import config_file; '
+                 'print(safety_filter.__file__); print(config_file("filter.yaml"))'])
+    assert where.returncode == 0, where.stderr
+    module, config = where.stdout.split()
+    assert Path(module).is_relative_to(prefix) and Path(config).is_relative_to(prefix), \
+        where.stdout  # the installed package and its share folder, not the source tree
+    assert run(['safety-filter', '--version']).stdout.strip() == \
+        f'safety-filter {safety_filter.__version__}'
+
+    commands = [shlex.split(c) for c in
+                _indented_commands(_readme_section('Commissioning an arm'), 'safety-filter')]
+    assert commands
+    for subcommand in sorted({words[1] for words in commands}):
+        answer = run(['safety-filter', subcommand, '--help'])
+        text = ' '.join(answer.stdout.split())  # argparse wraps the description
+        assert answer.returncode == 0 and 'Exit code' in text, (subcommand, answer.stderr)
+    for words in commands:
+        if words[1] in ('inspect', 'certify'):  # the steps that need only the arm's files
+            done = run(words)
+            assert done.returncode == 0, (words, done.stdout[-1500:], done.stderr[-1500:])
+    assert (work / 'arm_certificate.yaml').is_file()
 
 
 def test_readme_opens_with_the_job_and_carries_the_cautions() -> None:
