@@ -187,7 +187,8 @@ What the node publishes in each state and at each transition:
 * **unconfigured** (at start, after ``cleanup``): nothing (no publishers).
 * ``configure``: builds the model, rebuilds the certificate from the parameters, checks the
   model hash and creates the filter, publishers, subscriptions and timers (any error: logged,
-  the transition fails and the node stays unconfigured). Publishes nothing.
+  the transition fails and the node stays unconfigured). Publishes the ``~/status``
+  field names once on ``~/status_fields`` (transient-local), nothing else.
 * **inactive**: no ``filtered_torque`` and no ``~/status``; ``/diagnostics`` at its rate,
   level STALE ('inactive: not filtering'). The driver's own command timeout applies.
 * ``activate``: fresh filter state and counters; a joint state already older than
