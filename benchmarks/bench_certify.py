@@ -131,7 +131,8 @@ def cost_of_robustness(name: str, settings: CertifySettings) -> None:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument('--quick', action='store_true', help='far fewer samples (smoke run)')
-    parser.add_argument('--arms', nargs='+', default=['reach7', 'bench6'], choices=DEMO_ARMS)
+    parser.add_argument('--arms', nargs='+', default=['reach7', 'bench6'], choices=DEMO_ARMS,
+                        help='demo arms to certify (default: reach7 bench6)')
     parser.add_argument('--no-robustness', action='store_true',
                         help='skip the cost-of-robustness runs (three more certifications '
                              'per arm)')

@@ -198,8 +198,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument('--steps', type=int, default=None, help='filter steps per arm')
     parser.add_argument('--cvxpy-steps', type=int, default=None,
                         help='steps of the CVXPY version per arm (0: skip)')
-    parser.add_argument('--arms', nargs='+', default=list(DEMO_ARMS), choices=DEMO_ARMS)
-    parser.add_argument('--seed', type=int, default=1)
+    parser.add_argument('--arms', nargs='+', default=list(DEMO_ARMS), choices=DEMO_ARMS,
+                        help='demo arms to step (default: all)')
+    parser.add_argument('--seed', type=int, default=1,
+                        help='seed of the random states and nominals (default: 1)')
     args = parser.parse_args(argv)
     steps = args.steps or (300 if args.quick else 5000)
     cvxpy_steps = args.cvxpy_steps if args.cvxpy_steps is not None else (

@@ -58,7 +58,8 @@ def plants(model):  # noqa: ANN001, ANN201
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument('--arm', default='bench6', choices=DEMO_ARMS)
+    parser.add_argument('--arm', default='bench6', choices=DEMO_ARMS,
+                        help='the demo arm (default: bench6)')
     parser.add_argument('--duration', type=float, default=6.0, help='seconds per run')
     parser.add_argument('--quick', action='store_true', help='1 s runs (a smoke run)')
     args = parser.parse_args(argv)

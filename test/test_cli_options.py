@@ -202,6 +202,19 @@ def test_the_executables_own_options_have_help_too() -> None:
     assert "help='" in source and 'add_argument' in source
 
 
+def test_every_option_in_the_repository_has_help() -> None:
+    """Every add_argument call of the package and the benchmark scripts gives help text,
+    read from the source (the scripts build their parsers inside main())."""
+    missing = []
+    for path in sorted([*(REPO / 'safety_filter').rglob('*.py'),
+                        *(REPO / 'benchmarks').glob('*.py')]):
+        for node in ast.walk(ast.parse(path.read_text(encoding='utf-8'))):
+            if isinstance(node, ast.Call) and getattr(node.func, 'attr', '') == \
+                    'add_argument' and not any(k.arg == 'help' for k in node.keywords):
+                missing.append(f'{path.relative_to(REPO)}:{node.lineno}')
+    assert missing == []
+
+
 def _with_exit_codes(parser: argparse.ArgumentParser) -> argparse.ArgumentParser:
     # The executables document their exit codes in their main() docstrings, not in an
     # argparse description: check only the options here.
