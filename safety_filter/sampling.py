@@ -138,6 +138,13 @@ def estimate_sampling_margin(
 ) -> np.ndarray:
     """Acceleration margin ``delta`` [rad/s^2] per joint covering one hold period.
 
+    Each sampled state and command (the command inside the bounds tightened by
+    ``current_margin``, often at their edge) is rolled out under the held torque; at every
+    substep the acceleration must still meet the position barriers' ZCBF bounds (without
+    margin) at the state reached, and the velocity barriers' bounds of the sample. The
+    result is ``current_margin`` plus ``inflation`` times the largest shortfall per joint:
+    equal to ``current_margin`` when it already suffices.
+
     Args:
         model: the robot model (payload masses are sampled over its payload range).
         gains: the barrier gains the filter will use.
@@ -161,12 +168,8 @@ def estimate_sampling_margin(
     payload = levels[rng.integers(0, 3, samples)]
     plant = BatchPlant(model, payload)
     start = gains.barriers(model, q, v, margin)
-    # The velocity barriers need only the acceleration's own drift, not their bounds' drift
-    # (docs/method.md, sampled data): so the bounds' drift is that of the position barriers.
-    position_gains = Gains(gains.gamma, gains.beta, gains.alpha1, gains.alpha2)
     if acceleration_envelope is None:
         acceleration_envelope = gains.accel_bound
-    position_start = position_gains.barriers(model, q, v, margin)
     mass = plant.mass_matrix(q)
     bias = plant.bias(q, v)
     # Accelerations the filter may command: inside the bounds, torque inside the box. Draw
@@ -183,7 +186,20 @@ def estimate_sampling_margin(
     torque = np.einsum('nij,nj->ni', mass, accel) + bias
     torque = np.clip(torque, -umax, umax)
     accel0 = np.linalg.solve(mass, (torque - bias)[..., None])[..., 0]
-    drift = np.zeros(n)
+    # A sample whose clipped torque leaves the bounds is not a command the filter sends.
+    tolerance = 1e-9 * (1.0 + np.abs(hi) + np.abs(lo))
+    sendable = np.all((accel0 >= lo - tolerance) & (accel0 <= hi + tolerance), axis=1)
+    # The conditions checked at every substep (docs/method.md, sampled data): the position
+    # barriers' ZCBF bounds without margin at the current state, and, for the velocity
+    # barriers, the bound at the sample (they stay invariant under a held acceleration
+    # that keeps within it, so only the acceleration's own drift counts there).
+    position_gains = Gains(gains.gamma, gains.beta, gains.alpha1, gains.alpha2)
+    rows = gains.speed_bound is not None and gains.speed_beta is not None
+    if rows:
+        active = np.asarray(gains.speed_beta) > 0.0
+        speed_upper = np.where(active, gains.speed_beta * (gains.speed_bound - v), np.inf)
+        speed_lower = np.where(active, -gains.speed_beta * (gains.speed_bound + v), -np.inf)
+    violation = np.zeros(n)
     dt = hold_period_s / substeps
     qk, vk = q, v
     k1v = accel0
@@ -197,9 +213,13 @@ def estimate_sampling_margin(
         k4q = vk + dt * k3v
         qk = qk + dt / 6.0 * (k1q + 2 * k2q + 2 * k3q + k4q)
         vk = vk + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v)
-        now = position_gains.barriers(model, qk, vk, margin)
         k1v = plant.acceleration(qk, vk, torque)  # the acceleration now; next step's k1
-        bound_drift = np.maximum(np.abs(now.accel_upper - position_start.accel_upper),
-                                 np.abs(now.accel_lower - position_start.accel_lower))
-        drift = np.maximum(drift, np.max(np.abs(k1v - accel0) + bound_drift, axis=0))
-    return inflation * drift
+        now = position_gains.barriers(model, qk, vk, 0.0)
+        over = np.maximum(k1v - now.accel_upper, now.accel_lower - k1v)
+        if rows:
+            over = np.maximum(over, np.maximum(k1v - speed_upper, speed_lower - k1v))
+        if sendable.any():
+            violation = np.maximum(violation, np.max(over[sendable], axis=0))
+    # The commands at the margin's edge break a condition by ``violation``: a margin that
+    # much larger (inflated) keeps them.
+    return margin + inflation * violation

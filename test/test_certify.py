@@ -52,6 +52,7 @@ from safety_filter.certify import (
     beta_star,
     certify_with_evidence,
     gamma_star,
+    useful_authority,
 )
 from safety_filter.demo_arms import demo_arm_files, load_demo_arm
 from safety_filter.dynamics import mass_matrix_batch, rnea_batch
@@ -137,20 +138,29 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
                                       np.array(c.velocity_bound))
     umax = np.array(model.effort_limit)
     weights = umax / np.diag(outcome.bounds.mass_max)
-    authority = authority_row_sums(mbar, hbar, umax, weights)
+    # Designs with velocity barriers do not spend authority beyond what enlarges S.
+    cap = useful_authority(model, CertifySettings()) if c.has_velocity_barriers else None
+    authority = authority_row_sums(mbar, hbar, umax, weights, cap)
     assert authority is not None
     np.testing.assert_allclose(authority, c.authority, rtol=1e-9)
     assert np.all(authority > 0.0)
     assert np.all(mbar @ authority + hbar <= umax * (1 + 1e-12))
-    # Phase 1 solved independently: max t s.t. Mbar e <= umax - hbar, e >= t w, e >= 0.
+    held = np.zeros(len(umax), dtype=bool)
+    if cap is not None:
+        assert np.all(authority <= cap * (1 + 1e-9))
+        held = authority >= cap * (1 - 1e-9)
+    # Phase 1 solved independently: max t s.t. Mbar e <= umax - hbar, e >= t w on the joints
+    # not held at their cap, e >= cap on the others, e >= 0.
     n = len(umax)
+    share = np.where(held, 0.0, weights)
+    floor = np.where(held, -np.asarray(cap if cap is not None else np.zeros(n)), 0.0)
     reference = linprog(
         np.r_[np.zeros(n), -1.0],
-        A_ub=np.block([[mbar, np.zeros((n, 1))], [-np.eye(n), weights[:, None]]]),
-        b_ub=np.r_[umax - hbar, np.zeros(n)], bounds=[(0, None)] * (n + 1), method='highs')
+        A_ub=np.block([[mbar, np.zeros((n, 1))], [-np.eye(n), share[:, None]]]),
+        b_ub=np.r_[umax - hbar, floor], bounds=[(0, None)] * (n + 1), method='highs')
     assert reference.status == 0, reference.message
     t_star = reference.x[-1]
-    assert float(np.min(authority / weights)) == pytest.approx(t_star, rel=1e-6)
+    assert float(np.min((authority / weights)[~held])) == pytest.approx(t_star, rel=1e-6)
     # Phase 2 only spends slack: the result is no worse than the phase-1 point anywhere.
     assert np.sum(authority / weights) >= np.sum(reference.x[:n] / weights) * (1 - 1e-6)
 
