@@ -22,11 +22,17 @@ the same with preallocated buffers).
 
 Works with OSQP 1.x (the tested version) and 0.6 (setting names and status codes differ; the
 codes for "solved" and "solved inaccurate" are 1 and 2 in both).
+
+OSQP's own text never reaches the output (:func:`silence_solver_output`): OSQP 1.x (1.0.0 to
+1.1.3 at least) prints "Polishing not needed - no active set detected at optimal point"
+whenever an answer has no active constraint, whatever ``verbose`` says, and no setting turns
+it off.
 """
 
 from __future__ import annotations
 
 import math
+import sys
 import time
 from typing import Any
 
@@ -52,6 +58,74 @@ DEFAULT_EPS = 1e-3
 ACCURATE_EPS = 1e-6
 DEFAULT_MAX_ITER = 1000
 _OSQP_MAJOR = int(str(getattr(osqp, '__version__', '1')).split('.')[0] or 1)
+
+
+# ---------------------------------------------------------------------- solver output
+# Where OSQP's text comes from. OSQP 1.x's C code prints through ``c_print``, which its
+# Python extension maps to CPython's ``PySys_WriteStdout``: each message is a call of
+# ``sys.stdout.write`` made from inside the solve call, on the solving thread. The polishing
+# routine prints its "no active set" line unconditionally (``verbose`` only governs the
+# iteration log), so it shows up on every step where the filter leaves the nominal alone
+# (and twice when the accurate retry runs). The only place to catch it without touching
+# file descriptors per step is that ``write`` call: :class:`_SolverQuietStdout` stands in
+# for ``sys.stdout`` once per process and drops exactly the writes whose calling Python
+# frame is one of our calls into OSQP (a C extension has no frame of its own, so the caller
+# of ``write`` is the Python function that called the solver). Everything else passes
+# through unchanged, and nothing is added to the step: the check runs only when something
+# is written.
+def _solver_call_sites() -> frozenset[Any]:
+    """Code objects of the Python functions that call into OSQP's compiled code."""
+    sites = {AccelerationQP.__init__.__code__, AccelerationQP.solve.__code__,
+             AccelerationQP.reset_warm_start.__code__, AccelerationQP._settings_copy.__code__}
+    # OSQP's own Python wrapper (the path taken with OSQP 0.6, and by setup/warm_start).
+    wrapper = getattr(osqp, 'OSQP', None)
+    for value in vars(wrapper).values() if wrapper is not None else ():
+        code = getattr(value, '__code__', None)
+        if code is not None:
+            sites.add(code)
+    return frozenset(sites)
+
+
+class _SolverQuietStdout:
+    """``sys.stdout`` as before, minus what OSQP writes during our calls into it.
+
+    Every attribute but ``write`` is the wrapped stream's, so ``fileno()``, ``isatty()``,
+    ``buffer``, ``encoding`` and ``flush()`` behave as they did.
+    """
+
+    def __init__(self, stream: Any, call_sites: frozenset[Any]) -> None:
+        self._safety_filter_stream = stream
+        self._safety_filter_sites = call_sites
+
+    def write(self, text: str) -> int:
+        """Write ``text`` to the wrapped stream, unless OSQP wrote it from a solver call."""
+        try:
+            caller = sys._getframe(1).f_code
+        except ValueError:  # called from C with no Python frame on this thread: not ours
+            caller = None
+        if caller in self._safety_filter_sites:
+            return len(text)
+        return self._safety_filter_stream.write(text)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._safety_filter_stream, name)
+
+
+def silence_solver_output() -> None:
+    """Keep OSQP's messages off standard output, from now on, in this process.
+
+    Idempotent and cheap; :class:`AccelerationQP` calls it when it is built, so any program
+    that runs the filter step gets it. Replaces ``sys.stdout`` by a stand-in that passes
+    everything through except what OSQP writes from inside this module's solver calls. A
+    ``sys.stdout`` replaced later (``contextlib.redirect_stdout``, a test's capture) is
+    wrapped again by the next :class:`AccelerationQP` built, not by the step. Without a
+    ``sys.stdout`` (``None``) there is nothing to wrap: CPython then writes OSQP's text to
+    the C-level stdout.
+    """
+    stream = sys.stdout
+    if stream is None or isinstance(stream, _SolverQuietStdout):
+        return
+    sys.stdout = _SolverQuietStdout(stream, _solver_call_sites())
 
 
 class QPResult:
@@ -182,6 +256,7 @@ class AccelerationQP:
             raise SafetyFilterError(f'time_limit_s must be positive, got {time_limit_s}')
         if not (eps > 0 and max_iter >= 1):
             raise SafetyFilterError(f'need eps > 0 and max_iter >= 1, got {eps}, {max_iter}')
+        silence_solver_output()
         self.n = n
         for values in (umax, weights):
             values.flags.writeable = False
