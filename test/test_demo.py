@@ -84,7 +84,9 @@ def test_bags_hold_the_expected_topics_and_counts(demo) -> None:
     filtered = bags.topic_summary(output / 'bags' / 'filtered')
     assert set(unfiltered) == {bags.TOPIC_JOINT_STATES, bags.TOPIC_NOMINAL}
     assert set(filtered) == {bags.TOPIC_JOINT_STATES, bags.TOPIC_NOMINAL, bags.TOPIC_COMMAND,
-                             bags.TOPIC_DIAGNOSTICS, bags.TOPIC_STATUS}
+                             bags.TOPIC_DIAGNOSTICS, bags.TOPIC_STATUS,
+                             bags.TOPIC_STATUS_FIELDS}
+    assert filtered[bags.TOPIC_STATUS_FIELDS].count == 1  # the field names, sent once
     for summary in (unfiltered, filtered):
         for topic, info in summary.items():
             assert info.msgtype == bags.TOPIC_TYPES[topic]

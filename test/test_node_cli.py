@@ -102,9 +102,8 @@ def test_cli_node_filters_and_exits_cleanly_on_sigint(
     certificate = arm.default_certificate_path
     node = node_process(['--certificate', str(certificate), '--urdf', str(arm.urdf_path),
                          '--limits', str(arm.limits_path), '--executor', executor,
-                         '--activate-at-start',
-                         '--ros-args', '-r', f'__ns:={namespace or "/"}',
-                         '-p', 'diagnostics_rate_hz:=5.0'])
+                         '--activate-at-start', '--namespace', namespace or '/',
+                         '--ros-args', '-p', 'diagnostics_rate_hz:=5.0'])
     harness = Harness(domain_id, namespace)
     try:
         harness.wait_for_subscribers(START_TIMEOUT_S)
