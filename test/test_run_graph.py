@@ -169,3 +169,38 @@ def test_simulated_arm_keeps_the_largest_excursion_past_each_limit(
             node.destroy_node()
     finally:
         context.try_shutdown()
+
+
+@ros
+def test_hardware_graph_takes_the_robot_from_a_latched_description(
+        arm: Any, domain: int, capsys: Any) -> None:
+    """run-graph --graph hardware --robot-description-topic: the filter configures from the
+    URDF that a robot_state_publisher stand-in published before the graph started."""
+    import rclpy
+    from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
+    from std_msgs.msg import String
+
+    from safety_filter.cli import main
+
+    namespace = f'/rg_hw_{os.getpid()}'
+    context = rclpy.context.Context()
+    rclpy.init(context=context, domain_id=domain)
+    try:
+        publisher_node = rclpy.create_node('description_stand_in', context=context,
+                                           namespace=namespace)
+        publisher = publisher_node.create_publisher(
+            String, 'robot_description',
+            QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                       durability=DurabilityPolicy.TRANSIENT_LOCAL))
+        publisher.publish(String(data=Path(arm.urdf_path).read_text(encoding='utf-8')))
+        code = main(['run-graph', '--graph', 'hardware', '--robot-description-topic',
+                     'robot_description', '--limits', str(arm.limits_path), '--certificate',
+                     str(arm.default_certificate_path), '--namespace', namespace,
+                     '--duration', '1', '--domain-id', str(domain)])
+        publisher_node.destroy_node()
+    finally:
+        context.try_shutdown()
+    out = capsys.readouterr().out
+    assert code == EXIT_GRAPH_OK, out
+    assert f'ros2 lifecycle set {namespace}/safety_filter activate' in out
+    assert 'NODE FAILED' not in out
