@@ -4,7 +4,9 @@
 certificate, optional closed-loop re-simulation, optional replay bag, report) and returns a
 plain entry that says ``'ok'`` or ``'failed'`` with the error: a bad bag never raises.
 :func:`replay_bags` runs it over many bags across processes (``concurrent.futures``) with a
-progress bar; the command ``safety-filter replay`` is a thin layer over it.
+progress bar, or on the workers of a running Dask cluster
+(:mod:`safety_filter.replay_cluster`, imported only then); the command
+``safety-filter replay`` is a thin layer over it.
 
 Output folder layout: ``<out>/<bag name>/replay_report.html`` (+ JSON, plots) per bag,
 ``<out>/<bag name>/<bag name>_replay`` (the replay bag, with ``write_bags``), and
@@ -14,10 +16,13 @@ Output folder layout: ``<out>/<bag name>/replay_report.html`` (+ JSON, plots) pe
 from __future__ import annotations
 
 import copy
+import dataclasses
+import os
 import shutil
 import sys
 import time
 import traceback
+import uuid
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -36,6 +41,7 @@ from safety_filter.replay import (
     write_replay_bag,
 )
 from safety_filter.replay_report import (
+    REPORT_HTML,
     CertificateRun,
     EventLog,
     format_trial_summary,
@@ -146,23 +152,86 @@ def _remove_old_replay_bag(path: Path) -> None:
                    'move it or choose another --output-dir')
 
 
+def failed_entry(bag: str, name: str, error: str | None, detail: str | None = None
+                 ) -> dict[str, Any]:
+    """The entry of a bag that was not replayed, with its ``error`` (see :func:`replay_bag`
+    for the keys)."""
+    return {'name': name, 'bag': bag, 'status': 'failed', 'error': error, 'report': None,
+            'report_json': None, 'replay_bag': None, 'figures': None, 'summary': '',
+            'seconds': 0.0, 'detail': detail}
+
+
+def _renamer(pairs: Sequence[tuple[str, str]]) -> Any:
+    """A function that rewrites the opened paths in a text to the recorded ones."""
+    pairs = sorted(((real, shown) for real, shown in pairs if real != shown),
+                   key=lambda pair: -len(pair[0]))  # the longest first: nested paths
+
+    def rename(text: str) -> str:
+        for real, shown in pairs:
+            text = text.replace(real, shown)
+        return text
+    return rename
+
+
+_STAGING = '.partial-'
+
+
+def _write_replay_bag_atomically(bag: str, result: Any, target: Path, storage: str,
+                                 custom_data: dict[str, str]) -> None:
+    """Write the replay bag in a hidden folder beside ``target``, then rename it into place.
+
+    A process killed while writing (a cluster worker, Ctrl-C) leaves only a hidden
+    ``.partial-*`` folder, which the next attempt at the same bag removes, never a
+    half-written bag under the final name that a retry would refuse to replace. The staged
+    bag has the final folder name, so its storage file is named as a direct write names it.
+    """
+    folder = target.parent
+    if folder.is_dir():
+        for stale in folder.glob(f'{_STAGING}{target.name}-*'):
+            shutil.rmtree(stale, ignore_errors=True)
+    staging = folder / f'{_STAGING}{target.name}-{uuid.uuid4().hex}'
+    try:
+        staged = write_replay_bag(bag, result, staging / target.name, storage=storage,
+                                  custom_data=custom_data)
+        try:
+            os.rename(staged, target)
+        except OSError as err:
+            raise BagError(f'cannot put the replay bag in place at {target}: {err}') from err
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+
+
 def replay_bag(bag: str | Path, name: str, model: RobotModel,
                certificates: Sequence[CertificateChoice], options: ReplayOptions,
-               out_dir: str | Path, events: EventLog | None = None) -> dict[str, Any]:
+               out_dir: str | Path, events: EventLog | None = None, *,
+               recorded_bag: str | None = None, recorded_out_dir: str | None = None
+               ) -> dict[str, Any]:
     """Replay one bag and write its report; never raises for a bad bag.
 
     Returns an entry: ``name``, ``bag``, ``status`` (``'ok'``/``'failed'``), ``error``,
     ``report`` (HTML path relative to ``out_dir``), ``report_json``, ``replay_bag``,
     ``figures`` (a few key numbers), ``summary`` (the terminal text), ``seconds``, and
     ``detail`` (a traceback, for errors that are not the bag's fault).
+
+    ``recorded_bag`` and ``recorded_out_dir`` are how the reports, the entry and the error
+    messages name ``bag`` and ``out_dir`` (default: as given). A cluster worker opens the
+    absolute paths but records the spelling of the machine that started the run, so that
+    its output is the same as a local run's.
     """
     started = time.perf_counter()
     out_dir = Path(out_dir)
-    entry: dict[str, Any] = {'name': name, 'bag': str(bag), 'status': 'failed', 'error': None,
-                             'report': None, 'report_json': None, 'replay_bag': None,
-                             'figures': None, 'summary': '', 'seconds': 0.0, 'detail': None}
+    shown_bag = str(bag) if recorded_bag is None else recorded_bag
+    shown_out = out_dir if recorded_out_dir is None else Path(recorded_out_dir)
+    folder, shown_folder = out_dir / name, shown_out / name
+    target = folder / f'{name}_replay'
+    staging_prefix = str(folder / f'{_STAGING}{target.name}-')
+    rename = _renamer([(str(Path(bag)), str(Path(shown_bag))), (str(bag), shown_bag),
+                       (str(out_dir), str(shown_out))])
+    entry = failed_entry(shown_bag, name, None)
     try:
         trial = read_trial(bag, model, options.topics)
+        if recorded_bag is not None:
+            trial = dataclasses.replace(trial, path=Path(shown_bag))
         filter_options: dict[str, Any] = {'gravity_convention': options.gravity_convention}
         if options.payload_mass is not None:
             filter_options['payload_mass'] = options.payload_mass
@@ -181,18 +250,19 @@ def replay_bag(bag: str | Path, name: str, model: RobotModel,
                                     gravity_convention=options.gravity_convention)
             runs.append(CertificateRun(choice.label, choice.certificate, result,
                                        choice.source, closed))
-        folder = out_dir / name
-        extra: dict[str, Any] = {}
+        # 'html' is set by write_trial_report from the folder it writes to; the extra
+        # entries override it with the recorded spelling.
+        extra: dict[str, Any] = {'html': str(shown_folder / REPORT_HTML)}
         if options.write_bags:
-            target = folder / f'{name}_replay'
             _remove_old_replay_bag(target)
-            write_replay_bag(bag, runs[0].result, target, storage=options.bag_storage,
-                             custom_data={
-                                 'safety_filter.certificate_id':
-                                     runs[0].certificate.certificate_id,
-                                 'safety_filter.trigger': options.trigger})
-            extra['replay_bag'] = str(target)
-            entry['replay_bag'] = str(target)
+            _write_replay_bag_atomically(
+                str(bag), runs[0].result, target, options.bag_storage, custom_data={
+                    # (the same value write_replay_bag records, in the recorded spelling)
+                    'safety_filter.replay_of': str(Path(shown_bag)),
+                    'safety_filter.certificate_id': runs[0].certificate.certificate_id,
+                    'safety_filter.trigger': options.trigger})
+            extra['replay_bag'] = str(shown_folder / target.name)
+            entry['replay_bag'] = extra['replay_bag']
         data = write_trial_report(folder, trial, model, runs, name=name,
                                   options=options.record(), events=events, extra=extra,
                                   plots=options.plots)
@@ -208,6 +278,14 @@ def replay_bag(bag: str | Path, name: str, model: RobotModel,
     except Exception as err:  # not the bag's fault: say so, keep the traceback in the JSON
         entry['error'] = f'{bag}: internal error: {type(err).__name__}: {err}'
         entry['detail'] = traceback.format_exc()
+    if entry['error'] is not None:
+        # A staged replay bag's path is reported as the bag it was to become.
+        text = entry['error']
+        while staging_prefix in text:
+            start = text.index(staging_prefix)
+            end = text.find(os.sep, start + len(staging_prefix))
+            text = text[:start] + str(folder) + (text[end:] if end >= 0 else '')
+        entry['error'] = rename(text)
     entry['seconds'] = time.perf_counter() - started
     return entry
 
@@ -242,14 +320,20 @@ def replay_bags(bags: Sequence[str | Path], model: RobotModel,
                 certificates: Sequence[CertificateChoice], options: ReplayOptions,
                 out_dir: str | Path, *, names: Sequence[str] | None = None,
                 jobs: int = DEFAULT_JOBS, events: EventLog | None = None,
-                progress: bool = True) -> list[dict[str, Any]]:
+                progress: bool = True, cluster: str | None = None) -> list[dict[str, Any]]:
     """Replay every bag (see :func:`replay_bag`), ``jobs`` at a time in worker processes.
 
-    One bag, or ``jobs <= 1``, runs in this process. A progress bar goes to stderr when it is
-    a terminal and ``progress`` is set. Returns the entries in the order of ``bags``.
+    One bag, or ``jobs <= 1``, runs in this process. With ``cluster``, the address of a
+    running Dask scheduler (``tcp://HOST:PORT``), the bags are replayed on its workers
+    instead and ``jobs`` is not used (:func:`safety_filter.replay_cluster.replay_on_cluster`:
+    the bags and ``out_dir`` must be at the same paths on the workers). A progress bar goes
+    to stderr when it is a terminal and ``progress`` is set. Returns the entries in the
+    order of ``bags``.
 
     Raises:
-        SafetyFilterError: ``jobs`` < 1, or ``names`` of the wrong length.
+        SafetyFilterError: ``jobs`` < 1, or ``names`` of the wrong length;
+            :class:`safety_filter.replay_cluster.ClusterError` when the cluster cannot be
+            used (before any bag is replayed).
     """
     from tqdm import tqdm
 
@@ -261,6 +345,12 @@ def replay_bags(bags: Sequence[str | Path], model: RobotModel,
                                                              else Path('.'))
     if len(names) != len(bags):
         raise SafetyFilterError('one name per bag is needed')
+    if cluster is not None:
+        # Dask is imported only here: a local replay does not pay for it.
+        from safety_filter.replay_cluster import replay_on_cluster
+
+        return replay_on_cluster(cluster, bags, model, certificates, options, out_dir,
+                                 names=names, events=events, progress=progress)
     entries: list[dict[str, Any] | None] = [None] * len(bags)
     bar = tqdm(total=len(bags), unit='bag', file=sys.stderr, disable=None if progress else True,
                desc='replay', leave=False)
@@ -287,11 +377,9 @@ def replay_bags(bags: Sequence[str | Path], model: RobotModel,
                     try:
                         entries[k] = future.result()
                     except Exception as err:  # a worker died (killed, out of memory)
-                        entries[k] = {'name': names[k], 'bag': bags[k], 'status': 'failed',
-                                      'error': f'{bags[k]}: the worker process failed: '
-                                               f'{type(err).__name__}: {err}',
-                                      'report': None, 'figures': None, 'summary': '',
-                                      'detail': None}
+                        entries[k] = failed_entry(bags[k], names[k],
+                                                  f'{bags[k]}: the worker process failed: '
+                                                  f'{type(err).__name__}: {err}')
                     bar.update(1)
     finally:
         bar.close()

@@ -24,8 +24,11 @@ _DESCRIPTION = (
     'of the run (index.html, replay_summary.json); prints a summary. Input bags are only '
     'read. '
     'A bag that cannot be replayed is listed with its error and does not stop the others. '
+    'With --cluster the bags are replayed on the workers of a running Dask cluster, with the '
+    'same reports. '
     'Exit code 0: at least one bag replayed; 1: every bag failed; 2: bad input (options, '
-    'robot, certificate, a path that does not exist or holds no bag).')
+    'robot, certificate, a path that does not exist or holds no bag, a cluster that cannot '
+    'be reached or cannot see the bags).')
 
 
 def add_replay_parser(commands: argparse._SubParsersAction) -> None:
@@ -83,8 +86,13 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
                         default='mcap', help=deprecated('storage of the bags --write-bags '
                                                         'writes (default: mcap)',
                                                         '--bag-storage'))
-    output.add_argument('--jobs', type=int, default=DEFAULT_JOBS, metavar='N',
-                        help=f'bags replayed in parallel (processes; default: {DEFAULT_JOBS})')
+    output.add_argument('--jobs', type=int, default=None, metavar='N',
+                        help='bags replayed in parallel on this machine (processes; default: '
+                        f'{DEFAULT_JOBS}; not with --cluster)')
+    output.add_argument('--cluster', metavar='ADDRESS',
+                        help='replay on the workers of a running Dask cluster instead: the '
+                        "scheduler's address, tcp://HOST:PORT; the bags and --output-dir "
+                        'must be at the same paths on every worker (docs/replay.md)')
     output.add_argument('--event-log', metavar='PATH',
                         help='JSON-lines event log of the live monitor (one object per line '
                         'with t [s, bag time] and kind): events are marked on the time plots; '
@@ -110,6 +118,7 @@ def command_replay(args: argparse.Namespace) -> int:
     from safety_filter.filter import SafetyFilter
     from safety_filter.replay import ReplayTopics, find_bags
     from safety_filter.replay_batch import (
+        DEFAULT_JOBS,
         CertificateChoice,
         ReplayOptions,
         bag_names,
@@ -121,8 +130,16 @@ def command_replay(args: argparse.Namespace) -> int:
         write_batch_summary,
     )
 
-    if args.jobs < 1:
-        raise SafetyFilterError(f'--jobs must be >= 1, got {args.jobs}')
+    if args.cluster is not None and args.jobs is not None:
+        raise SafetyFilterError('--jobs and --cluster exclude each other: on a cluster, its '
+                                'workers replay the bags')
+    jobs = DEFAULT_JOBS if args.jobs is None else args.jobs
+    if jobs < 1:
+        raise SafetyFilterError(f'--jobs must be >= 1, got {jobs}')
+    if args.cluster is not None:
+        from safety_filter.replay_cluster import parse_address
+
+        parse_address(args.cluster)  # a malformed address is bad input, found before any work
     _check_positive(args.joint_state_timeout, '--joint-state-timeout')
     _check_positive(args.nominal_timeout, '--nominal-timeout')
     _check_positive(args.sim_rate, '--sim-rate')
@@ -168,8 +185,9 @@ def command_replay(args: argparse.Namespace) -> int:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as err:
         raise SafetyFilterError(f'cannot create --output-dir {out}: {err}') from err
-    entries = replay_bags(bags, model, choices, options, out, names=names, jobs=args.jobs,
-                          events=events, progress=not (args.quiet or args.no_progress))
+    entries = replay_bags(bags, model, choices, options, out, names=names, jobs=jobs,
+                          events=events, progress=not (args.quiet or args.no_progress),
+                          cluster=args.cluster)
     try:
         summary_path = write_batch_summary(out, entries, options=options.record(),
                                            events=events)
