@@ -55,7 +55,7 @@ CONNECT_TIMEOUT_S = 10.0
 # Libraries whose version changes the replay's numbers, its bags or its figures; a worker
 # must run the versions the client runs (with this package's own version, and Python's).
 PINNED_DISTRIBUTIONS = ('numpy', 'scipy', 'osqp', 'pin', 'numba', 'matplotlib', 'rosbags')
-INSTALL_HINT = ("python3 -m pip install 'distributed>=2024.1' (or the package's extra: "
+INSTALL_HINT = ("python3 -m pip install 'distributed>=2024.1.1' (or the package's extra: "
                 "python3 -m pip install '.[cluster]' in a clone)")
 _MISSING_SHOWN = 3  # paths named in an error about missing bags (then a count)
 
