@@ -111,8 +111,12 @@ setup(
         ],
         # Expands .xacro robot descriptions given as --urdf / urdf_path.
         'xacro': ['xacro>=2'],
-        # Test tooling and the reference implementations the tests compare against.
-        'test': ['pytest>=7', 'highspy>=1.5', 'cvxpy>=1.4', 'ruff', 'xacro>=2'],
+        # `safety-filter replay --cluster`: bags replayed on a Dask cluster's workers.
+        'cluster': ['distributed>=2024.1.1'],
+        # Test tooling and the reference implementations the tests compare against (and
+        # Dask distributed, for the cluster replay's tests).
+        'test': ['pytest>=7', 'highspy>=1.5', 'cvxpy>=1.4', 'ruff', 'xacro>=2',
+                 'distributed>=2024.1.1'],
     },
     zip_safe=False,
     cmdclass={'install_scripts': InstallScripts, 'develop': Develop},
