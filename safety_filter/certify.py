@@ -23,7 +23,7 @@ from __future__ import annotations
 import datetime as _dt
 import time
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -37,7 +37,13 @@ from safety_filter.certificate import DEFAULT_OBSERVER_PERIODS, Certificate
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 from safety_filter.sampling import Gains, estimate_sampling_margin
-from safety_filter.uncertainty import DisturbanceBound, disturbance_bound, payload_error
+from safety_filter.uncertainty import (
+    DisturbanceBound,
+    disturbance_bound,
+    draw_plant,
+    model_with_inertials,
+    payload_error,
+)
 
 ProgressCallback = Callable[[str, float], None]
 LEMMA_SUFFIX = ':lemma'
@@ -91,6 +97,11 @@ class CertifySettings:
             control periods; observer_noise_share: each joint's time constant is the fastest
             (at least two periods) whose velocity noise costs at most this share of the
             joint's torque limit (recorded per joint; the filter uses them).
+        margin_plants: arms drawn from the declared uncertainty set that the sampled-data
+            rollouts use besides the model (``margin_plants``).
+        delay_periods: control periods between measurement and torque that the sampled-data
+            margin covers on top of ``sampling_factor`` (None: the model's declared
+            uncertainty, ``delay_periods``).
     """
 
     alpha1: ClassK | None = None
@@ -116,6 +127,8 @@ class CertifySettings:
     seed: int = 0
     observer_periods: float = DEFAULT_OBSERVER_PERIODS
     observer_noise_share: float = 0.01
+    delay_periods: int | None = None
+    margin_plants: int = 3
 
     def __post_init__(self) -> None:
         if self.alpha1 is not None and self.alpha1.kind not in ALPHA1_KINDS:
@@ -142,8 +155,9 @@ class CertifySettings:
 
     @property
     def hold_period_s(self) -> float:
-        """Longest hold period the margin covers [s]."""
-        return self.sampling_factor / self.control_rate_hz
+        """Longest hold period the margin covers [s]: ``sampling_factor`` control periods
+        plus the declared delay between measurement and torque."""
+        return (self.sampling_factor + (self.delay_periods or 0)) / self.control_rate_hz
 
     def record(self) -> dict[str, Any]:
         """Plain form for the certificate's provenance."""
@@ -602,6 +616,8 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     from safety_filter.falsify import falsify
 
     settings = settings or CertifySettings()
+    if settings.delay_periods is None:
+        settings = replace(settings, delay_periods=int(model.uncertainty.delay_periods))
     report = progress or (lambda _stage, _fraction: None)
     n = model.n_joints
     names = list(model.joint_names)
@@ -758,6 +774,19 @@ class _Attempt:
         return entry
 
 
+def margin_plants(model: RobotModel, settings: CertifySettings) -> list[tuple[RobotModel, float]]:
+    """Arms of the declared uncertainty set that the sampled-data rollouts also use:
+    ``margin_plants`` of them, drawn with the certification's seed (their quantities mostly
+    at the ends of their ranges), with the payload anywhere in its range."""
+    rng = np.random.default_rng(settings.seed + 7)
+    drawn = [draw_plant(model, model.uncertainty, rng) for _ in range(settings.margin_plants)]
+    # Coulomb friction only ever opposes the motion and cannot carry a joint through zero
+    # velocity; its reversal at v = 0 is left out of the rollouts (docs/method.md,
+    # dissipation), so each plant keeps the model's Coulomb friction.
+    return [(model_with_inertials(plant.model, coulomb_friction=np.array(
+        model.coulomb_friction)), plant.payload_mass) for plant in drawn]
+
+
 def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
                     kind: str, report: ProgressCallback) -> _Attempt:
     """Design, margin and gains for one class-K family (the module docstring's steps 2-5).
@@ -772,6 +801,7 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
     r = np.array(model.position_range)
     vmax = np.array(model.velocity_limit)
     attempt = _Attempt(kind)
+    plants = margin_plants(model, settings)
     start, candidates = search_velocity_box(model, bounds, settings, kind)
     report('authority', 0.2)
     attempt.candidates = candidates
@@ -790,7 +820,8 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
             new_margin = estimate_sampling_margin(
                 model, gains, settings.hold_period_s, settings.margin_samples,
                 inflation=settings.margin_inflation, current_margin=margin,
-                seed=settings.seed)  # same draws each round: the margin settles monotonically
+                seed=settings.seed,  # same draws each round: the margin settles monotonically
+                plants=plants)
             rounds['count'] += 1
             report('sampling margin', 0.2 + 0.7 * min(1.0, rounds['count'] / 12))
             if np.all(new_margin <= margin * (1.0 + 1e-9)):

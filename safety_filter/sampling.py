@@ -23,6 +23,7 @@ that much slower (missed deadlines, a slower driver) is still covered.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -98,6 +99,34 @@ class BatchPlant:
         return np.linalg.solve(self.mass_matrix(q), (u - self.bias(q, v))[..., None])[..., 0]
 
 
+class _GroupedPlant:
+    """Several :class:`BatchPlant` s, each for the samples of its group."""
+
+    def __init__(self, parts: list[BatchPlant], group: np.ndarray) -> None:
+        self.parts = parts
+        self.masks = [group == k for k in range(len(parts))]
+
+    def _combine(self, method: str, *args: np.ndarray) -> np.ndarray:
+        out = None
+        for part, mask in zip(self.parts, self.masks):
+            if not mask.any():
+                continue
+            value = getattr(part, method)(*(x[mask] for x in args))
+            if out is None:
+                out = np.empty((len(mask),) + value.shape[1:])
+            out[mask] = value
+        return out
+
+    def mass_matrix(self, q: np.ndarray) -> np.ndarray:
+        return self._combine('mass_matrix', q)
+
+    def bias(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        return self._combine('bias', q, v)
+
+    def acceleration(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
+        return self._combine('acceleration', q, v, u)
+
+
 def sample_safe_states(
     model: RobotModel, gains: Gains, count: int, rng: np.random.Generator,
     boundary_fraction: float = 0.5,
@@ -135,15 +164,15 @@ def estimate_sampling_margin(
     current_margin: np.ndarray | None = None,
     acceleration_envelope: np.ndarray | None = None,
     seed: int = 0,
+    plants: Sequence[tuple[RobotModel, float]] = (),
 ) -> np.ndarray:
     """Acceleration margin ``delta`` [rad/s^2] per joint covering one hold period.
 
-    Each sampled state and command (the command inside the bounds tightened by
-    ``current_margin``, often at their edge) is rolled out under the held torque; at every
-    substep the acceleration must still meet the position barriers' ZCBF bounds (without
-    margin) at the state reached, and the velocity barriers' bounds of the sample. The
-    result is ``current_margin`` plus ``inflation`` times the largest shortfall per joint:
-    equal to ``current_margin`` when it already suffices.
+    Each sampled state of S and command (inside the bounds tightened by ``current_margin``,
+    often at their edge) is rolled out under the held torque; at every substep each
+    velocity barrier must still be non-negative. Where one is negative, ``-b / t`` is the
+    initial rate it lacked. The result is ``current_margin`` plus ``inflation`` times the
+    largest such shortfall per joint: equal to ``current_margin`` when it already suffices.
 
     Args:
         model: the robot model (payload masses are sampled over its payload range).
@@ -156,6 +185,9 @@ def estimate_sampling_margin(
         acceleration_envelope: per-joint bound on the commanded acceleration that the
             filter enforces, if any [rad/s^2].
         seed: random seed.
+        plants: arms unlike the model, ``(model, payload mass)`` each (drawn from the
+            declared uncertainty set): the samples are shared between the model (with
+            payloads over its range) and these.
     """
     rng = np.random.default_rng(seed)
     n = model.n_joints
@@ -166,7 +198,10 @@ def estimate_sampling_margin(
     # evaluation per sample; the drift is smooth in the payload mass.
     levels = np.linspace(model.payload.mass_min, model.payload.mass_max, 3)
     payload = levels[rng.integers(0, 3, samples)]
-    plant = BatchPlant(model, payload)
+    group = rng.integers(0, len(plants) + 1, samples)  # 0: the model itself
+    plant = _GroupedPlant([BatchPlant(model, payload[group == 0])]
+                          + [BatchPlant(other, np.full(int(np.sum(group == k + 1)), mass))
+                             for k, (other, mass) in enumerate(plants)], group)
     start = gains.barriers(model, q, v, margin)
     if acceleration_envelope is None:
         acceleration_envelope = gains.accel_bound
@@ -189,21 +224,17 @@ def estimate_sampling_margin(
     # A sample whose clipped torque leaves the bounds is not a command the filter sends.
     tolerance = 1e-9 * (1.0 + np.abs(hi) + np.abs(lo))
     sendable = np.all((accel0 >= lo - tolerance) & (accel0 <= hi + tolerance), axis=1)
-    # The conditions checked at every substep (docs/method.md, sampled data): the position
-    # barriers' ZCBF bounds without margin at the current state, and, for the velocity
-    # barriers, the bound at the sample (they stay invariant under a held acceleration
-    # that keeps within it, so only the acceleration's own drift counts there).
-    position_gains = Gains(gains.gamma, gains.beta, gains.alpha1, gains.alpha2)
-    rows = gains.speed_bound is not None and gains.speed_beta is not None
-    if rows:
-        active = np.asarray(gains.speed_beta) > 0.0
-        speed_upper = np.where(active, gains.speed_beta * (gains.speed_bound - v), np.inf)
-        speed_lower = np.where(active, -gains.speed_beta * (gains.speed_bound + v), -np.inf)
-    violation = np.zeros(n)
+    # What is checked (docs/method.md, sampled data): that the state stays in S for the
+    # whole hold. S is invariant under the sampled filter when every state of S, under every
+    # command the filter may send there, stays in S until the next step (where the QP is
+    # feasible again). A command at the tightened bound starts each velocity barrier that it
+    # touches rising at the rate ``delta``; a barrier b that is negative at time t asks for
+    # ``-b / t`` more initial rate: so much more margin.
+    shortfall = np.zeros(n)
     dt = hold_period_s / substeps
     qk, vk = q, v
     k1v = accel0
-    for _ in range(substeps):
+    for step in range(1, substeps + 1):
         k1q = vk
         k2v = plant.acceleration(qk + 0.5 * dt * k1q, vk + 0.5 * dt * k1v, torque)
         k2q = vk + 0.5 * dt * k1v
@@ -214,12 +245,10 @@ def estimate_sampling_margin(
         qk = qk + dt / 6.0 * (k1q + 2 * k2q + 2 * k3q + k4q)
         vk = vk + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v)
         k1v = plant.acceleration(qk, vk, torque)  # the acceleration now; next step's k1
-        now = position_gains.barriers(model, qk, vk, 0.0)
-        over = np.maximum(k1v - now.accel_upper, now.accel_lower - k1v)
-        if rows:
-            over = np.maximum(over, np.maximum(k1v - speed_upper, speed_lower - k1v))
+        now = gains.barriers(model, qk, vk, 0.0)
+        lowest = np.minimum(np.minimum(now.barrier_upper, now.barrier_lower),
+                            np.minimum(now.speed_upper, now.speed_lower))
         if sendable.any():
-            violation = np.maximum(violation, np.max(over[sendable], axis=0))
-    # The commands at the margin's edge break a condition by ``violation``: a margin that
-    # much larger (inflated) keeps them.
-    return margin + inflation * violation
+            shortfall = np.maximum(shortfall,
+                                   np.max(-lowest[sendable], axis=0) / (step * dt))
+    return margin + inflation * shortfall

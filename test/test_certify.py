@@ -121,7 +121,10 @@ def test_falsifier_catches_an_inflated_gamma(certified_arm) -> None:  # noqa: AN
     """The falsifier CAN fail: gamma three times gamma* leaves the boundary b = 0 infeasible."""
     model, outcome = certified_arm
     certificate = outcome.certificate
-    wrong = replace(certificate, gamma=3.0 * np.array(certificate.gamma_star))
+    # Without its velocity barriers (which cap the braking that b = 0 asks for at gamma vS),
+    # S reaches up to gamma alpha1(range).
+    wrong = replace(certificate, gamma=3.0 * np.array(certificate.gamma_star),
+                    velocity_beta=np.zeros(model.n_joints), acceleration_bound=None)
     result = falsify(model, wrong, states=3000, seed=5)
     assert result.infeasible > 0
     assert result.min_slack < 0.0

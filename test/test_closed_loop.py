@@ -1,5 +1,7 @@
 """Closed loop: the certified filter keeps the demo arms inside their limits against
-adversarial nominals, at the certified control rate and at a rate four times slower.
+adversarial nominals, at the certified control rate and at the slowest rate the certificate
+covers (its sampled-data margin covers holds of one control period plus the declared delay
+of one period: 500 Hz for a 1 kHz certificate; the simulated plant has no delay).
 
 Setup of every run: the arm's certificate from the default certification
 (``certify_fixtures``), the :class:`SafetyFilter` told the mounted payload, the simulator
@@ -13,7 +15,7 @@ the position, velocity and torque limits over the run (samples at the control st
 independent-plant test below also looks inside the hold periods), and whether the state
 stayed in S at every control step.
 
-Which runs: the full product of arm (planar2, bench6), rate (1 kHz, 250 Hz), payload end
+Which runs: the full product of arm (planar2, bench6), rate (1 kHz, 500 Hz), payload end
 (lightest, heaviest) and nominal (bang-bang, PD beyond limits with gravity feedforward,
 large sinusoid, zero torque): 32 runs of 2 s.
 
@@ -40,7 +42,7 @@ from safety_filter.simulate import limit_violations, run_closed_loop
 DURATION_S = 2.0
 TOLERANCE = 1e-6  # [rad], [rad/s]
 CONFIGURED_RATE_HZ = 1000.0
-SLOW_RATE_HZ = 250.0
+SLOW_RATE_HZ = 500.0  # the slowest rate the default certificates cover (module docstring)
 NOMINALS = ('bang_bang', 'pd_beyond_limits', 'large_sinusoid', 'zero_torque')
 
 
@@ -87,6 +89,8 @@ def test_filter_keeps_limits(arm: str, rate: float, end: str, nominal_kind: str)
     certificate = outcome.certificate
     assert certificate.certified, certificate.reasons
     assert certificate.control_rate_hz == CONFIGURED_RATE_HZ
+    covered = certificate.sampling_factor + certificate.settings['certify']['delay_periods']
+    assert covered / CONFIGURED_RATE_HZ >= 1.0 / SLOW_RATE_HZ - 1e-12
     payload = model.payload.mass_min if end == 'lightest' else model.payload.mass_max
     safety = SafetyFilter(model, certificate, payload_mass=payload)
     q0, v0 = _start_on_boundary(certificate)
@@ -114,7 +118,7 @@ def test_filter_keeps_limits(arm: str, rate: float, end: str, nominal_kind: str)
 
 @pytest.mark.slow
 def test_filter_keeps_limits_with_an_independent_plant() -> None:
-    """planar2 at 250 Hz, heaviest payload, PD beyond limits: the plant is the textbook
+    """planar2 at 500 Hz, heaviest payload, PD beyond limits: the plant is the textbook
     closed form (``PlanarTwoLink``) integrated by SciPy's solve_ivp (DOP853, rtol 1e-10)
     over each hold period, and the limits are checked inside the periods too."""
     model, outcome = certified_demo_arm('planar2')
@@ -144,9 +148,11 @@ def test_filter_keeps_limits_with_an_independent_plant() -> None:
     # The barriers inside the hold periods too (continuous time, no tightening).
     barriers = evaluate_barriers(np.vstack(qs), np.vstack(vs), certificate.position_lower,
                                  certificate.position_upper, certificate.gamma,
-                                 certificate.beta, certificate.alpha1, certificate.alpha2)
+                                 certificate.beta, certificate.alpha1, certificate.alpha2,
+                                 speed_bound=certificate.velocity_bound,
+                                 speed_beta=certificate.velocity_beta)
     smallest = float(barriers.smallest.min())
-    _report('planar2 250 Hz payload 0.5 kg pd_beyond_limits, solve_ivp plant', violations,
+    _report('planar2 500 Hz payload 0.5 kg pd_beyond_limits, solve_ivp plant', violations,
             f'; smallest barrier value inside the hold periods {smallest:.3g}; modes '
             f'{safety.statistics()["modes"]}')
     assert smallest >= -1e-9
