@@ -22,7 +22,8 @@ import numpy as np
 from safety_filter.errors import SafetyFilterError
 
 ALPHA_KINDS = ('linear', 'atan', 'tanh', 'cubic', 'sqrt')
-ALPHA1_KINDS = ('linear', 'atan', 'tanh', 'sqrt')  # concave on [0, inf): the gamma* formula applies
+# concave on [0, inf): the gamma* formula applies
+ALPHA1_KINDS = ('linear', 'atan', 'tanh', 'sqrt')
 ALPHA2_KINDS = ('linear', 'cubic', 'atan', 'tanh')
 
 

@@ -41,3 +41,49 @@ def test_braking_set_area_under_a_low_speed_limit_is_nearly_the_box() -> None:
     r, e, vmax = 2.0, 100.0, 1.0
     expected = 2.0 * vmax * r - 2.0 * vmax ** 3 / (6.0 * e)
     assert braking_set_area(r, e, vmax) == pytest.approx(expected, rel=1e-4)
+
+
+@pytest.mark.parametrize('r, gamma, speed', [(5.8, 0.5, 1.2), (2.0, 3.0, 0.9)])
+def test_linear_safe_set_area_under_velocity_barriers(r: float, gamma: float,
+                                                      speed: float) -> None:
+    """Each side is a ramp up to x = vS / gamma, then the box: ``vS r - vS^2 / (2 gamma)``."""
+    assert speed / gamma < r
+    expected = 2.0 * (speed * r - speed ** 2 / (2.0 * gamma))
+    assert safe_set_area(r, gamma, ClassK('linear'), speed) == pytest.approx(expected,
+                                                                             rel=1e-5)
+
+
+@pytest.mark.parametrize('r, e, speed', [(5.8, 0.35, 2.0), (2.0, 30.0, 1.5), (4.0, 2.0, 9.0)])
+def test_sqrt_safe_set_reaches_the_braking_set(r: float, e: float, speed: float) -> None:
+    """With gamma = sqrt(e) and eps -> 0, ``gamma alpha1(h) = sqrt(2 e h)``: S is the braking
+    set of a joint decelerating at e (constant-deceleration kinematics, v^2 = 2 e d) cut by
+    the velocity box."""
+    area = safe_set_area(r, math.sqrt(e), ClassK('sqrt', 1e-12), speed, samples=200_001)
+    assert area == pytest.approx(braking_set_area(r, e, speed, samples=200_001), rel=1e-4)
+    # A larger eps takes area near the limits only: less, but most of it.
+    coarse = safe_set_area(r, math.sqrt(e), ClassK('sqrt', 1e-3), speed)
+    assert 0.85 * area < coarse < area
+
+
+def test_sqrt_family_values_and_slopes() -> None:
+    """alpha(x) = sqrt(2 (x + eps)) - sqrt(2 eps), odd; alpha' and alpha'' against central
+    differences; alpha' alpha = 1 - sqrt(eps / (x + eps)) (elementary calculus)."""
+    import numpy as np
+
+    eps = 0.02
+    alpha = ClassK('sqrt', eps)
+    x = np.linspace(-3.0, 3.0, 2001)
+    assert float(alpha.value(0.0)) == 0.0
+    np.testing.assert_allclose(alpha.value(-x), -alpha.value(x), atol=1e-15)
+    step = 1e-6
+    inner = x[np.abs(x) > 1e-3]
+    np.testing.assert_allclose(alpha.derivative(inner),
+                               (alpha.value(inner + step) - alpha.value(inner - step))
+                               / (2 * step), rtol=1e-6)
+    np.testing.assert_allclose(alpha.second_derivative(inner),
+                               (alpha.derivative(inner + step) - alpha.derivative(inner - step))
+                               / (2 * step), rtol=1e-5)
+    positive = x[x >= 0.0]
+    np.testing.assert_allclose(alpha.derivative(positive) * alpha.value(positive),
+                               1.0 - np.sqrt(eps / (positive + eps)), atol=1e-12)
+    assert alpha.max_ratio_to_identity(3.0) == pytest.approx(1.0 / math.sqrt(2 * eps))

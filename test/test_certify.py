@@ -213,6 +213,8 @@ def test_gamma_star_linear_closed_form(authority: float, position_range: float) 
     ('atan', 2.0, 0.4),   # maximum at the upper end
     ('tanh', 1.0, 4.8),   # interior maximum at x = atanh(1/sqrt(3)) scale
     ('tanh', 2.0, 0.5),   # maximum at the upper end
+    ('sqrt', 0.01, 3.0),  # increasing: maximum at the upper end, 1 - sqrt(eps / (r + eps))
+    ('sqrt', 1e-4, 0.2),
 ])
 def test_max_value_times_slope_against_dense_grid(kind: str, scale: float, upper: float) -> None:
     alpha = ClassK(kind, scale)
@@ -227,7 +229,8 @@ def test_max_value_times_slope_against_dense_grid(kind: str, scale: float, upper
 
 # ---------------------------------------------------------------------- beta*
 def _brute_beta_star(r: float, authority: float, gamma: float, delta: float, alpha1: ClassK,
-                     alpha2: ClassK, grid: int = 2000) -> float:
+                     alpha2: ClassK, grid: int = 2000, speed: float = np.inf,
+                     speed_beta: float = 0.0) -> float:
     """max over joint i's slice of S of the beta each feasibility requirement needs.
 
     From METHOD 2 with the tightening delta: ``Ap = beta a2(bp) - gamma a1'(hp) v - delta``,
@@ -235,11 +238,19 @@ def _brute_beta_star(r: float, authority: float, gamma: float, delta: float, alp
     ``Ap >= -e``, ``An <= e`` and ``An <= Ap``. Solved for beta:
     ``beta >= (gamma a1'(hp) v + delta - e) / a2(bp)`` and likewise, and
     ``beta >= (2 delta + gamma v (a1'(hp) - a1'(hn))) / (a2(bp) + a2(bn))``.
+
+    With velocity barriers (rate ``speed_beta``, box ``speed``) the slice is cut at
+    ``|v| <= speed`` and their bounds ``beta_v (speed - v) - delta`` and
+    ``-beta_v (speed + v) + delta`` must not cross the position barriers' bounds:
+    ``beta a2(bp) >= 2 delta + gamma a1'(hp) v - beta_v (speed + v)`` and
+    ``beta a2(bn) >= 2 delta - gamma a1'(hn) v - beta_v (speed - v)``.
     """
     hp = np.linspace(0.0, r, grid)[:, None]
     hn = r - hp
     s = np.linspace(0.0, 1.0, grid)[None, :]
-    v = -gamma * alpha1.value(hn) + s * gamma * (alpha1.value(hp) + alpha1.value(hn))
+    low = np.maximum(-gamma * alpha1.value(hn), -speed)
+    high = np.minimum(gamma * alpha1.value(hp), speed)
+    v = low + s * (high - low)
     bp = gamma * alpha1.value(hp) - v
     bn = gamma * alpha1.value(hn) + v
     need_p = gamma * alpha1.derivative(hp) * v + delta - authority
@@ -247,7 +258,13 @@ def _brute_beta_star(r: float, authority: float, gamma: float, delta: float, alp
     need_c = 2.0 * delta + gamma * v * (alpha1.derivative(hp) - alpha1.derivative(hn))
     a2p, a2n = alpha2.value(np.maximum(bp, 0.0)), alpha2.value(np.maximum(bn, 0.0))
     worst = 0.0
-    for need, scale in ((need_p, a2p), (need_n, a2n), (need_c, a2p + a2n)):
+    checks = [(need_p, a2p), (need_n, a2n), (need_c, a2p + a2n)]
+    if speed_beta > 0.0:
+        checks += [(2.0 * delta + gamma * alpha1.derivative(hp) * v - speed_beta * (speed + v),
+                    a2p),
+                   (2.0 * delta - gamma * alpha1.derivative(hn) * v - speed_beta * (speed - v),
+                    a2n)]
+    for need, scale in checks:
         positive = scale > 0.0
         # Where alpha2(b) = 0 the requirement is need <= 0 (no beta helps otherwise).
         if np.any(need[~positive] > 0.0):
@@ -284,6 +301,37 @@ def test_beta_star_against_dense_grid(alpha1: ClassK, alpha2: ClassK, r: float, 
     assert found >= reference * (1 - 1e-9) - 1e-12  # refinement only adds to the grid
     if alpha1.kind == 'linear' and alpha2.kind == 'linear':
         assert found == pytest.approx(2.0 * delta / (gamma * r), rel=1e-9)
+
+
+SPEED_CASES = [
+    # alpha1, range r, authority e, delta, gamma / gamma*, velocity box, beta_v
+    (ClassK('sqrt', 0.005), 5.8, 0.61, 0.28, 0.9, 0.53, 50.0),
+    (ClassK('sqrt', 0.001), 2.8, 10.5, 4.3, 0.9, 1.3, 100.0),
+    (ClassK('linear'), 4.0, 6.6, 0.4, 0.9, 1.9, 50.0),
+    (ClassK('sqrt', 0.02), 4.0, 40.0, 3.0, 0.9, 0.3, 150.0),
+    # A slow box and a large margin: at a limit, leaving it at full speed, the velocity
+    # barrier's push and the position barrier's bound meet (the cross condition binds).
+    (ClassK('sqrt', 0.0098), 5.8, 14.4, 6.6, 0.9, 0.075, 250.0),
+]
+
+
+@pytest.mark.parametrize('alpha1, r, e, delta, fraction, speed, speed_beta', SPEED_CASES,
+                         ids=[f'{a.kind}-r{r}-e{e}-v{s}' for a, r, e, _, _, s, _ in SPEED_CASES])
+def test_beta_star_with_velocity_barriers_against_dense_grid(
+        alpha1: ClassK, r: float, e: float, delta: float, fraction: float, speed: float,
+        speed_beta: float) -> None:
+    alpha2 = ClassK('linear')
+    usable = e - delta
+    gamma = fraction * float(gamma_star(np.array([usable]), np.array([r]), alpha1)[0])
+    found, _, _ = beta_star(r, usable, gamma, delta, alpha1, alpha2, speed_bound=speed,
+                            speed_beta=speed_beta)
+    reference = _brute_beta_star(r, e, gamma, delta, alpha1, alpha2, speed=speed,
+                                 speed_beta=speed_beta)
+    assert np.isfinite(reference)
+    assert found == pytest.approx(reference, rel=2e-3, abs=1e-9)
+    assert found >= reference * (1 - 1e-9) - 1e-12
+    if speed == 0.075:  # the case built for the cross condition: without it beta* is small
+        assert reference > 10.0 * _brute_beta_star(r, e, gamma, delta, alpha1, alpha2)
 
 
 def test_beta_star_is_infinite_above_gamma_star() -> None:
