@@ -70,7 +70,9 @@ setup(
     license='Apache-2.0',
     packages=find_packages(exclude=['test']),
     package_data={
-        PACKAGE_NAME: ['robots/*.urdf', 'robots/*.yaml', 'py.typed'],
+        PACKAGE_NAME: ['robots/*.urdf', 'robots/*.yaml', 'py.typed',
+                       # Inlined into the HTML reports (uPlot: MIT licence).
+                       'report_assets/*.js', 'report_assets/uplot/*'],
     },
     data_files=[
         ('share/ament_index/resource_index/packages', ['resource/' + PACKAGE_NAME]),
@@ -115,8 +117,9 @@ setup(
         'cluster': ['distributed>=2024.1.1'],
         # Test tooling and the reference implementations the tests compare against (and
         # Dask distributed, for the cluster replay's tests).
+        # websocket-client drives Debian's Chromium in the report page tests.
         'test': ['pytest>=7', 'highspy>=1.5', 'cvxpy>=1.4', 'ruff', 'xacro>=2',
-                 'distributed>=2024.1.1'],
+                 'distributed>=2024.1.1', 'websocket-client>=1.6'],
     },
     zip_safe=False,
     cmdclass={'install_scripts': InstallScripts, 'develop': Develop},

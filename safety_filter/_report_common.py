@@ -1,7 +1,9 @@
-"""What the HTML/JSON reports share: JSON conversion and the base style sheet (private)."""
+"""What the HTML/JSON reports share: JSON conversion, the base style sheet, and the scripts a
+page inlines (private)."""
 
 from __future__ import annotations
 
+import json
 import math
 from pathlib import Path
 from typing import Any
@@ -40,3 +42,50 @@ th { background: #f0f2f5; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
 figure img { max-width: 100%; border: 1px solid #ddd; }
 """
+
+
+# ---------------------------------------------------------------------- inlined scripts
+# Pages carry their scripts and data inline, so that a report works from its folder alone,
+# offline, and keeps working when one HTML file is mailed or copied elsewhere.
+ASSETS = Path(__file__).resolve().parent / 'report_assets'
+UPLOT_DIR = ASSETS / 'uplot'
+UPLOT_VERSION = '1.6.32'
+
+
+def asset_text(relative: str) -> str:
+    """The text of a file under ``safety_filter/report_assets``."""
+    return (ASSETS / relative).read_text(encoding='utf-8')
+
+
+def script_element(code: str) -> str:
+    """``code`` as an inline ``<script>`` element.
+
+    ``</script`` inside the code would end the element early; it is written as
+    ``<\\/script``, which means the same inside JavaScript strings and regular expressions
+    (the only places it can occur).
+    """
+    return '<script>' + code.replace('</script', '<\\/script') + '</script>'
+
+
+def json_script_element(element_id: str, value: Any) -> str:
+    """``value`` as an inline JSON data block ``<script type="application/json">``.
+
+    ``</`` is written ``<\\/``, an escape JSON allows, so no text in the data can end the
+    element.
+    """
+    text = json.dumps(value, allow_nan=False, separators=(',', ':')).replace('</', '<\\/')
+    return f'<script type="application/json" id="{element_id}">{text}</script>'
+
+
+def uplot_elements() -> tuple[str, str]:
+    """The vendored uPlot plotting library as ``(style element, script element)``.
+
+    uPlot is MIT-licensed; its licence text goes into the page as a comment ahead of the
+    code, as the licence asks of copies (see ``report_assets/uplot/SOURCE.md``).
+    """
+    licence = (UPLOT_DIR / 'LICENSE').read_text(encoding='utf-8').strip()
+    code = (UPLOT_DIR / 'uPlot.iife.min.js').read_text(encoding='utf-8')
+    style = (UPLOT_DIR / 'uPlot.min.css').read_text(encoding='utf-8')
+    header = (f'/* uPlot {UPLOT_VERSION}, included in this page under its licence:\n'
+              + licence.replace('*/', '* /') + '\n*/\n')
+    return f'<style>{style}</style>', script_element(header + code)
