@@ -286,15 +286,18 @@ def _sha256(path: Path) -> str | None:
 
 
 def _task_failure(bag: str, err: BaseException) -> str:
-    """The per-bag error for a task the cluster could not bring to an end."""
+    """The per-bag error (one line) for a task the cluster could not bring to an end."""
+    # Dask's messages may run over several lines; the summary has one line per bag.
+    lines = str(err).strip().splitlines()
+    reason = f'{type(err).__name__}: {lines[0] if lines else ""}'.rstrip(': ')
     distributed = sys.modules.get('distributed')
     if distributed is not None and isinstance(err, distributed.KilledWorker):
         return (f'{bag}: every worker that replayed it died (killed, or out of memory); '
                 'the scheduler stopped retrying it')
     if isinstance(err, (asyncio.CancelledError, concurrent.futures.CancelledError)):
         return (f'{bag}: the cluster dropped it before it finished (scheduler restarted or '
-                f'the connection to it lost): {type(err).__name__}: {err}')
-    return f'{bag}: the cluster could not replay it: {type(err).__name__}: {err}'
+                f'the connection to it lost): {reason}')
+    return f'{bag}: the cluster could not replay it: {reason}'
 
 
 def replay_on_cluster(address: str, bags: Sequence[str | Path], model: RobotModel,

@@ -7,6 +7,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 REPO = Path(__file__).resolve().parent.parent
 
 
@@ -41,3 +43,23 @@ def test_bench_model_error_quick_keeps_limits_with_the_observer() -> None:
     for row in observed:
         at = row.index('on')
         assert [float(x) for x in row[at + 1:at + 4]] == [0.0, 0.0, 0.0], row
+
+
+@pytest.mark.slow
+def test_bench_replay_cluster_quick_prints_local_and_cluster_rows() -> None:
+    """The fleet-replay benchmark runs on a real local Dask cluster (1 and 2 workers) next
+    to the local batch, and every row carries its ratio to the one-process baseline (the
+    benchmark itself fails when a run's figures differ from the baseline's)."""
+    env = dict(os.environ)
+    env['PYTHONPATH'] = os.pathsep.join([str(REPO)] + [p for p in [env.get('PYTHONPATH')] if p])
+    result = subprocess.run(
+        [sys.executable, str(REPO / 'benchmarks' / 'bench_replay_cluster.py'), '--quick'],
+        capture_output=True, text=True, timeout=300, env=env, cwd=REPO)
+    assert result.returncode == 0, result.stdout + result.stderr
+    rows = [line for line in result.stdout.splitlines() if line.endswith('x')]
+    assert len(rows) == 4, result.stdout
+    assert rows[0].startswith('local, this process') and rows[0].endswith('1.00x')
+    assert rows[1].startswith('local process pool (jobs = 2)')
+    cluster = [row.split() for row in rows if row.startswith('Dask cluster')]
+    assert [row[row.index('(--cluster)') + 1] for row in cluster] == ['1', '2']
+    assert 'bags/min' in result.stdout and 'vs 1 process' in result.stdout
