@@ -97,7 +97,7 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
                  speed_bound: np.ndarray, speed_beta: np.ndarray, accel_bound: np.ndarray,
                  code1: int, scale1: float, code2: int, scale2: float,
                  rows: np.ndarray, smallest: np.ndarray) -> tuple[float, float]:
-    """Barrier rows ``[hp; hn; bp; bn; Ap; An; sp; sn]`` into ``rows`` (8, n) (METHOD 2).
+    """Barrier rows ``[hp; hn; bp; bn; Ap; An; sp; sn]`` into ``rows`` (8, n) (docs/method.md).
 
     The same formulas, in the same order, as :func:`safety_filter.barriers.evaluate_barriers`:
     where ``speed_beta > 0`` the velocity barriers ``sp = vS - v``, ``sn = vS + v`` bound
@@ -289,7 +289,7 @@ def torque_and_check(mass: np.ndarray, bias: np.ndarray, acceleration: np.ndarra
                      accel_lower: np.ndarray, accel_upper: np.ndarray,
                      torque_bound: np.ndarray, accel_tolerance: np.ndarray,
                      torque: np.ndarray) -> int:
-    """``torque = M a + h``; then the answer check of METHOD 3.
+    """``torque = M a + h``; then the answer check (docs/method.md, the filter step).
 
     Returns :data:`CHECK_PASSED`, :data:`CHECK_TORQUE` (some ``|torque| > torque_bound``) or
     :data:`CHECK_ACCELERATION` (some ``a`` outside ``[An - tol, Ap + tol]``). NaN fails.
@@ -315,7 +315,7 @@ def torque_and_check(mass: np.ndarray, bias: np.ndarray, acceleration: np.ndarra
 def constructive(acceleration_nominal: np.ndarray, accel_lower: np.ndarray,
                  accel_upper: np.ndarray, authority: np.ndarray, rows: np.ndarray,
                  out: np.ndarray) -> None:
-    """:func:`safety_filter.filter.constructive_acceleration` for one state (METHOD 4.4).
+    """:func:`safety_filter.filter.constructive_acceleration` for one state (docs/method.md).
 
     The side to push back from, where the interval is empty, is the one whose barrier is
     more negative: ``min(hp, bp, sp) < min(hn, bn, sn)`` (rows as :func:`barrier_rows`

@@ -1,4 +1,4 @@
-"""Extended class-K functions used by the barriers (METHOD section 2).
+"""Extended class-K functions used by the barriers (docs/method.md).
 
 ``alpha1`` shapes the velocity barrier ``b = gamma * alpha1(h) - v`` from the position
 margin ``h`` [rad or m]; ``alpha2`` shapes the ZCBF rate condition

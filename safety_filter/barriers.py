@@ -1,6 +1,6 @@
 """Position barriers, their backstepped velocity barriers, and the acceleration bounds.
 
-For each joint (METHOD section 2)::
+For each joint (docs/method.md)::
 
     hp = q_hi - q,  hn = q - q_lo                       position margins [rad or m]
     bp = gamma alpha1(hp) - v,  bn = gamma alpha1(hn) + v   velocity barriers [rad/s]

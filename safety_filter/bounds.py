@@ -1,4 +1,4 @@
-"""Bounds on the dynamics over the joint box and the payload range (METHOD section 4.1).
+"""Bounds on the dynamics over the joint box and the payload range (docs/method.md).
 
 Each bound is a maximum (or, for the torque-coupling margin, a minimum) over the joint box
 ``Q`` and the payload mass range. It is estimated in three explicit steps, all recorded:

@@ -84,8 +84,8 @@ class Certificate:
             it.
         gamma, beta: the gains the filter uses; gamma_star, beta_star the certified bounds
             (``gamma <= gamma_star``, ``beta >= beta_star``); beta_floor, beta_cap the
-            practical range for beta (METHOD 4.3).
-        authority: acceleration authority ``e`` per joint (METHOD 4.2), before the
+            practical range for beta (docs/method.md).
+        authority: acceleration authority ``e`` per joint (docs/method.md), before the
             sampling margin; sampling_margin: acceleration reserved for one hold period.
         condition: which sufficient condition certified the gains.
         alpha1, alpha2: the class-K families.

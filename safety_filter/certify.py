@@ -1,19 +1,22 @@
 """Certification: per-joint gains for which the barrier QP is feasible everywhere in S.
 
-The steps (METHOD section 4, with the additions of section 5):
+The steps (docs/method.md, Certification), for each design family in turn (the ``sqrt``
+and linear families with velocity barriers, the linear family with the velocity lemma):
 
-1. bounds on the dynamics over the joint box and the payload range (``bounds``);
-2. a search over a common scale ``s`` of the velocity limits: for the velocity box
-   ``s * vmax`` the acceleration authority ``e`` of each joint from the row-sum LP, or from
-   the torque-coupling condition (``rho - nu``), whichever certifies with larger authority;
-3. ``gamma* = sqrt(e / max alpha1' alpha1)``; ``gamma`` at a margin below it and below the
-   velocity-lemma bound ``s vmax / alpha1(range)``; the scale maximising the smallest
-   certified velocity fraction wins;
+1. bounds on the dynamics over the joint box and the payload range (``bounds``, once);
+2. the velocity box: a common fraction ``s`` of the rated speeds, then per joint by a
+   coordinate search; for each box the acceleration authority ``e`` of each joint from the
+   row-sum LP, or from the torque-coupling condition (``rho - nu``), whichever gives the
+   larger safe set;
+3. ``gamma* = sqrt(e / max alpha1' alpha1)``; ``gamma`` at a margin below it (and, with the
+   velocity lemma, below ``vS / alpha1(range)``); the velocity barriers' rate ``beta_v``;
 4. the sampled-data margin ``delta`` from rollouts (``sampling``), taken out of the
-   authority; ``gamma`` recomputed until the margin is stable;
+   authority; the gains recomputed until the margin is stable, the box shrunk if it is not;
 5. ``beta*`` from a dense grid of each joint's slice of S, refined locally; ``beta`` above it,
    above a floor that keeps the arm from freezing, below the sampled-data cap;
-6. the falsifier (``falsify``), independent of all the above, on states sampled in S.
+
+then the design with the largest safe set that certifies is kept, and
+6. the falsifier (``falsify``), independent of all the above, checks it on states in S.
 
 When a step fails, the reason names the joint, the limit and the shortfall.
 """
@@ -189,7 +192,7 @@ class CertificationOutcome:
 def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.ndarray,
                        weights: np.ndarray, cap: np.ndarray | None = None
                        ) -> np.ndarray | None:
-    """Acceleration authority from the row-sum condition (METHOD 4.2), or None.
+    """Acceleration authority from the row-sum condition (docs/method.md), or None.
 
     Solves ``max t`` s.t. ``Mbar e + hbar <= umax``, ``e >= t w``, then, with ``t`` fixed at
     its optimum, spends the remaining slack: ``max sum e_i / w_i``. Every ``a`` with
@@ -235,7 +238,7 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
 
 def authority_torque_coupling(inverse_mass_max: np.ndarray, coupling_min: np.ndarray,
                               bias_max: np.ndarray) -> np.ndarray | None:
-    """Authority ``rho - nu`` of the torque-coupling condition (METHOD 4.2), or None."""
+    """Authority ``rho - nu`` of the torque-coupling condition (docs/method.md), or None."""
     nu = inverse_mass_max @ bias_max
     authority = coupling_min - nu
     return authority if np.all(authority > 0.0) else None
@@ -655,6 +658,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
             entry['outcome'] = 'does not certify: ' + '; '.join(attempt.reasons)
         tried.append(entry)
     design, margin, last_design = chosen.design, chosen.margin, chosen.last_design
+    box_limits = chosen.box_limits
     reasons.extend(chosen.reasons)
     notes.extend(chosen.notes)
     candidates = chosen.candidates
@@ -682,6 +686,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'certify': settings.record(),
         'velocity_scale': float(scale),
         'designs_tried': tried,
+        'velocity_box_limited_by': box_limits,
         'authority_row_sums': _plain(candidates.get('acceleration_authority')),
         'authority_torque_coupling': _plain(candidates.get('torque_coupling')),
         'torque_coupling_rho': _plain(bounds.coupling_min),
@@ -762,6 +767,7 @@ class _Attempt:
     betas: tuple = ()
     reasons: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    box_limits: list[str] = field(default_factory=list)
 
     def record(self, model: RobotModel) -> dict[str, Any]:
         """Plain summary for the certificate (the report's table of designs tried)."""
@@ -785,6 +791,41 @@ def margin_plants(model: RobotModel, settings: CertifySettings) -> list[tuple[Ro
     # dissipation), so each plant keeps the model's Coulomb friction.
     return [(model_with_inertials(plant.model, coulomb_friction=np.array(
         model.coulomb_friction)), plant.payload_mass) for plant in drawn]
+
+
+ENVELOPE_REPORTED_BELOW = 0.8  # box fractions below this get a reason in the certificate
+
+
+def _what_limits_the_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                         kind: str, start: _Design, design: _Design, margin: np.ndarray
+                         ) -> list[str]:
+    """Per joint, why its velocity box is below ``ENVELOPE_REPORTED_BELOW`` of its rated
+    speed ('' where it is not): the torque limits (at the rated speed the dynamics bounds
+    leave some joint no authority), the coupling (a faster box for it costs the others more
+    safe set than it adds), or the sampled-data margin (which shrank the box the search
+    chose)."""
+    limits = []
+    shrunk = float(np.max(design.fractions / start.fractions))
+    for i in range(model.n_joints):
+        fraction = float(design.fractions[i])
+        if fraction >= ENVELOPE_REPORTED_BELOW:
+            limits.append('')
+            continue
+        trial = start.fractions.copy()
+        trial[i] = 1.0
+        faster, _ = _design_for_box(model, bounds, settings, trial, np.zeros(len(margin)),
+                                    kind)
+        if faster is None:
+            text = ('torque: at its rated speed the Coriolis and gravity bounds leave some '
+                    'joint no authority')
+        else:
+            text = ('coupling: a faster box for this joint takes more safe set from the '
+                    'others than it adds')
+        if shrunk < 0.999:
+            text += (f'; then sampling: the sampled-data margin shrank the box the search '
+                     f'chose ({100 * start.fractions[i]:.0f} %) by {100 * (1 - shrunk):.0f} %')
+        limits.append(text)
+    return limits
 
 
 def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
@@ -858,6 +899,9 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
             attempt.candidates = _design_for_box(model, bounds, settings, design.fractions,
                                                  margin, kind)[1]
     attempt.design, attempt.margin, attempt.last_design = design, margin, last_design
+    if design is not None and start is not None:
+        attempt.box_limits = _what_limits_the_box(model, bounds, settings, kind, start, design,
+                                                  margin)
     reasons, notes = attempt.reasons, attempt.notes
     if design is None:
         reasons.extend(_explain_no_design(model, bounds, settings, margin, last_design))
@@ -931,7 +975,7 @@ def _plain(values: np.ndarray | None) -> list[float] | None:
 
 def _choose_beta(design: _Design, margin: np.ndarray, r: np.ndarray, settings: CertifySettings
                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """``(beta*, floor, cap, beta)`` per joint (METHOD 4.3).
+    """``(beta*, floor, cap, beta)`` per joint (docs/method.md).
 
     The floor is the beta at which the bound at rest mid-range equals the authority (below
     it the filter brakes needlessly early; ``beta = 0`` would freeze the arm); the cap keeps

@@ -7,7 +7,7 @@ own CSS, no external URLs, plots as PNG files next to it), ``certificate_report.
 machines, and the plots:
 
 * per joint, the ratio ``psi / alpha2(b)`` over the joint's slice of the safe set, whose
-  largest value is ``beta*`` (METHOD 4.3);
+  largest value is ``beta*`` (docs/method.md);
 * per joint, the safe set in the ``(q, v)`` plane with the position limits, the rated and the
   certified velocity bounds and the falsifier's lowest-slack states;
 * one summary bar chart of the acceleration authority against the sampled-data margin.
@@ -47,8 +47,8 @@ SAFETY_NOTICE = (
     'regulations and qualified safety engineers have the last word.')
 
 _CONDITION_TEXT = {
-    'acceleration_authority': 'acceleration authority (row sums of M, METHOD 4.2)',
-    'torque_coupling': 'torque coupling (rows of M^-1, METHOD 4.2)',
+    'acceleration_authority': 'acceleration authority (row sums of M, docs/method.md)',
+    'torque_coupling': 'torque coupling (rows of M^-1, docs/method.md)',
 }
 
 
@@ -57,7 +57,7 @@ def joint_rows(outcome: CertificationOutcome, model: RobotModel) -> list[dict[st
     """Per-joint numbers of the report (plain floats), in joint order.
 
     Keys: ``joint``, ``authority`` and ``sampling_margin`` [rad/s^2], ``usable_authority``,
-    ``gamma_star``, ``gamma``, ``certified_velocity`` (``gamma * alpha1(range)``) and
+    ``gamma_star``, ``gamma``, ``certified_velocity`` (the fastest speed in S) and
     ``rated_velocity`` [rad/s], ``velocity_percent``, ``beta_star``, ``beta``,
     ``beta_floor``, ``beta_cap``, ``beta_set_by`` (margin, floor or cap), ``passed``,
     ``braking_percent``: the area of S in the joint's (q, v) plane over the area of the set
@@ -72,7 +72,7 @@ def joint_rows(outcome: CertificationOutcome, model: RobotModel) -> list[dict[st
     for i, name in enumerate(cert.joint_names):
         r = float(model.position_upper[i] - model.position_lower[i])
         gamma = float(cert.gamma[i])
-        velocity = gamma * float(cert.alpha1.value(r))
+        velocity = _envelope(cert, i, r)
         rated = float(cert.velocity_limit[i])
         usable = float(cert.authority[i] - cert.sampling_margin[i])
         b_star, beta = float(cert.beta_star[i]), float(cert.beta[i])
@@ -111,13 +111,27 @@ def joint_rows(outcome: CertificationOutcome, model: RobotModel) -> list[dict[st
     return rows
 
 
+def _speed_bound(cert: Any, i: int) -> float | None:
+    """Joint i's velocity bound when S keeps it by velocity barriers, else None."""
+    return float(cert.velocity_bound[i]) if float(cert.velocity_beta[i]) > 0.0 else None
+
+
+def _envelope(cert: Any, i: int, r: float) -> float:
+    """The fastest speed in joint i's slice of S: ``gamma alpha1(r)``, within the velocity
+    bound when S keeps it by velocity barriers."""
+    reach = float(cert.gamma[i]) * float(cert.alpha1.value(r))
+    bound = _speed_bound(cert, i)
+    return reach if bound is None else min(reach, bound)
+
+
 def _braking_percent(cert: Any, i: int, r: float, usable: float, rated: float) -> float:
     """Area of S over the braking set at the usable authority, in per cent (0 without
     gains)."""
     braking = braking_set_area(r, usable, rated)
     if braking <= 0.0 or float(cert.gamma[i]) <= 0.0:
         return 0.0
-    return 100.0 * safe_set_area(r, float(cert.gamma[i]), cert.alpha1) / braking
+    area = safe_set_area(r, float(cert.gamma[i]), cert.alpha1, _speed_bound(cert, i))
+    return 100.0 * area / braking
 
 
 def _fmt(value: float) -> str:
@@ -165,8 +179,35 @@ def _scale_line(outcome: CertificationOutcome) -> str:
     scale = outcome.velocity_scale
     if scale <= 0.0:
         return 'velocity scale: none found (no velocity envelope gave every joint authority)'
-    return (f'velocity scale: {scale:.3g} (the dynamics bounds cover {100 * scale:.0f} % of '
-            'the rated velocity limits)')
+    cert = outcome.certificate
+    fractions = np.asarray(cert.velocity_bound) / np.asarray(cert.velocity_limit)
+    if float(np.ptp(fractions)) <= 1e-9:
+        return (f'velocity scale: {scale:.3g} (the dynamics bounds cover {100 * scale:.0f} % '
+                'of the rated velocity limits)')
+    return (f'velocity box: {100 * fractions.min():.0f}-{100 * fractions.max():.0f} % of the '
+            'rated velocity limits, per joint (the dynamics bounds cover that box)')
+
+
+def design_lines(certificate: Any, model: RobotModel) -> list[str]:
+    """Plain-text lines on the designs certification tried (family, outcome, envelope per
+    joint) and on what limits each slow joint's velocity box; empty for certificates without
+    that record."""
+    settings = certificate.settings if isinstance(certificate.settings, dict) else {}
+    tried = settings.get('designs_tried') or []
+    lines = []
+    for entry in tried:
+        family = entry.get('alpha1', '?')
+        if entry.get('alpha1_scale') is not None and family.startswith('sqrt'):
+            family += f' (eps {entry["alpha1_scale"]:.3g})'
+        envelope = entry.get('envelope_fraction') or []
+        speeds = ', '.join(f'{100 * x:.0f}' for x in envelope)
+        lines.append(f'{family}: {entry.get("outcome", "?")}'
+                     + (f'; envelope % of rated: {speeds}' if speeds else ''))
+    limited = settings.get('velocity_box_limited_by') or []
+    for name, reason in zip(certificate.joint_names, limited):
+        if reason:
+            lines.append(f'{name} velocity box limited by {reason}')
+    return lines
 
 
 _COLUMNS = (('e', 'authority'), ('margin', 'sampling_margin'), ('gamma*', 'gamma_star'),
@@ -208,8 +249,9 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
     lines.append('-' * len(header))
     lines += textwrap.wrap(
         'e: acceleration authority; margin: sampled-data margin reserved from it [rad/s^2]. '
-        'gamma <= gamma* [1/s]. v_cert = gamma alpha1(range): certified velocity bound beside '
-        'the rated limit v_rat [rad/s]; %brk: area of S over the set from which the joint can '
+        'gamma <= gamma* [1/s]. v_cert: the fastest speed in S (gamma alpha1(range), within '
+        'the velocity box where S keeps it by velocity barriers) beside the rated limit v_rat '
+        '[rad/s]; %brk: area of S over the set from which the joint can '
         'still brake before its limits at its usable authority (e - margin) within v_rat. '
         'beta >= beta*, kept between floor and cap. '
         '(m for rad on prismatic joints.)', TABLE_WIDTH)
@@ -224,6 +266,12 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
                            subsequent_indent='  ')
     lines += textwrap.wrap(_seconds_line(outcome.stage_seconds), TABLE_WIDTH,
                            subsequent_indent='  ')
+    designs = design_lines(cert, model)
+    if designs:
+        lines += ['', 'designs tried (the largest safe set that certifies is kept):']
+        for text in designs:
+            lines += textwrap.wrap(text, TABLE_WIDTH, initial_indent='  ',
+                                   subsequent_indent='    ')
     model_error = format_model_error_table(cert, model)
     if model_error:
         lines += ['', model_error]
@@ -329,9 +377,14 @@ def _new_figure(width: float = 6.4, height: float = 4.6, left: float = 0.11,
 
 def _slice_edges(cert: Any, i: int, q: np.ndarray, lower: float, upper: float
                  ) -> tuple[np.ndarray, np.ndarray]:
-    """Velocity edges of joint i's slice of S at positions q: (bn = 0, bp = 0)."""
+    """Velocity edges of joint i's slice of S at positions q: (low, high), on bn = 0 and
+    bp = 0, or on the velocity bound where S keeps it by velocity barriers."""
     gamma = float(cert.gamma[i])
-    return (-gamma * cert.alpha1.value(q - lower), gamma * cert.alpha1.value(upper - q))
+    low, high = -gamma * cert.alpha1.value(q - lower), gamma * cert.alpha1.value(upper - q)
+    bound = _speed_bound(cert, i)
+    if bound is not None:
+        low, high = np.maximum(low, -bound), np.minimum(high, bound)
+    return low, high
 
 
 def _no_gains(axes: Any) -> None:
@@ -358,20 +411,24 @@ def _plot_ratio(outcome: CertificationOutcome, model: RobotModel, i: int, path: 
         _no_gains(axes)
         figure.savefig(path)
         return
-    top = gamma * float(cert.alpha1.value(r))
+    top = _envelope(cert, i, r)
+    bound = _speed_bound(cert, i)
+    speed = {} if bound is None else {'speed_bound': bound,
+                                      'speed_beta': float(cert.velocity_beta[i])}
     qs = np.linspace(lower, upper, 321)
     vs = np.linspace(-top, top, 301)
     qq, vv = np.meshgrid(qs, vs)
-    hp, hn = upper - qq, qq - lower
-    a1p, a1n = cert.alpha1.value(hp), cert.alpha1.value(hn)
+    hp = upper - qq
+    edge_lo, edge_hi = _slice_edges(cert, i, qq, lower, upper)
     with np.errstate(divide='ignore', invalid='ignore'):
-        t = (vv / gamma + a1n) / (a1p + a1n)
+        t = (vv - edge_lo) / (edge_hi - edge_lo)
     inside = (t >= 0.0) & (t <= 1.0) & np.isfinite(t)
     ratio = _slice_ratio(hp, np.clip(np.nan_to_num(t), 0.0, 1.0), r, usable, gamma, margin,
-                         cert.alpha1, cert.alpha2)
+                         cert.alpha1, cert.alpha2, **speed)
     shown = inside & np.isfinite(ratio)
     values = ratio[shown]
-    b_star, best_x, best_t = beta_star(r, usable, gamma, margin, cert.alpha1, cert.alpha2)
+    b_star, best_x, best_t = beta_star(r, usable, gamma, margin, cert.alpha1, cert.alpha2,
+                                       **speed)
     high = max(float(np.max(values)) if values.size else 0.0, b_star)
     low = float(np.percentile(values, 5.0)) if values.size else high - 1.0
     if not low < high:
@@ -400,9 +457,8 @@ def _plot_ratio(outcome: CertificationOutcome, model: RobotModel, i: int, path: 
         axes.legend(loc='upper right', fontsize=8, framealpha=0.85)
     elif np.isfinite(b_star):
         q_best = upper - best_x
-        a1p_best = float(cert.alpha1.value(best_x))
-        a1n_best = float(cert.alpha1.value(r - best_x))
-        v_best = gamma * (-a1n_best + best_t * (a1p_best + a1n_best))
+        low_best, high_best = _slice_edges(cert, i, np.array(q_best), lower, upper)
+        v_best = float(low_best + best_t * (high_best - low_best))
         axes.plot([q_best], [v_best], marker='*', markersize=14, color='red',
                   markeredgecolor='black', linestyle='none',
                   label=f'beta* = {b_star:.4g} (certificate: {cert.beta_star[i]:.4g})')
@@ -433,7 +489,7 @@ def _plot_safe_set(outcome: CertificationOutcome, model: RobotModel, i: int, pat
         axes.fill_between(qs, edge_lo, edge_hi, color='#8fbbe0', alpha=0.55, label='S')
         axes.plot(qs, edge_hi, color='#1f4e79', linewidth=1.5, label='bp = 0, bn = 0')
         axes.plot(qs, edge_lo, color='#1f4e79', linewidth=1.5)
-        bound = gamma * float(cert.alpha1.value(r))
+        bound = _envelope(cert, i, r)
         axes.axhline(bound, color='#2a8a2a', linestyle=':', linewidth=1.8, zorder=4,
                      label=f'certified bound +-{bound:.3g}')
         axes.axhline(-bound, color='#2a8a2a', linestyle=':', linewidth=1.8, zorder=4)
@@ -628,6 +684,13 @@ def _html_page(outcome: CertificationOutcome, model: RobotModel,
         ('falsifier', falsifier_text),
         ('stage timings', _seconds_line(outcome.stage_seconds).split(': ', 1)[1]),
     ]))
+    designs = design_lines(cert, model)
+    if designs:
+        parts.append('<h2>Designs tried</h2>')
+        parts.append('<p>Certification takes each barrier design it knows through the same '
+                     'steps and keeps the one whose safe set is largest among those that '
+                     'certify (docs/method.md, &ldquo;Which design, and how fast&rdquo;).</p>')
+        parts.append('<ul>' + ''.join(f'<li>{esc(text)}</li>' for text in designs) + '</ul>')
     error_rows = model_error_rows(cert, model)
     if error_rows:
         parts.append('<h2>Model error the certificate covers</h2>')

@@ -1,6 +1,6 @@
 """Rigid-body dynamics of the actuated chain: M(q), h(q, v), g(q), C(q, v), Christoffel symbols.
 
-Equation of motion (METHOD section 1)::
+Equation of motion (docs/method.md)::
 
     M(q) a + C(q, v) v + D v + g(q) + f_c sign(v) = u,      h(q, v) = C v + D v + g + f_c sign(v)
 

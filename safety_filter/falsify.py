@@ -7,7 +7,7 @@ the exact feasibility problem
 
     exists u with |u| <= umax and An + delta <= M^-1 (u - h) <= Ap - delta
 
-(METHOD 4.5). Two cheap witnesses are tried first for every state (the acceleration nearest
+(docs/method.md). Two cheap witnesses are tried first for every state (the acceleration nearest
 zero inside the bounds, and the one nearest free fall); a witness whose torque is inside the
 box proves feasibility. Every state where both witnesses fail, and the states where they
 have the least slack, go to an exact linear program solved by HiGHS through SciPy - a solver

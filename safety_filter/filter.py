@@ -1,7 +1,7 @@
 """The online filter step: from measured state and nominal torque to a safe torque.
 
 :class:`SafetyFilter` is the numeric core that the ROS node, the simulator and replay all
-call (no ROS imports here). One :meth:`SafetyFilter.step` (METHOD sections 3, 4.4 and 5):
+call (no ROS imports here). One :meth:`SafetyFilter.step` (docs/method.md, the filter step):
 
 1. **Validate** ``q``, ``v``, ``u_nom`` (shape ``(n,)``, finite) and reject positions more than
    ``rejection_distance`` beyond a limit (by default half the smallest joint range: no arm
@@ -31,7 +31,7 @@ call (no ROS imports here). One :meth:`SafetyFilter.step` (METHOD sections 3, 4.
 5. **Inside S** the QP (:mod:`safety_filter.qp`) is solved; its answer is used only if OSQP
    says solved and the answer passes an explicit constraint check. Otherwise the same
    constructive formula (feasible by construction under the acceleration-authority
-   certificate, METHOD 4.4) is used; mode ``'fallback'`` with the reason. (Under a
+   certificate, docs/method.md) is used; mode ``'fallback'`` with the reason. (Under a
    torque-coupling certificate the formula has no such guarantee: its torque is still
    clipped to the box, but the acceleration bounds may then be missed.) When the nominal
    already meets every constraint it is the QP's minimiser and is sent unchanged, without
@@ -210,7 +210,7 @@ def constructive_acceleration(
     authority: np.ndarray,
     upper_side_worse: np.ndarray | None = None,
 ) -> np.ndarray:
-    """The constructive command of METHOD 4.4 (and the recovery outside S).
+    """The constructive command (docs/method.md, the filter step) (and the recovery outside S).
 
     ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))``. Where the interval is empty
     (only possible outside S, or with a wrong certificate) the end that pushes back toward S
@@ -238,7 +238,7 @@ def constructive_acceleration(
 
 
 class SafetyFilter:
-    """The certified barrier filter for one arm (METHOD section 3).
+    """The certified barrier filter for one arm (docs/method.md).
 
     Args:
         model: the robot model; must be the one the certificate was computed for.
@@ -413,7 +413,7 @@ class SafetyFilter:
 
         # Preallocated per-step buffers.
         self._inputs = np.empty((3, n))
-        # Barrier rows [hp; hn; bp; bn; Ap; An; sp; sn] (METHOD 2), written by
+        # Barrier rows [hp; hn; bp; bn; Ap; An; sp; sn] (docs/method.md), written by
         # _kernels.barrier_rows.
         self._rows = np.empty((8, n))
         self._accel_upper = self._rows[4]
@@ -466,7 +466,7 @@ class SafetyFilter:
 
     def constraint_bounds(self, q: np.ndarray, v: np.ndarray) -> BarrierState:
         """Barrier values and acceleration bounds at ``(q, v)`` with the certificate's gains
-        and sampling margin (METHOD section 2); batches of shape (..., n) allowed."""
+        and sampling margin (docs/method.md); batches of shape (..., n) allowed."""
         c = self.certificate
         return evaluate_barriers(np.asarray(q, dtype=float), np.asarray(v, dtype=float),
                                  c.position_lower, c.position_upper, c.gamma, c.beta,
@@ -739,7 +739,7 @@ class SafetyFilter:
         return self._a_nom
 
     def _constructive(self, u_full: np.ndarray) -> np.ndarray:
-        """Constructive acceleration (METHOD 4.4) for the current state's buffers."""
+        """Constructive acceleration (docs/method.md) for the current state's buffers."""
         a_nom = self._nominal_acceleration(u_full)
         acceleration = np.empty(self.n)
         _kernels.constructive(a_nom, self._accel_lower, self._accel_upper, self._k_authority,

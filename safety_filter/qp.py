@@ -1,6 +1,6 @@
 """The filter's quadratic program in acceleration form, set up once and updated per step.
 
-Each control step the filter solves (METHOD section 3), with ``u = M a + h``::
+Each control step the filter solves (docs/method.md), with ``u = M a + h``::
 
     minimise over a    (M a + h - u_nom)^T W (M a + h - u_nom)
     subject to         An <= a <= Ap                      (barrier rows, identity block)

@@ -1,24 +1,26 @@
 """The sampled-data margin: acceleration reserved for what happens within one hold period.
 
-The filter computes a torque at each control step and the driver holds it until the next
-one. Over that hold period the acceleration the held torque produces drifts (``M`` and ``h``
-change with the state) and so do the barrier bounds ``An``, ``Ap``. The continuous-time
-argument of METHOD section 2 needs ``An <= a(t) <= Ap(t)`` at every instant, not only at
-the sample. So the filter enforces the bounds tightened by a margin ``delta`` [rad/s^2]::
+The filter computes a torque at each control step and the driver holds it until the next one
+(after the declared delay). Within that hold the acceleration the torque produces drifts
+(``M`` and ``h`` change with the state), while the barrier argument of docs/method.md is
+made in continuous time. What the guarantee needs is that the safe set S stays invariant
+under the sampled filter: from every state of S, under every command the filter may send
+there, the state stays in S until the next step (where the QP is feasible again, by the
+certificate). The filter enforces the bounds tightened by a margin ``delta`` [rad/s^2]::
 
     An + delta <= a(t_k) <= Ap - delta
 
-and ``delta`` must cover the drift ``|a(t) - a(t_k)| + |A(t) - A(t_k)|`` over the hold
-period. Then the ZCBF inequality holds throughout the period and the safe set stays
-invariant under the sampled filter, exactly as in continuous time.
+so a command at a tightened bound starts the velocity barrier it touches rising at the rate
+``delta``; ``delta`` must be large enough that no barrier is negative anywhere in the hold.
 
-A worst-case analytic bound on the drift is far too conservative (METHOD 5.1), so it is
-estimated from one-period rollouts of the model: states sampled in the safe set (half of
-them on the barrier boundary), accelerations the filter could command there (inside the
-tightened bounds, with the torque inside its box), the torque held while the model is
-integrated with RK4, the largest drift per joint kept, and an inflation factor applied.
-The margin is derived for ``sampling_factor`` control periods so that a controller that runs
-that much slower (missed deadlines, a slower driver) is still covered.
+A worst-case analytic bound on the drift is far too conservative, so it is estimated from
+rollouts: states sampled in S (half of them on its boundary), commands the filter could
+send there (inside the tightened bounds, often at an edge, with the torque inside its box),
+the torque held while the model (and arms drawn from the declared uncertainty set) are
+integrated with RK4, and each velocity barrier checked along the way; what it lacks, as a
+rate, is added to the margin with an inflation factor. The hold covers ``sampling_factor``
+control periods plus the declared delay, so a controller that runs that much slower is
+still covered.
 """
 
 from __future__ import annotations

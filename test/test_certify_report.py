@@ -18,6 +18,7 @@ from safety_filter.certify_report import (
     REPORT_HTML,
     REPORT_JSON,
     SAFETY_NOTICE,
+    design_lines,
     format_joint_table,
     joint_rows,
     plot_file_names,
@@ -77,9 +78,12 @@ def test_rows_match_the_certificate(planar2) -> None:
     rows = joint_rows(outcome, model)
     assert [row['joint'] for row in rows] == list(model.joint_names)
     for i, row in enumerate(rows):
-        # Linear alpha1: the velocity lemma bound is gamma * range.
-        assert row['certified_velocity'] == pytest.approx(
-            cert.gamma[i] * model.position_range[i], rel=1e-12)
+        # The fastest speed in S: gamma alpha1(range) (the velocity lemma bound), within the
+        # velocity box where S keeps it by velocity barriers.
+        reach = cert.gamma[i] * float(cert.alpha1.value(model.position_range[i]))
+        if cert.velocity_beta[i] > 0.0:
+            reach = min(reach, cert.velocity_bound[i])
+        assert row['certified_velocity'] == pytest.approx(reach, rel=1e-12)
         assert row['certified_velocity'] <= model.velocity_limit[i] * (1 + 1e-9)
         assert row['usable_authority'] == pytest.approx(
             cert.authority[i] - cert.sampling_margin[i])
@@ -161,3 +165,19 @@ def test_report_of_a_failed_certification_says_why(weak, tmp_path) -> None:
     assert data['verdict'] == 'not certified'
     assert data['falsifier'] is None
     assert any('shoulder' in reason for reason in data['certificate']['reasons'])
+
+
+def test_report_lists_the_designs_tried(planar2) -> None:
+    """Every family certification tried is listed with its outcome, one of them chosen; the
+    certificate's own alpha1 is the chosen family's."""
+    outcome, model = planar2
+    cert = outcome.certificate
+    lines = design_lines(cert, model)
+    tried = cert.settings['designs_tried']
+    assert len(tried) == len(FAST.families) and len(lines) >= len(tried)
+    chosen = [line for line in lines if ': chosen' in line]
+    assert len(chosen) == 1 and chosen[0].startswith(cert.alpha1.kind)
+    table = format_joint_table(outcome, model)
+    assert 'designs tried' in table
+    for entry in tried:
+        assert any(line.startswith(entry['alpha1']) for line in lines)
