@@ -259,9 +259,15 @@ class HeadlessChromium:
                       '() => r(true))))', await_promise=True)
 
     # ------------------------------------------------------------------ pages
-    def open(self, path: str | Path) -> PageVisit:
-        """Load a local page, wait for its load event and inspect it."""
-        url = Path(path).resolve().as_uri()
+    def open(self, path: str | Path, fragment: str = '') -> PageVisit:
+        """Load a local page (with ``#fragment`` when given), wait for its load event and
+        inspect it."""
+        url = Path(path).resolve().as_uri() + (f'#{fragment}' if fragment else '')
+        # By way of an empty page: a new fragment on the page already shown would only
+        # scroll it, without loading it again.
+        self._events.clear()
+        self.call('Page.navigate', url='about:blank')
+        self._wait_for_event('Page.loadEventFired')
         self._events.clear()
         self.call('Page.navigate', url=url)
         self._wait_for_event('Page.loadEventFired')

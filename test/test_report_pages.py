@@ -239,6 +239,19 @@ def test_zooming_the_replay_plots_to_50_ms_around_the_largest_intervention(
         browser.full_page_screenshot(tmp_path / 'replay_zoomed_page.png')
 
 
+def test_an_address_with_a_time_window_opens_the_plots_on_it() -> None:
+    folder = replay_run().output
+    with chromium() as browser:
+        visit = browser.open(folder / replay_report.REPORT_HTML, fragment='t=0.61,0.66')
+        assert not visit.problems(), visit.problems()
+        view = _view(browser)
+        assert view == pytest.approx({'min': 0.61, 'max': 0.66}, abs=1e-12)
+        _assert_charts_follow(browser, view)
+        # Outside the trial, the window is moved back inside it, keeping its width.
+        browser.open(folder / replay_report.REPORT_HTML, fragment='t=-1,-0.9')
+        assert _view(browser) == pytest.approx({'min': 0.0, 'max': 0.1}, abs=1e-9)
+
+
 def test_the_replay_plots_answer_the_mouse(tmp_path: Path) -> None:
     folder = replay_run().output
     with chromium(height=1100) as browser:
