@@ -12,6 +12,9 @@ what a torque driver adds around the arm, one control period per :meth:`Simulate
   time is not used: the driver applies zero torque, so the arm then moves under gravity
   alone, like a real arm with torque off and no brakes, until commands resume. (A plain
   timeout of the simulation, not a safety-rated drive function.)
+* **Friction.** Coulomb friction acts as the physical stick-slip law by default (a joint
+  that comes to rest sticks while its friction can hold it; ``coulomb_law``, see
+  :class:`safety_filter.simulate.ArmSimulator`).
 * **Measurement.** The published state can carry Gaussian noise (seeded) and a latency: the
   state measured ``latency_s`` ago is published, with its own time stamp.
 
@@ -30,7 +33,7 @@ import numpy as np
 
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
-from safety_filter.simulate import ArmSimulator
+from safety_filter.simulate import COULOMB_LAWS, ArmSimulator
 
 GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
 DEFAULT_INTERNAL_RATE_FACTOR = 10.0
@@ -70,6 +73,8 @@ class SimulatedDriver:
             ``'driver_compensated'`` (the driver adds ``g(q)`` to each command).
         start_time_s: simulated time at start [s].
         backend: dynamics backend (see :class:`safety_filter.Dynamics`).
+        coulomb_law: ``'stick_slip'`` (default) or ``'sign'``: how the simulation treats
+            Coulomb friction (:class:`safety_filter.simulate.ArmSimulator`).
 
     Raises:
         SafetyFilterError: an invalid option.
@@ -81,7 +86,7 @@ class SimulatedDriver:
                  position_noise_std: float = 0.0, velocity_noise_std: float = 0.0,
                  noise_seed: int = 0, latency_s: float = 0.0, command_timeout_s: float = 0.1,
                  gravity_convention: str = 'full', start_time_s: float = 0.0,
-                 backend: str = 'auto') -> None:
+                 backend: str = 'auto', coulomb_law: str = 'stick_slip') -> None:
         def check(name: str, value: float, positive: bool = False) -> float:
             value = float(value)
             if not math.isfinite(value) or value < 0.0 or (positive and value == 0.0):
@@ -109,7 +114,11 @@ class SimulatedDriver:
         self.latency_s = check('latency_s', latency_s)
         self.command_timeout_s = check('command_timeout_s', command_timeout_s, positive=True)
         self.gravity_convention = gravity_convention
-        self.simulator = ArmSimulator(model, self.payload_mass, internal_rate_hz, backend)
+        if coulomb_law not in COULOMB_LAWS:
+            raise SafetyFilterError(f'coulomb_law must be one of {COULOMB_LAWS}, got '
+                                    f'{coulomb_law!r}')
+        self.simulator = ArmSimulator(model, self.payload_mass, internal_rate_hz, backend,
+                                      coulomb_law=coulomb_law)
         q0 = (0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
               if initial_positions is None or len(initial_positions) == 0
               else np.asarray(initial_positions, dtype=float))
