@@ -114,7 +114,7 @@ class CertifySettings:
     per_joint_envelopes: bool = True
     braking_slope_share: float = 0.1
     braking_distance_share: float = 0.02
-    acceleration_bound_factor: float = 2.0
+    acceleration_bound_factor: float = 1.5
     gamma_margin: float = 0.9
     beta_margin: float = 1.2
     beta_sampling_limit: float = 0.1
