@@ -28,13 +28,12 @@ One run is :func:`run_plant_loop`; :func:`summarize_run` measures it and
 from __future__ import annotations
 
 import argparse
-import contextlib
 import functools
 import math
 import os
 import sys
 import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
@@ -519,37 +518,11 @@ def severity(summary: dict[str, Any]) -> tuple[float, ...]:
             summary['time_outside_s'], -(margin if margin is not None else 0.0))
 
 
-@contextlib.contextmanager
-def _c_stdout_silenced() -> Iterator[None]:
-    """Send file descriptor 1 to the null device for a while.
-
-    OSQP 1.1 prints 'Polishing not needed ...' from its C code on stdout even with
-    ``verbose=False``, which would bury the table; Python's own prints are flushed first.
-    """
-    sys.stdout.flush()
-    try:
-        saved = os.dup(1)
-    except OSError:  # no stdout at all
-        yield
-        return
-    null = os.open(os.devnull, os.O_WRONLY)
-    try:
-        os.dup2(null, 1)
-        yield
-    finally:
-        os.dup2(saved, 1)
-        os.close(saved)
-        os.close(null)
-
-
 _WORKER: dict[str, Any] = {}
 
 
 def _init_worker(model: RobotModel, certificate: Certificate, uncertainty: UncertaintySet,
                  settings: StressSettings) -> None:
-    null = os.open(os.devnull, os.O_WRONLY)  # see _c_stdout_silenced; workers print nothing
-    os.dup2(null, 1)
-    os.close(null)
     _WORKER['context'] = StressContext(model, certificate, uncertainty, settings)
 
 
@@ -590,8 +563,7 @@ def run_stress(model: RobotModel, certificate: Certificate, uncertainty: Uncerta
     report('stress runs', 0.0)
     if jobs == 1 or total <= 1:
         for spec in context.specs:
-            with _c_stdout_silenced():
-                summaries[spec.index] = context.run(spec)[0]
+            summaries[spec.index] = context.run(spec)[0]
             report('stress runs', (spec.index + 1) / total)
     else:
         import multiprocessing
@@ -614,8 +586,7 @@ def run_stress(model: RobotModel, certificate: Certificate, uncertainty: Uncerta
                 report('stress runs', done / total)
     ordered = sorted((s for s in summaries if s is not None), key=severity, reverse=True)
     worst = ordered[0]
-    with _c_stdout_silenced():
-        again, log, pushes = context.run(context.specs[worst['index']])
+    again, log, pushes = context.run(context.specs[worst['index']])
     return StressResult(ordered, again, log, pushes, context, time.monotonic() - start)
 
 
