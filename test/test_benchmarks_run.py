@@ -57,9 +57,33 @@ def test_bench_replay_cluster_quick_prints_local_and_cluster_rows() -> None:
         capture_output=True, text=True, timeout=300, env=env, cwd=REPO)
     assert result.returncode == 0, result.stdout + result.stderr
     rows = [line for line in result.stdout.splitlines() if line.endswith('x')]
-    assert len(rows) == 4, result.stdout
+    assert len(rows) == 5, result.stdout
     assert rows[0].startswith('local, this process') and rows[0].endswith('1.00x')
     assert rows[1].startswith('local process pool (jobs = 2)')
     cluster = [row.split() for row in rows if row.startswith('Dask cluster')]
     assert [row[row.index('(--cluster)') + 1] for row in cluster] == ['1', '2']
+    assert rows[4].startswith('local, this process (jobs = 1), again')
     assert 'bags/min' in result.stdout and 'vs 1 process' in result.stdout
+
+
+def test_bench_permissiveness_quick_prints_three_controllers_and_the_filter_keeps_limits(
+        ) -> None:
+    """The permissiveness benchmark runs its quick form on bench6: one row per controller
+    (unfiltered, the braking-curve clamp, the certified filter) with the tracking errors'
+    ratios to the unfiltered run, and the certified filter goes past no limit in any run (the
+    benchmark lists every run of the clamp or the filter that did)."""
+    env = dict(os.environ)
+    env['PYTHONPATH'] = os.pathsep.join([str(REPO)] + [p for p in [env.get('PYTHONPATH')] if p])
+    result = subprocess.run(
+        [sys.executable, str(REPO / 'benchmarks' / 'bench_permissiveness.py'), '--quick'],
+        capture_output=True, text=True, timeout=300, env=env, cwd=REPO)
+    assert result.returncode == 0, result.stdout + result.stderr
+    lines = result.stdout.splitlines()
+    rows = {line[8:24].strip(): line[24:].split() for line in lines
+            if line.startswith('bench6  ') and line[8:24].strip()}
+    assert list(rows) == ['unfiltered', 'braking clamp', 'certified filter'], result.stdout
+    assert rows['unfiltered'].count('(1.00x)') == 4, result.stdout  # 3 speeds and the reach
+    assert [float(x) for x in rows['certified filter'][:2]] == [0.0, 0.0], result.stdout
+    start = lines.index('limits broken by the braking clamp or the certified filter (any run):')
+    listed = lines[start + 1:lines.index('', start)]
+    assert listed and not any('certified filter' in line for line in listed), result.stdout
