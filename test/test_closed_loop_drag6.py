@@ -15,10 +15,10 @@ mounted payload (the heaviest at 1 kHz, the lightest at the slow rate), the plan
 same payload, integrated at 10 kHz, the torque held between control steps. (The wrist's
 fastest damping mode, the flange roll coupled to the wrist roll, has a time constant of
 0.11 ms, the largest eigenvalue of ``M^-1 D`` being 9000 1/s: RK4 at 0.1 ms steps is stable
-for it, ``dt / tau = 0.9`` against RK4's limit of 2.8, and decays it within 1 % per step.) Each run starts
-on the boundary of S, every joint 0.5 % of its range from a limit (alternately the upper and
-the lower one) and moving toward it as fast as S allows, and lasts 1 s (the PD nominal
-switches its target side after 0.5 s).
+for it, ``dt / tau = 0.9`` against RK4's limit of 2.8, and decays it within 1 % per step.)
+Each run starts on the boundary of S, every joint 0.5 % of its range from a limit
+(alternately the upper and the lower one) and moving toward it as fast as S allows, and
+lasts 1 s (the PD nominal switches its target side after 0.5 s).
 
 While drag6 does not certify, :func:`test_drag6_certifies_at_1khz` is an expected failure
 (strict: it reports when drag6 starts to certify, so that the marker goes), and each closed
