@@ -292,6 +292,68 @@ def test_a_bag_the_scheduler_gives_up_on_is_reported_and_the_others_kept(
     client.wait_for_workers(2, timeout=60)
 
 
+def test_a_lost_scheduler_fails_the_unfinished_bags_and_keeps_the_rest(
+        arm: Any, trials: Path, tmp_path: Path) -> None:
+    """A scheduler and a worker as separate processes (as `dask scheduler` and `dask worker`
+    run them); the scheduler is killed once the first bag is done."""
+    model, certificate = arm
+    folder = tmp_path / 'bags'
+    for k in range(6):
+        shutil.copytree(trials / 'arm_a', folder / f'run{k}')
+    bags = sorted(folder.iterdir())
+    out = tmp_path / 'out'
+    env = dict(os.environ)
+    env['PYTHONPATH'] = os.pathsep.join([str(REPO)] + [p for p in [env.get('PYTHONPATH')] if p])
+    scheduler_file = tmp_path / 'scheduler.json'
+    common = ['--no-dashboard', '--host', '127.0.0.1', '--scheduler-file', str(scheduler_file)]
+    scheduler = subprocess.Popen(
+        [sys.executable, '-m', 'distributed.cli.dask_scheduler', '--port', '0', *common],
+        env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+    worker = None
+    try:
+        deadline = time.monotonic() + 60.0
+        while not scheduler_file.is_file() and time.monotonic() < deadline:
+            time.sleep(0.05)
+        time.sleep(0.2)  # the file is written whole, but give the writer its close
+        address = json.loads(scheduler_file.read_text())['address']
+        worker = subprocess.Popen(
+            [sys.executable, '-m', 'distributed.cli.dask_worker', '--nthreads', '1',
+             '--nworkers', '1', *common], env=env, stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL, start_new_session=True, cwd=tmp_path)
+
+        def kill_after_the_first_bag() -> None:
+            while time.monotonic() < deadline + 60.0:
+                if any((out / bag.name / 'replay_report.json').is_file() for bag in bags):
+                    time.sleep(0.3)  # its result on its way to the client
+                    os.killpg(scheduler.pid, signal.SIGKILL)
+                    return
+                time.sleep(0.02)
+
+        killer = threading.Thread(target=kill_after_the_first_bag)
+        killer.start()
+        try:
+            entries = replay_bags(bags, model, [CertificateChoice('cert', certificate)],
+                                  ReplayOptions(), out, cluster=address, progress=False)
+        finally:
+            killer.join()
+    finally:
+        for process in (worker, scheduler):
+            if process is not None and process.poll() is None:
+                os.killpg(process.pid, signal.SIGKILL)
+            if process is not None:
+                process.wait(timeout=30)
+    assert scheduler.returncode == -signal.SIGKILL
+    assert [e['name'] for e in entries] == [b.name for b in bags]
+    done = [e for e in entries if e['status'] == 'ok']
+    dropped = [e for e in entries if e['status'] != 'ok']
+    assert done and dropped, entries
+    for entry in done:  # kept, with their reports
+        assert (out / entry['report_json']).is_file()
+    for entry in dropped:
+        assert 'the cluster dropped it before it finished' in entry['error'], entry
+        assert '\n' not in entry['error']
+
+
 def test_bad_cluster_addresses_are_clear_errors(trials: Path, certificate_file: Path,
                                                 cluster: Any, tmp_path: Path,
                                                 monkeypatch: pytest.MonkeyPatch,
