@@ -37,6 +37,7 @@ from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
 from safety_filter.barriers import braking_set_area, safe_set_area
 from safety_filter.bounds import BoundSettings, DynamicsBounds, estimate_bounds
 from safety_filter.certificate import DEFAULT_OBSERVER_PERIODS, Certificate
+from safety_filter.dynamics import mass_matrix_batch
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 from safety_filter.sampling import Gains, estimate_sampling_margin
@@ -1031,6 +1032,43 @@ def _explain_model_error_shortfall(model: RobotModel, bounds: DynamicsBounds,
     return reasons
 
 
+def _margin_shortfall_reason(model: RobotModel, settings: CertifySettings, i: int,
+                             margin: float, authority: float) -> str:
+    """Why joint ``i`` lacks more than its authority within one hold, and what would help:
+    the URDF's damping when a damping mode (the joint's own, or a coupled joint's through
+    ``M^-1``) is faster than the hold, else the control rate that would do (or that none
+    below 10 kHz would)."""
+    names = list(model.joint_names)
+    hold_ms = 1000 * settings.hold_period_s
+    text = (f'joint {names[i]!r}: within one hold of {hold_ms:.3g} ms (one control period '
+            f'and the declared delay) the state leaves S unless {margin:.4g} rad/s^2 is '
+            f'reserved, more than its authority {authority:.4g} rad/s^2')
+    viscous = np.array(model.viscous_friction)
+    rng = np.random.default_rng(0)
+    q = rng.uniform(model.position_lower, model.position_upper, (64, model.n_joints))
+    inverse = np.linalg.inv(mass_matrix_batch(model, q, payload_mass=model.payload.mass_min))
+    coupling = np.max(np.abs(inverse[:, i, :]), axis=0) * viscous  # [1/s] per joint j
+    j = int(np.argmax(coupling))
+    if coupling[j] * settings.hold_period_s > 0.2:
+        inertia = 1.0 / float(np.max(inverse[:, j, j]))
+        source = ('its own damping' if j == i else
+                  f'the damping of joint {names[j]!r}, through the coupling of the inertia '
+                  f'matrix (|M^-1| up to {np.max(np.abs(inverse[:, i, j])):.4g})')
+        return (text + f': {source}: the URDF gives {names[j]!r} {viscous[j]:.4g} N m s/rad '
+                f'of viscous damping on as little as {inertia:.3g} kg m^2 of link inertia, a '
+                f'time constant of {1000 * inertia / viscous[j]:.3g} ms against the '
+                f'{hold_ms:.3g} ms hold, so the held torque acts differently by the end of it. '
+                'A faster control rate '
+                'helps little (the disturbance observer then costs more authority); check that '
+                "damping value, and the inertia of the joint (a geared joint's rotor inertia "
+                'is not in a URDF but slows this mode by the square of the gear ratio)')
+    rate = settings.control_rate_hz * margin / authority
+    if rate > 10_000.0:
+        return (text + f': no control rate below 10 kHz would do (about {rate:.0f} Hz by '
+                'scaling); lower the velocity limits or raise the effort limits')
+    return text + f': raise the control rate above {rate:.0f} Hz'
+
+
 def _explain_no_design(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
                        margin: np.ndarray, last_design: _Design | None) -> list[str]:
     """Per-joint reasons why no velocity scale gave positive authority, with numbers."""
@@ -1062,13 +1100,8 @@ def _explain_no_design(model: RobotModel, bounds: DynamicsBounds, settings: Cert
                     f'{", ".join(f"{names[i]!r} {margin[i]:.4g}" for i in range(len(names)))}'
                     f' rad/s^2; raise margin_samples (now {settings.margin_samples}) or the '
                     'control rate']
-        return [f'joint {names[i]!r}: within one hold period of '
-                f'{1000 * settings.hold_period_s:.3g} ms its acceleration drifts by up to '
-                f'{margin[i]:.4g} rad/s^2, more than its authority '
-                f'{last_design.authority[i]:.4g} rad/s^2 (fast damping on a light link, or a '
-                f'slow control rate); raise the control rate above '
-                f'{settings.control_rate_hz * margin[i] / last_design.authority[i]:.0f} Hz or '
-                'reduce the viscous damping' for i in short]
+        return [_margin_shortfall_reason(model, settings, i, margin[i],
+                                         last_design.authority[i]) for i in short]
     return ['no velocity envelope gives positive authority to every joint: the Coriolis and '
             'gravity bounds exceed the effort limits; lower the velocity limits or raise the '
             'effort limits']

@@ -25,6 +25,7 @@ still covered.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -69,6 +70,8 @@ class BatchPlant:
         self.mass = np.asarray(payload_mass, dtype=float)
         self.viscous = np.array(model.viscous_friction)
         self.coulomb = np.array(model.coulomb_friction)
+        # Coulomb friction's direction per sample, when held (None: sign(v) at each call).
+        self.coulomb_direction: np.ndarray | None = None
         levels = np.unique(self.mass)
         self._groups = ([(level, self.mass == level) for level in levels]
                         if len(levels) <= 4 else None)
@@ -94,11 +97,25 @@ class BatchPlant:
         """``h(q, v)`` per sample, shape (N, n)."""
         rigid = self._evaluate(lambda model, x, y, payload_mass: rnea_batch(
             model, x, y, payload_mass=payload_mass), q, v)
-        return rigid + self.viscous * v + self.coulomb * np.sign(v)
+        direction = np.sign(v) if self.coulomb_direction is None else self.coulomb_direction
+        return rigid + self.viscous * v + self.coulomb * direction
 
     def acceleration(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
         """``M^-1 (u - h)`` per sample."""
         return np.linalg.solve(self.mass_matrix(q), (u - self.bias(q, v))[..., None])[..., 0]
+
+
+def _damping_rate(model: RobotModel, samples: int = 64) -> float:
+    """An estimate of the fastest damping mode ``max eig(M^-1 D)`` [1/s] of ``model``:
+    the largest row sum of ``|M^-1| D`` over configurations sampled in the joint box (with
+    the lightest payload), doubled for what the samples miss."""
+    viscous = np.array(model.viscous_friction)
+    if not np.any(viscous > 0.0):
+        return 0.0
+    rng = np.random.default_rng(0)
+    q = rng.uniform(model.position_lower, model.position_upper, (samples, model.n_joints))
+    inverse = np.linalg.inv(mass_matrix_batch(model, q, payload_mass=model.payload.mass_min))
+    return 2.0 * float(np.max(np.sum(np.abs(inverse) * viscous, axis=2)))
 
 
 class _GroupedPlant:
@@ -118,6 +135,11 @@ class _GroupedPlant:
                 out = np.empty((len(mask),) + value.shape[1:])
             out[mask] = value
         return out
+
+    def hold_coulomb_direction(self, v: np.ndarray) -> None:
+        """Hold each sample's Coulomb friction at its direction for velocities ``v``."""
+        for part, mask in zip(self.parts, self.masks):
+            part.coulomb_direction = np.sign(v[mask])
 
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
         return self._combine('mass_matrix', q)
@@ -223,6 +245,13 @@ def estimate_sampling_margin(
     torque = np.einsum('nij,nj->ni', mass, accel) + bias
     torque = np.clip(torque, -umax, umax)
     accel0 = np.linalg.solve(mass, (torque - bias)[..., None])[..., 0]
+    # Coulomb friction is held at its direction at the sample for the whole hold (the
+    # torque compensates it exactly, as at the sample): friction only ever opposes the
+    # motion, and where a joint's velocity reaches zero within the hold, friction that
+    # sticks it or reverses would slow it further than the held friction does
+    # (docs/method.md, dissipation); ``sign(v)`` re-evaluated would flip it at zero velocity,
+    # which no physical friction does.
+    plant.hold_coulomb_direction(v)
     # A sample whose clipped torque leaves the bounds is not a command the filter sends.
     tolerance = 1e-9 * (1.0 + np.abs(hi) + np.abs(lo))
     sendable = np.all((accel0 >= lo - tolerance) & (accel0 <= hi + tolerance), axis=1)
@@ -233,6 +262,10 @@ def estimate_sampling_margin(
     # touches rising at the rate ``delta``; a barrier b that is negative at time t asks for
     # ``-b / t`` more initial rate: so much more margin.
     shortfall = np.zeros(n)
+    # RK4 is stable for step * rate <= 2.78; the fastest damping mode of the arms is at most
+    # max |M^-1| D (row sums): take enough substeps for it.
+    rate = max(_damping_rate(model), *(_damping_rate(other) for other, _ in plants))
+    substeps = max(substeps, int(math.ceil(hold_period_s * rate / 2.0)))
     dt = hold_period_s / substeps
     qk, vk = q, v
     k1v = accel0
