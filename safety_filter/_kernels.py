@@ -102,7 +102,8 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
     The same formulas, in the same order, as :func:`safety_filter.barriers.evaluate_barriers`:
     where ``speed_beta > 0`` the velocity barriers ``sp = vS - v``, ``sn = vS + v`` bound
     ``Ap`` by ``speed_beta sp - margin`` and ``An`` by ``-speed_beta sn + margin``; elsewhere
-    ``sp = sn = inf``. ``Ap <= accel_bound``, ``An >= -accel_bound`` (inf: no bound).
+    ``sp = sn = inf``. ``Ap <= accel_bound``, ``An >= -accel_bound`` where the barriers'
+    bounds leave room (outside S a push back may need more); inf: no bound.
     ``smallest[i]`` is the smallest of the joint's barriers. Returns the
     smallest of those over all joints and the smallest position margin ``min(hp, hn)``.
     """
@@ -125,8 +126,10 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
             sn = speed_bound[i] + v[i]
             ap = min(ap, speed_beta[i] * sp - margin[i])
             an = max(an, -speed_beta[i] * sn + margin[i])
-        ap = min(ap, accel_bound[i])
-        an = max(an, -accel_bound[i])
+        # The bound limits what the barriers do not ask for: outside S a barrier's push
+        # back may need more (then the bound gives way).
+        bound = accel_bound[i]
+        ap, an = min(ap, max(bound, an)), max(an, min(-bound, ap))
         rows[0, i] = hp
         rows[1, i] = hn
         rows[2, i] = bp

@@ -67,7 +67,8 @@ def evaluate_barriers(
     """Barrier values and acceleration bounds; all arrays broadcast (batch allowed).
 
     ``speed_bound`` (vS) and ``speed_beta`` (beta_v) add the velocity barriers on the joints
-    where ``speed_beta > 0`` (module docstring); ``accel_bound`` keeps ``|a|`` within it.
+    where ``speed_beta > 0`` (module docstring); ``accel_bound`` keeps ``|a|`` within it
+    where the barriers leave room.
     """
     hp = upper - q
     hn = q - lower
@@ -75,21 +76,27 @@ def evaluate_barriers(
     bn = gamma * alpha1.value(hn) + v
     ap = beta * alpha2.value(bp) - gamma * alpha1.derivative(hp) * v - accel_margin
     an = -beta * alpha2.value(bn) - gamma * alpha1.derivative(hn) * v + accel_margin
-    if accel_bound is not None:
-        ap = np.minimum(ap, accel_bound)
-        an = np.maximum(an, -np.asarray(accel_bound))
     if speed_bound is None or speed_beta is None:
+        ap, an = _within_acceleration_bound(ap, an, accel_bound)
         return BarrierState(hp, hn, bp, bn, ap, an)
     active = np.asarray(speed_beta) > 0.0
     sp = speed_bound - v
     sn = speed_bound + v
     ap = np.where(active, np.minimum(ap, speed_beta * sp - accel_margin), ap)
     an = np.where(active, np.maximum(an, -speed_beta * sn + accel_margin), an)
-    if accel_bound is not None:  # (after the velocity rows, as the step's kernel does)
-        ap = np.minimum(ap, accel_bound)
-        an = np.maximum(an, -np.asarray(accel_bound))
+    ap, an = _within_acceleration_bound(ap, an, accel_bound)  # after the velocity rows
     return BarrierState(hp, hn, bp, bn, ap, an, np.where(active, sp, np.inf),
                         np.where(active, sn, np.inf))
+
+
+def _within_acceleration_bound(ap: np.ndarray, an: np.ndarray,
+                               accel_bound: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    """``Ap <= A``, ``An >= -A`` where the barriers leave room: outside S a push back that
+    needs more than ``A`` keeps its bound (as the step's kernel does)."""
+    if accel_bound is None:
+        return ap, an
+    bound = np.asarray(accel_bound)
+    return np.minimum(ap, np.maximum(bound, an)), np.maximum(an, np.minimum(-bound, ap))
 
 
 def safe_velocity_interval(q: np.ndarray, lower: np.ndarray, upper: np.ndarray,

@@ -109,15 +109,19 @@ def recovery_times(log: PlantLog, pushes: Sequence[Push], period_s: float,
 
 
 def disturbed_steps(log: PlantLog, pushes: Sequence[Push],
-                    recovery: Sequence[float | None]) -> np.ndarray:
-    """Mask of the control steps from each push's start until the state is back in S for
-    good (to the next push or the end of the run when it is not)."""
+                    recovery: Sequence[float | None], settle_s: float = 0.0) -> np.ndarray:
+    """Mask of the control steps from each push's start until the state is back in S and
+    ``settle_s`` has passed since the push ended (to the next push or the end of the run
+    when it does not come back): the disturbance observer still carries the push for about
+    its time constant after the push stops, so the filter's model of the arm is off by the
+    push's torque until then."""
     times = log.time_s
     mask = np.zeros(len(times), dtype=bool)
     starts = sorted(p.start_s for p in pushes)
     for push, seconds in zip(pushes, recovery):
         later = [s for s in starts if s > push.start_s + 1e-12]
-        end = (later[0] if later else math.inf) if seconds is None else push.end_s + seconds
+        end = ((later[0] if later else math.inf) if seconds is None
+               else push.end_s + max(seconds, settle_s))
         mask |= (times >= push.start_s - 1e-9) & (times < end - 1e-9)
     return mask
 
@@ -132,7 +136,8 @@ def _excursions(model: RobotModel, log: PlantLog, rows: np.ndarray
 
 
 def summarize_run(log: PlantLog, model: RobotModel, period_s: float,
-                  pushes: Sequence[Push] = (), tolerance: float = 0.0) -> dict[str, Any]:
+                  pushes: Sequence[Push] = (), tolerance: float = 0.0,
+                  settle_s: float = 0.0) -> dict[str, Any]:
     """The figures of one run (plain numbers; per-joint lists in joint order).
 
     Keys: ``position_excursion`` / ``velocity_excursion`` [rad, rad/s]: largest past a
@@ -148,7 +153,7 @@ def summarize_run(log: PlantLog, model: RobotModel, period_s: float,
     """
     umax = np.array(model.effort_limit)
     recovery = recovery_times(log, pushes, period_s, tolerance) if pushes else []
-    disturbed = disturbed_steps(log, pushes, recovery)
+    disturbed = disturbed_steps(log, pushes, recovery, settle_s)
     position, velocity = _excursions(model, log, ~disturbed)
     push_position, push_velocity = _excursions(model, log, disturbed)
     applied = np.maximum(np.max(np.abs(log.applied) - umax, axis=0), 0.0)
@@ -438,6 +443,9 @@ class StressContext:
         self.model, self.certificate = model, certificate
         self.uncertainty, self.settings = uncertainty, settings
         self.filter = SafetyFilter(model, certificate)
+        # Three of the observer's slowest time constants: how long a push's torque stays in
+        # its estimate after the push stops (see disturbed_steps).
+        self.observer_settle_s = 3.0 * float(np.max(certificate.observer_time_constants_s))
         self.plants = build_plants(model, uncertainty, settings.plants, settings.seed,
                                    self.filter.payload_mass)
         self.rates = control_rates(certificate)
@@ -494,7 +502,8 @@ class StressContext:
                              pushes=pushes, barrier=self.barrier,
                              internal_rate_hz=settings.internal_rate_hz)
         summary = summarize_run(log, self.model, 1.0 / spec.rate_hz, pushes,
-                                tolerance=self.uncertainty.velocity_noise)
+                                tolerance=self.uncertainty.velocity_noise,
+                                settle_s=self.observer_settle_s)
         summary['recovery_bound_s'] = return_time_bounds(
             log, pushes, self.certificate, self.filter.constraint_bounds, 1.0 / spec.rate_hz,
             plant.delay_periods / spec.rate_hz)
