@@ -11,6 +11,7 @@ writer) so that the tests read bags made independently of the code under test.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import shutil
 import tempfile
@@ -44,6 +45,21 @@ class RecordedRun:
     nominal: np.ndarray
     torque: np.ndarray
     modes: list[str]
+
+
+@functools.lru_cache(maxsize=None)
+def planar2_quick_certificate() -> tuple[RobotModel, Certificate]:
+    """planar2 and a certificate from the real certification with reduced settings (fewer
+    bound samples and falsifier states), once per test session."""
+    from safety_filter.bounds import BoundSettings
+    from safety_filter.certify import CertifySettings, certify
+    from safety_filter.demo_arms import load_demo_arm
+
+    model = load_demo_arm('planar2')
+    certificate = certify(model, CertifySettings(bounds=BoundSettings(samples=512),
+                                                 falsifier_states=2000))
+    assert certificate.certified, certificate.reasons
+    return model, certificate
 
 
 def record_filtered_run(model: RobotModel, certificate: Certificate,

@@ -21,13 +21,14 @@ import pytest
 from replay_fixtures import (
     START_NS,
     RecordedRun,
+    planar2_quick_certificate,
     record_filtered_run,
     tree_digest,
     truncate_storage,
     write_run_bag,
 )
 
-from safety_filter import BoundSettings, CertifySettings, Dynamics, certify, load_demo_arm
+from safety_filter import Dynamics
 from safety_filter.bags import read_status
 from safety_filter.cli import main
 from safety_filter.nominal import PDBeyondLimits
@@ -64,11 +65,7 @@ SIM_RATE_HZ = 2000.0  # RK4 rate of the simulated arm: enough for planar2, and f
 @pytest.fixture(scope='session')
 def arm() -> Any:
     """planar2, a certificate from the real certification (reduced settings), its file."""
-    model = load_demo_arm('planar2')
-    certificate = certify(model, CertifySettings(bounds=BoundSettings(samples=512),
-                                                 falsifier_states=2000))
-    assert certificate.certified, certificate.reasons
-    return model, certificate
+    return planar2_quick_certificate()
 
 
 @pytest.fixture(scope='session')

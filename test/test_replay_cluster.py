@@ -31,9 +31,13 @@ import dask
 import numpy as np
 import pytest
 from distributed import Client, LocalCluster
-from replay_fixtures import record_filtered_run, truncate_storage, write_run_bag
+from replay_fixtures import (
+    planar2_quick_certificate,
+    record_filtered_run,
+    truncate_storage,
+    write_run_bag,
+)
 
-from safety_filter import BoundSettings, CertifySettings, certify, load_demo_arm
 from safety_filter.cli import main
 from safety_filter.nominal import PDBeyondLimits
 from safety_filter.replay import status_field_names
@@ -48,11 +52,7 @@ KEY_PREFIX = 'safety-filter-replay-'  # the cluster tasks' keys (replay_cluster)
 @pytest.fixture(scope='module')
 def arm() -> Any:
     """planar2 and a certificate from the real certification (reduced settings)."""
-    model = load_demo_arm('planar2')
-    certificate = certify(model, CertifySettings(bounds=BoundSettings(samples=512),
-                                                 falsifier_states=2000))
-    assert certificate.certified, certificate.reasons
-    return model, certificate
+    return planar2_quick_certificate()
 
 
 @pytest.fixture(scope='module')
