@@ -409,6 +409,7 @@ class SafetyFilter:
         self._k_accel_tol = np.array(self._accel_tol)
         self._k_saturation = np.array(self._torque_saturation)
         self._k_authority = np.array(usable)
+        self._k_unbounded = np.full(n, np.inf)  # the push back the bounds ask for, in full
         self._k_observer_plausible = 2.0 * np.array(self.torque_limit)
 
         # Preallocated per-step buffers.
@@ -691,6 +692,8 @@ class SafetyFilter:
                     reason = key = failed
         if acceleration is None:
             acceleration = self._constructive(u_full)
+            if mode is FilterMode.RECOVERING:
+                acceleration = self._push_back_harder(acceleration, mass, bias)
         if not have_torque:
             _kernels.torque_and_check(mass, bias, acceleration, accel_lower, accel_upper,
                                       self._k_torque_bound, self._k_accel_tol, torque)
@@ -745,6 +748,35 @@ class SafetyFilter:
         _kernels.constructive(a_nom, self._accel_lower, self._accel_upper, self._k_authority,
                               self._rows, acceleration)
         return acceleration
+
+    def _push_back_harder(self, cautious: np.ndarray, mass: np.ndarray, bias: np.ndarray
+                          ) -> np.ndarray:
+        """Outside S, where the QP cannot meet the barriers' bounds: from the constructive
+        command (within the certified authority, which is what every joint is guaranteed at
+        once in the worst configuration) toward what the bounds ask, as far as the torque box
+        allows at this state (bisection on the segment between the two)."""
+        wanted = np.empty(self.n)
+        _kernels.constructive(self._a_nom if self._a_nom is not None else cautious,
+                              self._accel_lower, self._accel_upper, self._k_unbounded,
+                              self._rows, wanted)
+        limit = self._k_torque_limit
+
+        def fits(acceleration: np.ndarray) -> bool:
+            return _kernels.within_box(mass @ acceleration + bias, limit)
+
+        if not fits(cautious):
+            return cautious
+        if fits(wanted):
+            return wanted
+        step = wanted - cautious
+        low, high = 0.0, 1.0
+        for _ in range(12):  # to 1/4096 of the way
+            middle = 0.5 * (low + high)
+            if fits(cautious + middle * step):
+                low = middle
+            else:
+                high = middle
+        return cautious + low * step
 
     def _valid_position(self, q: Any) -> np.ndarray | None:
         try:

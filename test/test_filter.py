@@ -454,6 +454,40 @@ def test_fallback_when_solver_reports_failure(monkeypatch: pytest.MonkeyPatch) -
                                  'reasons': {}}
 
 
+def test_recovery_without_the_qp_pushes_back_as_hard_as_the_box_allows(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """Outside S with the QP failing (status patched in): the command moves from the
+    constructive push-back (within the certified authority) toward what the barriers' bounds
+    ask, as far as the torque box allows: never weaker than the constructive one on the
+    joint that left S, always inside the box, and all the way where the box allows."""
+    filt = make_filter('reach7')
+
+    def failing(*args, **kwargs):
+        return QPResult(np.full(filt.n, np.nan), 'maximum iterations reached', 7, 1000, 1e-4)
+
+    monkeypatch.setattr(filt._qp, 'solve', failing)
+    rng = np.random.default_rng(31)
+    stronger = 0
+    for _ in range(40):
+        q, v = random_state_in_safe_set(rng, filt.certificate)
+        i = int(rng.integers(filt.n))
+        low, high = filt.certificate.safe_velocity_interval(q)
+        v[i] = high[i] + rng.uniform(0.05, 1.0) * filt.certificate.velocity_limit[i]
+        out = filt.step(q, v, np.zeros(filt.n))
+        filt.reset()
+        assert out.mode is FilterMode.RECOVERING
+        assert full_torque_in_box(filt, out, q)
+        a = acceleration_of(filt, q, v, out.torque)
+        bounds = filt.constraint_bounds(q, v)
+        authority = filt.usable_authority[i]
+        tolerance = 1e-6 * (1.0 + abs(a[i]))
+        # The joint pushed past its upper velocity edge decelerates at least as hard as the
+        # constructive push-back (its bound, or the authority where that asks for more).
+        assert a[i] <= max(bounds.accel_upper[i], -authority) + tolerance
+        stronger += int(a[i] < -authority - tolerance)
+    assert stronger > 10  # the box allowed more than the authority on many of them
+
+
 def test_fallback_when_answer_fails_the_check(monkeypatch: pytest.MonkeyPatch) -> None:
     """A 'solved' answer that violates a bound is not used (METHOD 3: the answer is
     checked): 'fallback' with the check's reason."""
