@@ -38,6 +38,8 @@ Columns, one row per arm and controller:
   brackets its ratio to the unfiltered time. ``>`` marks a mean in which some joint did not
   get there within the run (counted at the run's length).
 
+Above the table, per arm: the certified velocity box, the clamp's authority, and the nearest
+to each limit that the filter lets a joint come to rest (its bounds at rest, not a run).
 Below the table: every run in which the braking clamp or the certified filter went past a
 limit (arm, nominal, joint, amount); the reach time per joint, and where a joint did not get
 within 5 % the nearest it came; and the largest motion of the joints that the nominal holds
@@ -323,6 +325,33 @@ class Setup:
                                q0, v0, payload_mass=self.payload)
 
 
+def nearest_rest(setup: Setup) -> np.ndarray:
+    """Per joint and side (lower, upper), the nearest a joint can come to its limit and stay
+    at rest under the filter, as a share of the range (the others at mid-range).
+
+    At rest the filter's bound toward a limit is what the barrier allows less the
+    sampled-data margin; closer to the limit than where that reaches zero, the filter brakes
+    the joint before it gets there. The grid's step is 0.05 % of the range.
+    """
+    model = setup.model
+    probe = SafetyFilter(model, setup.certificate, payload_mass=setup.payload)
+    lower, upper = np.array(model.position_lower), np.array(model.position_upper)
+    middle, span = 0.5 * (lower + upper), upper - lower
+    shares = np.linspace(0.0, 0.5, 1001)
+    nearest = np.full((model.n_joints, 2), np.nan)
+    for joint in range(model.n_joints):
+        for side, sign in ((0, -1.0), (1, 1.0)):
+            q = np.tile(middle, (shares.size, 1))
+            q[:, joint] = (upper[joint] if sign > 0 else lower[joint]) - sign * shares * span[
+                joint]
+            bounds = probe.constraint_bounds(q, np.zeros_like(q))
+            toward = (bounds.accel_upper if sign > 0 else -bounds.accel_lower)[:, joint]
+            allowed = np.flatnonzero(toward >= 0.0)
+            if allowed.size:
+                nearest[joint, side] = shares[allowed[0]]
+    return nearest
+
+
 def record_excursions(setup: Setup, controller: str, run: str, log: ClosedLoopLog,
                       found: list[Excursion]) -> dict[str, np.ndarray]:
     """The run's excursions past the position and velocity limits (appended to ``found``)."""
@@ -508,7 +537,8 @@ def main(argv: list[str] | None = None) -> int:
     rate = setups[0].rate
     print(f'closed loop on the model (payload at the middle of its range), control at '
           f'{rate:g} Hz, RK4 at 10 kHz; {"quick run, " if args.quick else ""}'
-          f'{duration:g} s per adversarial ({counts["adversarial"]} nominals) and tracking '
+          f'{duration:g} s per adversarial ({counts["adversarial"]} '
+          f'nominal{"s" if counts["adversarial"] > 1 else ""}) and tracking '
           f'run, {reach_duration:g} s per jog ({counts["jogs"]} per arm)')
     for setup in setups:
         c = setup.certificate
@@ -517,6 +547,10 @@ def main(argv: list[str] | None = None) -> int:
               + ' '.join(f'{100 * f:.0f}%' for f in c.velocity_bound / c.velocity_limit)
               + ' of rated; clamp authority [rad/s^2] '
               + ' '.join(f'{e:.2g}' for e in usable))
+        print(f'{setup.arm}: nearest rest to the lower/upper limit the filter allows '
+              '(share of the range) '
+              + ' '.join(f'{name} {100 * down:.1f}/{100 * up:.1f}%' for name, (down, up)
+                         in zip(setup.model.joint_names, nearest_rest(setup))))
     print()
     print(HEADER)
     for setup in setups:
