@@ -635,16 +635,17 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'bounds: ' + s, f))
     seconds['bounds'] = time.perf_counter() - clock
 
-    # ---- per family: velocity box, authority, the sampled-data margin, gains
-    clock = time.perf_counter()
+    # ---- per family: velocity box, authority, the sampled-data margin, gains (the stage
+    # times add up over the families)
     kinds = settings.families if settings.alpha1 is None else (
         settings.alpha1.kind + ('' if settings.velocity_barrier else LEMMA_SUFFIX),)
     attempts = []
+    for stage in ('authority', 'sampling margin', 'gains'):
+        seconds[stage] = 0.0
     for index, kind in enumerate(kinds):
         attempts.append(_attempt_family(
             model, bounds, settings, kind,
-            lambda stage, f, k=index: report(stage, (k + f) / len(kinds))))
-    seconds['authority, margin and gains'] = time.perf_counter() - clock
+            lambda stage, f, k=index: report(stage, (k + f) / len(kinds)), seconds))
     certifiable = [a for a in attempts if a.design is not None and not a.reasons]
     chosen = (max(certifiable, key=lambda a: _design_score(model, a.design)) if certifiable
               else attempts[0])
@@ -830,7 +831,8 @@ def _what_limits_the_box(model: RobotModel, bounds: DynamicsBounds, settings: Ce
 
 
 def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
-                    kind: str, report: ProgressCallback) -> _Attempt:
+                    kind: str, report: ProgressCallback,
+                    seconds: dict[str, float] | None = None) -> _Attempt:
     """Design, margin and gains for one class-K family (the module docstring's steps 2-5).
 
     The margin (estimated from rollouts, which depend on the gains) only shrinks what a box
@@ -844,7 +846,11 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
     vmax = np.array(model.velocity_limit)
     attempt = _Attempt(kind)
     plants = margin_plants(model, settings)
+    seconds = {} if seconds is None else seconds
+    clock = time.perf_counter()
     start, candidates = search_velocity_box(model, bounds, settings, kind)
+    seconds['authority'] = seconds.get('authority', 0.0) + time.perf_counter() - clock
+    clock = time.perf_counter()
     report('authority', 0.2)
     attempt.candidates = candidates
     rounds = {'count': 0}
@@ -900,6 +906,9 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
             attempt.candidates = _design_for_box(model, bounds, settings, design.fractions,
                                                  margin, kind)[1]
     attempt.design, attempt.margin, attempt.last_design = design, margin, last_design
+    seconds['sampling margin'] = (seconds.get('sampling margin', 0.0) + time.perf_counter()
+                                  - clock)
+    clock = time.perf_counter()
     if design is not None and start is not None:
         attempt.box_limits = _what_limits_the_box(model, bounds, settings, kind, start, design,
                                                   margin)
@@ -909,6 +918,7 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
         attempt.betas = (np.zeros(n),) * 4
         return attempt
     b_star, b_floor, b_cap, beta = _choose_beta(design, margin, r, settings)
+    seconds['gains'] = seconds.get('gains', 0.0) + time.perf_counter() - clock
     attempt.betas = (b_star, b_floor, b_cap, beta)
     for i in np.flatnonzero(b_floor > b_cap):
         notes.append(f'joint {names[i]!r}: beta is held at the sampled-data cap '

@@ -96,7 +96,8 @@ def test_demo_arm_certifies_with_default_settings(certified_arm) -> None:  # noq
         assert np.all(reach <= c.velocity_bound * (1 + 1e-12))
     assert np.all(c.velocity_bound <= c.velocity_limit * (1 + 1e-12))
     assert c.model_hash == model.content_hash()
-    assert set(outcome.stage_seconds) >= {'bounds', 'authority, margin and gains', 'falsifier'}
+    assert set(outcome.stage_seconds) >= {'bounds', 'authority', 'sampling margin', 'gains',
+                                          'falsifier'}
     # Every design family tried is recorded, one of them as the choice.
     tried = c.settings['designs_tried']
     assert [entry['outcome'] for entry in tried].count('chosen') == 1
