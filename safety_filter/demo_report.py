@@ -200,6 +200,12 @@ def format_summary(model: RobotModel, runs: Sequence[tuple[RunData, dict[str, np
                    else f'all {total} limits kept')
         lines.append(f'{run.label} run: {verdict} ({run.duration_s:.2f} s of simulated '
                      f'motion, {run.time_s.size} joint states)')
+        if not broken and run.time_s.size:
+            speed, nearest = range_and_speed_used(model, run)
+            fast, near = int(np.argmax(speed)), int(np.argmin(nearest))
+            lines.append(f'  fastest: {model.joint_names[fast]} at {100 * speed[fast]:.0f} % '
+                         f'of its rated speed; nearest to a limit: {model.joint_names[near]} '
+                         f'at {100 * nearest[near]:.1f} % of its range')
     lines.append('torque: the torque sent to the driver (the simulated driver clips it to '
                  'the limit, as a real one does)')
     return '\n'.join(lines)
@@ -510,6 +516,33 @@ def _violation_table(model: RobotModel,
     return '<table>' + head + ''.join(rows) + '</table>'
 
 
+def range_and_speed_used(model: RobotModel, run: RunData) -> tuple[np.ndarray, np.ndarray]:
+    """Per joint: the largest speed over the rated speed, and the nearest approach to a
+    position limit over the joint's range (negative: past a limit), from the joint states."""
+    speed = np.max(np.abs(run.v), axis=0) / np.array(model.velocity_limit)
+    nearest = np.min(np.minimum(run.q - model.position_lower, model.position_upper - run.q),
+                     axis=0) / np.array(model.position_range)
+    return speed, nearest
+
+
+def _usage_table(model: RobotModel,
+                 runs: Sequence[tuple[RunData, dict[str, np.ndarray]]]) -> str:
+    head = ('<tr><th>joint</th>' + ''.join(
+        f'<th>{html.escape(run.label)}: fastest / rated</th>'
+        f'<th>{html.escape(run.label)}: nearest to a limit / range</th>' for run, _ in runs)
+        + '</tr>')
+    used = [range_and_speed_used(model, run) for run, _ in runs]
+    rows = []
+    for i, joint in enumerate(model.joint_names):
+        cells = [f'<td>{html.escape(joint)}</td>']
+        for speed, nearest in used:
+            cells.append(f'<td>{100 * speed[i]:.0f} %</td>')
+            cells.append(f'<td>{100 * nearest[i]:.1f} %</td>' if nearest[i] >= 0.0 else
+                         '<td class="bad">past it</td>')
+        rows.append('<tr>' + ''.join(cells) + '</tr>')
+    return '<table>' + head + ''.join(rows) + '</table>'
+
+
 def _html_page(model: RobotModel, runs: Sequence[tuple[RunData, dict[str, np.ndarray]]],
                schedule: Sequence[Segment], facts: Sequence[tuple[str, str]],
                has_filter: bool, certificate_report: str | None) -> str:
@@ -542,6 +575,12 @@ def _html_page(model: RobotModel, runs: Sequence[tuple[RunData, dict[str, np.nda
                  'filtered run): the simulated driver clips it to the effort limit, as a real '
                  f'one does. Excursions below {VIOLATION_TOLERANCE:g} count as kept.</p>')
     parts.append(_violation_table(model, runs))
+    parts.append('<h2>How much of its range and speed each joint used</h2>')
+    parts.append('<p>A filter that kept the limits by keeping the arm slow and far from them '
+                 'would be of little use. Per joint, the fastest it moved as a share of its '
+                 'rated speed, and how near it came to a position limit as a share of its '
+                 'range.</p>')
+    parts.append(_usage_table(model, runs))
     parts.append('<h2>The run</h2>')
     parts.append('<table class="facts">' + ''.join(
         f'<tr><td>{esc(k)}</td><td>{esc(v)}</td></tr>' for k, v in facts) + '</table>')

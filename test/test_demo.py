@@ -27,7 +27,13 @@ from ros_fixtures import certified_arm, isolate_ros_domain  # noqa: E402
 
 from safety_filter import bags  # noqa: E402
 from safety_filter.demo import DemoOptions, run_demo  # noqa: E402
-from safety_filter.demo_report import PLOTS, REPORT_HTML, SUMMARY_JSON  # noqa: E402
+from safety_filter.demo_arms import load_demo_arm  # noqa: E402
+from safety_filter.demo_report import (  # noqa: E402
+    PLOTS,
+    REPORT_HTML,
+    SUMMARY_JSON,
+    range_and_speed_used,
+)
 from safety_filter.ros.runner import run_graph, sim_demo_graph  # noqa: E402
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
@@ -118,6 +124,16 @@ def test_report_is_written(demo) -> None:
     assert (folder / SUMMARY_JSON).is_file()
     assert 'all 6 limits kept' in result.summary
     assert 'not a certified safety function' in page
+    # How much of its speed and range each joint used, per run, from the joint states.
+    assert 'How much of its range and speed each joint used' in page
+    model = load_demo_arm(ARM)
+    speed, nearest = range_and_speed_used(model, result.runs['filtered'])
+    filtered = result.runs['filtered']
+    expected = np.max(np.abs(filtered.v), axis=0) / np.array(model.velocity_limit)
+    np.testing.assert_allclose(speed, expected)
+    assert np.all(nearest >= 0.0) and np.all(nearest <= 0.5)
+    for i in range(model.n_joints):
+        assert f'{100 * speed[i]:.0f} %' in page
 
 
 def test_graph_across_processes_stops_cleanly_on_sigint(tmp_path: Path, domain: int) -> None:
