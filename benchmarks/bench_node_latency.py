@@ -30,8 +30,8 @@ the nominal itself). Dropped = nominals sent in the measured window whose output
 back (the node skipped them, or an output was lost). The first second is warm-up.
 
 Reported: the rate actually achieved, median, 99th percentile and maximum latency [us], drops,
-the ratios to the echo (the issue's targets: median within 1.5x of the echo, no drops over
-60 s at 1 kHz), and the CPU time the node process spent per nominal (from /proc; less
+the ratios to the echo (the node's latency budget: median within 1.5x of the echo, no drops
+over 60 s at 1 kHz), and the CPU time the node process spent per nominal (from /proc; less
 sensitive to other load on the machine than the latencies). Each workload is measured for
 ``--duration`` seconds in all, split into ``--rounds`` runs that alternate with the other
 workloads (echo, pass-through, intervening, echo, ...), so that a change in the machine's
@@ -467,7 +467,7 @@ def main(argv: list[str] | None = None) -> int:
     print(f'load average after: {os.getloadavg()[0]:.2f}')
     worst = max(r['median'] / echo['median'] for r in results[1:])
     filter_drops = sum(r['dropped'] for r in results[1:])
-    print(f'issue targets: median within 1.5x of the echo: '
+    print(f'latency budget: median within 1.5x of the echo: '
           f'{"met" if worst <= 1.5 else "NOT met"} (worst {worst:.2f}x); no drops: '
           f'{"met" if filter_drops == 0 else f"NOT met ({filter_drops} dropped)"} '
           f'(the bare echo dropped {echo["dropped"]} in the same run)')

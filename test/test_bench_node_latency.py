@@ -28,7 +28,7 @@ def test_bench_node_latency_runs_and_prints_its_table() -> None:
         capture_output=True, text=True, timeout=600, env=env, cwd=REPO)
     assert result.returncode == 0, result.stdout + result.stderr
     out = result.stdout
-    assert 'median/echo' in out and 'issue targets' in out, out
+    assert 'median/echo' in out and 'latency budget' in out, out
     for label in ('echo (bare rclpy)', 'filter, pass-through', 'filter, intervening'):
         for run in ('1/2', '2/2'):  # interleaved rounds
             assert f'round {run}: {label} ...' in out, out
