@@ -213,6 +213,48 @@ def within_bounds(values: np.ndarray, lower: np.ndarray, upper: np.ndarray) -> b
 
 
 @njit(**_JIT)
+def fill_qp_acceleration(mass: np.ndarray, bias: np.ndarray, accel_nominal: np.ndarray,
+                         accel_lower: np.ndarray, accel_upper: np.ndarray,
+                         sqrt_weights: np.ndarray, torque_limit: np.ndarray,
+                         p_rows: np.ndarray, p_cols: np.ndarray, scale: np.ndarray,
+                         inv_scale: np.ndarray, p_data: np.ndarray, a_data: np.ndarray,
+                         cost: np.ndarray, lower: np.ndarray, upper: np.ndarray) -> None:
+    """The scaled OSQP data of the acceleration objective ``sum_j w_j (a_j - a_nom_j)^2``.
+
+    With ``a = D y``, ``d_j = 1 / sqrt(w_j)`` (``scale``; ``inv_scale`` = ``sqrt(w)``): ``P = I``,
+    ``cost_j = -sqrt(w_j) a_nom_j``, both divided by ``max(1, max |cost|)``; ``a_data`` =
+    A = [I; U^-1 M D] in CSC order; ``lower``, ``upper`` as in :func:`fill_qp`.
+    """
+    n = mass.shape[0]
+    largest = 0.0
+    for j in range(n):
+        inv_scale[j] = sqrt_weights[j]
+        scale[j] = 1.0 / sqrt_weights[j]
+        cost[j] = -sqrt_weights[j] * accel_nominal[j]
+        largest = max(largest, abs(cost[j]))
+    factor = 1.0
+    if largest > 1.0 and math.isfinite(largest):
+        factor = 1.0 / largest
+    for j in range(n):
+        cost[j] *= factor
+    for k in range(p_rows.shape[0]):
+        p_data[k] = factor if p_rows[k] == p_cols[k] else 0.0
+    k = 0
+    for j in range(n):
+        a_data[k] = 1.0
+        k += 1
+        for i in range(n):
+            a_data[k] = mass[i, j] * scale[j] / torque_limit[i]
+            k += 1
+    for j in range(n):
+        lower[j] = accel_lower[j] * inv_scale[j]
+        upper[j] = accel_upper[j] * inv_scale[j]
+        ratio = bias[j] / torque_limit[j]
+        lower[n + j] = -1.0 - ratio
+        upper[n + j] = 1.0 - ratio
+
+
+@njit(**_JIT)
 def fill_qp(mass: np.ndarray, bias: np.ndarray, torque_nominal: np.ndarray,
             accel_lower: np.ndarray, accel_upper: np.ndarray, sqrt_weights: np.ndarray,
             torque_limit: np.ndarray, p_rows: np.ndarray, p_cols: np.ndarray,

@@ -246,8 +246,11 @@ class SafetyFilter:
         gravity_convention: ``'full'`` if the driver takes the full torque,
             ``'driver_compensated'`` if it adds ``g(q)`` itself (nominal and output are then
             torques on top of gravity).
-        torque_weights: weights ``w > 0`` of ``(u - u_nom)^T diag(w) (u - u_nom)``, shape (n,);
-            default ones.
+        torque_weights: weights ``w > 0``: when given, the QP minimises the torque change
+            ``(u - u_nom)^T diag(w) (u - u_nom)``, shape (n,). By default it minimises the
+            change of acceleration ``sum_j (a_j - a_nom_j)^2 / e_j^2`` (``e`` the usable
+            authority): a joint the bounds do not touch keeps its nominal acceleration, so
+            slowing one joint does not throw the others (docs/method.md).
         payload_mass: payload used for ``M`` and ``h`` [kg]; default the middle of the
             certificate's payload range (the certificate covers the whole range, so the
             constraints hold for any payload in it; the middle keeps the model error of the
@@ -388,10 +391,14 @@ class SafetyFilter:
         self._obs_valid = False  # _obs_v belongs to the step before this one
         self._obs_step = np.empty(n)
 
-        self._qp = AccelerationQP(self.torque_limit, torque_weights, eps=solver_eps,
+        acceleration_weights = (None if torque_weights is not None
+                                else 1.0 / np.maximum(usable, 1e-9) ** 2)
+        self._qp = AccelerationQP(self.torque_limit, torque_weights,
+                                  acceleration_weights=acceleration_weights, eps=solver_eps,
                                   max_iter=solver_max_iter, time_limit_s=solver_time_limit_s,
                                   mass_hint=mass_mid)
         self.torque_weights = self._qp.weights
+        self.objective = self._qp.objective
 
         # Private writable copies of the constants for the compiled kernels (one array type).
         self._k_lower = np.array(self._lower)

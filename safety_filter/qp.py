@@ -2,11 +2,14 @@
 
 Each control step the filter solves (docs/method.md), with ``u = M a + h``::
 
-    minimise over a    (M a + h - u_nom)^T W (M a + h - u_nom)
+    minimise over a    sum_j w_j (a_j - a_nom_j)^2        (the filter's default), or
+                       (M a + h - u_nom)^T W (M a + h - u_nom)   (torque weights given)
     subject to         An <= a <= Ap                      (barrier rows, identity block)
                        -umax <= M a + h <= umax           (torque rows, M block)
 
-``W = diag(w) > 0``. In OSQP's form ``1/2 a^T P a + c^T a`` with ``l <= A a <= u`` this is
+with ``a_nom = M^-1 (u_nom - h)``. The acceleration objective scales to ``P = I`` (``a = D y``,
+``d_j = 1 / sqrt(w_j)``, :func:`safety_filter._kernels.fill_qp_acceleration`). For the torque
+objective, ``W = diag(w) > 0``; in OSQP's form ``1/2 a^T P a + c^T a`` with ``l <= A a <= u`` this is
 ``P = M W M`` (dense upper triangle), ``c = M W (h - u_nom)``, ``A = [I; M]``,
 ``l = [An; -umax - h]``, ``u = [Ap; umax - h]`` (a common factor of the cost does not change
 the minimiser), scaled as :class:`AccelerationQP` explains. The sparsity pattern is the
@@ -217,6 +220,10 @@ class AccelerationQP:
         torque_limit: ``umax`` [N m], shape (n,), positive.
         torque_weights: positive weights ``w`` of the torque deviation, shape (n,)
             (default ones) [1/(N m)^2 up to a common scale].
+        acceleration_weights: positive weights ``w_a`` of the acceleration deviation: when
+            given, the objective is ``sum_j w_a_j (a_j - a_nom_j)^2`` instead of the torque
+            deviation (a joint the bounds do not touch keeps its nominal acceleration;
+            ``a_nom = M^-1 (u_nom - h)``).
         eps: OSQP's absolute and relative termination tolerance (scaled problem) of the
             first attempt; when polishing does not succeed the solve goes on at
             ``min(eps, ACCURATE_EPS)`` (see :data:`ACCURATE_EPS`).
@@ -235,6 +242,7 @@ class AccelerationQP:
         torque_limit: np.ndarray,
         torque_weights: np.ndarray | None = None,
         *,
+        acceleration_weights: np.ndarray | None = None,
         eps: float = DEFAULT_EPS,
         max_iter: int = DEFAULT_MAX_ITER,
         time_limit_s: float | None = None,
@@ -252,6 +260,15 @@ class AccelerationQP:
         if weights.shape != (n,) or not np.all(np.isfinite(weights)) or np.any(weights <= 0):
             raise SafetyFilterError(
                 f'torque_weights must be {n} positive finite numbers, got {torque_weights!r}')
+        accel_weights = None
+        if acceleration_weights is not None:
+            accel_weights = np.array(acceleration_weights, dtype=float).reshape(-1)
+            if accel_weights.shape != (n,) or not np.all(np.isfinite(accel_weights)) \
+                    or np.any(accel_weights <= 0):
+                raise SafetyFilterError(f'acceleration_weights must be {n} positive finite '
+                                        f'numbers, got {acceleration_weights!r}')
+            if torque_weights is not None:
+                raise SafetyFilterError('give torque_weights or acceleration_weights, not both')
         if time_limit_s is not None and not (math.isfinite(time_limit_s) and time_limit_s > 0):
             raise SafetyFilterError(f'time_limit_s must be positive, got {time_limit_s}')
         if not (eps > 0 and max_iter >= 1):
@@ -262,6 +279,8 @@ class AccelerationQP:
             values.flags.writeable = False
         self.torque_limit = umax
         self.weights = weights
+        self.acceleration_weights = accel_weights
+        self.objective = 'torque' if accel_weights is None else 'acceleration'
         self.settings = _osqp_settings(eps, max_iter, time_limit_s, polish)
         self.accurate_eps = min(float(eps), ACCURATE_EPS)
         # Retry at the accurate tolerance when polishing did not succeed (see ACCURATE_EPS);
@@ -270,6 +289,8 @@ class AccelerationQP:
 
         # Constant factors (private writable copies: the kernels take one array type).
         self._sqrt_weights = np.sqrt(weights)
+        self._sqrt_accel_weights = None if accel_weights is None else np.sqrt(accel_weights)
+        self._accel_nominal = np.empty(n)
         self._umax = umax.copy()
 
         # Index maps: P's upper triangle in CSC order (column j holds rows 0..j); A = [I; B]
@@ -294,10 +315,7 @@ class AccelerationQP:
         if mass.shape != (n, n) or not np.all(np.isfinite(mass)):
             raise SafetyFilterError(f'mass_hint must be a finite {n} x {n} matrix')
         zeros = np.zeros(n)
-        _kernels.fill_qp(mass, zeros, zeros, -np.ones(n), np.ones(n), self._sqrt_weights,
-                         self._umax, self._p_rows, self._p_cols, self._root, self._scale,
-                         self._inv_scale, self._px, self._ax, self._c, self._lower,
-                         self._upper)
+        self._fill(mass, zeros, zeros, -np.ones(n), np.ones(n))
         p_matrix = sparse.csc_matrix((self._px.copy(), self._p_rows, p_indptr), shape=(n, n))
         a_matrix = sparse.csc_matrix((self._ax.copy(), a_indices, a_indptr), shape=(2 * n, n))
         self._solver = osqp.OSQP()
@@ -319,6 +337,24 @@ class AccelerationQP:
         self._zeros_y = np.zeros(2 * n)
         self._status_text: dict[int, str] = {}
         self._shape = (n,)
+
+    def _fill(self, mass: np.ndarray, bias: np.ndarray, torque_nominal: np.ndarray,
+              accel_lower: np.ndarray, accel_upper: np.ndarray) -> None:
+        """The scaled OSQP data at one state, for this QP's objective."""
+        if self._sqrt_accel_weights is None:
+            _kernels.fill_qp(mass, bias, torque_nominal, accel_lower, accel_upper,
+                             self._sqrt_weights, self._umax, self._p_rows, self._p_cols,
+                             self._root, self._scale, self._inv_scale, self._px, self._ax,
+                             self._c, self._lower, self._upper)
+            return
+        nominal = self._accel_nominal
+        nominal[:] = np.linalg.solve(mass, torque_nominal - bias)
+        if not np.all(np.isfinite(nominal)):  # (a huge nominal): keep the solver's data finite
+            np.nan_to_num(nominal, copy=False, nan=0.0, posinf=1e300, neginf=-1e300)
+        _kernels.fill_qp_acceleration(mass, bias, nominal, accel_lower, accel_upper,
+                                      self._sqrt_accel_weights, self._umax, self._p_rows,
+                                      self._p_cols, self._scale, self._inv_scale, self._px,
+                                      self._ax, self._c, self._lower, self._upper)
 
     def _settings_copy(self) -> Any:
         """A copy of the solver's current OSQP 1.x settings object."""
@@ -356,10 +392,7 @@ class AccelerationQP:
         n = self.n
         start = time.perf_counter()
         lower, upper = self._lower, self._upper
-        _kernels.fill_qp(mass, bias, torque_nominal, accel_lower, accel_upper,
-                         self._sqrt_weights, self._umax, self._p_rows, self._p_cols,
-                         self._root, self._scale, self._inv_scale, self._px, self._ax, self._c,
-                         lower, upper)
+        self._fill(mass, bias, torque_nominal, accel_lower, accel_upper)
         c = self._c
         try:
             if self._fast:
