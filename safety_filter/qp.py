@@ -10,9 +10,9 @@ Each control step the filter solves (docs/method.md), with ``u = M a + h``::
 with ``a_nom = M^-1 (u_nom - h)``. The acceleration objective scales to ``P = I`` (``a = D y``,
 ``d_j = 1 / sqrt(w_j)``, :func:`safety_filter._kernels.fill_qp_acceleration`). For the torque
 objective, ``W = diag(w) > 0``; in OSQP's form ``1/2 a^T P a + c^T a`` with
-``l <= A a <= u`` this is ``P = M W M`` (dense upper triangle), ``c = M W (h - u_nom)``, ``A = [I; M]``,
-``l = [An; -umax - h]``, ``u = [Ap; umax - h]`` (a common factor of the cost does not change
-the minimiser), scaled as :class:`AccelerationQP` explains. The sparsity pattern is the
+``l <= A a <= u`` this is ``P = M W M`` (dense upper triangle), ``c = M W (h - u_nom)``,
+``A = [I; M]``, ``l = [An; -umax - h]``, ``u = [Ap; umax - h]`` (a common factor of the cost
+does not change the minimiser), scaled as :class:`AccelerationQP` explains. The sparsity pattern is the
 same at every state, so :class:`AccelerationQP` builds the OSQP problem once (every entry
 of the pattern stored explicitly, even where ``M`` happens to be zero) and per step only
 writes the new values into preallocated buffers, hands them to OSQP and warm-starts from
