@@ -7,16 +7,16 @@ Each control step the filter solves (docs/method.md), with ``u = M a + h``::
     subject to         An <= a <= Ap                      (barrier rows, identity block)
                        -umax <= M a + h <= umax           (torque rows, M block)
 
-with ``a_nom = M^-1 (u_nom - h)``. The acceleration objective scales to ``P = I`` (``a = D y``,
-``d_j = 1 / sqrt(w_j)``, :func:`safety_filter._kernels.fill_qp_acceleration`). For the torque
-objective, ``W = diag(w) > 0``; in OSQP's form ``1/2 a^T P a + c^T a`` with
+with ``a_nom = M^-1 (u_nom - h)``. The acceleration objective scales to ``P = I``
+(``a = D y`` with ``d_j = 1 / sqrt(w_j)``; :func:`safety_filter._kernels.fill_qp_acceleration`).
+For the torque objective, ``W = diag(w) > 0``; in OSQP's form ``1/2 a^T P a + c^T a`` with
 ``l <= A a <= u`` this is ``P = M W M`` (dense upper triangle), ``c = M W (h - u_nom)``,
-``A = [I; M]``, ``l = [An; -umax - h]``, ``u = [Ap; umax - h]`` (a common factor of the cost
-does not change the minimiser), scaled as :class:`AccelerationQP` explains. The sparsity pattern is the
-same at every state, so :class:`AccelerationQP` builds the OSQP problem once (every entry
-of the pattern stored explicitly, even where ``M`` happens to be zero) and per step only
-writes the new values into preallocated buffers, hands them to OSQP and warm-starts from
-the previous answer.
+``A = [I; M]``, ``l = [An; -umax - h]``, ``u = [Ap; umax - h]`` (a common factor of the
+cost does not change the minimiser), scaled as :class:`AccelerationQP` explains. The
+sparsity pattern is the same at every state, so :class:`AccelerationQP` builds the OSQP
+problem once (every entry of the pattern stored explicitly, even where ``M`` happens to be
+zero) and per step only writes the new values into preallocated buffers, hands them to
+OSQP and warm-starts from the previous answer.
 
 The solver's answer is never trusted blindly: :meth:`AccelerationQP.solve` returns a
 :class:`QPResult` with the status, and the caller checks the constraints explicitly before
