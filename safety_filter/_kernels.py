@@ -239,6 +239,18 @@ def fill_qp_acceleration(mass: np.ndarray, bias: np.ndarray, accel_nominal: np.n
         cost[j] *= factor
     for k in range(p_rows.shape[0]):
         p_data[k] = factor if p_rows[k] == p_cols[k] else 0.0
+    _constraint_rows(mass, bias, accel_lower, accel_upper, torque_limit, scale, inv_scale,
+                     a_data, lower, upper)
+
+
+@njit(**_JIT)
+def _constraint_rows(mass: np.ndarray, bias: np.ndarray, accel_lower: np.ndarray,
+                     accel_upper: np.ndarray, torque_limit: np.ndarray, scale: np.ndarray,
+                     inv_scale: np.ndarray, a_data: np.ndarray, lower: np.ndarray,
+                     upper: np.ndarray) -> None:
+    """A = [I; U^-1 M D] in CSC order (column j: a 1, then column j of U^-1 M D) and the
+    scaled bounds ``[An / d; -1 - h / umax]``, ``[Ap / d; 1 - h / umax]`` (both objectives)."""
+    n = mass.shape[0]
     k = 0
     for j in range(n):
         a_data[k] = 1.0
@@ -302,19 +314,8 @@ def fill_qp(mass: np.ndarray, bias: np.ndarray, torque_nominal: np.ndarray,
         for i in range(n):
             total += root[i, r] * root[i, c]
         p_data[k] = total * factor
-    k = 0
-    for j in range(n):
-        a_data[k] = 1.0
-        k += 1
-        for i in range(n):
-            a_data[k] = root[i, j] / (sqrt_weights[i] * torque_limit[i])
-            k += 1
-    for j in range(n):
-        lower[j] = accel_lower[j] * inv_scale[j]
-        upper[j] = accel_upper[j] * inv_scale[j]
-        ratio = bias[j] / torque_limit[j]
-        lower[n + j] = -1.0 - ratio
-        upper[n + j] = 1.0 - ratio
+    _constraint_rows(mass, bias, accel_lower, accel_upper, torque_limit, scale, inv_scale,
+                     a_data, lower, upper)
 
 
 @njit(**_JIT)
