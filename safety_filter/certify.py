@@ -541,11 +541,6 @@ def envelope_fraction(model: RobotModel, design: _Design) -> np.ndarray:
     return reach / np.array(model.velocity_limit)
 
 
-def _score(model: RobotModel, design: _Design, settings: CertifySettings) -> float:
-    """Smallest certified velocity fraction over the joints."""
-    return float(np.min(envelope_fraction(model, design)))
-
-
 def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
                         kind: str, exact_model: bool = False
                         ) -> tuple[_Design | None, dict]:
