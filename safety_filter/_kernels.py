@@ -226,21 +226,31 @@ def fill_qp_acceleration(mass: np.ndarray, bias: np.ndarray, accel_nominal: np.n
     A = [I; U^-1 M D] in CSC order; ``lower``, ``upper`` as in :func:`fill_qp`.
     """
     n = mass.shape[0]
-    largest = 0.0
     for j in range(n):
         inv_scale[j] = sqrt_weights[j]
         scale[j] = 1.0 / sqrt_weights[j]
         cost[j] = -sqrt_weights[j] * accel_nominal[j]
-        largest = max(largest, abs(cost[j]))
-    factor = 1.0
-    if largest > 1.0 and math.isfinite(largest):
-        factor = 1.0 / largest
-    for j in range(n):
-        cost[j] *= factor
+    factor = _normalise_cost(cost)
     for k in range(p_rows.shape[0]):
         p_data[k] = factor if p_rows[k] == p_cols[k] else 0.0
     _constraint_rows(mass, bias, accel_lower, accel_upper, torque_limit, scale, inv_scale,
                      a_data, lower, upper)
+
+
+@njit(**_JIT)
+def _normalise_cost(cost: np.ndarray) -> float:
+    """Divide ``cost`` by ``max(1, max |cost|)`` (a common factor of the cost does not change
+    the minimiser; OSQP converges better on unit-sized data); returns the factor, which P is
+    multiplied by too."""
+    largest = 0.0
+    for j in range(cost.shape[0]):
+        largest = max(largest, abs(cost[j]))
+    factor = 1.0
+    if largest > 1.0 and math.isfinite(largest):
+        factor = 1.0 / largest
+    for j in range(cost.shape[0]):
+        cost[j] *= factor
+    return factor
 
 
 @njit(**_JIT)
@@ -295,18 +305,12 @@ def fill_qp(mass: np.ndarray, bias: np.ndarray, torque_nominal: np.ndarray,
         for i in range(n):
             root[i, j] *= d
     # Cost vector before the common factor.
-    largest = 0.0
     for j in range(n):
         total = 0.0
         for i in range(n):
             total += root[i, j] * sqrt_weights[i] * (bias[i] - torque_nominal[i])
         cost[j] = total
-        largest = max(largest, abs(total))
-    factor = 1.0
-    if largest > 1.0 and math.isfinite(largest):
-        factor = 1.0 / largest
-    for j in range(n):
-        cost[j] *= factor
+    factor = _normalise_cost(cost)
     for k in range(p_rows.shape[0]):
         r = p_rows[k]
         c = p_cols[k]

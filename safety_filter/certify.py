@@ -37,10 +37,9 @@ from safety_filter.alphas import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
 from safety_filter.barriers import braking_set_area, safe_set_area
 from safety_filter.bounds import BoundSettings, DynamicsBounds, estimate_bounds
 from safety_filter.certificate import DEFAULT_OBSERVER_PERIODS, Certificate
-from safety_filter.dynamics import mass_matrix_batch
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
-from safety_filter.sampling import Gains, estimate_sampling_margin
+from safety_filter.sampling import Gains, estimate_sampling_margin, sampled_inverse_mass
 from safety_filter.uncertainty import (
     DisturbanceBound,
     disturbance_bound,
@@ -1049,9 +1048,7 @@ def _margin_shortfall_reason(model: RobotModel, settings: CertifySettings, i: in
             f'and the declared delay) the state leaves S unless {margin:.4g} rad/s^2 is '
             f'reserved, more than its authority {authority:.4g} rad/s^2')
     viscous = np.array(model.viscous_friction)
-    rng = np.random.default_rng(0)
-    q = rng.uniform(model.position_lower, model.position_upper, (64, model.n_joints))
-    inverse = np.linalg.inv(mass_matrix_batch(model, q, payload_mass=model.payload.mass_min))
+    inverse = sampled_inverse_mass(model)
     coupling = np.max(np.abs(inverse[:, i, :]), axis=0) * viscous  # [1/s] per joint j
     j = int(np.argmax(coupling))
     if coupling[j] * settings.hold_period_s > 0.2:

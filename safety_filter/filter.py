@@ -675,7 +675,8 @@ class SafetyFilter:
             torque[:] = u_full  # passed through exactly
             have_torque = True
         else:
-            result = self._qp.solve(mass, bias, u_full, accel_lower, accel_upper)
+            # (the nominal's acceleration, when the pass-through check computed it)
+            result = self._qp.solve(mass, bias, u_full, accel_lower, accel_upper, self._a_nom)
             solve_time = result.solve_time_s
             status = result.status
             failed = ''

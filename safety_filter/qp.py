@@ -339,7 +339,8 @@ class AccelerationQP:
         self._shape = (n,)
 
     def _fill(self, mass: np.ndarray, bias: np.ndarray, torque_nominal: np.ndarray,
-              accel_lower: np.ndarray, accel_upper: np.ndarray) -> None:
+              accel_lower: np.ndarray, accel_upper: np.ndarray,
+              accel_nominal: np.ndarray | None = None) -> None:
         """The scaled OSQP data at one state, for this QP's objective."""
         if self._sqrt_accel_weights is None:
             _kernels.fill_qp(mass, bias, torque_nominal, accel_lower, accel_upper,
@@ -348,7 +349,8 @@ class AccelerationQP:
                              self._c, self._lower, self._upper)
             return
         nominal = self._accel_nominal
-        nominal[:] = np.linalg.solve(mass, torque_nominal - bias)
+        nominal[:] = (np.linalg.solve(mass, torque_nominal - bias) if accel_nominal is None
+                      else accel_nominal)
         if not np.all(np.isfinite(nominal)):  # (a huge nominal): keep the solver's data finite
             np.nan_to_num(nominal, copy=False, nan=0.0, posinf=1e300, neginf=-1e300)
         _kernels.fill_qp_acceleration(mass, bias, nominal, accel_lower, accel_upper,
@@ -376,6 +378,7 @@ class AccelerationQP:
         torque_nominal: np.ndarray,
         accel_lower: np.ndarray,
         accel_upper: np.ndarray,
+        accel_nominal: np.ndarray | None = None,
     ) -> QPResult:
         """Solve at one state.
 
@@ -384,6 +387,8 @@ class AccelerationQP:
             bias: ``h(q, v)`` [N m], shape (n,).
             torque_nominal: nominal full torque ``u_nom`` [N m], shape (n,).
             accel_lower, accel_upper: ``An``, ``Ap`` [rad/s^2], shape (n,).
+            accel_nominal: ``M^-1 (u_nom - h)`` when the caller has it (the acceleration
+                objective needs it; computed here otherwise).
 
         Returns:
             A :class:`QPResult` with the acceleration ``a`` (unscaled); never raises for
@@ -392,7 +397,7 @@ class AccelerationQP:
         n = self.n
         start = time.perf_counter()
         lower, upper = self._lower, self._upper
-        self._fill(mass, bias, torque_nominal, accel_lower, accel_upper)
+        self._fill(mass, bias, torque_nominal, accel_lower, accel_upper, accel_nominal)
         c = self._c
         try:
             if self._fast:

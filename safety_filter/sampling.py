@@ -105,16 +105,22 @@ class BatchPlant:
         return np.linalg.solve(self.mass_matrix(q), (u - self.bias(q, v))[..., None])[..., 0]
 
 
-def _damping_rate(model: RobotModel, samples: int = 64) -> float:
+def sampled_inverse_mass(model: RobotModel, samples: int = 64) -> np.ndarray:
+    """``M^-1`` at configurations sampled in the joint box (seeded), with the lightest
+    payload, shape (samples, n, n): where damping acts fastest."""
+    rng = np.random.default_rng(0)
+    q = rng.uniform(model.position_lower, model.position_upper, (samples, model.n_joints))
+    return np.linalg.inv(mass_matrix_batch(model, q, payload_mass=model.payload.mass_min))
+
+
+def _damping_rate(model: RobotModel) -> float:
     """An estimate of the fastest damping mode ``max eig(M^-1 D)`` [1/s] of ``model``:
-    the largest row sum of ``|M^-1| D`` over configurations sampled in the joint box (with
-    the lightest payload), doubled for what the samples miss."""
+    the largest row sum of ``|M^-1| D`` over sampled configurations, doubled for what the
+    samples miss."""
     viscous = np.array(model.viscous_friction)
     if not np.any(viscous > 0.0):
         return 0.0
-    rng = np.random.default_rng(0)
-    q = rng.uniform(model.position_lower, model.position_upper, (samples, model.n_joints))
-    inverse = np.linalg.inv(mass_matrix_batch(model, q, payload_mass=model.payload.mass_min))
+    inverse = sampled_inverse_mass(model)
     return 2.0 * float(np.max(np.sum(np.abs(inverse) * viscous, axis=2)))
 
 

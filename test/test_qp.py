@@ -34,6 +34,13 @@ STATES_PER_ARM = 40
 AGREEMENT = 1e-6  # max |u - u_ref| / umax
 
 
+def solve_tightly(problem: cp.Problem) -> None:
+    """Solve with Clarabel at tolerances far below the agreement checked; must be optimal."""
+    problem.solve(solver=cp.CLARABEL, tol_gap_abs=1e-12, tol_gap_rel=1e-12, tol_feas=1e-12,
+                  tol_ktratio=1e-10, max_iter=500)
+    assert problem.status == cp.OPTIMAL, problem.status
+
+
 class TorqueFormReference:
     """``min (u - u_nom)^T W (u - u_nom)  s.t.  |u| <= umax, An <= M^-1 (u - h) <= Ap``
     in CVXPY (parameters, so the problem is compiled once), solved by Clarabel."""
@@ -60,9 +67,7 @@ class TorqueFormReference:
         self.lower.value = lower
         self.upper.value = upper
         self.nominal.value = nominal
-        self.problem.solve(solver=cp.CLARABEL, tol_gap_abs=1e-12, tol_gap_rel=1e-12,
-                           tol_feas=1e-12, tol_ktratio=1e-10, max_iter=500)
-        assert self.problem.status == cp.OPTIMAL, self.problem.status
+        solve_tightly(self.problem)
         return np.array(self.u.value)
 
 
@@ -92,9 +97,7 @@ class AccelerationFormReference:
         self.target.value = np.linalg.solve(mass, nominal - bias)
         self.lower.value = lower
         self.upper.value = upper
-        self.problem.solve(solver=cp.CLARABEL, tol_gap_abs=1e-12, tol_gap_rel=1e-12,
-                           tol_feas=1e-12, tol_ktratio=1e-10, max_iter=500)
-        assert self.problem.status == cp.OPTIMAL, self.problem.status
+        solve_tightly(self.problem)
         return mass @ np.array(self.a.value) + bias
 
 
