@@ -102,8 +102,10 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
     The same formulas, in the same order, as :func:`safety_filter.barriers.evaluate_barriers`:
     where ``speed_beta > 0`` the velocity barriers ``sp = vS - v``, ``sn = vS + v`` bound
     ``Ap`` by ``speed_beta sp - margin`` and ``An`` by ``-speed_beta sn + margin``; elsewhere
-    ``sp = sn = inf``. ``Ap <= accel_bound``, ``An >= -accel_bound`` where the barriers'
-    bounds leave room (outside S a push back may need more); inf: no bound.
+    ``sp = sn = inf``. Outside S on a side, moving toward that limit,
+    ``Ap <= -v^2 / (2 hp) - margin`` (``An >= v^2 / (2 hn) + margin``): the braking curve. ``Ap <= accel_bound``,
+    ``An >= -accel_bound`` where the barriers' bounds leave room (outside S a push back may
+    need more); inf: no bound.
     ``smallest[i]`` is the smallest of the joint's barriers. Returns the
     smallest of those over all joints and the smallest position margin ``min(hp, hn)``.
     """
@@ -126,6 +128,12 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
             sn = speed_bound[i] + v[i]
             ap = min(ap, speed_beta[i] * sp - margin[i])
             an = max(an, -speed_beta[i] * sn + margin[i])
+        # Outside S also the deceleration that stops the joint at its limit (v^2 / 2h): the
+        # barriers' own return need not keep the position (docs/method.md, recovery).
+        if v[i] > 0.0 and hp > 0.0 and (bp < 0.0 or sp < 0.0):
+            ap = min(ap, -v[i] * v[i] / (2.0 * hp) - margin[i])
+        elif v[i] < 0.0 and hn > 0.0 and (bn < 0.0 or sn < 0.0):
+            an = max(an, v[i] * v[i] / (2.0 * hn) + margin[i])
         # The bound limits what the barriers do not ask for: outside S a barrier's push
         # back may need more (then the bound gives way).
         bound = accel_bound[i]

@@ -16,6 +16,9 @@ velocity box has barriers of its own, first-order ZCBFs on ``sp = vS - v`` and
 
     Ap <- min(Ap, beta_v sp - margin),   An <- max(An, -beta_v sn + margin)
 
+Outside S on a side, moving toward that limit, the bounds also ask for the braking curve:
+``Ap <- min(Ap, -v^2 / (2 hp) - margin)`` (``An <- max(An, v^2 / (2 hn) + margin)``).
+
 The safe set S is where every barrier (hp, hn, bp, bn and, if present, sp, sn) is
 non-negative.
 """
@@ -77,16 +80,34 @@ def evaluate_barriers(
     ap = beta * alpha2.value(bp) - gamma * alpha1.derivative(hp) * v - accel_margin
     an = -beta * alpha2.value(bn) - gamma * alpha1.derivative(hn) * v + accel_margin
     if speed_bound is None or speed_beta is None:
-        ap, an = _within_acceleration_bound(ap, an, accel_bound)
-        return BarrierState(hp, hn, bp, bn, ap, an)
-    active = np.asarray(speed_beta) > 0.0
-    sp = speed_bound - v
-    sn = speed_bound + v
-    ap = np.where(active, np.minimum(ap, speed_beta * sp - accel_margin), ap)
-    an = np.where(active, np.maximum(an, -speed_beta * sn + accel_margin), an)
-    ap, an = _within_acceleration_bound(ap, an, accel_bound)  # after the velocity rows
-    return BarrierState(hp, hn, bp, bn, ap, an, np.where(active, sp, np.inf),
-                        np.where(active, sn, np.inf))
+        sp = sn = np.inf
+    else:
+        active = np.asarray(speed_beta) > 0.0
+        ap = np.where(active, np.minimum(ap, speed_beta * (speed_bound - v) - accel_margin), ap)
+        an = np.where(active, np.maximum(an, -speed_beta * (speed_bound + v) + accel_margin),
+                      an)
+        sp = np.where(active, speed_bound - v, np.inf)
+        sn = np.where(active, speed_bound + v, np.inf)
+    ap, an = _with_braking_curve(v, hp, hn, bp, bn, sp, sn, ap, an, accel_margin)
+    ap, an = _within_acceleration_bound(ap, an, accel_bound)  # after the other rows
+    return BarrierState(hp, hn, bp, bn, ap, an, sp, sn)
+
+
+def _with_braking_curve(v: np.ndarray, hp: np.ndarray, hn: np.ndarray, bp: np.ndarray,
+                        bn: np.ndarray, sp: np.ndarray | float, sn: np.ndarray | float,
+                        ap: np.ndarray, an: np.ndarray, margin: np.ndarray | float
+                        ) -> tuple[np.ndarray, np.ndarray]:
+    """Outside S on a side, moving toward that limit and short of it: at least the
+    deceleration ``v^2 / (2h)`` that stops the joint at the limit (a constant deceleration
+    from the sampled state does exactly that over a hold), plus the margin as for every
+    bound, since the barriers' own return need not keep the position."""
+    with np.errstate(divide='ignore', invalid='ignore'):
+        stop_upper = -v * v / (2.0 * hp) - margin
+        stop_lower = v * v / (2.0 * hn) + margin
+    upper = (v > 0.0) & (hp > 0.0) & ((bp < 0.0) | (sp < 0.0))
+    lower = (v < 0.0) & (hn > 0.0) & ((bn < 0.0) | (sn < 0.0))
+    return (np.where(upper, np.minimum(ap, stop_upper), ap),
+            np.where(lower, np.maximum(an, stop_lower), an))
 
 
 def _within_acceleration_bound(ap: np.ndarray, an: np.ndarray,
@@ -114,27 +135,139 @@ def safe_velocity_interval(q: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     return low, high
 
 
-def return_time_bound(barrier: np.ndarray, beta: np.ndarray, margin: np.ndarray,
-                      alpha2: ClassK, samples: int = 400) -> np.ndarray:
-    """Time [s] within which a velocity barrier at ``barrier < 0`` is back at 0 while the
-    filter meets its bounds (``docs/method.md``, recovery).
+def recovery_time_bound(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                        gamma: np.ndarray, beta: np.ndarray, alpha1: ClassK, alpha2: ClassK,
+                        authority: np.ndarray, margin: np.ndarray,
+                        speed_bound: np.ndarray | None = None,
+                        speed_beta: np.ndarray | None = None, drift_share: float = 2.0 / 3.0,
+                        samples: int = 400) -> np.ndarray:
+    """Per joint: the time [s] within which a joint outside S is back in S, whichever way the
+    filter returns it (``docs/method.md``, recovery); 0 where the joint is in S, inf where its
+    position is past a limit or the bound below cannot show that it stops before the limit
+    (no statement). Arrays broadcast; the last axis is the joint.
 
-    Outside S the bounds give ``db/dt >= -beta alpha2(b) + margin = beta alpha2(|b|) + margin``
-    (alpha2 is odd), so ``b`` climbs from ``-B`` to 0 within
-    ``t(B) = integral_0^B dx / (beta alpha2(x) + margin)``: ``ln(1 + beta B / margin) / beta``
-    for the linear family, a quadrature otherwise. 0 where ``barrier >= 0``; arrays broadcast.
+    A joint outside S on its upper side moves toward the upper limit (``v > 0``). At every
+    step either the bounds ask for a deceleration of at least the authority ``e`` (the QP
+    meets it, or the push-back gives ``e``, which the torque box allows anywhere in the
+    certified domain), or they ask for less and the command meets them. Over the hold the
+    arm's acceleration drifts from the commanded one by up to ``drift_share`` of the margin
+    (the margin is the sampled drift inflated, so the rest is to spare): the authority gives
+    ``e - drift``, a met bound its ask plus the spare margin. The bounds ask at
+    least ``v^2 / (2h)`` (the braking curve), ``gamma alpha1'(h) v + beta alpha2(-bp) +
+    margin`` while ``bp < 0`` and ``beta_v (v - vS) + margin`` while ``v > vS``. ``v`` and
+    ``h`` only shrink, so with ``alpha1`` concave ``alpha1'(h) >= alpha1'(h0)``,
+    ``-bp >= v - gamma alpha1(h0)`` and ``h <= h0``: ``v`` falls at least at
+    ``g(v) = min(e, ...)``, a function of the speed alone (:class:`_DecelerationFloor`).
+    From speed ``v0`` down to ``w`` the joint travels at most
+    ``D(w) = integral_w^v0 u / g(u) du``; and when ``r0 = v0^2 / (2 h0) <= e`` the braking
+    curve keeps ``v^2 / (2h) <= r0`` (it cannot grow under a deceleration of at least
+    ``v^2 / (2h)``), so ``h >= w^2 / (2 r0)``. With ``H(w)`` the larger of the two lower
+    bounds of ``h``, the joint is in S at the first speed ``w`` with
+    ``w <= min(vS, gamma alpha1(H(w)))``, which it reaches within
+    ``integral_w^v0 du / g(u)``; the statement needs ``H(w) >= 0`` (the position kept). A
+    joint back in S stays there (the bounds at the boundary of S are within the authority).
     """
-    depth = np.maximum(-np.asarray(barrier, dtype=float), 0.0)
-    beta = np.asarray(beta, dtype=float)
-    margin = np.asarray(margin, dtype=float)
-    depth, beta, margin = np.broadcast_arrays(depth, beta, margin)
-    if alpha2.kind == 'linear':
+    q, v = np.asarray(q, dtype=float), np.asarray(v, dtype=float)
+    speed = np.abs(v)
+    distance = np.where(v > 0.0, upper - q, q - lower)
+    inside_limits = (q <= upper) & (q >= lower)
+    h0 = np.maximum(distance, 0.0)
+    floor = _DecelerationFloor(gamma * alpha1.derivative(h0), gamma * alpha1.value(h0), h0,
+                               beta, alpha2, authority, margin, drift_share, speed_bound,
+                               speed_beta, samples)
+    with np.errstate(divide='ignore', invalid='ignore'):
+        w = speed[..., None] * floor.fraction
+        rate = floor.rate(w)
+        # time and distance from v0 down to each grid speed (trapezoids, summed from the top)
+        time_left = _integral_from_top(1.0 / rate, w)
+        travelled = _integral_from_top(w / rate, w)
+        stop_rate = speed * speed / (2.0 * h0)
+        curve = np.where((stop_rate <= floor.authority)[..., None],
+                         w * w / (2.0 * stop_rate[..., None]), -np.inf)
+        least_h = np.maximum(h0[..., None] - travelled, curve)
+        inside = w <= np.minimum(floor.box[..., None],
+                                 gamma[..., None] * alpha1.value(np.maximum(least_h, 0.0)))
+        inside &= least_h >= 0.0
+        # the first grid speed below v0 at which the joint is surely back (w = 0 at worst)
+        first = samples - 1 - np.argmax(inside[..., ::-1], axis=-1)
+        found = np.take_along_axis(inside, first[..., None], axis=-1)[..., 0]
+        time = np.take_along_axis(time_left, first[..., None], axis=-1)[..., 0]
+    low, high = safe_velocity_interval(q, lower, upper, gamma, alpha1, speed_bound, speed_beta)
+    in_s = (v >= low) & (v <= high) & inside_limits
+    return np.where(in_s, 0.0, np.where(inside_limits & found, time, np.inf))
+
+
+def _integral_from_top(values: np.ndarray, grid: np.ndarray) -> np.ndarray:
+    """``integral_{grid[k]}^{grid[-1]} values`` for every ``k`` (trapezoids, last axis)."""
+    pieces = 0.5 * (values[..., 1:] + values[..., :-1]) * np.diff(grid, axis=-1)
+    tail = np.cumsum(pieces[..., ::-1], axis=-1)[..., ::-1]
+    return np.concatenate([tail, np.zeros(tail.shape[:-1] + (1,))], axis=-1)
+
+
+def worst_recovery_time(speed: np.ndarray, position_range: np.ndarray, gamma: np.ndarray,
+                        beta: np.ndarray, alpha1: ClassK, alpha2: ClassK,
+                        authority: np.ndarray, margin: np.ndarray,
+                        speed_bound: np.ndarray | None = None,
+                        speed_beta: np.ndarray | None = None, drift_share: float = 2.0 / 3.0,
+                        samples: int = 400) -> np.ndarray:
+    """An upper bound of :func:`recovery_time_bound` over the positions within the limits at
+    speeds up to ``speed``: the slowest deceleration floor (``alpha1'`` at the full range,
+    no credit for the depth of ``bp``) taken from ``speed`` down to a stop."""
+    floor = _DecelerationFloor(gamma * alpha1.derivative(np.asarray(position_range, float)),
+                               np.inf, np.inf, beta, alpha2, authority, margin, drift_share,
+                               speed_bound, speed_beta, samples)
+    speed = np.asarray(speed, dtype=float)
+    with np.errstate(divide='ignore', invalid='ignore'):
+        return floor.time(np.zeros_like(speed), speed)
+
+
+class _DecelerationFloor:
+    """The least deceleration ``g(w)`` of a joint outside S at speed ``w`` toward the limit
+    (see :func:`recovery_time_bound`) and the integrals of it that bound the return."""
+
+    def __init__(self, slope: np.ndarray, reach: np.ndarray | float,
+                 distance: np.ndarray | float, beta: np.ndarray,
+                 alpha2: ClassK, authority: np.ndarray, margin: np.ndarray,
+                 drift_share: float, speed_bound: np.ndarray | None,
+                 speed_beta: np.ndarray | None, samples: int) -> None:
+        if speed_bound is not None and speed_beta is not None:
+            active = np.asarray(speed_beta) > 0.0
+            box = np.where(active, speed_bound, np.inf)
+            box_rate = np.where(active, speed_beta, 0.0)
+        else:
+            box, box_rate = np.inf, 0.0
+        # reach: gamma alpha1(h0), the largest speed bp >= 0 allows on the way; distance: h0
+        margin = np.asarray(margin, dtype=float)
+        # what the arm surely gives: the authority less the drift, a met bound's ask plus the
+        # margin the drift leaves
+        (self.slope, self.reach, self.distance_left, self.beta, self.authority, self.spare,
+         self.box, self.box_rate) = np.broadcast_arrays(
+            slope, reach, distance, np.asarray(beta, dtype=float),
+            np.asarray(authority, dtype=float) - drift_share * margin,
+            (1.0 - drift_share) * margin, box, box_rate)
+        self.alpha2 = alpha2
+        self.fraction = np.linspace(0.0, 1.0, samples)
+
+    def rate(self, w: np.ndarray) -> np.ndarray:
+        box, reach = self.box[..., None], self.reach[..., None]
+        # bp < 0 is certain below the box (else the joint would be in S) and above the reach
+        velocity_row = np.where(
+            (w <= box) | (w > reach),
+            self.slope[..., None] * w
+            + self.beta[..., None] * self.alpha2.value(np.maximum(w - reach, 0.0)), 0.0)
+        box_row = np.where(w > box, self.box_rate[..., None] * (w - box), 0.0)
         with np.errstate(divide='ignore', invalid='ignore'):
-            return np.where(depth > 0.0, np.log1p(beta * depth / margin) / beta, 0.0)
-    fraction = np.linspace(0.0, 1.0, samples)
-    x = depth[..., None] * fraction
-    rate = beta[..., None] * alpha2.value(x) + margin[..., None]
-    return np.trapezoid(1.0 / rate, x, axis=-1)
+            braking = w * w / (2.0 * self.distance_left[..., None])  # v^2 / 2h >= this
+        braking = np.where(np.isnan(braking), 0.0, braking)
+        spare = self.spare[..., None]
+        return np.minimum(self.authority[..., None],
+                          spare + np.maximum(np.maximum(velocity_row, box_row), braking))
+
+    def time(self, start: np.ndarray, speed: np.ndarray) -> np.ndarray:
+        """The longest time to slow from ``speed`` to ``start``: the integral of ``1 / g``."""
+        start = np.asarray(start)
+        w = start[..., None] + (np.asarray(speed) - start)[..., None] * self.fraction
+        return np.trapezoid(1.0 / self.rate(w), w, axis=-1)
 
 
 def safe_set_area(position_range: float, gamma: float, alpha1: ClassK,

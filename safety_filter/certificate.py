@@ -305,6 +305,45 @@ class Certificate:
                                       self.position_upper, self.gamma, self.alpha1,
                                       self.velocity_bound, self.velocity_beta)
 
+    def recovery_time(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """Per joint, the time [s] within which the filter brings a joint outside S back into
+        S from ``(q, v)``, whether the QP meets the bounds or the push-back acts
+        (``barriers.recovery_time_bound``, docs/method.md): 0 in S, inf past a position
+        limit or where the joint might not stop before it. It holds while the speeds stay
+        within ``velocity_bound`` (where the authority is certified), the drift over a hold
+        is what the sampling margin was sized for, and the filter's model, with its
+        disturbance estimate, is right."""
+        from safety_filter.barriers import recovery_time_bound
+
+        return recovery_time_bound(np.asarray(q, dtype=float), np.asarray(v, dtype=float),
+                                   self.position_lower, self.position_upper, self.gamma,
+                                   self.beta, self.alpha1, self.alpha2, self.usable_authority,
+                                   self.sampling_margin, self.velocity_bound,
+                                   self.velocity_beta, self._drift_share)
+
+    def worst_recovery_time(self) -> np.ndarray:
+        """Per joint, the longest :meth:`recovery_time` from any state within the position
+        limits at speeds up to ``velocity_bound`` [s]."""
+        from safety_filter.barriers import worst_recovery_time
+
+        return worst_recovery_time(self.velocity_bound,
+                                   self.position_upper - self.position_lower, self.gamma,
+                                   self.beta, self.alpha1, self.alpha2, self.usable_authority,
+                                   self.sampling_margin, self.velocity_bound,
+                                   self.velocity_beta, self._drift_share)
+
+    @property
+    def _drift_share(self) -> float:
+        """The share of the sampling margin the drift over a hold may take: the margin is the
+        largest sampled drift times the certification's inflation (1.5 by default)."""
+        inflation = float(self.settings.get('certify', {}).get('margin_inflation', 1.5))
+        return 1.0 / max(inflation, 1.0)
+
+    @property
+    def usable_authority(self) -> np.ndarray:
+        """``e = authority - sampling_margin`` [rad/s^2]: what the filter may ask of a joint."""
+        return self.authority - self.sampling_margin
+
     @property
     def has_acceleration_bound(self) -> bool:
         """Whether the filter bounds the joint accelerations."""

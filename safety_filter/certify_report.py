@@ -171,6 +171,17 @@ def _falsifier_line(outcome: CertificationOutcome) -> str:
             f'LP, {result.infeasible} infeasible; smallest slack {slack}')
 
 
+def _recovery_line(cert: Any) -> str:
+    """The longest recovery time the certificate states per joint (Certificate.
+    worst_recovery_time), or '' for an uncertified certificate."""
+    if not cert.certified:
+        return ''
+    times = cert.worst_recovery_time()
+    listed = ', '.join(f'{name} {_fmt(t)}' for name, t in zip(cert.joint_names, times))
+    return ('recovery: from outside S (within the braking set of the usable authority, '
+            f'speeds within v_cert) back in S within [s]: {listed}')
+
+
 def _verdict(outcome: CertificationOutcome) -> str:
     return 'CERTIFIED' if outcome.certified else 'NOT CERTIFIED'
 
@@ -264,6 +275,7 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
     lines.append(_scale_line(outcome))
     lines += textwrap.wrap(_falsifier_line(outcome), TABLE_WIDTH,
                            subsequent_indent='  ')
+    lines += textwrap.wrap(_recovery_line(cert), TABLE_WIDTH, subsequent_indent='  ')
     lines += textwrap.wrap(_seconds_line(outcome.stage_seconds), TABLE_WIDTH,
                            subsequent_indent='  ')
     designs = design_lines(cert, model)
@@ -683,7 +695,7 @@ def _html_page(outcome: CertificationOutcome, model: RobotModel,
         ('velocity scale', _scale_line(outcome).split(': ', 1)[1]),
         ('falsifier', falsifier_text),
         ('stage timings', _seconds_line(outcome.stage_seconds).split(': ', 1)[1]),
-    ]))
+    ] + ([('recovery', _recovery_line(cert).split(': ', 1)[1])] if cert.certified else [])))
     designs = design_lines(cert, model)
     if designs:
         parts.append('<h2>Designs tried</h2>')

@@ -397,8 +397,7 @@ class PlantLog:
             driver applied (delayed command, gain and offset, saturated); demand: the
             driver's ``gain * u + offset`` before saturation; external: push torque;
             mode: filter mode names; margin: smallest barrier value per joint of the TRUE
-            state (NaN when no barrier function was given); pushback: the filter fell back
-            to the constructive push-back (its QP could not meet the bounds in the box).
+            state (NaN when no barrier function was given).
     """
 
     time_s: np.ndarray
@@ -413,7 +412,6 @@ class PlantLog:
     external: np.ndarray
     mode: np.ndarray
     margin: np.ndarray
-    pushback: np.ndarray | None = None
 
 
 def run_plant_loop(
@@ -477,7 +475,6 @@ def run_plant_loop(
     log = PlantLog(np.zeros(steps), empty(), empty(), empty(), empty(), empty(), empty(),
                    empty(), empty(), empty(), np.empty(steps, dtype=object),
                    np.full((steps, n), np.nan))
-    log.pushback = np.zeros(steps, dtype=bool)
     zero = np.zeros(n)
     for k in range(steps):
         t, q, v = k * period, arm.q, arm.v
@@ -490,7 +487,6 @@ def run_plant_loop(
             out = step(q_meas, v_meas, u_nom)
             command = np.array(out.torque)  # type: ignore[attr-defined]
             mode = str(out.mode)  # type: ignore[attr-defined]
-            log.pushback[k] = 'constructive push-back' in str(getattr(out, 'reason', ''))
         log.command[k] = command
         demand = gain * log.command[max(k - delay, 0)] + offset
         applied = np.clip(demand, -umax, umax)

@@ -237,45 +237,41 @@ def run_failures(summary: dict[str, Any], rules: VerdictRules, effort_limit: np.
 
 
 def return_time_bounds(log: PlantLog, pushes: Sequence[Push], certificate: Certificate,
-                       barriers: Callable[[np.ndarray, np.ndarray], Any], period_s: float,
-                       allowance_s: float) -> list[float | None]:
+                       recovery: Sequence[float | None], period_s: float, allowance_s: float
+                       ) -> list[float | None]:
     """Per push: the time from its end within which the certificate says the state is back
-    in S, or None where that statement does not apply.
+    in S (:meth:`Certificate.recovery_time`), or None where that statement does not apply.
 
-    Outside S every velocity barrier climbs at ``db/dt >= beta alpha2(|b|) + margin`` while
-    the filter meets its bounds (``barriers.return_time_bound``). So from the push's end the
-    state is back by the time of the deepest barrier value plus its return time plus
-    ``allowance_s`` (the delay and one period). It applies when, in the push's window, no
-    position went past a limit (the position barrier then has its own, slower return), no
-    joint fell back to the constructive push-back (the torque box could not meet the
-    bounds) and the state did leave S; otherwise None (measured only).
+    The statement holds from any state outside S, whether the QP meets the bounds or the
+    push-back acts. It is applied at every step from the push's end until the state is back
+    (``recovery``, or the window's end): the bound is the largest of the step's time plus
+    its recovery time, plus ``allowance_s`` (the delay) and one period. It does not apply
+    when, on the way, a position is past a limit, a speed beyond ``velocity_bound`` (where
+    the authority is certified) or a state beyond the braking set (no time stated there),
+    or when the state is in S at the push's end (None).
     """
-    from safety_filter.barriers import return_time_bound
-
     times = log.time_s
     starts = sorted(p.start_s for p in pushes)
     result: list[float | None] = []
-    for push in pushes:
+    for push, back in zip(pushes, recovery):
         later = [s for s in starts if s > push.start_s + 1e-12]
-        window = (times >= push.end_s - 1e-9) & (times < (later[0] if later else math.inf)
-                                                    - 1e-9)
-        rows = np.flatnonzero(window)
-        if rows.size == 0:
+        end = push.end_s + back if back is not None else (later[0] if later else math.inf)
+        rows = np.flatnonzero((times >= push.end_s - 1e-9) & (times <= end + 1e-9))
+        if rows.size == 0 or back == 0.0:
             result.append(None)
             continue
-        state = barriers(log.q[rows], log.v[rows])
-        position = np.minimum(state.margin_upper, state.margin_lower)
-        velocity = np.minimum(state.barrier_upper, state.barrier_lower)
-        pushback = log.pushback is not None and bool(np.any(log.pushback[rows]))
-        if np.any(position < 0.0) or pushback or np.all(velocity >= 0.0):
+        q, v = log.q[rows], log.v[rows]
+        within = ((q >= certificate.position_lower) & (q <= certificate.position_upper)
+                  & (np.abs(v) <= certificate.velocity_bound))
+        if not np.all(within):
             result.append(None)
             continue
-        deepest = np.argmin(velocity, axis=0)  # per joint
-        depth = velocity[deepest, np.arange(velocity.shape[1])]
-        bound = return_time_bound(depth, certificate.beta, certificate.sampling_margin,
-                                  certificate.alpha2)
-        start = times[rows[deepest]] - push.end_s
-        result.append(float(np.max(start + bound)) + allowance_s + period_s)
+        needed = np.max(certificate.recovery_time(q, v), axis=1)
+        if not np.all(np.isfinite(needed)):  # a step with no statement (beyond braking)
+            result.append(None)
+            continue
+        result.append(float(np.max(times[rows] - push.end_s + needed)) + allowance_s
+                      + period_s)
     return result
 
 
@@ -505,7 +501,7 @@ class StressContext:
                                 tolerance=self.uncertainty.velocity_noise,
                                 settle_s=self.observer_settle_s)
         summary['recovery_bound_s'] = return_time_bounds(
-            log, pushes, self.certificate, self.filter.constraint_bounds, 1.0 / spec.rate_hz,
+            log, pushes, self.certificate, summary['recovery_s'], 1.0 / spec.rate_hz,
             plant.delay_periods / spec.rate_hz)
         failures = run_failures(summary, self.rules, np.array(self.model.effort_limit))
         summary.update(index=spec.index, plant=name, nominal=spec.nominal,

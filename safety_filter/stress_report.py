@@ -99,8 +99,9 @@ def summary_lines(result: StressResult, source: str) -> list[str]:
     recovery_rule = (f'back in S within {rules.recovery_time_s:g} s after each push'
                      if rules.recovery_time_s is not None else
                      'after each push back in S within the certified return time where it '
-                     f'applies ({judged} of {len(bounds)} pushes: the others went past a '
-                     'position limit, needed more than the torque box, or stayed in S)')
+                     f'applies ({judged} of {len(bounds)} pushes: the others stayed in S, or '
+                     'on the way back went past a position limit, beyond the certified '
+                     'speeds or beyond the braking set)')
     return [
         f'robot: {context.model.name} ({context.model.n_joints} joints); certificate: '
         f'{source} (id {context.certificate.certificate_id})',

@@ -87,3 +87,146 @@ def test_sqrt_family_values_and_slopes() -> None:
     np.testing.assert_allclose(alpha.derivative(positive) * alpha.value(positive),
                                1.0 - np.sqrt(eps / (positive + eps)), atol=1e-12)
     assert alpha.max_ratio_to_identity(3.0) == pytest.approx(1.0 / math.sqrt(2 * eps))
+
+
+# ---------------------------------------------------------------------- recovery time
+def _least_deceleration_return(q0: float, v0: float, lower: float, upper: float, gamma: float,
+                               beta: float, alpha1: ClassK, alpha2: ClassK, authority: float,
+                               margin: float, speed_bound: float, speed_beta: float) -> float:
+    """The time one joint takes back into S when the filter gives it the least deceleration
+    it may, ``max(Ap(q, v), -e)`` (the bounds when they ask for at most ``e``, else ``e``),
+    and the arm takes the largest drift the margin allows (two thirds of it) off that,
+    integrated by SciPy's ``solve_ivp`` (RK45, tight tolerances) up to the event 'every
+    barrier of the joint is non-negative'."""
+    import numpy as np
+    from scipy.integrate import solve_ivp
+
+    from safety_filter.barriers import evaluate_barriers
+
+    def state(q: float, v: float):  # noqa: ANN202
+        return evaluate_barriers(np.array([q]), np.array([v]), np.array([lower]),
+                                 np.array([upper]), np.array([gamma]), np.array([beta]),
+                                 alpha1, alpha2, margin, np.array([speed_bound]),
+                                 np.array([speed_beta]))
+
+    def rhs(_t: float, x: np.ndarray) -> list[float]:
+        bounds = state(x[0], x[1])
+        drift = 2.0 / 3.0 * margin
+        if x[1] >= 0.0:
+            return [x[1], max(float(bounds.accel_upper[0]), -authority) + drift]
+        return [x[1], min(float(bounds.accel_lower[0]), authority) - drift]
+
+    def back(_t: float, x: np.ndarray) -> float:
+        return float(state(x[0], x[1]).smallest[0])
+
+    back.terminal, back.direction = True, 1.0
+    solution = solve_ivp(rhs, (0.0, 60.0), [q0, v0], events=back, rtol=1e-9, atol=1e-12,
+                         max_step=1e-3)
+    assert solution.t_events[0].size == 1, 'the joint never came back'
+    assert np.all((solution.y[0] >= lower) & (solution.y[0] <= upper))
+    return float(solution.t_events[0][0])
+
+
+@pytest.mark.parametrize('kind, scale', [('linear', 1.0), ('sqrt', 0.005), ('atan', 0.5)])
+def test_recovery_time_bound_holds_for_the_slowest_return(kind: str, scale: float) -> None:
+    """barriers.recovery_time_bound is an upper bound of the return time of a joint that gets
+    the least deceleration the filter may give outside S, integrated by SciPy's solve_ivp
+    (reference), over random states outside S within the braking set of the authority (the
+    position is kept on the way: the bounds ask for the braking curve); it is 0 inside S and
+    inf past a limit."""
+    import numpy as np
+
+    from safety_filter.barriers import recovery_time_bound, safe_velocity_interval
+
+    rng = np.random.default_rng(7)
+    alpha1, alpha2 = ClassK(kind, scale), ClassK('linear', 1.0)
+    lower, upper, authority, margin = -1.0, 1.5, 12.0, 0.6
+    gamma = math.sqrt(authority) if kind == 'sqrt' else 2.0
+    beta, speed_bound, speed_beta = 25.0, 3.0, 40.0
+    checked, ratios = 0, []
+    while checked < 12:
+        q = rng.uniform(lower + 0.05, upper - 0.05)
+        sign = rng.choice([-1.0, 1.0])
+        distance = upper - q if sign > 0 else q - lower
+        low, high = safe_velocity_interval(np.array([q]), np.array([lower]),
+                                           np.array([upper]), np.array([gamma]), alpha1,
+                                           np.array([speed_bound]), np.array([speed_beta]))
+        edge = float(high[0] if sign > 0 else -low[0])
+        reach = min(math.sqrt(2.0 * (authority - margin) * distance), speed_bound * 1.3)
+        if reach <= edge + 1e-3:
+            continue
+        v = sign * rng.uniform(edge + 1e-3, reach)
+        bound = float(recovery_time_bound(
+            np.array([q]), np.array([v]), np.array([lower]), np.array([upper]),
+            np.array([gamma]), np.array([beta]), alpha1, alpha2, np.array([authority]),
+            np.array([margin]), np.array([speed_bound]), np.array([speed_beta]))[0])
+        taken = _least_deceleration_return(q, v, lower, upper, gamma, beta, alpha1, alpha2,
+                                           authority, margin, speed_bound, speed_beta)
+        assert 0.0 < taken <= bound * (1.0 + 1e-3), (q, v, taken, bound)
+        ratios.append(bound / taken)
+        checked += 1
+    assert min(ratios) < 3.0  # not a bound so loose that it says nothing
+    inside = recovery_time_bound(np.array([0.0, 2.0]), np.array([0.0, 0.0]),
+                                 np.array([lower] * 2), np.array([upper] * 2),
+                                 np.array([gamma] * 2), np.array([beta] * 2), alpha1, alpha2,
+                                 np.array([authority] * 2), np.array([margin] * 2))
+    assert inside[0] == 0.0 and math.isinf(inside[1])
+
+
+def test_worst_recovery_time_is_the_integral_of_the_slowest_floor() -> None:
+    """barriers.worst_recovery_time for the linear family without velocity barriers and no
+    drift is integral_0^V dw / min(e, margin + gamma w): SciPy's quad (reference), and the
+    closed form ln((margin + gamma V) / margin) / gamma while gamma V + margin <= e; with a
+    drift share s, integral_0^V dw / min(e - s margin, (1 - s) margin + gamma w)."""
+    import numpy as np
+    from scipy.integrate import quad
+
+    from safety_filter.barriers import worst_recovery_time
+
+    gamma, e, margin = np.array([1.5, 0.8]), np.array([20.0, 2.0]), np.array([0.5, 0.3])
+    speed = np.array([4.0, 5.0])
+    found = worst_recovery_time(speed, np.array([2.0, 3.0]), gamma, np.array([10.0, 10.0]),
+                                ClassK('linear'), ClassK('linear'), e, margin, drift_share=0.0,
+                                samples=4001)
+    for i in range(2):
+        expected = quad(lambda w, i=i: 1.0 / min(e[i], margin[i] + gamma[i] * w), 0.0,
+                        speed[i], points=[(e[i] - margin[i]) / gamma[i]])[0]
+        assert found[i] == pytest.approx(expected, rel=1e-4)
+    assert found[0] == pytest.approx(math.log((0.5 + 1.5 * 4.0) / 0.5) / 1.5, rel=1e-4)
+    # the drift takes its share of the margin off both the spare margin and the authority
+    half = worst_recovery_time(speed, np.array([2.0, 3.0]), gamma, np.array([10.0, 10.0]),
+                               ClassK('linear'), ClassK('linear'), e, margin, drift_share=0.5,
+                               samples=4001)
+    expected = quad(lambda w: 1.0 / min(2.0 - 0.15, 0.15 + 0.8 * w), 0.0, 5.0,
+                    points=[(1.85 - 0.15) / 0.8])[0]
+    assert half[1] == pytest.approx(expected, rel=1e-4)
+
+
+def test_outside_s_the_bounds_ask_for_the_braking_curve() -> None:
+    """Outside S, moving toward a limit, the acceleration bound is at most
+    ``-v^2 / (2h) - margin`` (the constant deceleration that stops at the limit, a
+    kinematic closed form); inside S, moving away, or past the limit the bound is the
+    barriers' own."""
+    import numpy as np
+
+    from safety_filter.barriers import evaluate_barriers
+
+    lower, upper = np.array([-1.0]), np.array([1.0])
+    gamma, beta, margin = np.array([1.0]), np.array([0.5]), 0.1
+    alpha = ClassK('linear')
+
+    def bounds(q: float, v: float):  # noqa: ANN202
+        return evaluate_barriers(np.array([q]), np.array([v]), lower, upper, gamma, beta,
+                                 alpha, alpha, margin)
+
+    plain = lambda q, v: 0.5 * (gamma[0] * (1.0 - q) - v) - gamma[0] * v - margin  # noqa: E731
+    outside = bounds(0.9, 1.0)  # h = 0.1, bp = -0.9: the barrier asks for 0.9 less than that
+    assert outside.barrier_upper[0] < 0.0
+    assert outside.accel_upper[0] == pytest.approx(-1.0 / 0.2 - margin)
+    assert plain(0.9, 1.0) > outside.accel_upper[0]
+    inside = bounds(0.0, 0.5)
+    assert inside.accel_upper[0] == pytest.approx(plain(0.0, 0.5))
+    mirrored = bounds(-0.9, -1.0)
+    assert mirrored.accel_lower[0] == pytest.approx(1.0 / 0.2 + margin)
+    past = bounds(1.1, 1.0)
+    assert past.accel_upper[0] == pytest.approx(plain(1.1, 1.0))

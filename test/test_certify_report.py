@@ -67,6 +67,11 @@ def test_table_lists_every_joint_and_the_verdict(planar2) -> None:
         assert name in rows and rows[name].rstrip().endswith('ok')
     assert 'verdict: CERTIFIED' in table
     assert 'falsifier: 2000 states in S' in table
+    recovery = ' '.join(table.split('recovery: ', 1)[1].split('\n\n')[0].split())
+    worst = outcome.certificate.worst_recovery_time()
+    for name, seconds in zip(model.joint_names, worst):
+        assert 0.0 < seconds < np.inf
+        assert f'{name} {seconds:.3g}' in recovery
     assert 'why not certified' not in table
     assert all(len(line) <= 100 for line in table.splitlines())
     assert table.isascii()
@@ -103,6 +108,7 @@ def test_table_marks_the_joint_a_reason_names(planar2) -> None:
     assert rows['shoulder'].rstrip().endswith('ok')
     assert 'verdict: NOT CERTIFIED' in table
     assert "  1. joint 'elbow': invented finding" in table
+    assert 'recovery:' not in table  # no statement without a certificate
 
 
 def test_table_explains_a_torque_limit_below_the_gravity_load(weak) -> None:

@@ -267,51 +267,29 @@ def test_perturbed_urdf_changes_what_it_says() -> None:
     assert masses[-1] == 0.5
 
 
-@pytest.mark.parametrize('kind, scale', [('linear', 1.0), ('atan', 0.5), ('cubic', 1.0)])
-def test_return_time_bound_matches_the_integral(kind: str, scale: float) -> None:
-    """barriers.return_time_bound against SciPy's quad of dx / (beta alpha2(x) + margin) (the
-    ODE db/dt = beta alpha2(|b|) + margin separated); the linear family's closed form
-    ln(1 + beta B / margin) / beta is the same integral."""
-    from scipy.integrate import quad
-
-    from safety_filter.alphas import ClassK
-    from safety_filter.barriers import return_time_bound
-
-    alpha2 = ClassK(kind, scale)
-    depth = np.array([-0.05, -0.4, -2.0, 0.3])
-    beta = np.array([3.0, 40.0, 7.0, 5.0])
-    margin = np.array([0.2, 2.0, 0.5, 1.0])
-    found = return_time_bound(depth, beta, margin, alpha2)
-    for b, k, d, t in zip(depth, beta, margin, found):
-        expected = quad(lambda x, k=k, d=d: 1.0 / (k * float(alpha2.value(x)) + d),
-                        0.0, max(-b, 0.0))[0]
-        assert t == pytest.approx(expected, rel=1e-4, abs=1e-12)
-    assert found[-1] == 0.0  # inside S: nothing to return from
-
-
-def test_recovery_meets_the_return_time_bound() -> None:
-    """planar2, exact model: a joint started outside S (moving toward its upper limit faster
-    than its velocity barrier allows, still inside the position limits) under a nominal that
-    pushes on is back in S within return_time_bound of its starting barrier value (plus a
-    control period), and its position never passes the limit."""
-    from safety_filter.barriers import return_time_bound
-
+@pytest.mark.parametrize('distance, excess', [(0.3, 0.3), (0.3, 1.2), (0.05, 0.3),
+                                               (0.05, 0.95)])
+def test_recovery_meets_the_certified_recovery_time(distance: float, excess: float) -> None:
+    """planar2, exact model: the elbow started outside S (toward its upper limit, ``excess``
+    rad/s faster than S allows, ``distance`` rad from the limit) under a nominal that pushes
+    on at full effort is back in S within Certificate.recovery_time of the start (plus a
+    control period), and its position never passes the limit. At 0.05 rad and 0.95 rad/s
+    above S the barriers' own return would pass the limit by about 4 mrad: the braking-curve
+    bound outside S keeps it."""
     model, certificate = demo_arm_and_certificate('planar2')
-    filt = SafetyFilter(model, certificate)
+    filt = SafetyFilter(model, certificate, observer_time_constant_s=0.0)
     plant = ArmSimulator(model, filt.payload_mass, PLANT_RATE_HZ)
     q = 0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
-    q[1] = model.position_upper[1] - 0.3
-    speed = certificate.gamma[1] * float(certificate.alpha1.value(0.3))
-    v = np.array([0.0, speed + 0.3])  # b_upper = -0.3 on the elbow
-    start = filt.constraint_bounds(q, v)
-    depth = float(start.barrier_upper[1])
-    assert depth == pytest.approx(-0.3)
-    bound = float(return_time_bound(depth, certificate.beta[1], certificate.sampling_margin[1],
-                                    certificate.alpha2))
+    q[1] = model.position_upper[1] - distance
+    _, high = certificate.safe_velocity_interval(q)
+    v = np.array([0.0, high[1] + excess])
+    assert filt.constraint_bounds(q, v).smallest[1] < 0.0
+    bound = float(np.max(certificate.recovery_time(q, v)))
+    assert 0.0 < bound < np.inf
     plant.reset(q, v)
     push = np.array(model.effort_limit)
     back = None
-    for k in range(int(3 * bound * CONTROL_RATE_HZ) + 10):
+    for k in range(int(1.5 * bound * CONTROL_RATE_HZ) + 10):
         out = filt.step(plant.q, plant.v, push)
         if back is None and np.all(filt.constraint_bounds(plant.q, plant.v).smallest >= 0.0):
             back = k / CONTROL_RATE_HZ

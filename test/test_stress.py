@@ -198,6 +198,34 @@ def test_recovery_times_on_a_hand_made_log() -> None:
     assert recovery_times(log, pushes, 0.1) == [0.0, 0.0]
 
 
+def test_return_time_bounds_on_a_hand_made_log(planar2) -> None:
+    """The allowed time of a push is the largest, over the steps from its end until the state
+    is back, of the step's time after the push plus Certificate.recovery_time there, plus
+    the delay and one period; None where the state stayed in S, or a step is past a limit
+    or beyond the braking set (no time stated)."""
+    model, certificate = planar2
+    steps, period = 6, 0.01
+    q = np.tile(_mid(model), (steps, 1))
+    q[:, 1] = model.position_upper[1] - 0.3
+    _, high = certificate.safe_velocity_interval(q[0])
+    v = np.zeros((steps, 2))
+    v[:, 1] = high[1] + np.array([0.08, 0.06, 0.04, 0.02, 0.0, -0.02])  # back in S at step 4
+    log = stress.PlantLog(np.arange(steps) * period, q, v, *[np.zeros((steps, 2))] * 7,
+                          np.array(['recovering'] * steps), np.ones((steps, 2)))
+    push = Push(0.0, 0.0, np.zeros(2))
+    needed = np.max(certificate.recovery_time(q[:4], v[:4]), axis=1)
+    assert np.all(np.isfinite(needed)) and needed[0] > 0.0
+    expected = float(np.max(np.arange(4) * period + needed)) + 0.002 + period
+    found = stress.return_time_bounds(log, [push], certificate, [4 * period], period, 0.002)
+    assert found[0] == pytest.approx(expected)
+    assert stress.return_time_bounds(log, [push], certificate, [0.0], period, 0.0) == [None]
+    beyond = stress.PlantLog(log.time_s, q.copy(), v.copy(), *[np.zeros((steps, 2))] * 7,
+                             log.mode, log.margin)
+    beyond.q[2, 1] = model.position_upper[1] - 1e-4  # far too fast to stop there
+    assert stress.return_time_bounds(beyond, [push], certificate, [4 * period], period,
+                                     0.0) == [None]
+
+
 def test_verdict_rules() -> None:
     base = {'position_excursion': 0.0, 'velocity_excursion': 0.004, 'command_excess': 0.0,
             'applied_excess': 0.0, 'recovery_s': [0.05, 0.2]}
