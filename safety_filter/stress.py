@@ -242,13 +242,15 @@ def return_time_bounds(log: PlantLog, pushes: Sequence[Push], certificate: Certi
     """Per push: the time from its end within which the certificate says the state is back
     in S (:meth:`Certificate.recovery_time`), or None where that statement does not apply.
 
-    The statement holds from any state outside S, whether the QP meets the bounds or the
-    push-back acts. It is applied at every step from the push's end until the state is back
-    (``recovery``, or the window's end): the bound is the largest of the step's time plus
-    its recovery time, plus ``allowance_s`` (the delay) and one period. It does not apply
-    when, on the way, a position is past a limit, a speed beyond ``velocity_bound`` (where
-    the authority is certified) or a state beyond the braking set (no time stated there),
-    or when the state is in S at the push's end (None).
+    The statement holds from any state outside S within the certified domain (speeds within
+    ``velocity_bound``, where the authority is certified), whether the QP meets the bounds
+    or the push-back acts. It is applied at every step from the push's end, or from the step
+    a push that left the speeds beyond the domain has them back within it for good, until
+    the state is back (``recovery``, or the window's end): the bound is the largest of the
+    step's time after the push plus its recovery time, plus ``allowance_s`` (the delay) and
+    one period. It does not apply when, on the way, a position is past a limit or a state
+    beyond the braking set (no time stated there), when the speeds are not back within the
+    domain by then, or when the state is in S at the push's end (None).
     """
     times = log.time_s
     starts = sorted(p.start_s for p in pushes)
@@ -261,11 +263,18 @@ def return_time_bounds(log: PlantLog, pushes: Sequence[Push], certificate: Certi
             result.append(None)
             continue
         q, v = log.q[rows], log.v[rows]
-        within = ((q >= certificate.position_lower) & (q <= certificate.position_upper)
-                  & (np.abs(v) <= certificate.velocity_bound))
-        if not np.all(within):
+        if np.any((q < certificate.position_lower) | (q > certificate.position_upper)):
             result.append(None)
             continue
+        # A push can leave the speeds beyond the certified domain for a few steps: the
+        # statement applies from the step the state is back within it for good.
+        within = np.all(np.abs(v) <= certificate.velocity_bound, axis=1)
+        if not within[-1]:
+            result.append(None)
+            continue
+        later_out = np.flatnonzero(~within)
+        first = int(later_out[-1]) + 1 if later_out.size else 0
+        rows, q, v = rows[first:], q[first:], v[first:]
         needed = np.max(certificate.recovery_time(q, v), axis=1)
         if not np.all(np.isfinite(needed)):  # a step with no statement (beyond braking)
             result.append(None)

@@ -201,8 +201,9 @@ def test_recovery_times_on_a_hand_made_log() -> None:
 def test_return_time_bounds_on_a_hand_made_log(planar2) -> None:
     """The allowed time of a push is the largest, over the steps from its end until the state
     is back, of the step's time after the push plus Certificate.recovery_time there, plus
-    the delay and one period; None where the state stayed in S, or a step is past a limit
-    or beyond the braking set (no time stated)."""
+    the delay and one period, from the step the speeds are within the certified domain for
+    good; None where the state stayed in S, a step is past a limit or beyond the braking set
+    (no time stated), or the speeds are not back within the domain."""
     model, certificate = planar2
     steps, period = 6, 0.01
     q = np.tile(_mid(model), (steps, 1))
@@ -219,6 +220,15 @@ def test_return_time_bounds_on_a_hand_made_log(planar2) -> None:
     found = stress.return_time_bounds(log, [push], certificate, [4 * period], period, 0.002)
     assert found[0] == pytest.approx(expected)
     assert stress.return_time_bounds(log, [push], certificate, [0.0], period, 0.0) == [None]
+    fast = stress.PlantLog(log.time_s, q.copy(), v.copy(), *[np.zeros((steps, 2))] * 7,
+                           log.mode, log.margin)
+    fast.v[0, 0] = 1.1 * certificate.velocity_bound[0]  # beyond the certified domain
+    later = float(np.max(np.arange(1, 4) * period + needed[1:])) + period
+    assert stress.return_time_bounds(fast, [push], certificate, [4 * period], period,
+                                     0.0) == [pytest.approx(later)]
+    fast.v[4, 0] = fast.v[0, 0]  # not back within the domain when back in S
+    assert stress.return_time_bounds(fast, [push], certificate, [4 * period], period,
+                                     0.0) == [None]
     beyond = stress.PlantLog(log.time_s, q.copy(), v.copy(), *[np.zeros((steps, 2))] * 7,
                              log.mode, log.margin)
     beyond.q[2, 1] = model.position_upper[1] - 1e-4  # far too fast to stop there
