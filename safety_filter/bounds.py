@@ -23,7 +23,8 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from safety_filter.dynamics import christoffel_batch, mass_matrix_batch, rnea_batch
+from safety_filter.dynamics import (christoffel_batch, hold_mass_matrix, mass_matrix_batch,
+                                    rnea_batch)
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 
@@ -105,8 +106,10 @@ class DynamicsBounds:
 class _Evaluator:
     """Batched evaluation of the bounded quantities at (q, payload mass) pairs."""
 
-    def __init__(self, model: RobotModel) -> None:
+    def __init__(self, model: RobotModel, hold_s: float = 0.0) -> None:
         self.model = model
+        self.hold_s = hold_s
+        self.viscous = np.array(model.viscous_friction, dtype=float)
         self.umax = np.array(model.effort_limit)
         self.has_payload = model.payload.mass_max > 0.0
         self.count = 0
@@ -122,7 +125,10 @@ class _Evaluator:
 
     def mass(self, q: np.ndarray, mass: np.ndarray) -> np.ndarray:
         self.count += len(q)
-        return self._affine(mass_matrix_batch, q, mass)
+        mass_matrix = self._affine(mass_matrix_batch, q, mass)
+        if self.hold_s > 0.0:
+            return hold_mass_matrix(mass_matrix, self.viscous, self.hold_s)
+        return mass_matrix
 
     def gravity(self, q: np.ndarray, mass: np.ndarray) -> np.ndarray:
         self.count += len(q)
@@ -148,6 +154,7 @@ def estimate_bounds(
     settings: BoundSettings | None = None,
     velocity_scale: np.ndarray | None = None,
     progress: ProgressCallback | None = None,
+    hold_s: float = 0.0,
 ) -> DynamicsBounds:
     """Estimate :class:`DynamicsBounds` for ``model`` over its joint box and payload range.
 
@@ -157,12 +164,14 @@ def estimate_bounds(
         velocity_scale: per-joint velocity used to rank which Christoffel bounds are worth
             refining (default: the velocity limits).
         progress: optional callback ``(stage, fraction_done)``.
+        hold_s: when positive, ``M`` (and ``W = M^-1``) are those of the mean acceleration
+            over a hold of that length (:func:`~safety_filter.dynamics.hold_mass_matrix`).
     """
     settings = settings or BoundSettings()
     n = model.n_joints
     lower, upper = np.array(model.position_lower), np.array(model.position_upper)
     m_lo, m_hi = model.payload.mass_min, model.payload.mass_max
-    evaluator = _Evaluator(model)
+    evaluator = _Evaluator(model, hold_s)
     report = progress or (lambda _stage, _fraction: None)
     vel = np.array(model.velocity_limit) if velocity_scale is None else velocity_scale
 

@@ -98,6 +98,9 @@ class Certificate:
         velocity_beta: rate of the velocity barriers ``vS -+ v >= 0`` [1/s] per joint (0:
             none; ``docs/method.md``).
         acceleration_bound: the filter keeps ``|a|`` within it [rad/s^2] (inf: no bound).
+        acceleration_hold_s: when set, the accelerations the filter bounds are means over a
+            hold of this length [s] (``u = M_hold a + h``,
+            ``dynamics.hold_mass_matrix``): the exact response of the damped joints.
     """
 
     joint_names: list[str]
@@ -132,6 +135,7 @@ class Certificate:
     reasons: list[str] = field(default_factory=list)
     velocity_beta: np.ndarray | None = None
     acceleration_bound: np.ndarray | None = None
+    acceleration_hold_s: float | None = None
 
     def __post_init__(self) -> None:
         n = len(self.joint_names)
@@ -141,6 +145,11 @@ class Certificate:
             raise CertificateError(f'acceleration_bound must have {n} positive entries')
         bound.flags.writeable = False
         self.acceleration_bound = bound
+        if self.acceleration_hold_s is not None:
+            hold = float(self.acceleration_hold_s)
+            if not (math.isfinite(hold) and hold > 0.0):
+                raise CertificateError(f'acceleration_hold_s must be positive, got {hold}')
+            self.acceleration_hold_s = hold
         speed_beta = np.zeros(n) if self.velocity_beta is None else np.array(
             self.velocity_beta, dtype=float).reshape(-1)
         if speed_beta.shape != (n,) or not np.all(np.isfinite(speed_beta)) \
@@ -361,6 +370,8 @@ class Certificate:
                 continue  # certificates without velocity barriers keep their ids
             if item.name == 'acceleration_bound' and not self.has_acceleration_bound:
                 continue
+            if item.name == 'acceleration_hold_s' and self.acceleration_hold_s is None:
+                continue
             value = getattr(self, item.name)
             if isinstance(value, np.ndarray):
                 value = [float(x) for x in value]
@@ -393,6 +404,8 @@ class Certificate:
             params['velocity_beta'] = plain['velocity_beta']
         if self.has_acceleration_bound:
             params['acceleration_bound'] = plain['acceleration_bound']
+        if self.acceleration_hold_s is not None:
+            params['acceleration_hold_s'] = plain['acceleration_hold_s']
         params['certificate_id'] = self.certificate_id
         return params
 
@@ -423,6 +436,8 @@ class Certificate:
                 kwargs['velocity_beta'] = [float(x) for x in params['velocity_beta']]
             if params.get('acceleration_bound') is not None:
                 kwargs['acceleration_bound'] = [float(x) for x in params['acceleration_bound']]
+            if params.get('acceleration_hold_s') is not None:
+                kwargs['acceleration_hold_s'] = float(params['acceleration_hold_s'])
         except KeyError as err:
             raise CertificateError(f'the certificate lacks the entry {err.args[0]!r}') from err
         except (TypeError, ValueError) as err:

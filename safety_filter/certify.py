@@ -105,6 +105,11 @@ class CertifySettings:
         delay_periods: control periods between measurement and torque that the sampled-data
             margin covers on top of ``sampling_factor`` (None: the model's declared
             uncertainty, ``delay_periods``).
+        mean_over_hold: on an arm with viscous damping, True: the filter bounds the mean
+            acceleration over a control period (the exact zero-order-hold response of the
+            damped joints, ``hold_mass_matrix``); False: the acceleration at the start of
+            the hold; None (default): certification tries both and keeps the larger safe
+            set.
     """
 
     alpha1: ClassK | None = None
@@ -132,6 +137,7 @@ class CertifySettings:
     observer_noise_share: float = 0.01
     delay_periods: int | None = None
     margin_plants: int = 3
+    mean_over_hold: bool | None = None
 
     def __post_init__(self) -> None:
         if self.alpha1 is not None and self.alpha1.kind not in ALPHA1_KINDS:
@@ -155,6 +161,14 @@ class CertifySettings:
             raise SafetyFilterError('observer_periods must be finite and >= 2')
         if not (np.isfinite(self.observer_noise_share) and self.observer_noise_share > 0.0):
             raise SafetyFilterError('observer_noise_share must be finite and > 0')
+
+    def acceleration_hold_s(self, model: RobotModel) -> float:
+        """The hold whose mean acceleration the filter bounds [s]: one control period (what
+        the driver holds each command for at the certified rate; the sampled-data margin
+        covers the longer holds). 0: the acceleration at the start of the hold (no damping,
+        or ``mean_over_hold`` off)."""
+        damped = bool(np.any(np.array(model.viscous_friction) > 0.0))
+        return 1.0 / self.control_rate_hz if self.mean_over_hold is True and damped else 0.0
 
     @property
     def hold_period_s(self) -> float:
@@ -624,31 +638,48 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     reasons: list[str] = []
     notes: list[str] = []
 
-    clock = time.perf_counter()
-    bounds = estimate_bounds(model, settings.bounds, progress=lambda s, f: report(
-        'bounds: ' + s, f))
-    seconds['bounds'] = time.perf_counter() - clock
-
     # ---- per family: velocity box, authority, the sampled-data margin, gains (the stage
-    # times add up over the families)
+    # times add up over the families). On a damped arm, with mean_over_hold None, the
+    # families are taken through with the accelerations at the start of the hold and then
+    # with their means over it: for the family chosen so far, or for all of them when none
+    # certified (docs/method.md, dissipation).
     kinds = settings.families if settings.alpha1 is None else (
         settings.alpha1.kind + ('' if settings.velocity_barrier else LEMMA_SUFFIX),)
-    attempts = []
-    for stage in ('authority', 'sampling margin', 'gains'):
+    damped = bool(np.any(np.array(model.viscous_friction) > 0.0))
+    forms = [settings.mean_over_hold] if settings.mean_over_hold is not None or not damped \
+        else [False, True]
+    attempts: list[_Attempt] = []
+    all_bounds: dict[bool, DynamicsBounds] = {}
+    for stage in ('bounds', 'authority', 'sampling margin', 'gains'):
         seconds[stage] = 0.0
-    for index, kind in enumerate(kinds):
-        attempts.append(_attempt_family(
-            model, bounds, settings, kind,
-            lambda stage, f, k=index: report(stage, (k + f) / len(kinds)), seconds))
+    chosen: _Attempt | None = None
+    for form_index, mean in enumerate(forms):
+        form = replace(settings, mean_over_hold=bool(mean))
+        clock = time.perf_counter()
+        bounds = all_bounds[bool(mean)] = estimate_bounds(
+            model, settings.bounds, progress=lambda s, f: report('bounds: ' + s, f),
+            hold_s=form.acceleration_hold_s(model))
+        seconds['bounds'] += time.perf_counter() - clock
+        kinds_now = kinds if chosen is None else (chosen.kind,)
+        for index, kind in enumerate(kinds_now):
+            attempt = _attempt_family(
+                model, bounds, form, kind,
+                lambda stage, f, k=index: report(stage, (k + f) / len(kinds_now)), seconds)
+            attempt.mean_over_hold = bool(mean)
+            attempts.append(attempt)
+        certifiable = [a for a in attempts if a.design is not None and not a.reasons]
+        chosen = (max(certifiable, key=lambda a: _design_score(model, a.design))
+                  if certifiable else None)
     certifiable = [a for a in attempts if a.design is not None and not a.reasons]
-    chosen = (max(certifiable, key=lambda a: _design_score(model, a.design)) if certifiable
-              else attempts[0])
+    chosen = chosen or attempts[0]
+    settings = replace(settings, mean_over_hold=chosen.mean_over_hold)
+    bounds = all_bounds[chosen.mean_over_hold]
     tried = []
     for attempt in attempts:
         entry = attempt.record(model)
         if attempt is chosen:
             entry['outcome'] = 'chosen'
-        elif attempt in certifiable:
+        elif any(attempt is other for other in certifiable):
             entry['outcome'] = 'certifies, smaller safe set'
         else:
             entry['outcome'] = 'does not certify: ' + '; '.join(attempt.reasons)
@@ -700,6 +731,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         velocity_bound=velocity_box,
         velocity_beta=speed_beta,
         acceleration_bound=accel_bound,
+        acceleration_hold_s=settings.acceleration_hold_s(model) or None,
         gamma=gamma,
         gamma_star=g_star,
         beta=beta,
@@ -750,7 +782,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
                                 falsifier_result)
 
 
-@dataclass
+@dataclass(eq=False)
 class _Attempt:
     """One class-K family taken through the velocity box search, the sampled-data margin and
     the choice of beta."""
@@ -758,6 +790,7 @@ class _Attempt:
     kind: str
     design: _Design | None = None
     last_design: _Design | None = None
+    mean_over_hold: bool = False
     margin: np.ndarray | None = None
     candidates: dict = field(default_factory=dict)
     betas: tuple = ()
@@ -768,7 +801,7 @@ class _Attempt:
     def record(self, model: RobotModel) -> dict[str, Any]:
         """Plain summary for the certificate (the report's table of designs tried)."""
         shown = self.design or self.last_design
-        entry: dict[str, Any] = {'alpha1': self.kind}
+        entry: dict[str, Any] = {'alpha1': self.kind, 'mean_over_hold': self.mean_over_hold}
         if shown is not None:
             entry['alpha1_scale'] = float(shown.alpha1.scale)
             entry['envelope_fraction'] = _plain(envelope_fraction(model, shown))
@@ -863,7 +896,7 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
                 model, gains, settings.hold_period_s, settings.margin_samples,
                 inflation=settings.margin_inflation, current_margin=margin,
                 seed=settings.seed,  # same draws each round: the margin settles monotonically
-                plants=plants)
+                plants=plants, acceleration_hold_s=settings.acceleration_hold_s(model))
             rounds['count'] += 1
             report('sampling margin', 0.2 + 0.7 * min(1.0, rounds['count'] / 12))
             if np.all(new_margin <= margin * (1.0 + 1e-9)):

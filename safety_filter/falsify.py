@@ -7,7 +7,8 @@ the exact feasibility problem
 
     exists u with |u| <= umax and An + delta <= M^-1 (u - h) <= Ap - delta
 
-(docs/method.md). Two cheap witnesses are tried first for every state (the acceleration nearest
+(docs/method.md; ``M`` is the mass matrix of the mean acceleration over the hold where the
+certificate bounds those, ``dynamics.hold_mass_matrix``). Two cheap witnesses are tried first for every state (the acceleration nearest
 zero inside the bounds, and the one nearest free fall); a witness whose torque is inside the
 box proves feasibility. Every state where both witnesses fail, and the states where they
 have the least slack, go to an exact linear program solved by HiGHS through SciPy - a solver
@@ -23,6 +24,7 @@ import numpy as np
 from scipy.optimize import linprog
 
 from safety_filter.certificate import Certificate
+from safety_filter.dynamics import hold_mass_matrix
 from safety_filter.model import RobotModel
 from safety_filter.sampling import BatchPlant, Gains, sample_safe_states
 from safety_filter.uncertainty import state_disturbance_bound
@@ -137,6 +139,13 @@ def falsify(
     witness_min = np.inf
     to_decide: list[tuple[np.ndarray, ...]] = []
     done = 0
+    def held(mass: np.ndarray) -> np.ndarray:
+        """The mass matrix the filter's accelerations refer to (means over the hold when the
+        certificate says so)."""
+        if certificate.acceleration_hold_s is None:
+            return mass
+        return hold_mass_matrix(mass, model.viscous_friction, certificate.acceleration_hold_s)
+
     while done < states:
         count = min(chunk, states - done)
         q, v = sample_safe_states(model, gains, count, rng, boundary_fraction=0.4)
@@ -147,7 +156,7 @@ def falsify(
         else:
             payload = np.full(count, 0.5 * (lo_m + hi_m))
         plant = BatchPlant(model, payload)
-        mass = plant.mass_matrix(q)
+        mass = held(plant.mass_matrix(q))
         bias = plant.bias(q, v)
         estimate = _disturbance_estimates(model, plant, payload, q, v, bias, parameters,
                                           umax, rng)
@@ -177,7 +186,7 @@ def falsify(
     results = []
     for index, (q, v, m, estimate) in enumerate(items):
         plant = BatchPlant(model, np.array([m]))
-        mass = plant.mass_matrix(q[None])[0]
+        mass = held(plant.mass_matrix(q[None]))[0]
         bias = plant.bias(q[None], v[None])[0] - estimate
         barrier = gains.barriers(model, q, v, delta)
         slack = _lp_slack(mass, bias, barrier.accel_lower, barrier.accel_upper, umax)

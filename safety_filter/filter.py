@@ -55,7 +55,7 @@ import numpy as np
 from safety_filter import _kernels
 from safety_filter.barriers import BarrierState, evaluate_barriers
 from safety_filter.certificate import Certificate, CertificateError
-from safety_filter.dynamics import Dynamics
+from safety_filter.dynamics import Dynamics, hold_mass_matrix
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 from safety_filter.qp import DEFAULT_EPS, DEFAULT_MAX_ITER, AccelerationQP
@@ -128,8 +128,10 @@ class _StepDynamics:
     that both give the same numbers.
     """
 
-    def __init__(self, dynamics: Dynamics) -> None:
+    def __init__(self, dynamics: Dynamics, hold_s: float | None = None) -> None:
         self.dynamics = dynamics
+        # the accelerations are means over this hold (hold_mass_matrix), if set
+        self.hold_s = hold_s
         n = dynamics.n
         self._viscous = np.array(dynamics.model.viscous_friction)
         self._coulomb = np.array(dynamics.model.coulomb_friction)
@@ -153,11 +155,14 @@ class _StepDynamics:
             mass, bias = self.dynamics.mass_and_bias(q, v)
             mass_out[...] = mass
             bias_out[...] = bias
-            return
-        _kernels.mirror_upper(self._pin.crba(self._pin_model, self._pin_data, q), mass_out)
-        bias_out[...] = self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v)
-        if self._has_friction:
-            _kernels.add_friction(v, self._viscous, self._coulomb, self._friction, bias_out)
+        else:
+            _kernels.mirror_upper(self._pin.crba(self._pin_model, self._pin_data, q), mass_out)
+            bias_out[...] = self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v)
+            if self._has_friction:
+                _kernels.add_friction(v, self._viscous, self._coulomb, self._friction,
+                                      bias_out)
+        if self.hold_s is not None:
+            mass_out[...] = hold_mass_matrix(mass_out, self._viscous, self.hold_s)
 
     def nominal_acceleration(self, q: np.ndarray, v: np.ndarray, torque: np.ndarray,
                              mass: np.ndarray, bias: np.ndarray,
@@ -168,7 +173,7 @@ class _StepDynamics:
         Pinocchio's articulated-body algorithm takes a few microseconds where
         ``np.linalg.solve`` takes tens for these sizes; friction is moved to the torque side.
         """
-        if self._pin is None:
+        if self._pin is None or self.hold_s is not None:
             return np.linalg.solve(mass, torque - bias)
         effort = torque - self._friction if self._has_friction else torque
         if disturbance is not None:
@@ -337,7 +342,7 @@ class SafetyFilter:
         self.payload_mass = float(payload_mass)
         self.rejection_distance = float(rejection_distance)
         self.dynamics = Dynamics(model, self.payload_mass, backend=backend)
-        self._dyn = _StepDynamics(self.dynamics)
+        self._dyn = _StepDynamics(self.dynamics, certificate.acceleration_hold_s)
         self._driver = gravity_convention == 'driver_compensated'
 
         def frozen(values: Any) -> np.ndarray:

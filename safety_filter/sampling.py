@@ -33,7 +33,7 @@ import numpy as np
 
 from safety_filter.alphas import ClassK
 from safety_filter.barriers import BarrierState, evaluate_barriers, safe_velocity_interval
-from safety_filter.dynamics import mass_matrix_batch, rnea_batch
+from safety_filter.dynamics import hold_mass_matrix, mass_matrix_batch, rnea_batch
 from safety_filter.model import RobotModel
 
 
@@ -195,6 +195,7 @@ def estimate_sampling_margin(
     acceleration_envelope: np.ndarray | None = None,
     seed: int = 0,
     plants: Sequence[tuple[RobotModel, float]] = (),
+    acceleration_hold_s: float = 0.0,
 ) -> np.ndarray:
     """Acceleration margin ``delta`` [rad/s^2] per joint covering one hold period.
 
@@ -218,6 +219,11 @@ def estimate_sampling_margin(
         plants: arms unlike the model, ``(model, payload mass)`` each (drawn from the
             declared uncertainty set): the samples are shared between the model (with
             payloads over its range) and these.
+        acceleration_hold_s: when positive, the commanded accelerations are means over a
+            hold of this length (``u = M_hold a + h``,
+            :func:`~safety_filter.dynamics.hold_mass_matrix` with the model's viscous
+            damping, as the filter computes them) instead of initial accelerations
+            (``u = M a + h``); the rollouts still last ``hold_period_s``.
     """
     rng = np.random.default_rng(seed)
     n = model.n_joints
@@ -248,9 +254,14 @@ def estimate_sampling_margin(
     corner = rng.random((samples, n)) < 0.5
     pick = np.where(corner, np.round(pick), pick)
     accel = lo + pick * (hi - lo)
-    torque = np.einsum('nij,nj->ni', mass, accel) + bias
+    mean_over_hold = acceleration_hold_s > 0.0
+    commanding = (hold_mass_matrix(mass, model.viscous_friction, acceleration_hold_s)
+                  if mean_over_hold else mass)
+    torque = np.einsum('nij,nj->ni', commanding, accel) + bias
     torque = np.clip(torque, -umax, umax)
-    accel0 = np.linalg.solve(mass, (torque - bias)[..., None])[..., 0]
+    commanded = np.linalg.solve(commanding, (torque - bias)[..., None])[..., 0]
+    accel0 = (np.linalg.solve(mass, (torque - bias)[..., None])[..., 0] if mean_over_hold
+              else commanded)
     # Coulomb friction is held at its direction at the sample for the whole hold (the
     # torque compensates it exactly, as at the sample): friction only ever opposes the
     # motion, and where a joint's velocity reaches zero within the hold, friction that
@@ -260,7 +271,7 @@ def estimate_sampling_margin(
     plant.hold_coulomb_direction(v)
     # A sample whose clipped torque leaves the bounds is not a command the filter sends.
     tolerance = 1e-9 * (1.0 + np.abs(hi) + np.abs(lo))
-    sendable = np.all((accel0 >= lo - tolerance) & (accel0 <= hi + tolerance), axis=1)
+    sendable = np.all((commanded >= lo - tolerance) & (commanded <= hi + tolerance), axis=1)
     # What is checked (docs/method.md, sampled data): that the state stays in S for the
     # whole hold. S is invariant under the sampled filter when every state of S, under every
     # command the filter may send there, stays in S until the next step (where the QP is
@@ -270,8 +281,15 @@ def estimate_sampling_margin(
     shortfall = np.zeros(n)
     # RK4 is stable for step * rate <= 2.78; the fastest damping mode of the arms is at most
     # max |M^-1| D (row sums): take enough substeps for it.
-    rate = max(_damping_rate(model), *(_damping_rate(other) for other, _ in plants))
+    rate = max([_damping_rate(model), *(_damping_rate(other) for other, _ in plants)])
     substeps = max(substeps, int(math.ceil(hold_period_s * rate / 2.0)))
+    # With mean accelerations over a control period the velocity barriers are checked where
+    # the filter acts again, at the ends of the periods within the hold (between them the
+    # damped response is front-loaded: the plan holds at the period's end, not within it);
+    # the positions at every substep.
+    periods = max(1, round(hold_period_s / acceleration_hold_s)) if mean_over_hold else 0
+    if periods:
+        substeps = periods * int(math.ceil(substeps / periods))
     dt = hold_period_s / substeps
     qk, vk = q, v
     k1v = accel0
@@ -287,9 +305,16 @@ def estimate_sampling_margin(
         vk = vk + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v)
         k1v = plant.acceleration(qk, vk, torque)  # the acceleration now; next step's k1
         now = gains.barriers(model, qk, vk, 0.0)
-        lowest = np.minimum(np.minimum(now.barrier_upper, now.barrier_lower),
-                            np.minimum(now.speed_upper, now.speed_lower))
-        if sendable.any():
+        if not sendable.any():
+            continue
+        if not periods or step % (substeps // periods) == 0:
+            lowest = np.minimum(np.minimum(now.barrier_upper, now.barrier_lower),
+                                np.minimum(now.speed_upper, now.speed_lower))
             shortfall = np.maximum(shortfall,
                                    np.max(-lowest[sendable], axis=0) / (step * dt))
+        if periods:
+            # a position short by x at time t lacked 2 x / t^2 of acceleration
+            position = np.minimum(now.margin_upper, now.margin_lower)
+            shortfall = np.maximum(shortfall, 2.0 * np.max(-position[sendable], axis=0)
+                                   / (step * dt) ** 2)
     return margin + inflation * shortfall

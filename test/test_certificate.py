@@ -135,3 +135,24 @@ def test_a_different_urdf_is_the_remaining_cause(planar2: tuple) -> None:
     text = cause(certificate, RobotModel.from_urdf(heavier, limits=limits))
     assert text.startswith('the URDF differs')
     assert 'certify this one again' in text
+
+
+def test_the_hold_of_mean_accelerations_is_kept_and_covered_by_the_id(
+        planar2: tuple, tmp_path: Path) -> None:
+    """acceleration_hold_s survives the parameter file, changes the id when set (a
+    certificate without it keeps its id), and an invalid value is refused."""
+    import dataclasses
+
+    from safety_filter.certificate import CertificateError
+
+    model, certificate, _, _ = planar2
+    assert certificate.acceleration_hold_s is None
+    assert 'acceleration_hold_s' not in certificate.to_parameters()
+    held = dataclasses.replace(certificate, acceleration_hold_s=0.001)
+    assert held.certificate_id != certificate.certificate_id
+    loaded = Certificate.load(held.save(tmp_path / 'held.yaml'), model)
+    assert loaded.acceleration_hold_s == 0.001
+    assert loaded.certificate_id == held.certificate_id
+    for bad in (0.0, -1.0, float('nan')):
+        with pytest.raises(CertificateError, match='acceleration_hold_s'):
+            dataclasses.replace(certificate, acceleration_hold_s=bad)

@@ -530,3 +530,37 @@ def test_shape_errors_raise_value_error() -> None:
 def test_unknown_backend_is_rejected() -> None:
     with pytest.raises(ValueError, match='backend'):
         Dynamics(load_demo('planar2'), backend='casadi')
+
+
+@pytest.mark.parametrize('damping_scale', [0.0, 0.05, 30.0])
+def test_hold_mass_matrix_is_the_exact_zero_order_hold(damping_scale: float) -> None:
+    """dynamics.hold_mass_matrix: a torque u held for T moves v by exactly T abar with
+    u = M_hold abar + D v0 (M frozen, no other forces), checked against SciPy's matrix
+    exponential of the augmented system [[-M^-1 D, I], [0, 0]] (the standard zero-order-hold
+    discretisation, Van Loan's method); M_hold is symmetric and equals M without damping.
+    Both the series branch (small ||M^-1 D T||) and the eigen branch are covered."""
+    from scipy.linalg import expm
+
+    from safety_filter.dynamics import hold_mass_matrix
+
+    rng = np.random.default_rng(3)
+    n, hold = 5, 0.002
+    root = rng.normal(size=(n, n))
+    mass = root @ root.T + 0.05 * np.eye(n)
+    damping = damping_scale * rng.uniform(0.2, 1.0, n)
+    held = hold_mass_matrix(mass, damping, hold)
+    np.testing.assert_allclose(held, held.T, atol=1e-12)
+    decay = np.linalg.solve(mass, np.diag(damping))
+    augmented = np.zeros((2 * n, 2 * n))
+    augmented[:n, :n] = -decay
+    augmented[:n, n:] = np.eye(n)
+    transition = expm(augmented * hold)
+    for _ in range(3):
+        u, v0 = rng.normal(size=n), rng.normal(size=n)
+        v_end = transition[:n, :n] @ v0 + transition[:n, n:] @ np.linalg.solve(mass, u)
+        mean = (v_end - v0) / hold
+        np.testing.assert_allclose(held @ mean + damping * v0, u, rtol=1e-6, atol=1e-9)
+    if damping_scale == 0.0:
+        np.testing.assert_array_equal(held, mass)
+    batch = hold_mass_matrix(np.stack([mass, 2.0 * mass]), damping, hold)
+    np.testing.assert_allclose(batch[0], held, rtol=1e-12)

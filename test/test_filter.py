@@ -212,6 +212,49 @@ def test_filtered_answers_meet_the_bounds() -> None:
         assert out.active_upper.dtype == bool and out.active_upper.shape == (filt.n,)
 
 
+def test_mean_accelerations_over_the_hold_meet_the_bounds() -> None:
+    """With a certificate that bounds mean accelerations over a hold, every filtered step's
+    mean acceleration over that hold, M_hold^-1 (u - h) (dynamics.hold_mass_matrix), is
+    inside [An, Ap], and the torques differ from those of the start-of-hold form (the demo
+    arm's damping is made strong for the test: 50 times its own)."""
+    from safety_filter.dynamics import hold_mass_matrix
+
+    import yaml
+
+    from safety_filter.demo_arms import demo_arm_files
+    from safety_filter.model import RobotModel
+
+    model, certificate = demo_arm_and_certificate('planar2')
+    urdf, limits = demo_arm_files('planar2')
+    spec = yaml.safe_load(open(limits, encoding='utf-8'))
+    spec['joints'] = {name: {'viscous_friction': 50.0 * float(d)}
+                      for name, d in zip(model.joint_names, model.viscous_friction)}
+    damped = RobotModel.from_urdf(urdf, limits=spec)
+    held_certificate = replace(certificate, acceleration_hold_s=0.002,
+                               viscous_friction=damped.viscous_friction,
+                               model_hash=damped.content_hash())
+    held = SafetyFilter(damped, held_certificate, observer_time_constant_s=0.0)
+    plain = SafetyFilter(damped, replace(held_certificate, acceleration_hold_s=None),
+                         observer_time_constant_s=0.0)
+    rng = np.random.default_rng(5)
+    differ = 0
+    for _ in range(40):
+        q, v = random_state_in_safe_set(rng, certificate)
+        u = random_nominal(rng, certificate)
+        out = held.step(q, v, u)
+        if out.mode is not FilterMode.FILTERED:
+            continue
+        mass, bias = held.dynamics.mass_and_bias(q, v)
+        mean = np.linalg.solve(hold_mass_matrix(mass, damped.viscous_friction, 0.002),
+                               out.torque - bias)
+        bounds = held.constraint_bounds(q, v)
+        slack = 1e-6 * np.maximum(1.0, held.usable_authority)
+        assert np.all(mean <= bounds.accel_upper + slack)
+        assert np.all(mean >= bounds.accel_lower - slack)
+        differ += not np.allclose(out.torque, plain.step(q, v, u).torque, atol=1e-9)
+    assert differ > 5
+
+
 def test_outputs_are_fresh_arrays() -> None:
     """Outputs do not alias the filter's buffers or the caller's inputs: a caller may keep
     them across steps (and the filter does not mutate the inputs)."""
