@@ -103,11 +103,11 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
     where ``speed_beta > 0`` the velocity barriers ``sp = vS - v``, ``sn = vS + v`` bound
     ``Ap`` by ``speed_beta sp - margin`` and ``An`` by ``-speed_beta sn + margin``; elsewhere
     ``sp = sn = inf``. Outside S on a side, moving toward that limit,
-    ``Ap <= -v^2 / (2 hp) - margin`` (``An >= v^2 / (2 hn) + margin``): the braking curve. ``Ap <= accel_bound``,
-    ``An >= -accel_bound`` where the barriers' bounds leave room (outside S a push back may
-    need more); inf: no bound.
-    ``smallest[i]`` is the smallest of the joint's barriers. Returns the
-    smallest of those over all joints and the smallest position margin ``min(hp, hn)``.
+    ``Ap <= -v^2 / (2 hp) - margin`` (``An >= v^2 / (2 hn) + margin``): the braking curve.
+    ``Ap <= accel_bound``, ``An >= -accel_bound`` where the barriers' bounds leave room
+    (outside S a push back may need more); inf: no bound. ``smallest[i]`` is the smallest of
+    the joint's barriers. Returns the smallest of those over all joints and the smallest
+    position margin ``min(hp, hn)``.
     """
     worst = math.inf
     deepest = math.inf

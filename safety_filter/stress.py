@@ -237,8 +237,8 @@ def run_failures(summary: dict[str, Any], rules: VerdictRules, effort_limit: np.
 
 
 def return_time_bounds(log: PlantLog, pushes: Sequence[Push], certificate: Certificate,
-                       recovery: Sequence[float | None], period_s: float, allowance_s: float
-                       ) -> list[float | None]:
+                       recovery: Sequence[float | None], period_s: float, allowance_s: float,
+                       tolerance: float = 0.0) -> list[float | None]:
     """Per push: the time from its end within which the certificate says the state is back
     in S (:meth:`Certificate.recovery_time`), or None where that statement does not apply.
 
@@ -250,7 +250,8 @@ def return_time_bounds(log: PlantLog, pushes: Sequence[Push], certificate: Certi
     step's time after the push plus its recovery time, plus ``allowance_s`` (the delay) and
     one period. It does not apply when, on the way, a position is past a limit or a state
     beyond the braking set (no time stated there), when the speeds are not back within the
-    domain by then, or when the state is in S at the push's end (None).
+    domain by then, or when the state is in S at the push's end (None). ``tolerance``: the
+    velocity tolerance of "back in S" (``recovery_times``), allowed on the domain too.
     """
     times = log.time_s
     starts = sorted(p.start_s for p in pushes)
@@ -268,7 +269,7 @@ def return_time_bounds(log: PlantLog, pushes: Sequence[Push], certificate: Certi
             continue
         # A push can leave the speeds beyond the certified domain for a few steps: the
         # statement applies from the step the state is back within it for good.
-        within = np.all(np.abs(v) <= certificate.velocity_bound, axis=1)
+        within = np.all(np.abs(v) <= certificate.velocity_bound + tolerance, axis=1)
         if not within[-1]:
             result.append(None)
             continue
@@ -511,7 +512,7 @@ class StressContext:
                                 settle_s=self.observer_settle_s)
         summary['recovery_bound_s'] = return_time_bounds(
             log, pushes, self.certificate, summary['recovery_s'], 1.0 / spec.rate_hz,
-            plant.delay_periods / spec.rate_hz)
+            plant.delay_periods / spec.rate_hz, tolerance=self.uncertainty.velocity_noise)
         failures = run_failures(summary, self.rules, np.array(self.model.effort_limit))
         summary.update(index=spec.index, plant=name, nominal=spec.nominal,
                        rate_hz=spec.rate_hz, passed=not failures, failures=failures,

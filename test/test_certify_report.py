@@ -175,12 +175,15 @@ def test_report_of_a_failed_certification_says_why(weak, tmp_path) -> None:
 
 def test_report_lists_the_designs_tried(planar2) -> None:
     """Every family certification tried is listed with its outcome, one of them chosen; the
-    certificate's own alpha1 is the chosen family's."""
+    certificate's own alpha1 is the chosen family's. On the damped demo arm the chosen
+    family is also tried with mean accelerations over the hold, and says so."""
     outcome, model = planar2
     cert = outcome.certificate
     lines = design_lines(cert, model)
     tried = cert.settings['designs_tried']
-    assert len(tried) == len(FAST.families) and len(lines) >= len(tried)
+    assert len(tried) == len(FAST.families) + 1 and len(lines) >= len(tried)
+    assert [entry['mean_over_hold'] for entry in tried] == [False] * len(FAST.families) + [True]
+    assert sum('mean acceleration over the hold' in line for line in lines) == 1
     chosen = [line for line in lines if ': chosen' in line]
     assert len(chosen) == 1 and chosen[0].startswith(cert.alpha1.kind)
     table = format_joint_table(outcome, model)

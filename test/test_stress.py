@@ -229,6 +229,18 @@ def test_return_time_bounds_on_a_hand_made_log(planar2) -> None:
     fast.v[4, 0] = fast.v[0, 0]  # not back within the domain when back in S
     assert stress.return_time_bounds(fast, [push], certificate, [4 * period], period,
                                      0.0) == [None]
+    # speeds just beyond the box (mid-range, where the box binds the elbow): the domain
+    # allows the velocity tolerance of "back in S"
+    boxed = stress.PlantLog(log.time_s[:4], np.tile(_mid(model), (4, 1)), np.zeros((4, 2)),
+                            *[np.zeros((4, 2))] * 7, log.mode[:4], log.margin[:4])
+    boxed.v[:, 1] = certificate.velocity_bound[1] + np.array([0.02, 0.015, 0.008, 0.004])
+    assert stress.return_time_bounds(boxed, [push], certificate, [3 * period], period,
+                                     0.0) == [None]
+    needed = np.max(certificate.recovery_time(boxed.q[2:], boxed.v[2:]), axis=1)
+    assert np.all(np.isfinite(needed))
+    within = float(np.max(np.arange(2, 4) * period + needed)) + period
+    assert stress.return_time_bounds(boxed, [push], certificate, [3 * period], period,
+                                     0.0, tolerance=0.01) == [pytest.approx(within)]
     beyond = stress.PlantLog(log.time_s, q.copy(), v.copy(), *[np.zeros((steps, 2))] * 7,
                              log.mode, log.margin)
     beyond.q[2, 1] = model.position_upper[1] - 1e-4  # far too fast to stop there
