@@ -23,8 +23,12 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from safety_filter.dynamics import (christoffel_batch, hold_mass_matrix, mass_matrix_batch,
-                                    rnea_batch)
+from safety_filter.dynamics import (
+    christoffel_batch,
+    hold_mass_matrix,
+    mass_matrix_batch,
+    rnea_batch,
+)
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
 
