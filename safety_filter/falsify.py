@@ -8,11 +8,11 @@ the exact feasibility problem
     exists u with |u| <= umax and An + delta <= M^-1 (u - h) <= Ap - delta
 
 (docs/method.md; ``M`` is the mass matrix of the mean acceleration over the hold where the
-certificate bounds those, ``dynamics.hold_mass_matrix``). Two cheap witnesses are tried first for every state (the acceleration nearest
-zero inside the bounds, and the one nearest free fall); a witness whose torque is inside the
-box proves feasibility. Every state where both witnesses fail, and the states where they
-have the least slack, go to an exact linear program solved by HiGHS through SciPy - a solver
-the filter does not use. The smallest LP slack is reported as a fraction of the torque limits.
+certificate bounds those, ``dynamics.hold_mass_matrix``). Two cheap witnesses are tried
+first for every state (the acceleration nearest zero inside the bounds, and the one nearest
+free fall); a witness whose torque is inside the box proves feasibility. Every state where
+both witnesses fail, and the states where they have the least slack, go to an exact linear
+program solved by HiGHS through SciPy - a solver the filter does not use. The smallest LP slack is reported as a fraction of the torque limits.
 """
 
 from __future__ import annotations

@@ -217,11 +217,10 @@ def test_mean_accelerations_over_the_hold_meet_the_bounds() -> None:
     mean acceleration over that hold, M_hold^-1 (u - h) (dynamics.hold_mass_matrix), is
     inside [An, Ap], and the torques differ from those of the start-of-hold form (the demo
     arm's damping is made strong for the test: 50 times its own)."""
-    from safety_filter.dynamics import hold_mass_matrix
-
     import yaml
 
     from safety_filter.demo_arms import demo_arm_files
+    from safety_filter.dynamics import hold_mass_matrix
     from safety_filter.model import RobotModel
 
     model, certificate = demo_arm_and_certificate('planar2')
