@@ -12,7 +12,8 @@ certificate bounds those, ``dynamics.hold_mass_matrix``). Two cheap witnesses ar
 first for every state (the acceleration nearest zero inside the bounds, and the one nearest
 free fall); a witness whose torque is inside the box proves feasibility. Every state where
 both witnesses fail, and the states where they have the least slack, go to an exact linear
-program solved by HiGHS through SciPy - a solver the filter does not use. The smallest LP slack is reported as a fraction of the torque limits.
+program solved by HiGHS through SciPy - a solver the filter does not use. The smallest LP
+slack is reported as a fraction of the torque limits.
 """
 
 from __future__ import annotations
