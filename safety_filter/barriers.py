@@ -166,6 +166,7 @@ def recovery_time_bound(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: 
     ``w <= min(vS, gamma alpha1(H(w)))``, which it reaches within
     ``integral_w^v0 du / g(u)``; the statement needs ``H(w) >= 0`` (the position kept). A
     joint back in S stays there (the bounds at the boundary of S are within the authority).
+    Where the drift may take the whole authority (``e <= drift``) there is no statement.
     """
     q, v = np.asarray(q, dtype=float), np.asarray(v, dtype=float)
     speed = np.abs(v)
@@ -191,6 +192,8 @@ def recovery_time_bound(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: 
         # the first grid speed below v0 at which the joint is surely back (w = 0 at worst)
         first = samples - 1 - np.argmax(inside[..., ::-1], axis=-1)
         found = np.take_along_axis(inside, first[..., None], axis=-1)[..., 0]
+        # where the drift may eat the whole authority, nothing is guaranteed
+        found &= floor.authority > 0.0
         time = np.take_along_axis(time_left, first[..., None], axis=-1)[..., 0]
     low, high = safe_velocity_interval(q, lower, upper, gamma, alpha1, speed_bound, speed_beta)
     in_s = (v >= low) & (v <= high) & inside_limits
@@ -212,13 +215,15 @@ def worst_recovery_time(speed: np.ndarray, position_range: np.ndarray, gamma: np
                         samples: int = 400) -> np.ndarray:
     """An upper bound of :func:`recovery_time_bound` over the positions within the limits at
     speeds up to ``speed``: the slowest deceleration floor (``alpha1'`` at the full range,
-    no credit for the depth of ``bp``) taken from ``speed`` down to a stop."""
+    no credit for the depth of ``bp``) taken from ``speed`` down to a stop; inf where the
+    drift may take the whole authority."""
     floor = _DecelerationFloor(gamma * alpha1.derivative(np.asarray(position_range, float)),
                                np.inf, np.inf, beta, alpha2, authority, margin, drift_share,
                                speed_bound, speed_beta, samples)
     speed = np.asarray(speed, dtype=float)
     with np.errstate(divide='ignore', invalid='ignore'):
-        return floor.time(np.zeros_like(speed), speed)
+        time = floor.time(np.zeros_like(speed), speed)
+    return np.where(floor.authority > 0.0, time, np.inf)
 
 
 class _DecelerationFloor:

@@ -177,9 +177,11 @@ def _recovery_line(cert: Any) -> str:
     if not cert.certified:
         return ''
     times = cert.worst_recovery_time()
-    listed = ', '.join(f'{name} {_fmt(t)}' for name, t in zip(cert.joint_names, times))
+    listed = ', '.join(f'{name} {_fmt(t) if math.isfinite(t) else "none"}'
+                       for name, t in zip(cert.joint_names, times))
     return ('recovery: from outside S (within the braking set of the usable authority, '
-            f'speeds within v_cert) back in S within [s]: {listed}')
+            f'speeds within v_cert) back in S within [s]: {listed} (none: the drift the '
+            'margin covers may take all of the usable authority)')
 
 
 def _verdict(outcome: CertificationOutcome) -> str:
