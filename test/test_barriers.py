@@ -230,3 +230,25 @@ def test_outside_s_the_bounds_ask_for_the_braking_curve() -> None:
     assert mirrored.accel_lower[0] == pytest.approx(1.0 / 0.2 + margin)
     past = bounds(1.1, 1.0)
     assert past.accel_upper[0] == pytest.approx(plain(1.1, 1.0))
+
+
+def test_no_recovery_time_where_the_drift_may_take_the_authority() -> None:
+    """With the usable authority below the drift the margin covers (two thirds of it), no
+    deceleration is guaranteed at the authority: recovery_time_bound and worst_recovery_time
+    give inf (no statement); well above it they are finite."""
+    import numpy as np
+
+    from safety_filter.barriers import recovery_time_bound, worst_recovery_time
+
+    alpha = ClassK('linear')
+    q, v = np.array([0.5, 0.5]), np.array([0.6, 0.6])  # outside S: gamma h = 0.5
+    authority = np.array([1.9, 4.0])  # against 2/3 of a margin of 3: 2.0
+    margin = np.array([3.0, 3.0])
+    found = recovery_time_bound(q, v, np.array([-1.0, -1.0]), np.array([1.0, 1.0]),
+                                np.array([1.0, 1.0]), np.array([20.0, 20.0]), alpha, alpha,
+                                authority, margin)
+    assert math.isinf(found[0]) and math.isfinite(found[1]) and found[1] > 0.0
+    worst = worst_recovery_time(np.array([0.6, 0.6]), np.array([2.0, 2.0]),
+                                np.array([1.0, 1.0]), np.array([20.0, 20.0]), alpha, alpha,
+                                authority, margin)
+    assert math.isinf(worst[0]) and math.isfinite(worst[1])
