@@ -100,8 +100,8 @@ def summary_lines(result: StressResult, source: str) -> list[str]:
                      if rules.recovery_time_s is not None else
                      'after each push back in S within the certified return time where it '
                      f'applies ({judged} of {len(bounds)} pushes: the others stayed in S, or '
-                     'on the way back went past a position limit, beyond the certified '
-                     'speeds or beyond the braking set)')
+                     'on the way back went past a position limit or the certified speeds, '
+                     'or to states from which the certificate states no time)')
     return [
         f'robot: {context.model.name} ({context.model.n_joints} joints); certificate: '
         f'{source} (id {context.certificate.certificate_id})',
