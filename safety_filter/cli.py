@@ -109,6 +109,7 @@ def _certify_settings(args: argparse.Namespace) -> CertifySettings:
         falsifier_states=args.falsifier_states,
         bounds=bounds,
         seed=args.seed,
+        mean_over_hold={'auto': None, 'start': False, 'mean': True}[args.acceleration_form],
         **extra)
 
 
@@ -254,6 +255,13 @@ def _add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         'period). Give 2 when the filter may step at half the control rate: '
                         'a larger margin, so less usable torque. The filter node warns when '
                         'its measured step period exceeds this hold')
+    method.add_argument('--acceleration-form', choices=('auto', 'start', 'mean'),
+                        default='auto',
+                        help='what the filter bounds on an arm with viscous damping: the '
+                        'acceleration at the start of each control period (start), its mean '
+                        'over the period, the exact response of the damped joints (mean), or '
+                        'whichever certifies the larger safe set (default: auto; see '
+                        'docs/method.md)')
     method.add_argument('--alpha1', choices=('auto',) + ALPHA1_KINDS, default='auto',
                         help='class-K family of the velocity barrier (default: auto, the '
                         'design with the largest safe set that certifies; see '

@@ -164,6 +164,7 @@ def test_malformed_limits_file_exits_2(tmp_path, capsys) -> None:
     ['--alpha1', 'atan', '--alpha1-scale', '-1'],
     ['--falsifier-states', '-5'],
     ['--sampling-factor', '0.5'],   # settings: a hold shorter than one period
+    ['--acceleration-form', 'end'],  # argparse: not a form
 ])
 def test_bad_options_exit_2(tmp_path, capsys, options) -> None:
     code = main(['certify', '--demo', 'planar2', *options, '--output', str(tmp_path / 'x.yaml')])
@@ -189,3 +190,13 @@ def test_sampling_factor_reaches_the_settings(capsys) -> None:
     assert default.sampling_factor == 1.0
     assert main(['certify', '--help']) == 0
     assert '--sampling-factor' in capsys.readouterr().out
+
+
+@pytest.mark.parametrize('form, expected', [('auto', None), ('start', False), ('mean', True)])
+def test_acceleration_form_reaches_the_settings(form: str, expected: bool | None) -> None:
+    from safety_filter.cli import _certify_settings, build_parser
+
+    args = build_parser().parse_args(['certify', '--demo', 'planar2',
+                                      '--acceleration-form', form])
+    settings = _certify_settings(args)
+    assert settings.mean_over_hold is expected
