@@ -39,7 +39,12 @@ from safety_filter.bounds import BoundSettings, DynamicsBounds, estimate_bounds
 from safety_filter.certificate import DEFAULT_OBSERVER_PERIODS, Certificate
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
-from safety_filter.sampling import Gains, estimate_sampling_margin, sampled_inverse_mass
+from safety_filter.sampling import (
+    Gains,
+    estimate_sampling_margin,
+    estimate_sampling_margins,
+    sampled_inverse_mass,
+)
 from safety_filter.uncertainty import (
     DisturbanceBound,
     disturbance_bound,
@@ -110,6 +115,9 @@ class CertifySettings:
             damped joints, ``hold_mass_matrix``); False: the acceleration at the start of
             the hold; None (default): certification tries both and keeps the larger safe
             set.
+        rest_speed_share: a joint slower than this share of its velocity bound counts as at
+            rest, and its bounds are tightened by the (smaller) margin it needs there; 0:
+            one margin at every speed.
     """
 
     alpha1: ClassK | None = None
@@ -138,6 +146,7 @@ class CertifySettings:
     delay_periods: int | None = None
     margin_plants: int = 3
     mean_over_hold: bool | None = None
+    rest_speed_share: float = 0.05
 
     def __post_init__(self) -> None:
         if self.alpha1 is not None and self.alpha1.kind not in ALPHA1_KINDS:
@@ -732,6 +741,8 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         velocity_beta=speed_beta,
         acceleration_bound=accel_bound,
         acceleration_hold_s=settings.acceleration_hold_s(model) or None,
+        rest_speed=chosen.rest_speed if design is not None else None,
+        rest_margin=chosen.rest_margin if design is not None else None,
         gamma=gamma,
         gamma_star=g_star,
         beta=beta,
@@ -791,6 +802,8 @@ class _Attempt:
     design: _Design | None = None
     last_design: _Design | None = None
     mean_over_hold: bool = False
+    rest_speed: np.ndarray | None = None
+    rest_margin: np.ndarray | None = None
     margin: np.ndarray | None = None
     candidates: dict = field(default_factory=dict)
     betas: tuple = ()
@@ -807,6 +820,32 @@ class _Attempt:
             entry['envelope_fraction'] = _plain(envelope_fraction(model, shown))
             entry['safe_set_area'] = _plain(safe_set_areas(model, shown))
         return entry
+
+
+def _margin_at_rest(model: RobotModel, design: _Design, beta: np.ndarray,
+                    margin: np.ndarray, settings: CertifySettings,
+                    plants: list[tuple[RobotModel, float]]
+                    ) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """The speed up to which a joint counts as at rest (``rest_speed_share`` of its velocity
+    bound) and the sampled-data margin it needs there, settled by rollouts at the final
+    gains as the margin is (docs/method.md, margin at rest); ``(None, None)`` when the share
+    is 0 or the rollouts do not settle."""
+    if settings.rest_speed_share <= 0.0:
+        return None, None
+    rest_speed = settings.rest_speed_share * np.asarray(design.velocity_box, dtype=float)
+    gains = Gains(design.gamma, beta, design.alpha1, settings.alpha2, design.velocity_box,
+                  design.speed_beta, design.accel_bound)
+    rest_margin = np.zeros(model.n_joints)
+    for _ in range(6):
+        _, needed = estimate_sampling_margins(
+            model, gains, settings.hold_period_s, settings.margin_samples,
+            inflation=settings.margin_inflation, current_margin=margin, seed=settings.seed,
+            plants=plants, acceleration_hold_s=settings.acceleration_hold_s(model),
+            rest_speed=rest_speed, current_rest_margin=rest_margin)
+        if np.all(needed <= rest_margin * (1.0 + 1e-9)):
+            return rest_speed, rest_margin
+        rest_margin = np.minimum(np.maximum(rest_margin, 1.05 * needed), margin)
+    return None, None
 
 
 def margin_plants(model: RobotModel, settings: CertifySettings) -> list[tuple[RobotModel, float]]:
@@ -947,6 +986,10 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
     b_star, b_floor, b_cap, beta = _choose_beta(design, margin, r, settings)
     seconds['gains'] = seconds.get('gains', 0.0) + time.perf_counter() - clock
     attempt.betas = (b_star, b_floor, b_cap, beta)
+    clock = time.perf_counter()
+    attempt.rest_speed, attempt.rest_margin = _margin_at_rest(
+        model, design, beta, margin, settings, plants)
+    seconds['sampling margin'] += time.perf_counter() - clock
     for i in np.flatnonzero(b_floor > b_cap):
         notes.append(f'joint {names[i]!r}: beta is held at the sampled-data cap '
                      f'{b_cap[i]:.4g}, below the floor {b_floor[i]:.4g} at which the bound '
