@@ -184,6 +184,16 @@ def _recovery_line(cert: Any) -> str:
             'margin covers may take all of the usable authority)')
 
 
+def _rest_line(cert: Any) -> str:
+    """The margin at rest per joint (Certificate.rest_margin), or '' without one."""
+    if cert.rest_margin is None:
+        return ''
+    listed = ', '.join(f'{name} {_fmt(m)} below {_fmt(r)}' for name, m, r in zip(
+        cert.joint_names, cert.rest_margin, cert.rest_speed))
+    return ('margin at rest: a slow joint has its bounds tightened by the margin it needs '
+            f'there [rad/s^2] instead of the margin, below a speed [rad/s]: {listed}')
+
+
 def _verdict(outcome: CertificationOutcome) -> str:
     return 'CERTIFIED' if outcome.certified else 'NOT CERTIFIED'
 
@@ -280,6 +290,7 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
     lines += textwrap.wrap(_falsifier_line(outcome), TABLE_WIDTH,
                            subsequent_indent='  ')
     lines += textwrap.wrap(_recovery_line(cert), TABLE_WIDTH, subsequent_indent='  ')
+    lines += textwrap.wrap(_rest_line(cert), TABLE_WIDTH, subsequent_indent='  ')
     lines += textwrap.wrap(_seconds_line(outcome.stage_seconds), TABLE_WIDTH,
                            subsequent_indent='  ')
     designs = design_lines(cert, model)
@@ -699,7 +710,9 @@ def _html_page(outcome: CertificationOutcome, model: RobotModel,
         ('velocity scale', _scale_line(outcome).split(': ', 1)[1]),
         ('falsifier', falsifier_text),
         ('stage timings', _seconds_line(outcome.stage_seconds).split(': ', 1)[1]),
-    ] + ([('recovery', _recovery_line(cert).split(': ', 1)[1])] if cert.certified else [])))
+    ] + ([('recovery', _recovery_line(cert).split(': ', 1)[1])] if cert.certified else [])
+        + ([('margin at rest', _rest_line(cert).split(': ', 1)[1])]
+           if cert.rest_margin is not None else [])))
     designs = design_lines(cert, model)
     if designs:
         parts.append('<h2>Designs tried</h2>')
