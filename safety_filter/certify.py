@@ -717,6 +717,8 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     if design is None or reasons:
         gamma = np.where(gamma > 0, gamma, 0.0)
     certified = not reasons
+    dissipation = (_dissipation_record(model, chosen, settings)
+                   if design is not None else {})
     provenance = {
         **bounds.record(),
         'certify': settings.record(),
@@ -730,6 +732,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'uncertainty': model.uncertainty.record(),
         'observer_time_constants_s': _plain(observer_time_constants(model, bounds, settings)),
         **_model_error_record(model, bounds, settings, design or last_design),
+        **dissipation,
     }
     certificate = Certificate(
         joint_names=names,
@@ -1047,6 +1050,34 @@ def _model_error_record(model: RobotModel, bounds: DynamicsBounds, settings: Cer
         best, _ = search_velocity_box(model, bounds, settings, kind, exact_model)
         record[f'velocity_fraction_{label}_uncertainty'] = (
             None if best is None else _plain(envelope_fraction(model, best)))
+    return record
+
+
+def _dissipation_record(model: RobotModel, chosen: _Attempt, settings: CertifySettings
+                        ) -> dict[str, Any]:
+    """What the one-sided treatment of friction and damping gives back, for the report: the
+    sampled-data margin the chosen design would need if Coulomb friction could push a joint
+    on through zero velocity (``sign(v)`` re-evaluated within the hold), and, when the
+    design bounds mean accelerations over the hold, if it bounded those at the start of the
+    hold; one rollout pass each at the certified gains (docs/method.md, dissipation)."""
+    design, margin = chosen.design, chosen.margin
+    coulomb = np.any(np.array(model.coulomb_friction) > 0.0)
+    if design is None or margin is None or not (coulomb or chosen.mean_over_hold):
+        return {}
+    gains = Gains(design.gamma, chosen.betas[3], design.alpha1, settings.alpha2,
+                  design.velocity_box, design.speed_beta, design.accel_bound)
+    common = dict(samples=settings.margin_samples, inflation=settings.margin_inflation,
+                  current_margin=margin, seed=settings.seed,
+                  plants=margin_plants(model, settings))
+    record: dict[str, Any] = {}
+    hold = settings.acceleration_hold_s(model)
+    if coulomb:
+        record['margin_if_friction_flipped'] = _plain(estimate_sampling_margins(
+            model, gains, settings.hold_period_s, acceleration_hold_s=hold,
+            coulomb_held=False, **common)[0])
+    if chosen.mean_over_hold:
+        record['margin_at_start_of_hold'] = _plain(estimate_sampling_margin(
+            model, gains, settings.hold_period_s, acceleration_hold_s=0.0, **common))
     return record
 
 

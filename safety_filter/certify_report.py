@@ -194,6 +194,28 @@ def _rest_line(cert: Any) -> str:
             f'there [rad/s^2] instead of the margin, below a speed [rad/s]: {listed}')
 
 
+def dissipation_line(cert: Any) -> str:
+    """What the one-sided treatment of friction and damping gives back per joint: the
+    sampled-data margin the design would need were friction able to push a joint on through
+    zero speed, and (mean-acceleration designs) with accelerations at the start of the hold,
+    beside the certified margin; '' when the certificate records neither."""
+    settings = cert.settings if isinstance(cert.settings, dict) else {}
+    parts = []
+    for key, text in (('margin_if_friction_flipped', 'if Coulomb friction could push a joint '
+                       'through zero speed'),
+                      ('margin_at_start_of_hold', 'with accelerations at the start of the '
+                       'hold')):
+        values = settings.get(key)
+        if values:
+            listed = ', '.join(f'{name} {_fmt(x)}' for name, x in zip(cert.joint_names,
+                                                                       values))
+            parts.append(f'{text}: {listed}')
+    if not parts:
+        return ''
+    return ('dissipation: friction and damping only slow a joint; counted so, the margin is '
+            'the certified one [rad/s^2]; the margin the design would need ' + '; '.join(parts))
+
+
 def _verdict(outcome: CertificationOutcome) -> str:
     return 'CERTIFIED' if outcome.certified else 'NOT CERTIFIED'
 
@@ -291,6 +313,7 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
                            subsequent_indent='  ')
     lines += textwrap.wrap(_recovery_line(cert), TABLE_WIDTH, subsequent_indent='  ')
     lines += textwrap.wrap(_rest_line(cert), TABLE_WIDTH, subsequent_indent='  ')
+    lines += textwrap.wrap(dissipation_line(cert), TABLE_WIDTH, subsequent_indent='  ')
     lines += textwrap.wrap(_seconds_line(outcome.stage_seconds), TABLE_WIDTH,
                            subsequent_indent='  ')
     designs = design_lines(cert, model)
@@ -712,7 +735,9 @@ def _html_page(outcome: CertificationOutcome, model: RobotModel,
         ('stage timings', _seconds_line(outcome.stage_seconds).split(': ', 1)[1]),
     ] + ([('recovery', _recovery_line(cert).split(': ', 1)[1])] if cert.certified else [])
         + ([('margin at rest', _rest_line(cert).split(': ', 1)[1])]
-           if cert.rest_margin is not None else [])))
+           if cert.rest_margin is not None else [])
+        + ([('dissipation', dissipation_line(cert).split(': ', 1)[1])]
+           if dissipation_line(cert) else [])))
     designs = design_lines(cert, model)
     if designs:
         parts.append('<h2>Designs tried</h2>')

@@ -218,6 +218,7 @@ def estimate_sampling_margins(
     acceleration_hold_s: float = 0.0,
     rest_speed: np.ndarray | None = None,
     current_rest_margin: np.ndarray | None = None,
+    coulomb_held: bool = True,
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """Acceleration margins ``delta`` [rad/s^2] per joint covering one hold period: the
     margin, and with ``rest_speed`` the margin for a joint whose speed is within it (a
@@ -253,6 +254,10 @@ def estimate_sampling_margins(
             about half of their joints' speeds within it.
         current_rest_margin: the margin at rest the commanded accelerations already
             respect (default ``current_margin``).
+        coulomb_held: hold each joint's Coulomb friction at its direction at the sample
+            (physical, see below); False re-evaluates ``sign(v)`` within the hold, as if
+            friction could push a joint on through zero velocity (only to report what the
+            one-sided treatment gives back).
     """
     rng = np.random.default_rng(seed)
     n = model.n_joints
@@ -313,7 +318,8 @@ def estimate_sampling_margins(
     # sticks it or reverses would slow it further than the held friction does
     # (docs/method.md, dissipation); ``sign(v)`` re-evaluated would flip it at zero velocity,
     # which no physical friction does.
-    plant.hold_coulomb_direction(v)
+    if coulomb_held:
+        plant.hold_coulomb_direction(v)
     # A sample whose clipped torque leaves the bounds is not a command the filter sends.
     tolerance = 1e-9 * (1.0 + np.abs(hi) + np.abs(lo))
     sendable = np.all((commanded >= lo - tolerance) & (commanded <= hi + tolerance), axis=1)

@@ -102,6 +102,15 @@ def test_drag6_certifies_at_1khz() -> None:
     assert not any(entry['outcome'].startswith('c') for entry in tried
                    if not entry['mean_over_hold'])  # the start-of-hold form does not certify
     assert certificate.falsifier['infeasible'] == 0
+    # what counting friction and damping one-sidedly gives back, recorded for the report:
+    # friction that could push a joint through zero speed, or accelerations bounded at the
+    # start of the hold, would need a larger margin on every joint
+    flipped = np.array(certificate.settings['margin_if_friction_flipped'])
+    at_start = np.array(certificate.settings['margin_at_start_of_hold'])
+    assert np.all(flipped > certificate.sampling_margin)
+    assert np.all(at_start > certificate.sampling_margin)
+    from safety_filter.certify_report import format_joint_table
+    assert 'through zero speed' in ' '.join(format_joint_table(outcome, model).split())
 
 
 def _nominal(kind: str, model: RobotModel, payload: float):  # noqa: ANN202
