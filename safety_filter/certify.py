@@ -662,7 +662,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     for stage in ('bounds', 'authority', 'sampling margin', 'gains'):
         seconds[stage] = 0.0
     chosen: _Attempt | None = None
-    for form_index, mean in enumerate(forms):
+    for mean in forms:
         form = replace(settings, mean_over_hold=bool(mean))
         clock = time.perf_counter()
         bounds = all_bounds[bool(mean)] = estimate_bounds(
@@ -717,8 +717,14 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     if design is None or reasons:
         gamma = np.where(gamma > 0, gamma, 0.0)
     certified = not reasons
-    dissipation = (_dissipation_record(model, chosen, settings)
-                   if design is not None else {})
+    rest_speed = rest_margin = None
+    dissipation: dict[str, Any] = {}
+    if design is not None:
+        clock = time.perf_counter()
+        rest_speed, rest_margin = _margin_at_rest(model, design, chosen.betas[3], margin,
+                                                  settings, margin_plants(model, settings))
+        dissipation = _dissipation_record(model, chosen, settings)
+        seconds['sampling margin'] += time.perf_counter() - clock
     provenance = {
         **bounds.record(),
         'certify': settings.record(),
@@ -744,8 +750,8 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         velocity_beta=speed_beta,
         acceleration_bound=accel_bound,
         acceleration_hold_s=settings.acceleration_hold_s(model) or None,
-        rest_speed=chosen.rest_speed if design is not None else None,
-        rest_margin=chosen.rest_margin if design is not None else None,
+        rest_speed=rest_speed,
+        rest_margin=rest_margin,
         gamma=gamma,
         gamma_star=g_star,
         beta=beta,
@@ -805,8 +811,6 @@ class _Attempt:
     design: _Design | None = None
     last_design: _Design | None = None
     mean_over_hold: bool = False
-    rest_speed: np.ndarray | None = None
-    rest_margin: np.ndarray | None = None
     margin: np.ndarray | None = None
     candidates: dict = field(default_factory=dict)
     betas: tuple = ()
@@ -989,10 +993,6 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
     b_star, b_floor, b_cap, beta = _choose_beta(design, margin, r, settings)
     seconds['gains'] = seconds.get('gains', 0.0) + time.perf_counter() - clock
     attempt.betas = (b_star, b_floor, b_cap, beta)
-    clock = time.perf_counter()
-    attempt.rest_speed, attempt.rest_margin = _margin_at_rest(
-        model, design, beta, margin, settings, plants)
-    seconds['sampling margin'] += time.perf_counter() - clock
     for i in np.flatnonzero(b_floor > b_cap):
         notes.append(f'joint {names[i]!r}: beta is held at the sampled-data cap '
                      f'{b_cap[i]:.4g}, below the floor {b_floor[i]:.4g} at which the bound '
