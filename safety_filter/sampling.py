@@ -250,8 +250,9 @@ def estimate_sampling_margins(
             damping, as the filter computes them) instead of initial accelerations
             (``u = M a + h``); the rollouts still last ``hold_period_s``.
         rest_speed: per joint, the speed up to which the margin at rest applies (None: no
-            margin at rest; the second result is then None). A third of the samples get
-            about half of their joints' speeds within it.
+            margin at rest; the second result is then None), measured: the true speed may
+            be higher by the declared velocity noise, so the samples at rest reach that far.
+            A third of the samples get about half of their joints' speeds within it.
         current_rest_margin: the margin at rest the commanded accelerations already
             respect (default ``current_margin``).
         coulomb_held: hold each joint's Coulomb friction at its direction at the sample
@@ -267,7 +268,7 @@ def estimate_sampling_margins(
     resting = np.zeros(v.shape, dtype=bool)
     rest_margin = margin
     if rest_speed is not None:
-        rest_speed = np.asarray(rest_speed, dtype=float)
+        rest_speed = np.asarray(rest_speed, dtype=float) + model.uncertainty.velocity_noise
         rest_margin = margin if current_rest_margin is None else np.asarray(
             current_rest_margin, float)
         pick = (rng.random((samples, 1)) < 1.0 / 3.0) & (rng.random((samples, n)) < 0.5)
