@@ -94,15 +94,12 @@ def _alpha_slope(code: int, scale: float, x: float) -> float:
 @njit(**_JIT)
 def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndarray,
                  gamma: np.ndarray, beta: np.ndarray, margin: np.ndarray,
-                 rest_speed: np.ndarray, rest_margin: np.ndarray,
                  speed_bound: np.ndarray, speed_beta: np.ndarray, accel_bound: np.ndarray,
                  code1: int, scale1: float, code2: int, scale2: float,
                  rows: np.ndarray, smallest: np.ndarray) -> tuple[float, float]:
     """Barrier rows ``[hp; hn; bp; bn; Ap; An; sp; sn]`` into ``rows`` (8, n) (docs/method.md).
 
-    The same formulas, in the same order, as :func:`safety_filter.barriers.evaluate_barriers`
-    with the margin ``rest_margin`` for joints with ``|v| <= rest_speed`` (-1: never), else
-    ``margin`` (``Certificate.margin_at``):
+    The same formulas, in the same order, as :func:`safety_filter.barriers.evaluate_barriers`:
     where ``speed_beta > 0`` the velocity barriers ``sp = vS - v``, ``sn = vS + v`` bound
     ``Ap`` by ``speed_beta sp - margin`` and ``An`` by ``-speed_beta sn + margin``; elsewhere
     ``sp = sn = inf``. Outside S on a side, moving toward that limit,
@@ -118,26 +115,25 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
         hp = upper[i] - q[i]
         hn = q[i] - lower[i]
         g = gamma[i]
-        delta = rest_margin[i] if abs(v[i]) <= rest_speed[i] else margin[i]
         bp = g * _alpha(code1, scale1, hp) - v[i]
         bn = g * _alpha(code1, scale1, hn) + v[i]
         ap = beta[i] * _alpha(code2, scale2, bp) - g * _alpha_slope(code1, scale1, hp) * v[i] \
-            - delta
+            - margin[i]
         an = -beta[i] * _alpha(code2, scale2, bn) - g * _alpha_slope(code1, scale1, hn) * v[i] \
-            + delta
+            + margin[i]
         sp = math.inf
         sn = math.inf
         if speed_beta[i] > 0.0:
             sp = speed_bound[i] - v[i]
             sn = speed_bound[i] + v[i]
-            ap = min(ap, speed_beta[i] * sp - delta)
-            an = max(an, -speed_beta[i] * sn + delta)
+            ap = min(ap, speed_beta[i] * sp - margin[i])
+            an = max(an, -speed_beta[i] * sn + margin[i])
         # Outside S also the deceleration that stops the joint at its limit (v^2 / 2h): the
         # barriers' own return need not keep the position (docs/method.md, recovery).
         if v[i] > 0.0 and hp > 0.0 and (bp < 0.0 or sp < 0.0):
-            ap = min(ap, -v[i] * v[i] / (2.0 * hp) - delta)
+            ap = min(ap, -v[i] * v[i] / (2.0 * hp) - margin[i])
         elif v[i] < 0.0 and hn > 0.0 and (bn < 0.0 or sn < 0.0):
-            an = max(an, v[i] * v[i] / (2.0 * hn) + delta)
+            an = max(an, v[i] * v[i] / (2.0 * hn) + margin[i])
         # The bound limits what the barriers do not ask for: outside S a barrier's push
         # back may need more (then the bound gives way).
         bound = accel_bound[i]
@@ -161,8 +157,7 @@ def barrier_rows(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: np.ndar
 @njit(**_JIT)
 def stage_and_bound(q: np.ndarray, v: np.ndarray, u: np.ndarray, inputs: np.ndarray,
                     lower: np.ndarray, upper: np.ndarray, gamma: np.ndarray, beta: np.ndarray,
-                    margin: np.ndarray, rest_speed: np.ndarray, rest_margin: np.ndarray,
-                    speed_bound: np.ndarray, speed_beta: np.ndarray,
+                    margin: np.ndarray, speed_bound: np.ndarray, speed_beta: np.ndarray,
                     accel_bound: np.ndarray, code1: int, scale1: float, code2: int,
                     scale2: float,
                     rows: np.ndarray, smallest: np.ndarray) -> tuple[int, float, float]:
@@ -176,8 +171,8 @@ def stage_and_bound(q: np.ndarray, v: np.ndarray, u: np.ndarray, inputs: np.ndar
     if flags:
         return flags, math.nan, math.nan
     worst, deepest = barrier_rows(inputs[0], inputs[1], lower, upper, gamma, beta, margin,
-                                  rest_speed, rest_margin, speed_bound, speed_beta,
-                                  accel_bound, code1, scale1, code2, scale2, rows, smallest)
+                                  speed_bound, speed_beta, accel_bound, code1, scale1, code2,
+                                  scale2, rows, smallest)
     return 0, worst, deepest
 
 

@@ -140,8 +140,7 @@ def recovery_time_bound(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: 
                         authority: np.ndarray, margin: np.ndarray,
                         speed_bound: np.ndarray | None = None,
                         speed_beta: np.ndarray | None = None, drift_share: float = 2.0 / 3.0,
-                        samples: int = 400, least_margin: np.ndarray | None = None
-                        ) -> np.ndarray:
+                        samples: int = 400) -> np.ndarray:
     """Per joint: the time [s] within which a joint outside S is back in S, whichever way the
     filter returns it (``docs/method.md``, recovery); 0 where the joint is in S, inf where its
     position is past a limit or the bound below cannot show that it stops before the limit
@@ -168,8 +167,6 @@ def recovery_time_bound(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: 
     ``integral_w^v0 du / g(u)``; the statement needs ``H(w) >= 0`` (the position kept). A
     joint back in S stays there (the bounds at the boundary of S are within the authority).
     Where the drift may take the whole authority (``e <= drift``) there is no statement.
-    ``least_margin``: the smallest margin the bounds may be tightened by (the margin at
-    rest, where the certificate has one); the spare margin is counted from it.
     """
     q, v = np.asarray(q, dtype=float), np.asarray(v, dtype=float)
     speed = np.abs(v)
@@ -178,7 +175,7 @@ def recovery_time_bound(q: np.ndarray, v: np.ndarray, lower: np.ndarray, upper: 
     h0 = np.maximum(distance, 0.0)
     floor = _DecelerationFloor(gamma * alpha1.derivative(h0), gamma * alpha1.value(h0), h0,
                                beta, alpha2, authority, margin, drift_share, speed_bound,
-                               speed_beta, samples, least_margin)
+                               speed_beta, samples)
     with np.errstate(divide='ignore', invalid='ignore'):
         w = speed[..., None] * floor.fraction
         rate = floor.rate(w)
@@ -215,15 +212,14 @@ def worst_recovery_time(speed: np.ndarray, position_range: np.ndarray, gamma: np
                         authority: np.ndarray, margin: np.ndarray,
                         speed_bound: np.ndarray | None = None,
                         speed_beta: np.ndarray | None = None, drift_share: float = 2.0 / 3.0,
-                        samples: int = 400, least_margin: np.ndarray | None = None
-                        ) -> np.ndarray:
+                        samples: int = 400) -> np.ndarray:
     """An upper bound of :func:`recovery_time_bound` over the positions within the limits at
     speeds up to ``speed``: the slowest deceleration floor (``alpha1'`` at the full range,
     no credit for the depth of ``bp``) taken from ``speed`` down to a stop; inf where the
     drift may take the whole authority."""
     floor = _DecelerationFloor(gamma * alpha1.derivative(np.asarray(position_range, float)),
                                np.inf, np.inf, beta, alpha2, authority, margin, drift_share,
-                               speed_bound, speed_beta, samples, least_margin)
+                               speed_bound, speed_beta, samples)
     speed = np.asarray(speed, dtype=float)
     with np.errstate(divide='ignore', invalid='ignore'):
         time = floor.time(np.zeros_like(speed), speed)
@@ -238,8 +234,7 @@ class _DecelerationFloor:
                  distance: np.ndarray | float, beta: np.ndarray,
                  alpha2: ClassK, authority: np.ndarray, margin: np.ndarray,
                  drift_share: float, speed_bound: np.ndarray | None,
-                 speed_beta: np.ndarray | None, samples: int,
-                 least_margin: np.ndarray | None = None) -> None:
+                 speed_beta: np.ndarray | None, samples: int) -> None:
         if speed_bound is not None and speed_beta is not None:
             active = np.asarray(speed_beta) > 0.0
             box = np.where(active, speed_bound, np.inf)
@@ -248,14 +243,13 @@ class _DecelerationFloor:
             box, box_rate = np.inf, 0.0
         # reach: gamma alpha1(h0), the largest speed bp >= 0 allows on the way; distance: h0
         margin = np.asarray(margin, dtype=float)
-        least = margin if least_margin is None else np.minimum(least_margin, margin)
         # what the arm surely gives: the authority less the drift, a met bound's ask plus the
-        # margin the drift leaves (the least margin's share: the drift at rest is within it)
+        # margin the drift leaves
         (self.slope, self.reach, self.distance_left, self.beta, self.authority, self.spare,
          self.box, self.box_rate) = np.broadcast_arrays(
             slope, reach, distance, np.asarray(beta, dtype=float),
             np.asarray(authority, dtype=float) - drift_share * margin,
-            (1.0 - drift_share) * least, box, box_rate)
+            (1.0 - drift_share) * margin, box, box_rate)
         self.alpha2 = alpha2
         self.fraction = np.linspace(0.0, 1.0, samples)
 

@@ -101,9 +101,6 @@ class Certificate:
         acceleration_hold_s: when set, the accelerations the filter bounds are means over a
             hold of this length [s] (``u = M_hold a + h``,
             ``dynamics.hold_mass_matrix``): the exact response of the damped joints.
-        rest_speed, rest_margin: when set, a joint whose speed is within ``rest_speed``
-            [rad/s] has its bounds tightened by ``rest_margin`` [rad/s^2] (at most
-            ``sampling_margin``) instead of ``sampling_margin`` (:meth:`margin_at`).
     """
 
     joint_names: list[str]
@@ -139,8 +136,6 @@ class Certificate:
     velocity_beta: np.ndarray | None = None
     acceleration_bound: np.ndarray | None = None
     acceleration_hold_s: float | None = None
-    rest_speed: np.ndarray | None = None
-    rest_margin: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         n = len(self.joint_names)
@@ -150,16 +145,6 @@ class Certificate:
             raise CertificateError(f'acceleration_bound must have {n} positive entries')
         bound.flags.writeable = False
         self.acceleration_bound = bound
-        if (self.rest_speed is None) != (self.rest_margin is None):
-            raise CertificateError('rest_speed and rest_margin come together')
-        if self.rest_speed is not None:
-            for name in ('rest_speed', 'rest_margin'):
-                array = np.array(getattr(self, name), dtype=float).reshape(-1)
-                if array.shape != (n,) or not np.all(np.isfinite(array)) \
-                        or np.any(array < 0.0):
-                    raise CertificateError(f'{name} must have {n} finite non-negative entries')
-                array.flags.writeable = False
-                setattr(self, name, array)
         if self.acceleration_hold_s is not None:
             hold = float(self.acceleration_hold_s)
             if not (math.isfinite(hold) and hold > 0.0):
@@ -329,15 +314,6 @@ class Certificate:
                                       self.position_upper, self.gamma, self.alpha1,
                                       self.velocity_bound, self.velocity_beta)
 
-    def margin_at(self, v: np.ndarray) -> np.ndarray:
-        """The sampled-data margin the bounds are tightened by at velocities ``v`` [rad/s^2]:
-        ``rest_margin`` for joints within ``rest_speed``, else ``sampling_margin``
-        (docs/method.md, margin at rest). Broadcasts over leading axes of ``v``."""
-        v = np.asarray(v, dtype=float)
-        if self.rest_speed is None:
-            return np.broadcast_to(self.sampling_margin, v.shape).copy()
-        return np.where(np.abs(v) <= self.rest_speed, self.rest_margin, self.sampling_margin)
-
     def recovery_time(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
         """Per joint, the time [s] within which the filter brings a joint outside S back into
         S from ``(q, v)``, whether the QP meets the bounds or the push-back acts
@@ -352,8 +328,7 @@ class Certificate:
                                    self.position_lower, self.position_upper, self.gamma,
                                    self.beta, self.alpha1, self.alpha2, self.usable_authority,
                                    self.sampling_margin, self.velocity_bound,
-                                   self.velocity_beta, self._drift_share,
-                                   least_margin=self.rest_margin)
+                                   self.velocity_beta, self._drift_share)
 
     def worst_recovery_time(self) -> np.ndarray:
         """Per joint, the longest :meth:`recovery_time` from any state within the position
@@ -364,8 +339,7 @@ class Certificate:
                                    self.position_upper - self.position_lower, self.gamma,
                                    self.beta, self.alpha1, self.alpha2, self.usable_authority,
                                    self.sampling_margin, self.velocity_bound,
-                                   self.velocity_beta, self._drift_share,
-                                   least_margin=self.rest_margin)
+                                   self.velocity_beta, self._drift_share)
 
     @property
     def _drift_share(self) -> float:
@@ -396,8 +370,7 @@ class Certificate:
                 continue  # certificates without velocity barriers keep their ids
             if item.name == 'acceleration_bound' and not self.has_acceleration_bound:
                 continue
-            if item.name in ('acceleration_hold_s', 'rest_speed', 'rest_margin') \
-                    and getattr(self, item.name) is None:
+            if item.name == 'acceleration_hold_s' and self.acceleration_hold_s is None:
                 continue
             value = getattr(self, item.name)
             if isinstance(value, np.ndarray):
@@ -433,9 +406,6 @@ class Certificate:
             params['acceleration_bound'] = plain['acceleration_bound']
         if self.acceleration_hold_s is not None:
             params['acceleration_hold_s'] = plain['acceleration_hold_s']
-        if self.rest_speed is not None:
-            params['rest_speed'] = plain['rest_speed']
-            params['rest_margin'] = plain['rest_margin']
         params['certificate_id'] = self.certificate_id
         return params
 
@@ -468,9 +438,6 @@ class Certificate:
                 kwargs['acceleration_bound'] = [float(x) for x in params['acceleration_bound']]
             if params.get('acceleration_hold_s') is not None:
                 kwargs['acceleration_hold_s'] = float(params['acceleration_hold_s'])
-            for name in ('rest_speed', 'rest_margin'):
-                if params.get(name) is not None:
-                    kwargs[name] = [float(x) for x in params[name]]
         except KeyError as err:
             raise CertificateError(f'the certificate lacks the entry {err.args[0]!r}') from err
         except (TypeError, ValueError) as err:

@@ -39,12 +39,7 @@ from safety_filter.bounds import BoundSettings, DynamicsBounds, estimate_bounds
 from safety_filter.certificate import DEFAULT_OBSERVER_PERIODS, Certificate
 from safety_filter.errors import SafetyFilterError
 from safety_filter.model import RobotModel
-from safety_filter.sampling import (
-    Gains,
-    estimate_sampling_margin,
-    estimate_sampling_margins,
-    sampled_inverse_mass,
-)
+from safety_filter.sampling import Gains, estimate_sampling_margin, sampled_inverse_mass
 from safety_filter.uncertainty import (
     DisturbanceBound,
     disturbance_bound,
@@ -115,9 +110,6 @@ class CertifySettings:
             damped joints, ``hold_mass_matrix``); False: the acceleration at the start of
             the hold; None (default): certification tries both and keeps the larger safe
             set.
-        rest_speed_share: a joint slower than this share of its velocity bound counts as at
-            rest, and its bounds are tightened by the (smaller) margin it needs there; 0:
-            one margin at every speed.
     """
 
     alpha1: ClassK | None = None
@@ -146,7 +138,6 @@ class CertifySettings:
     delay_periods: int | None = None
     margin_plants: int = 3
     mean_over_hold: bool | None = None
-    rest_speed_share: float = 0.05
 
     def __post_init__(self) -> None:
         if self.alpha1 is not None and self.alpha1.kind not in ALPHA1_KINDS:
@@ -717,12 +708,9 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     if design is None or reasons:
         gamma = np.where(gamma > 0, gamma, 0.0)
     certified = not reasons
-    rest_speed = rest_margin = None
     dissipation: dict[str, Any] = {}
     if design is not None:
         clock = time.perf_counter()
-        rest_speed, rest_margin = _margin_at_rest(model, design, chosen.betas[3], margin,
-                                                  settings, margin_plants(model, settings))
         dissipation = _dissipation_record(model, chosen, settings)
         seconds['sampling margin'] += time.perf_counter() - clock
     provenance = {
@@ -750,8 +738,6 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         velocity_beta=speed_beta,
         acceleration_bound=accel_bound,
         acceleration_hold_s=settings.acceleration_hold_s(model) or None,
-        rest_speed=rest_speed,
-        rest_margin=rest_margin,
         gamma=gamma,
         gamma_star=g_star,
         beta=beta,
@@ -827,32 +813,6 @@ class _Attempt:
             entry['envelope_fraction'] = _plain(envelope_fraction(model, shown))
             entry['safe_set_area'] = _plain(safe_set_areas(model, shown))
         return entry
-
-
-def _margin_at_rest(model: RobotModel, design: _Design, beta: np.ndarray,
-                    margin: np.ndarray, settings: CertifySettings,
-                    plants: list[tuple[RobotModel, float]]
-                    ) -> tuple[np.ndarray | None, np.ndarray | None]:
-    """The speed up to which a joint counts as at rest (``rest_speed_share`` of its velocity
-    bound) and the sampled-data margin it needs there, settled by rollouts at the final
-    gains as the margin is (docs/method.md, margin at rest); ``(None, None)`` when the share
-    is 0 or the rollouts do not settle."""
-    if settings.rest_speed_share <= 0.0:
-        return None, None
-    rest_speed = settings.rest_speed_share * np.asarray(design.velocity_box, dtype=float)
-    gains = Gains(design.gamma, beta, design.alpha1, settings.alpha2, design.velocity_box,
-                  design.speed_beta, design.accel_bound)
-    rest_margin = np.zeros(model.n_joints)
-    for _ in range(6):
-        _, needed = estimate_sampling_margins(
-            model, gains, settings.hold_period_s, settings.margin_samples,
-            inflation=settings.margin_inflation, current_margin=margin, seed=settings.seed,
-            plants=plants, acceleration_hold_s=settings.acceleration_hold_s(model),
-            rest_speed=rest_speed, current_rest_margin=rest_margin)
-        if np.all(needed <= rest_margin * (1.0 + 1e-9)):
-            return rest_speed, rest_margin
-        rest_margin = np.minimum(np.maximum(rest_margin, 1.05 * needed), margin)
-    return None, None
 
 
 def margin_plants(model: RobotModel, settings: CertifySettings) -> list[tuple[RobotModel, float]]:
@@ -1072,9 +1032,9 @@ def _dissipation_record(model: RobotModel, chosen: _Attempt, settings: CertifySe
     record: dict[str, Any] = {}
     hold = settings.acceleration_hold_s(model)
     if coulomb:
-        record['margin_if_friction_flipped'] = _plain(estimate_sampling_margins(
+        record['margin_if_friction_flipped'] = _plain(estimate_sampling_margin(
             model, gains, settings.hold_period_s, acceleration_hold_s=hold,
-            coulomb_held=False, **common)[0])
+            coulomb_held=False, **common))
     if chosen.mean_over_hold:
         record['margin_at_start_of_hold'] = _plain(estimate_sampling_margin(
             model, gains, settings.hold_period_s, acceleration_hold_s=0.0, **common))

@@ -184,16 +184,6 @@ def _recovery_line(cert: Any) -> str:
             'margin covers may take all of the usable authority)')
 
 
-def _rest_line(cert: Any) -> str:
-    """The margin at rest per joint (Certificate.rest_margin), or '' without one."""
-    if cert.rest_margin is None:
-        return ''
-    listed = ', '.join(f'{name} {_fmt(m)} below {_fmt(r)}' for name, m, r in zip(
-        cert.joint_names, cert.rest_margin, cert.rest_speed))
-    return ('margin at rest: a slow joint has its bounds tightened by the margin it needs '
-            f'there [rad/s^2] instead of the margin, below a speed [rad/s]: {listed}')
-
-
 def dissipation_line(cert: Any) -> str:
     """What the one-sided treatment of friction and damping gives back per joint: the
     sampled-data margin the design would need were friction able to push a joint on through
@@ -312,7 +302,6 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
     lines += textwrap.wrap(_falsifier_line(outcome), TABLE_WIDTH,
                            subsequent_indent='  ')
     lines += textwrap.wrap(_recovery_line(cert), TABLE_WIDTH, subsequent_indent='  ')
-    lines += textwrap.wrap(_rest_line(cert), TABLE_WIDTH, subsequent_indent='  ')
     lines += textwrap.wrap(dissipation_line(cert), TABLE_WIDTH, subsequent_indent='  ')
     lines += textwrap.wrap(_seconds_line(outcome.stage_seconds), TABLE_WIDTH,
                            subsequent_indent='  ')
@@ -734,8 +723,6 @@ def _html_page(outcome: CertificationOutcome, model: RobotModel,
         ('falsifier', falsifier_text),
         ('stage timings', _seconds_line(outcome.stage_seconds).split(': ', 1)[1]),
     ] + ([('recovery', _recovery_line(cert).split(': ', 1)[1])] if cert.certified else [])
-        + ([('margin at rest', _rest_line(cert).split(': ', 1)[1])]
-           if cert.rest_margin is not None else [])
         + ([('dissipation', dissipation_line(cert).split(': ', 1)[1])]
            if dissipation_line(cert) else [])))
     designs = design_lines(cert, model)

@@ -7,9 +7,8 @@ the exact feasibility problem
 
     exists u with |u| <= umax and An + delta <= M^-1 (u - h) <= Ap - delta
 
-(docs/method.md; ``delta`` is the certificate's margin at the state, ``margin_at``; ``M`` is
-the mass matrix of the mean acceleration over the hold where the certificate bounds those,
-``dynamics.hold_mass_matrix``). Two cheap witnesses are tried
+(docs/method.md; ``M`` is the mass matrix of the mean acceleration over the hold where the
+certificate bounds those, ``dynamics.hold_mass_matrix``). Two cheap witnesses are tried
 first for every state (the acceleration nearest zero inside the bounds, and the one nearest
 free fall); a witness whose torque is inside the box proves feasibility. Every state where
 both witnesses fail, and the states where they have the least slack, go to an exact linear
@@ -130,6 +129,7 @@ def falsify(
     gains = Gains(np.array(certificate.gamma), np.array(certificate.beta),
                   certificate.alpha1, certificate.alpha2, np.array(certificate.velocity_bound),
                   np.array(certificate.velocity_beta), np.array(certificate.acceleration_bound))
+    delta = np.array(certificate.sampling_margin)
     parameters = certificate.disturbance_parameters
     uncertainty = certificate.uncertainty
     lo_m, hi_m = model.payload.mass_min, model.payload.mass_max
@@ -162,7 +162,7 @@ def falsify(
         estimate = _disturbance_estimates(model, plant, payload, q, v, bias, parameters,
                                           umax, rng)
         bias = bias - estimate  # what the filter's QP uses (docs/method.md, model error)
-        barrier = gains.barriers(model, q, v, certificate.margin_at(v))
+        barrier = gains.barriers(model, q, v, delta)
         lower, upper = barrier.accel_lower, barrier.accel_upper
         empty = np.any(lower > upper, axis=1)
         # Witness 1: the acceleration closest to zero; witness 2: closest to free fall.
@@ -189,7 +189,7 @@ def falsify(
         plant = BatchPlant(model, np.array([m]))
         mass = held(plant.mass_matrix(q[None]))[0]
         bias = plant.bias(q[None], v[None])[0] - estimate
-        barrier = gains.barriers(model, q, v, certificate.margin_at(v))
+        barrier = gains.barriers(model, q, v, delta)
         slack = _lp_slack(mass, bias, barrier.accel_lower, barrier.accel_upper, umax)
         results.append((slack, q, v, m))
         if progress is not None and index % 20 == 0:

@@ -411,11 +411,6 @@ class SafetyFilter:
         self._k_gamma = np.array(self._gamma)
         self._k_beta = np.array(self._beta)
         self._k_margin = np.array(self._margin)
-        # the margin at rest (docs/method.md): rest speed -1 where the certificate has none
-        self._k_rest_speed = (np.full(n, -1.0) if certificate.rest_speed is None
-                              else np.array(certificate.rest_speed, dtype=float))
-        self._k_rest_margin = (np.array(self._margin) if certificate.rest_margin is None
-                               else np.array(certificate.rest_margin, dtype=float))
         self._k_speed_bound = np.array(certificate.velocity_bound, dtype=float)
         self._k_speed_beta = np.array(certificate.velocity_beta, dtype=float)
         self._k_accel_bound = np.array(certificate.acceleration_bound, dtype=float)
@@ -486,10 +481,9 @@ class SafetyFilter:
         """Barrier values and acceleration bounds at ``(q, v)`` with the certificate's gains
         and sampling margin (docs/method.md); batches of shape (..., n) allowed."""
         c = self.certificate
-        v = np.asarray(v, dtype=float)
-        return evaluate_barriers(np.asarray(q, dtype=float), v,
+        return evaluate_barriers(np.asarray(q, dtype=float), np.asarray(v, dtype=float),
                                  c.position_lower, c.position_upper, c.gamma, c.beta,
-                                 c.alpha1, c.alpha2, c.margin_at(v), c.velocity_bound,
+                                 c.alpha1, c.alpha2, c.sampling_margin, c.velocity_bound,
                                  c.velocity_beta, c.acceleration_bound)
 
     # ------------------------------------------------------------------ the step
@@ -498,8 +492,7 @@ class SafetyFilter:
         step does the same inside its first kernel; the tests use this one)."""
         code1, scale1, code2, scale2 = self._k_alpha
         _kernels.barrier_rows(q, v, self._k_lower, self._k_upper, self._k_gamma, self._k_beta,
-                              self._k_margin, self._k_rest_speed, self._k_rest_margin,
-                              self._k_speed_bound, self._k_speed_beta,
+                              self._k_margin, self._k_speed_bound, self._k_speed_beta,
                               self._k_accel_bound, code1, scale1, code2, scale2, self._rows,
                               np.empty(self.n))
 
@@ -623,9 +616,8 @@ class SafetyFilter:
         code1, scale1, code2, scale2 = self._k_alpha
         flags, worst, deepest = _kernels.stage_and_bound(
             q_in, v_in, u_in, inputs, self._k_lower, self._k_upper, self._k_gamma, self._k_beta,
-            self._k_margin, self._k_rest_speed, self._k_rest_margin, self._k_speed_bound,
-            self._k_speed_beta, self._k_accel_bound, code1, scale1, code2, scale2, self._rows,
-            barrier_margin)
+            self._k_margin, self._k_speed_bound, self._k_speed_beta, self._k_accel_bound, code1,
+            scale1, code2, scale2, self._rows, barrier_margin)
         if flags:
             names = [name for name, bit in (('q', _kernels.NONFINITE_Q),
                                             ('v', _kernels.NONFINITE_V),

@@ -196,33 +196,9 @@ def estimate_sampling_margin(
     seed: int = 0,
     plants: Sequence[tuple[RobotModel, float]] = (),
     acceleration_hold_s: float = 0.0,
-) -> np.ndarray:
-    """Acceleration margin ``delta`` [rad/s^2] per joint covering one hold period
-    (:func:`estimate_sampling_margins` without the margin at rest)."""
-    return estimate_sampling_margins(
-        model, gains, hold_period_s, samples, substeps, inflation, current_margin,
-        acceleration_envelope, seed, plants, acceleration_hold_s)[0]
-
-
-def estimate_sampling_margins(
-    model: RobotModel,
-    gains: Gains,
-    hold_period_s: float,
-    samples: int = 2000,
-    substeps: int = 2,
-    inflation: float = 1.5,
-    current_margin: np.ndarray | None = None,
-    acceleration_envelope: np.ndarray | None = None,
-    seed: int = 0,
-    plants: Sequence[tuple[RobotModel, float]] = (),
-    acceleration_hold_s: float = 0.0,
-    rest_speed: np.ndarray | None = None,
-    current_rest_margin: np.ndarray | None = None,
     coulomb_held: bool = True,
-) -> tuple[np.ndarray, np.ndarray | None]:
-    """Acceleration margins ``delta`` [rad/s^2] per joint covering one hold period: the
-    margin, and with ``rest_speed`` the margin for a joint whose speed is within it (a
-    joint at or near rest drifts far less over a hold than a moving one).
+) -> np.ndarray:
+    """Acceleration margin ``delta`` [rad/s^2] per joint covering one hold period.
 
     Each sampled state of S and command (inside the bounds tightened by ``current_margin``,
     often at their edge) is rolled out under the held torque; at every substep each
@@ -249,12 +225,6 @@ def estimate_sampling_margins(
             :func:`~safety_filter.dynamics.hold_mass_matrix` with the model's viscous
             damping, as the filter computes them) instead of initial accelerations
             (``u = M a + h``); the rollouts still last ``hold_period_s``.
-        rest_speed: per joint, the speed up to which the margin at rest applies (None: no
-            margin at rest; the second result is then None), measured: the true speed may
-            be higher by the declared velocity noise, so the samples at rest reach that far.
-            A third of the samples get about half of their joints' speeds within it.
-        current_rest_margin: the margin at rest the commanded accelerations already
-            respect (default ``current_margin``).
         coulomb_held: hold each joint's Coulomb friction at its direction at the sample
             (physical, see below); False re-evaluates ``sign(v)`` within the hold, as if
             friction could push a joint on through zero velocity (only to report what the
@@ -265,22 +235,6 @@ def estimate_sampling_margins(
     umax = np.array(model.effort_limit)
     margin = np.zeros(n) if current_margin is None else np.asarray(current_margin, float)
     q, v = sample_safe_states(model, gains, samples, rng)
-    resting = np.zeros(v.shape, dtype=bool)
-    rest_margin = margin
-    if rest_speed is not None:
-        rest_speed = np.asarray(rest_speed, dtype=float) + model.uncertainty.velocity_noise
-        rest_margin = margin if current_rest_margin is None else np.asarray(
-            current_rest_margin, float)
-        pick = (rng.random((samples, 1)) < 1.0 / 3.0) & (rng.random((samples, n)) < 0.5)
-        slow = rng.uniform(-1.0, 1.0, (samples, n)) * rest_speed
-        v = np.where(pick, slow, v)  # in S: its velocity slice contains [-vr, vr] ...
-        v_lo, v_hi = safe_velocity_interval(q, model.position_lower, model.position_upper,
-                                            gains.gamma, gains.alpha1, gains.speed_bound,
-                                            gains.speed_beta)
-        v = np.clip(v, v_lo, v_hi)  # ... except within a hair of a limit
-        resting = np.abs(v) <= rest_speed
-    # the margin each sample's bounds are tightened by, as the filter does
-    sample_margin = np.where(resting, rest_margin, margin)
     # Three payload levels (both ends and the middle) keep the rollouts to one model
     # evaluation per sample; the drift is smooth in the payload mass.
     levels = np.linspace(model.payload.mass_min, model.payload.mass_max, 3)
@@ -289,7 +243,7 @@ def estimate_sampling_margins(
     plant = _GroupedPlant([BatchPlant(model, payload[group == 0])]
                           + [BatchPlant(other, np.full(int(np.sum(group == k + 1)), mass))
                              for k, (other, mass) in enumerate(plants)], group)
-    start = gains.barriers(model, q, v, sample_margin)
+    start = gains.barriers(model, q, v, margin)
     if acceleration_envelope is None:
         acceleration_envelope = gains.accel_bound
     mass = plant.mass_matrix(q)
@@ -330,7 +284,7 @@ def estimate_sampling_margins(
     # feasible again). A command at the tightened bound starts each velocity barrier that it
     # touches rising at the rate ``delta``; a barrier b that is negative at time t asks for
     # ``-b / t`` more initial rate: so much more margin.
-    need = np.zeros((samples, n))  # per sample and joint, the rate it lacked
+    shortfall = np.zeros(n)
     # RK4 is stable for step * rate <= 2.78; the fastest damping mode of the arms is at most
     # max |M^-1| D (row sums): take enough substeps for it.
     rate = max([_damping_rate(model), *(_damping_rate(other) for other, _ in plants)])
@@ -357,19 +311,16 @@ def estimate_sampling_margins(
         vk = vk + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v)
         k1v = plant.acceleration(qk, vk, torque)  # the acceleration now; next step's k1
         now = gains.barriers(model, qk, vk, 0.0)
+        if not sendable.any():
+            continue
         if not periods or step % (substeps // periods) == 0:
             lowest = np.minimum(np.minimum(now.barrier_upper, now.barrier_lower),
                                 np.minimum(now.speed_upper, now.speed_lower))
-            need = np.maximum(need, -lowest / (step * dt))
+            shortfall = np.maximum(shortfall,
+                                   np.max(-lowest[sendable], axis=0) / (step * dt))
         if periods:
             # a position short by x at time t lacked 2 x / t^2 of acceleration
             position = np.minimum(now.margin_upper, now.margin_lower)
-            need = np.maximum(need, 2.0 * -position / (step * dt) ** 2)
-    need = np.where(sendable[:, None], np.maximum(need, 0.0), 0.0)
-    moving_need = np.max(np.where(resting, 0.0, need), axis=0)
-    full = margin + inflation * moving_need
-    if rest_speed is None:
-        return full, None
-    resting_need = np.max(np.where(resting, need, 0.0), axis=0)
-    # the margin at rest never exceeds the margin
-    return full, np.minimum(rest_margin + inflation * resting_need, full)
+            shortfall = np.maximum(shortfall, 2.0 * np.max(-position[sendable], axis=0)
+                                   / (step * dt) ** 2)
+    return margin + inflation * shortfall

@@ -38,7 +38,6 @@ from certify_fixtures import (  # noqa: F401  (fixtures)
 from scipy.optimize import linprog
 
 from safety_filter.alphas import ClassK
-from safety_filter.barriers import evaluate_barriers
 from safety_filter.bounds import BoundSettings, estimate_bounds
 from safety_filter.certificate import (
     PARAMETER_FILE_KEY,
@@ -58,7 +57,6 @@ from safety_filter.certify import (
 from safety_filter.demo_arms import demo_arm_files, load_demo_arm
 from safety_filter.dynamics import mass_matrix_batch, rnea_batch
 from safety_filter.falsify import FalsifierResult, falsify
-from safety_filter.filter import SafetyFilter
 from safety_filter.model import RobotModel
 
 
@@ -104,20 +102,6 @@ def test_demo_arm_certifies_with_default_settings(certified_arm) -> None:  # noq
     tried = c.settings['designs_tried']
     assert [entry['outcome'] for entry in tried].count('chosen') == 1
     assert {entry['alpha1'] for entry in tried} == set(CertifySettings().families)
-    # The margin at rest: up to 5 % of the velocity bound, at most the margin, and what the
-    # bounds of a joint at rest are tightened by.
-    assert c.rest_speed is not None
-    np.testing.assert_allclose(c.rest_speed, 0.05 * c.velocity_bound)
-    assert np.all(c.rest_margin <= c.sampling_margin) and np.all(c.rest_margin >= 0.0)
-    q = 0.5 * (c.position_lower + c.position_upper)
-    np.testing.assert_array_equal(c.margin_at(np.zeros(c.n_joints)), c.rest_margin)
-    np.testing.assert_array_equal(c.margin_at(2.0 * c.rest_speed), c.sampling_margin)
-    filt = SafetyFilter(model, c, observer_time_constant_s=0.0)
-    at_rest = filt.constraint_bounds(q, np.zeros(c.n_joints))
-    expected = evaluate_barriers(q, np.zeros(c.n_joints), c.position_lower, c.position_upper,
-                                 c.gamma, c.beta, c.alpha1, c.alpha2, c.rest_margin,
-                                 c.velocity_bound, c.velocity_beta, c.acceleration_bound)
-    np.testing.assert_allclose(at_rest.accel_lower, expected.accel_lower)
 
 
 def test_falsifier_finds_no_infeasible_state(certified_arm) -> None:  # noqa: ANN001, F811

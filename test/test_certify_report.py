@@ -18,7 +18,6 @@ from safety_filter.certify_report import (
     REPORT_HTML,
     REPORT_JSON,
     SAFETY_NOTICE,
-    _fmt,
     design_lines,
     format_joint_table,
     joint_rows,
@@ -74,10 +73,6 @@ def test_table_lists_every_joint_and_the_verdict(planar2) -> None:
         assert 0.0 < seconds < np.inf
         assert f'{name} {seconds:.3g}' in recovery
     assert 'why not certified' not in table
-    rest = ' '.join(table.split('margin at rest: ', 1)[1].split('\n\n')[0].split())
-    cert = outcome.certificate
-    for name, margin, speed in zip(model.joint_names, cert.rest_margin, cert.rest_speed):
-        assert f'{name} {_fmt(margin)} below {_fmt(speed)}' in rest
     assert all(len(line) <= 100 for line in table.splitlines())
     assert table.isascii()
 

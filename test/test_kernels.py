@@ -44,20 +44,15 @@ def test_barrier_rows_match_evaluate_barriers(kind1: str, kind2: str, speed_rows
     accel_bound = np.where(rng.random(n) < 0.7, rng.uniform(1.0, 30.0, n), np.inf) \
         if speed_rows else np.full(n, np.inf)
     alpha1, alpha2 = ClassK(kind1, 0.7), ClassK(kind2, 1.3)
-    # a margin at rest on some joints (-1: none), used below |v| <= rest speed
-    rest_speed = np.where(rng.random(n) < 0.6, rng.uniform(0.5, 2.0, n), -1.0)
-    rest_margin = margin * rng.uniform(0.0, 1.0, n)
     rows = np.empty((8, n))
     smallest = np.empty(n)
     for _ in range(50):
         q = rng.uniform(lower - 0.3, upper + 0.3)
         v = rng.normal(scale=2.0, size=n)
         worst, deepest = _kernels.barrier_rows(
-            q, v, lower, upper, gamma, beta, margin, rest_speed, rest_margin, speed_bound,
-            speed_beta, accel_bound, _kernels.ALPHA_CODES[kind1], 0.7,
-            _kernels.ALPHA_CODES[kind2], 1.3, rows, smallest)
-        delta = np.where(np.abs(v) <= rest_speed, rest_margin, margin)
-        state = evaluate_barriers(q, v, lower, upper, gamma, beta, alpha1, alpha2, delta,
+            q, v, lower, upper, gamma, beta, margin, speed_bound, speed_beta, accel_bound,
+            _kernels.ALPHA_CODES[kind1], 0.7, _kernels.ALPHA_CODES[kind2], 1.3, rows, smallest)
+        state = evaluate_barriers(q, v, lower, upper, gamma, beta, alpha1, alpha2, margin,
                                   speed_bound, speed_beta, accel_bound)
         expected = np.array([state.margin_upper, state.margin_lower, state.barrier_upper,
                              state.barrier_lower, state.accel_upper, state.accel_lower,
@@ -231,20 +226,19 @@ def test_stage_and_bound_is_stage_then_rows() -> None:
     speed_bound, speed_beta, accel_bound = np.full(n, 1.5), np.full(n, 100.0), np.full(n, 9.0)
     inputs = np.empty((3, n))
     q, v, u = rng.normal(size=n), rng.normal(size=n), rng.normal(size=n)
-    rest_speed, rest_margin = np.full(n, 0.5), np.full(n, 0.02)
     flags, worst, deepest = _kernels.stage_and_bound(q, v, u, inputs, lower, upper, gamma, beta,
-                                                     margin, rest_speed, rest_margin,
-                                                     speed_bound, speed_beta, accel_bound, 2,
-                                                     0.5, 3, 1.0, rows, smallest)
-    expected = _kernels.barrier_rows(q, v, lower, upper, gamma, beta, margin, rest_speed,
-                                     rest_margin, speed_bound, speed_beta, accel_bound, 2, 0.5,
-                                     3, 1.0, rows_ref, smallest_ref)
+                                                     margin, speed_bound, speed_beta,
+                                                     accel_bound, 2, 0.5, 3, 1.0, rows,
+                                                     smallest)
+    expected = _kernels.barrier_rows(q, v, lower, upper, gamma, beta, margin, speed_bound,
+                                     speed_beta, accel_bound, 2, 0.5, 3, 1.0, rows_ref,
+                                     smallest_ref)
     assert flags == 0 and (worst, deepest) == expected
     np.testing.assert_array_equal(rows, rows_ref)
     np.testing.assert_array_equal(inputs, [q, v, u])
     q[1] = math.nan
     flags, worst, deepest = _kernels.stage_and_bound(q, v, u, inputs, lower, upper, gamma, beta,
-                                                     margin, rest_speed, rest_margin,
-                                                     speed_bound, speed_beta, accel_bound, 2,
-                                                     0.5, 3, 1.0, rows, smallest)
+                                                     margin, speed_bound, speed_beta,
+                                                     accel_bound, 2, 0.5, 3, 1.0, rows,
+                                                     smallest)
     assert flags == _kernels.NONFINITE_Q and math.isnan(worst) and math.isnan(deepest)
