@@ -330,7 +330,7 @@ class SafetyFilter:
             payload_mass = 0.5 * (float(low) + float(high))
         if not (math.isfinite(payload_mass) and payload_mass >= 0.0):
             raise SafetyFilterError(f'payload_mass must be finite and >= 0, got {payload_mass}')
-        usable = np.array(certificate.authority - certificate.sampling_margin)
+        usable = np.array(certificate.usable_authority)
         if not np.all(usable > 0.0):
             raise CertificateError('the certificate leaves no usable authority '
                                    '(authority <= sampling_margin) at some joint')

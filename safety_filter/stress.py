@@ -277,7 +277,7 @@ def return_time_bounds(log: PlantLog, pushes: Sequence[Push], certificate: Certi
         first = int(later_out[-1]) + 1 if later_out.size else 0
         rows, q, v = rows[first:], q[first:], v[first:]
         needed = np.max(certificate.recovery_time(q, v), axis=1)
-        if not np.all(np.isfinite(needed)):  # a step with no statement (beyond braking)
+        if not np.all(np.isfinite(needed)):  # a step from which no time is stated
             result.append(None)
             continue
         result.append(float(np.max(times[rows] - push.end_s + needed)) + allowance_s
