@@ -72,7 +72,7 @@ setup(
     package_data={
         PACKAGE_NAME: ['robots/*.urdf', 'robots/*.yaml', 'py.typed',
                        # Inlined into the HTML reports (uPlot: MIT licence).
-                       'report_assets/*.js', 'report_assets/uplot/*'],
+                       'reports/report_assets/*.js', 'reports/report_assets/uplot/*'],
     },
     data_files=[
         ('share/ament_index/resource_index/packages', ['resource/' + PACKAGE_NAME]),
@@ -93,9 +93,9 @@ setup(
         # Rigid-body dynamics backend for the per-step path (the numpy recursion stays as
         # the reference and fallback).
         'pin>=2.7',
-        # Compiles the filter step's inner loops (safety_filter/_kernels.py).
+        # Compiles the filter step's inner loops (safety_filter/online/kernels.py).
         'numba>=0.57',
-        # Lays out and draws the live monitor's screen (safety_filter/monitor_screen.py).
+        # Lays out and draws the live monitor's screen (safety_filter/monitor/screen.py).
         'rich>=13',
     ],
     extras_require={
@@ -125,7 +125,7 @@ setup(
     cmdclass={'install_scripts': InstallScripts, 'develop': Develop},
     entry_points={
         'console_scripts': [
-            'safety-filter = safety_filter.cli:main',
+            'safety-filter = safety_filter.cli.main:main',
             # `ros2 run safety_filter filter_node --ros-args --params-file certificate.yaml ...`
             'filter_node = safety_filter.ros.filter_node:main',
             # The simulated demo's nodes (launch/sim_demo.launch.py, `safety-filter demo`).

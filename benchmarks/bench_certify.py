@@ -6,7 +6,7 @@ Usage::
     python3 benchmarks/bench_certify.py [--quick] [--arms reach7 bench6]
 
 Certifies each arm (default: reach7, then bench6) with the default
-:class:`safety_filter.certify.CertifySettings` and prints the time of every stage as
+:class:`safety_filter.certification.certify.CertifySettings` and prints the time of every stage as
 certification records it (``CertificationOutcome.stage_seconds``: bounds, authority,
 sampling margin, gains, falsifier) and the total, with the outcome (certified or not, the
 condition used, the certified velocity fraction) and the falsifier's smallest slack. Then
@@ -42,10 +42,10 @@ except ImportError:  # run from a source checkout without installing
     sys.path.insert(0, str(ROOT))
     import safety_filter  # noqa: F401
 
-from safety_filter.bounds import BoundSettings  # noqa: E402
-from safety_filter.certify import CertifySettings, certify_with_evidence  # noqa: E402
-from safety_filter.demo_arms import DEMO_ARMS, load_demo_arm  # noqa: E402
-from safety_filter.uncertainty import UncertaintySet, model_with_inertials  # noqa: E402
+from safety_filter.certification.certify import CertifySettings, certify_with_evidence  # noqa: E402
+from safety_filter.certification.dynamics_bounds import BoundSettings  # noqa: E402
+from safety_filter.core.model_uncertainty import UncertaintySet, model_with_inertials  # noqa: E402
+from safety_filter.simulation.demo_arms import DEMO_ARMS, load_demo_arm  # noqa: E402
 
 STAGES = ('bounds', 'authority', 'sampling margin', 'gains', 'falsifier')
 

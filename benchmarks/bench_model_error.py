@@ -35,11 +35,11 @@ except ImportError:  # run from a source checkout without installing
     import safety_filter  # noqa: F401
 
 from safety_filter import SafetyFilter  # noqa: E402
-from safety_filter.certify import CertifySettings, certify  # noqa: E402
-from safety_filter.demo_arms import DEMO_ARMS, load_demo_arm  # noqa: E402
-from safety_filter.nominal import SafeTracking  # noqa: E402
-from safety_filter.simulate import limit_violations, run_closed_loop  # noqa: E402
-from safety_filter.uncertainty import model_with_inertials  # noqa: E402
+from safety_filter.certification.certify import CertifySettings, certify  # noqa: E402
+from safety_filter.core.model_uncertainty import model_with_inertials  # noqa: E402
+from safety_filter.simulation.command_sources import SafeTracking  # noqa: E402
+from safety_filter.simulation.demo_arms import DEMO_ARMS, load_demo_arm  # noqa: E402
+from safety_filter.simulation.plant import limit_violations, run_closed_loop  # noqa: E402
 
 
 def plants(model):  # noqa: ANN001, ANN201

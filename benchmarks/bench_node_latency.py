@@ -119,10 +119,10 @@ def run_echo_node(namespace: str, executor_kind: str) -> int:
 # ---------------------------------------------------------------------- certificate
 def certificate_for(arm: str) -> Path:
     """A certificate of the demo arm (reduced certification settings, cached in /tmp)."""
-    from safety_filter.bounds import BoundSettings
-    from safety_filter.certificate import Certificate, CertificateError
-    from safety_filter.certify import CertifySettings, certify
-    from safety_filter.demo_arms import load_demo_arm
+    from safety_filter.certification.certify import CertifySettings, certify
+    from safety_filter.certification.dynamics_bounds import BoundSettings
+    from safety_filter.core.certificate import Certificate, CertificateError
+    from safety_filter.simulation.demo_arms import load_demo_arm
 
     model = load_demo_arm(arm)
     folder = Path(tempfile.gettempdir()) / 'safety_filter_bench_certificates'
@@ -376,9 +376,9 @@ def main(argv: list[str] | None = None) -> int:
 
     import numpy as np
 
-    from safety_filter.certificate import Certificate
-    from safety_filter.demo_arms import load_demo_arm
-    from safety_filter.filter import SafetyFilter
+    from safety_filter.core.certificate import Certificate
+    from safety_filter.online.barrier_filter import SafetyFilter
+    from safety_filter.simulation.demo_arms import load_demo_arm
 
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
     os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(100, 200)))
@@ -416,7 +416,7 @@ def main(argv: list[str] | None = None) -> int:
     # The nodes run in namespaces: the parameter file must be keyed for any namespace.
     any_namespace = certificate_path.with_name(certificate_path.stem + '-any.yaml')
     Certificate.load(certificate_path).save(any_namespace, node_name='/**/safety_filter')
-    node_command = [sys.executable, '-m', 'safety_filter.cli', 'node', '--certificate',
+    node_command = [sys.executable, '-m', 'safety_filter.cli.main', 'node', '--certificate',
                     str(any_namespace), '--demo', args.arm, '--executor', args.executor,
                     '--activate-at-start',
                     # One step per nominal: the latency is traced from each nominal.

@@ -18,7 +18,8 @@ RK4 at 10 kHz, torque held and saturated by the driver, control at the certifica
   acceleration limit, turned into torque with the diagonal of the mass matrix plus gravity,
   then clipped to the torque box. It ignores the coupling between joints;
 * ``certified filter``: :class:`safety_filter.SafetyFilter` with the certificate of
-  :func:`safety_filter.certify` (default settings; cached on disk in the temp directory).
+  :func:`safety_filter.certification.certify` (default settings; cached on disk in the temp
+  directory).
 
 Columns, one row per arm and controller:
 
@@ -68,19 +69,19 @@ except ImportError:  # run from a source checkout without installing
     import safety_filter  # noqa: F401
 
 from safety_filter import SafetyFilter  # noqa: E402
-from safety_filter.bounds import BoundSettings  # noqa: E402
-from safety_filter.certificate import Certificate, CertificateError  # noqa: E402
-from safety_filter.certify import CertifySettings, certify  # noqa: E402
-from safety_filter.demo_arms import DEMO_ARMS, load_demo_arm  # noqa: E402
-from safety_filter.dynamics import Dynamics  # noqa: E402
-from safety_filter.model import RobotModel  # noqa: E402
-from safety_filter.nominal import (  # noqa: E402
+from safety_filter.certification.certify import CertifySettings, certify  # noqa: E402
+from safety_filter.certification.dynamics_bounds import BoundSettings  # noqa: E402
+from safety_filter.core.certificate import Certificate, CertificateError  # noqa: E402
+from safety_filter.core.dynamics import Dynamics  # noqa: E402
+from safety_filter.core.robot_model import RobotModel  # noqa: E402
+from safety_filter.simulation.command_sources import (  # noqa: E402
     BangBang,
     LargeSinusoid,
     PDBeyondLimits,
     SafeTracking,
 )
-from safety_filter.simulate import ClosedLoopLog, limit_violations, run_closed_loop  # noqa: E402
+from safety_filter.simulation.demo_arms import DEMO_ARMS, load_demo_arm  # noqa: E402
+from safety_filter.simulation.plant import ClosedLoopLog, limit_violations, run_closed_loop  # noqa: E402
 
 UNFILTERED, CLAMP, FILTER = 'unfiltered', 'braking clamp', 'certified filter'
 CONTROLLERS = (UNFILTERED, CLAMP, FILTER)

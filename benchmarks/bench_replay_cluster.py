@@ -50,13 +50,13 @@ sys.path.insert(0, str(ROOT / 'test'))
 from filter_fixtures import demo_arm_and_certificate  # noqa: E402
 from replay_fixtures import record_filtered_run, write_run_bag  # noqa: E402
 
-from safety_filter.nominal import LargeSinusoid  # noqa: E402
-from safety_filter.replay_batch import (  # noqa: E402
+from safety_filter.replay.batch import (  # noqa: E402
     CertificateChoice,
     ReplayOptions,
     replay_bag,
     replay_bags,
 )
+from safety_filter.simulation.command_sources import LargeSinusoid  # noqa: E402
 
 RATE_HZ = 1000.0
 HEADER = (f'{"what":<44} {"workers":>7} {"bags":>4} {"wall [s]":>9} {"bags/min":>9} '

@@ -38,7 +38,7 @@ from launch_ros.actions import Node
 from launch_ros.parameter_descriptions import ParameterValue
 from launch_ros.substitutions import FindPackageShare
 
-from safety_filter.demo_arms import demo_arm_files
+from safety_filter.simulation.demo_arms import demo_arm_files
 
 
 def generate_launch_description() -> LaunchDescription:

@@ -14,23 +14,24 @@ stops, safety-rated monitoring or a risk assessment.
 """
 
 from safety_filter._version import __version__
-from safety_filter.alphas import ClassK
-from safety_filter.bounds import BoundSettings
-from safety_filter.certificate import Certificate, CertificateError, CertificateMismatch
-from safety_filter.certify import (
+from safety_filter.certification.certify import (
     CertificationOutcome,
     CertifySettings,
     certify,
     certify_with_evidence,
 )
-from safety_filter.demo_arms import DEMO_ARMS, demo_arm_files, load_demo_arm
-from safety_filter.dynamics import (
+from safety_filter.certification.dynamics_bounds import BoundSettings
+from safety_filter.certification.falsifier import FalsifierResult, falsify
+from safety_filter.core.certificate import Certificate, CertificateError, CertificateMismatch
+from safety_filter.core.class_k import ClassK
+from safety_filter.core.dynamics import (
     Dynamics,
     christoffel_batch,
     gravity_torque_batch,
     mass_matrix_batch,
     rnea_batch,
 )
+from safety_filter.core.robot_model import PayloadRange, RobotModel
 from safety_filter.errors import (
     InvalidInertia,
     InvalidLimits,
@@ -40,9 +41,8 @@ from safety_filter.errors import (
     UnknownLink,
     UnsupportedChain,
 )
-from safety_filter.falsify import FalsifierResult, falsify
-from safety_filter.filter import FilterMode, FilterOutput, SafetyFilter
-from safety_filter.model import PayloadRange, RobotModel
+from safety_filter.online.barrier_filter import FilterMode, FilterOutput, SafetyFilter
+from safety_filter.simulation.demo_arms import DEMO_ARMS, demo_arm_files, load_demo_arm
 
 __all__ = [
     'BoundSettings',

@@ -20,9 +20,9 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 
-from safety_filter.certify import CertificationOutcome, certify_with_evidence
-from safety_filter.demo_arms import load_demo_arm
-from safety_filter.model import RobotModel
+from safety_filter.certification.certify import CertificationOutcome, certify_with_evidence
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.simulation.demo_arms import load_demo_arm
 
 CERTIFIED_ARMS = ('planar2', 'bench6')
 

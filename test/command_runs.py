@@ -27,10 +27,10 @@ import pytest
 from replay_fixtures import START_NS, RecordedRun, record_filtered_run, write_run_bag
 
 from safety_filter import load_demo_arm
-from safety_filter.certificate import Certificate
-from safety_filter.filter import SafetyFilter
-from safety_filter.model import RobotModel
-from safety_filter.nominal import PDBeyondLimits
+from safety_filter.core.certificate import Certificate
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.online.barrier_filter import SafetyFilter
+from safety_filter.simulation.command_sources import PDBeyondLimits
 
 REPO = Path(__file__).resolve().parent.parent
 ARM = 'planar2'
@@ -71,8 +71,8 @@ def session_folder() -> Path:
 
 def run_command(arguments: list[str], output: Path, env: dict[str, str] | None = None,
                 timeout_s: float = TIMEOUT_S) -> CommandRun:
-    """Run ``python -m safety_filter.cli <arguments>`` and keep what it printed."""
-    argv = [sys.executable, '-m', 'safety_filter.cli', *arguments]
+    """Run ``python -m safety_filter.cli.main <arguments>`` and keep what it printed."""
+    argv = [sys.executable, '-m', 'safety_filter.cli.main', *arguments]
     environment = dict(os.environ if env is None else env)
     # The checkout first, so that the code under test is what runs.
     environment['PYTHONPATH'] = os.pathsep.join(

@@ -26,11 +26,11 @@ import numpy as np
 from scipy.optimize import linprog
 from scipy.stats import qmc
 
-from safety_filter.alphas import ClassK
-from safety_filter.certificate import Certificate
-from safety_filter.demo_arms import load_demo_arm
-from safety_filter.dynamics import christoffel_batch, gravity_torque_batch, mass_matrix_batch
-from safety_filter.model import RobotModel
+from safety_filter.core.certificate import Certificate
+from safety_filter.core.class_k import ClassK
+from safety_filter.core.dynamics import christoffel_batch, gravity_torque_batch, mass_matrix_batch
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.simulation.demo_arms import load_demo_arm
 
 CONTROL_RATE_HZ = 1000.0
 VELOCITY_SCALES = (0.5, 0.35, 0.25, 0.15)  # tried in turn until the LP has a solution

@@ -22,10 +22,10 @@ from typing import Any
 
 import numpy as np
 
-from safety_filter.certificate import Certificate
-from safety_filter.filter import SafetyFilter
-from safety_filter.model import RobotModel
-from safety_filter.simulate import ArmSimulator
+from safety_filter.core.certificate import Certificate
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.online.barrier_filter import SafetyFilter
+from safety_filter.simulation.plant import ArmSimulator
 
 START_NS = 1_700_000_000_000_000_000  # a bag time in 2023 [ns]: epoch-sized stamps
 NOMINAL_DELAY_NS = 1_000
@@ -51,9 +51,9 @@ class RecordedRun:
 def planar2_quick_certificate() -> tuple[RobotModel, Certificate]:
     """planar2 and a certificate from the real certification with reduced settings (fewer
     bound samples and falsifier states), once per test session."""
-    from safety_filter.bounds import BoundSettings
-    from safety_filter.certify import CertifySettings, certify
-    from safety_filter.demo_arms import load_demo_arm
+    from safety_filter.certification.certify import CertifySettings, certify
+    from safety_filter.certification.dynamics_bounds import BoundSettings
+    from safety_filter.simulation.demo_arms import load_demo_arm
 
     model = load_demo_arm('planar2')
     certificate = certify(model, CertifySettings(bounds=BoundSettings(samples=512),

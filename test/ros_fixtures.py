@@ -48,12 +48,11 @@ from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy  # noqa: E
 from sensor_msgs.msg import JointState  # noqa: E402
 from std_msgs.msg import Float64MultiArray, String  # noqa: E402
 
-from safety_filter.bounds import BoundSettings  # noqa: E402
-from safety_filter.certificate import Certificate  # noqa: E402
-from safety_filter.certify import CertifySettings, certify  # noqa: E402
-from safety_filter.demo_arms import demo_arm_files, load_demo_arm  # noqa: E402
-from safety_filter.filter import SafetyFilter  # noqa: E402
-from safety_filter.model import RobotModel  # noqa: E402
+from safety_filter.certification.certify import CertifySettings, certify  # noqa: E402
+from safety_filter.certification.dynamics_bounds import BoundSettings  # noqa: E402
+from safety_filter.core.certificate import Certificate  # noqa: E402
+from safety_filter.core.robot_model import RobotModel  # noqa: E402
+from safety_filter.online.barrier_filter import SafetyFilter  # noqa: E402
 from safety_filter.ros.filter_node import (  # noqa: E402
     STATUS_SCALAR_FIELDS,
     SafetyFilterNode,
@@ -61,6 +60,7 @@ from safety_filter.ros.filter_node import (  # noqa: E402
     make_executor,
     status_field_names,
 )
+from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm  # noqa: E402
 
 # Reduced certification settings: seconds instead of minutes, still a real certificate.
 TEST_CERTIFY_SETTINGS = CertifySettings(bounds=BoundSettings(samples=512), falsifier_states=2000)

@@ -1,4 +1,4 @@
-"""Bag writing and reading (safety_filter.bags), checked with rosbags' own reader.
+"""Bag writing and reading (safety_filter.recordings.bags), checked with rosbags' own reader.
 
 Every bag written here is read back twice: with our helpers and with ``rosbags``' high-level
 ``AnyReader`` (an independent reader that takes the message definitions from the bag
@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from safety_filter import bags
+from safety_filter.recordings import bags
 
 JOINTS = ['j0', 'j1', 'j2']
 
@@ -155,7 +155,7 @@ def test_status_with_field_names_sent_once_reads_like_the_old_layout(
     earlier self-describing records. Without the names topic the joint names supply them."""
     from rosbags.highlevel import AnyReader
 
-    from safety_filter.status_layout import status_field_names
+    from safety_filter.online.status_layout import status_field_names
 
     fields = status_field_names(JOINTS)
     rows = np.arange(5 * len(fields), dtype=float).reshape(5, len(fields))

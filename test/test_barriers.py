@@ -12,8 +12,8 @@ import math
 
 import pytest
 
-from safety_filter.alphas import ClassK
-from safety_filter.barriers import braking_set_area, safe_set_area
+from safety_filter.core.barriers import braking_set_area, safe_set_area
+from safety_filter.core.class_k import ClassK
 
 
 @pytest.mark.parametrize('r, gamma', [(1.0, 0.5), (5.8, 0.116), (0.3, 4.0)])
@@ -101,7 +101,7 @@ def _least_deceleration_return(q0: float, v0: float, lower: float, upper: float,
     import numpy as np
     from scipy.integrate import solve_ivp
 
-    from safety_filter.barriers import evaluate_barriers
+    from safety_filter.core.barriers import evaluate_barriers
 
     def state(q: float, v: float):  # noqa: ANN202
         return evaluate_barriers(np.array([q]), np.array([v]), np.array([lower]),
@@ -136,7 +136,7 @@ def test_recovery_time_bound_holds_for_the_slowest_return(kind: str, scale: floa
     inf past a limit."""
     import numpy as np
 
-    from safety_filter.barriers import recovery_time_bound, safe_velocity_interval
+    from safety_filter.core.barriers import recovery_time_bound, safe_velocity_interval
 
     rng = np.random.default_rng(7)
     alpha1, alpha2 = ClassK(kind, scale), ClassK('linear', 1.0)
@@ -181,7 +181,7 @@ def test_worst_recovery_time_is_the_integral_of_the_slowest_floor() -> None:
     import numpy as np
     from scipy.integrate import quad
 
-    from safety_filter.barriers import worst_recovery_time
+    from safety_filter.core.barriers import worst_recovery_time
 
     gamma, e, margin = np.array([1.5, 0.8]), np.array([20.0, 2.0]), np.array([0.5, 0.3])
     speed = np.array([4.0, 5.0])
@@ -209,7 +209,7 @@ def test_outside_s_the_bounds_ask_for_the_braking_curve() -> None:
     barriers' own."""
     import numpy as np
 
-    from safety_filter.barriers import evaluate_barriers
+    from safety_filter.core.barriers import evaluate_barriers
 
     lower, upper = np.array([-1.0]), np.array([1.0])
     gamma, beta, margin = np.array([1.0]), np.array([0.5]), 0.1
@@ -238,7 +238,7 @@ def test_no_recovery_time_where_the_drift_may_take_the_authority() -> None:
     give inf (no statement); well above it they are finite."""
     import numpy as np
 
-    from safety_filter.barriers import recovery_time_bound, worst_recovery_time
+    from safety_filter.core.barriers import recovery_time_bound, worst_recovery_time
 
     alpha = ClassK('linear')
     q, v = np.array([0.5, 0.5]), np.array([0.6, 0.6])  # outside S: gamma h = 0.5

@@ -15,10 +15,10 @@ import numpy as np
 import pytest
 import yaml
 
-from safety_filter.alphas import ClassK
-from safety_filter.certificate import PARAMETER_FILE_KEY, Certificate, CertificateMismatch
-from safety_filter.demo_arms import demo_arm_files
-from safety_filter.model import RobotModel
+from safety_filter.core.certificate import PARAMETER_FILE_KEY, Certificate, CertificateMismatch
+from safety_filter.core.class_k import ClassK
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.simulation.demo_arms import demo_arm_files
 
 
 def certificate_for(model: RobotModel) -> Certificate:
@@ -143,7 +143,7 @@ def test_the_hold_of_mean_accelerations_is_kept_and_covered_by_the_id(
     certificate without it keeps its id), and an invalid value is refused."""
     import dataclasses
 
-    from safety_filter.certificate import CertificateError
+    from safety_filter.core.certificate import CertificateError
 
     model, certificate, _, _ = planar2
     assert certificate.acceleration_hold_s is None

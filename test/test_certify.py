@@ -37,15 +37,7 @@ from certify_fixtures import (  # noqa: F401  (fixtures)
 )
 from scipy.optimize import linprog
 
-from safety_filter.alphas import ClassK
-from safety_filter.bounds import BoundSettings, estimate_bounds
-from safety_filter.certificate import (
-    PARAMETER_FILE_KEY,
-    Certificate,
-    CertificateError,
-    CertificateMismatch,
-)
-from safety_filter.certify import (
+from safety_filter.certification.certify import (
     CertifySettings,
     authority_problem,
     authority_row_sums,
@@ -54,10 +46,18 @@ from safety_filter.certify import (
     gamma_star,
     useful_authority,
 )
-from safety_filter.demo_arms import demo_arm_files, load_demo_arm
-from safety_filter.dynamics import mass_matrix_batch, rnea_batch
-from safety_filter.falsify import FalsifierResult, falsify
-from safety_filter.model import RobotModel
+from safety_filter.certification.dynamics_bounds import BoundSettings, estimate_bounds
+from safety_filter.certification.falsifier import FalsifierResult, falsify
+from safety_filter.core.certificate import (
+    PARAMETER_FILE_KEY,
+    Certificate,
+    CertificateError,
+    CertificateMismatch,
+)
+from safety_filter.core.class_k import ClassK
+from safety_filter.core.dynamics import mass_matrix_batch, rnea_batch
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm
 
 
 def _planar2_with(joint_overrides: dict) -> RobotModel:
@@ -387,7 +387,7 @@ def test_unsettled_sampling_margin_is_reported_not_raised(monkeypatch) -> None: 
     reach7 and ``margin_samples=200``). The margin estimate is replaced here by one that
     never settles, so the case is cheap and certain.
     """
-    certify_module = importlib.import_module('safety_filter.certify')
+    certify_module = importlib.import_module('safety_filter.certification.certify')
 
     def never_settles(model, gains, hold_period_s, samples, inflation=1.5,  # noqa: ANN001
                       current_margin=None, seed=0, **_ignored):  # noqa: ANN001, ANN003

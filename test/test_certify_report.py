@@ -12,9 +12,15 @@ import numpy as np
 import pytest
 import yaml
 
-from safety_filter.bounds import BoundSettings
-from safety_filter.certify import CertificationOutcome, CertifySettings, certify_with_evidence
-from safety_filter.certify_report import (
+from safety_filter.certification.certify import (
+    CertificationOutcome,
+    CertifySettings,
+    certify_with_evidence,
+)
+from safety_filter.certification.dynamics_bounds import BoundSettings
+from safety_filter.cli.main import SAFETY_NOTICE as CLI_NOTICE
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.reports.certificate_report import (
     REPORT_HTML,
     REPORT_JSON,
     SAFETY_NOTICE,
@@ -24,9 +30,7 @@ from safety_filter.certify_report import (
     plot_file_names,
     write_report,
 )
-from safety_filter.cli import SAFETY_NOTICE as CLI_NOTICE
-from safety_filter.demo_arms import demo_arm_files, load_demo_arm
-from safety_filter.model import RobotModel
+from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm
 
 PNG_SIGNATURE = b'\x89PNG\r\n\x1a\n'  # PNG specification (ISO/IEC 15948), section 5.2
 FAST = CertifySettings(bounds=BoundSettings(samples=256), falsifier_states=2000)

@@ -7,10 +7,10 @@ from pathlib import Path
 import pytest
 import yaml
 
-from safety_filter.certificate import Certificate
-from safety_filter.cli import EXIT_BAD_INPUT, EXIT_NOT_CERTIFIED, EXIT_OK, main
-from safety_filter.demo_arms import demo_arm_files, load_demo_arm
-from safety_filter.model import RobotModel
+from safety_filter.cli.main import EXIT_BAD_INPUT, EXIT_NOT_CERTIFIED, EXIT_OK, main
+from safety_filter.core.certificate import Certificate
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm
 
 FAST = ['--samples', '256', '--falsifier-states', '2000']
 
@@ -179,7 +179,7 @@ def test_inspect_still_works(capsys) -> None:
 
 
 def test_sampling_factor_reaches_the_settings(capsys) -> None:
-    from safety_filter.cli import _certify_settings, build_parser
+    from safety_filter.cli.main import _certify_settings, build_parser
 
     parser = build_parser()
     args = parser.parse_args(['certify', '--demo', 'planar2', '--sampling-factor', '2'])
@@ -194,7 +194,7 @@ def test_sampling_factor_reaches_the_settings(capsys) -> None:
 
 @pytest.mark.parametrize('form, expected', [('auto', None), ('start', False), ('mean', True)])
 def test_acceleration_form_reaches_the_settings(form: str, expected: bool | None) -> None:
-    from safety_filter.cli import _certify_settings, build_parser
+    from safety_filter.cli.main import _certify_settings, build_parser
 
     args = build_parser().parse_args(['certify', '--demo', 'planar2',
                                       '--acceleration-form', form])

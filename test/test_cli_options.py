@@ -1,6 +1,6 @@
 """One option name per concept across every ``safety-filter`` subcommand.
 
-Walks every subparser of :func:`safety_filter.cli.build_parser` and fails on an option
+Walks every subparser of :func:`safety_filter.cli.main.build_parser` and fails on an option
 spelled another way than the table below says (an earlier spelling is allowed only as an
 alias of the right option, marked deprecated in its help), on an option without help text,
 and on a subcommand whose description does not give its exit codes. The launch files'
@@ -17,8 +17,8 @@ from pathlib import Path
 import pytest
 import yaml
 
-from safety_filter.cli import build_parser
-from safety_filter.cli_options import EXECUTORS, STORAGES, THIN_MARGIN
+from safety_filter.cli.main import build_parser
+from safety_filter.cli.robot_options import EXECUTORS, STORAGES, THIN_MARGIN
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -223,7 +223,7 @@ def _with_exit_codes(parser: argparse.ArgumentParser) -> argparse.ArgumentParser
 
 
 def test_namespace_option_takes_ros_namespaces_only() -> None:
-    from safety_filter.cli_options import ros_namespace
+    from safety_filter.cli.robot_options import ros_namespace
 
     parser = build_parser()
     for command in (['run-graph'], ['node', '--certificate', 'c.yaml', '--demo', 'planar2']):
@@ -246,7 +246,7 @@ def test_run_graph_control_rate_is_gone_and_the_watchdog_rate_has_its_name() -> 
 
 
 def test_one_thin_margin_for_the_node_and_the_monitor() -> None:
-    from safety_filter.monitor_view import DEFAULT_THIN_MARGIN
+    from safety_filter.monitor.state import DEFAULT_THIN_MARGIN
 
     assert DEFAULT_THIN_MARGIN == THIN_MARGIN
     source = (REPO / 'safety_filter' / 'ros' / 'filter_node.py').read_text(encoding='utf-8')

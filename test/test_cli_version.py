@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 
 from safety_filter._version import __version__
-from safety_filter.cli import EXIT_OK, main
+from safety_filter.cli.main import EXIT_OK, main
 
 PACKAGE_XML = Path(__file__).resolve().parents[1] / 'package.xml'
 
@@ -35,7 +35,7 @@ def test_version_from_the_installed_command() -> None:
 
 
 def test_version_with_python_dash_m() -> None:
-    result = subprocess.run([sys.executable, '-m', 'safety_filter.cli', '--version'],
+    result = subprocess.run([sys.executable, '-m', 'safety_filter.cli.main', '--version'],
                             capture_output=True, text=True, timeout=120, check=False)
     assert result.returncode == 0, result.stderr
     assert result.stdout.strip().endswith(__version__)

@@ -32,12 +32,17 @@ import pytest
 from certify_fixtures import PlanarTwoLink, certified_demo_arm
 from scipy.integrate import solve_ivp
 
-from safety_filter.barriers import evaluate_barriers
-from safety_filter.dynamics import Dynamics
-from safety_filter.filter import SafetyFilter
-from safety_filter.model import RobotModel
-from safety_filter.nominal import BangBang, LargeSinusoid, PDBeyondLimits, ZeroTorque
-from safety_filter.simulate import limit_violations, run_closed_loop
+from safety_filter.core.barriers import evaluate_barriers
+from safety_filter.core.dynamics import Dynamics
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.online.barrier_filter import SafetyFilter
+from safety_filter.simulation.command_sources import (
+    BangBang,
+    LargeSinusoid,
+    PDBeyondLimits,
+    ZeroTorque,
+)
+from safety_filter.simulation.plant import limit_violations, run_closed_loop
 
 DURATION_S = 2.0
 TOLERANCE = 1e-6  # [rad], [rad/s]

@@ -35,12 +35,18 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from safety_filter.certify import CertificationOutcome, certify_with_evidence
-from safety_filter.dynamics import Dynamics
-from safety_filter.filter import SafetyFilter
-from safety_filter.model import RobotModel
-from safety_filter.nominal import BangBang, LargeSinusoid, PDBeyondLimits, SafeTracking, ZeroTorque
-from safety_filter.simulate import limit_violations, run_closed_loop
+from safety_filter.certification.certify import CertificationOutcome, certify_with_evidence
+from safety_filter.core.dynamics import Dynamics
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.online.barrier_filter import SafetyFilter
+from safety_filter.simulation.command_sources import (
+    BangBang,
+    LargeSinusoid,
+    PDBeyondLimits,
+    SafeTracking,
+    ZeroTorque,
+)
+from safety_filter.simulation.plant import limit_violations, run_closed_loop
 
 TEST_URDF = Path(__file__).resolve().parent / 'urdf'
 CONTROL_RATE_HZ = 1000.0
@@ -108,7 +114,7 @@ def test_drag6_certifies_at_1khz() -> None:
     at_start = np.array(certificate.settings['margin_at_start_of_hold'])
     assert np.all(flipped > certificate.sampling_margin)
     assert np.all(at_start > certificate.sampling_margin)
-    from safety_filter.certify_report import format_joint_table
+    from safety_filter.reports.certificate_report import format_joint_table
     assert 'through zero speed' in ' '.join(format_joint_table(outcome, model).split())
 
 

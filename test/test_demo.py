@@ -25,16 +25,16 @@ pytest.importorskip('rclpy', reason='rclpy is missing: install the ROS 2 wheels 
 
 from ros_fixtures import certified_arm, isolate_ros_domain  # noqa: E402
 
-from safety_filter import bags  # noqa: E402
-from safety_filter.demo import DemoOptions, run_demo  # noqa: E402
-from safety_filter.demo_arms import load_demo_arm  # noqa: E402
-from safety_filter.demo_report import (  # noqa: E402
+from safety_filter.recordings import bags  # noqa: E402
+from safety_filter.reports.demo_report import (  # noqa: E402
     PLOTS,
     REPORT_HTML,
     SUMMARY_JSON,
     range_and_speed_used,
 )
+from safety_filter.ros.demo_graph import DemoOptions, run_demo  # noqa: E402
 from safety_filter.ros.runner import run_graph, sim_demo_graph  # noqa: E402
+from safety_filter.simulation.demo_arms import load_demo_arm  # noqa: E402
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
 
@@ -140,7 +140,7 @@ def test_graph_across_processes_stops_cleanly_on_sigint(tmp_path: Path, domain: 
     arm = certified_arm(ARM)
     bag = tmp_path / 'bag'
     env = dict(os.environ, ROS_DOMAIN_ID=str(domain), ROS_AUTOMATIC_DISCOVERY_RANGE='LOCALHOST')
-    command = [sys.executable, '-m', 'safety_filter.cli', 'run-graph', '--demo', ARM,
+    command = [sys.executable, '-m', 'safety_filter.cli.main', 'run-graph', '--demo', ARM,
                '--certificate', str(arm.certificate_path), '--output-dir', str(bag), '--processes',
                '--domain-id', str(domain)]
     process = subprocess.Popen(command, env=env, stdout=subprocess.PIPE,

@@ -541,7 +541,7 @@ def test_hold_mass_matrix_is_the_exact_zero_order_hold(damping_scale: float) -> 
     Both the series branch (small ||M^-1 D T||) and the eigen branch are covered."""
     from scipy.linalg import expm
 
-    from safety_filter.dynamics import hold_mass_matrix
+    from safety_filter.core.dynamics import hold_mass_matrix
 
     rng = np.random.default_rng(3)
     n, hold = 5, 0.002

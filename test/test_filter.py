@@ -1,4 +1,4 @@
-"""The online filter step (safety_filter.filter).
+"""The online filter step (safety_filter.online.barrier_filter).
 
 Outside sources named per test: METHOD sections 3, 4.4 and 5 for the required behaviour,
 Pinocchio's gravity and inertia (through Dynamics, itself checked against Pinocchio's URDF
@@ -21,17 +21,17 @@ from filter_fixtures import (
     velocity_interval,
 )
 
-from safety_filter.certificate import CertificateError, CertificateMismatch
-from safety_filter.demo_arms import load_demo_arm
-from safety_filter.dynamics import Dynamics
+from safety_filter.core.certificate import CertificateError, CertificateMismatch
+from safety_filter.core.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
-from safety_filter.filter import (
+from safety_filter.online.barrier_filter import (
     FilterMode,
     FilterOutput,
     SafetyFilter,
     constructive_acceleration,
 )
-from safety_filter.qp import QPResult
+from safety_filter.online.qp_solver import QPResult
+from safety_filter.simulation.demo_arms import load_demo_arm
 
 ARMS = ('planar2', 'bench6', 'reach7')
 
@@ -219,9 +219,9 @@ def test_mean_accelerations_over_the_hold_meet_the_bounds() -> None:
     arm's damping is made strong for the test: 50 times its own)."""
     import yaml
 
-    from safety_filter.demo_arms import demo_arm_files
-    from safety_filter.dynamics import hold_mass_matrix
-    from safety_filter.model import RobotModel
+    from safety_filter.core.dynamics import hold_mass_matrix
+    from safety_filter.core.robot_model import RobotModel
+    from safety_filter.simulation.demo_arms import demo_arm_files
 
     model, certificate = demo_arm_and_certificate('planar2')
     urdf, limits = demo_arm_files('planar2')
@@ -616,7 +616,7 @@ def test_no_compilation_at_the_first_steps() -> None:
     """The constructor runs every branch once, so stepping compiles nothing new, whatever
     the input arrays' layout or write flag (a compilation takes seconds: in the control
     loop it would miss deadlines)."""
-    from safety_filter import _kernels
+    from safety_filter.online import kernels as _kernels
 
     filt = make_filter('reach7')
     kernels = [getattr(_kernels, name) for name in dir(_kernels)
@@ -635,6 +635,6 @@ def test_no_compilation_at_the_first_steps() -> None:
     np.testing.assert_array_equal(outputs[0].torque, outputs[1].torque)
     assert filt.statistics()['steps'] == 4  # the warm-up steps are not counted
     # The normalisation keeps shapes: a scalar stays a scalar (and is then rejected).
-    from safety_filter.filter import _kernel_input
+    from safety_filter.online.barrier_filter import _kernel_input
     assert _kernel_input(5.0).shape == ()
     assert filt.step(q, v, 5.0).mode is FilterMode.REJECTED

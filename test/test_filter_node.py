@@ -40,7 +40,7 @@ from ros_fixtures import (
     wait_for,
 )
 
-from safety_filter.certificate import Certificate
+from safety_filter.core.certificate import Certificate
 from safety_filter.ros.filter_node import (
     CERTIFICATE_PARAMETERS,
     MODE_FILTERED,

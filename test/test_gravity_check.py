@@ -1,4 +1,4 @@
-"""``safety-filter check-gravity`` (safety_filter.gravity_check) on bags written here.
+"""``safety-filter check-gravity`` (safety_filter.replay.gravity_convention) on bags written here.
 
 The bags hold what a driver would publish: the arm moves between rest poses (efforts during
 motion are nonsense on purpose: they must be ignored), then rests at each pose with velocity
@@ -20,13 +20,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from safety_filter import bags
-from safety_filter import gravity_check as gc
-from safety_filter.cli import SAFETY_NOTICE, main
-from safety_filter.demo_arms import load_demo_arm
-from safety_filter.dynamics import Dynamics
-from safety_filter.model import RobotModel
-from safety_filter.uncertainty import model_with_inertials
+from safety_filter.cli.main import SAFETY_NOTICE, main
+from safety_filter.core.dynamics import Dynamics
+from safety_filter.core.model_uncertainty import model_with_inertials
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.recordings import bags
+from safety_filter.replay import gravity_convention as gc
+from safety_filter.simulation.demo_arms import load_demo_arm
 
 START_NS = 1_700_000_000_000_000_000
 BENCH6_POSES = np.array([[0.3, 0.7, -1.2, 0.2, 0.4, 0.1],
@@ -259,7 +259,7 @@ def test_cli_full_and_driver_compensated(tmp_path: Path, bench6: RobotModel,
 
 def test_cli_inconclusive_exit_code(tmp_path: Path, planar2: RobotModel,
                                     capsys: pytest.CaptureFixture[str]) -> None:
-    from safety_filter.demo_arms import demo_arm_files
+    from safety_filter.simulation.demo_arms import demo_arm_files
 
     urdf, limits = demo_arm_files('planar2')
     path = tmp_path / 'heavy'

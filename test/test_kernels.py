@@ -1,10 +1,12 @@
 """The compiled kernels of the step against the numpy formulas they replace.
 
-References: the barrier rows against :func:`safety_filter.barriers.evaluate_barriers` (METHOD
+References: the barrier rows against :func:`safety_filter.core.barriers.evaluate_barriers` (METHOD
 2) for every class-K family; the QP data against the scaled QP of the
-:class:`safety_filter.qp.AccelerationQP` docstring written out in numpy and against SciPy's
-sparse matrices; the answer check against :func:`safety_filter.qp.check_acceleration`; the
-constructive command against :func:`safety_filter.filter.constructive_acceleration`.
+:class:`safety_filter.online.qp_solver.AccelerationQP` docstring written out in numpy and against
+SciPy's
+sparse matrices; the answer check against
+:func:`safety_filter.online.qp_solver.check_acceleration`; the
+constructive command against :func:`safety_filter.online.barrier_filter.constructive_acceleration`.
 """
 
 from __future__ import annotations
@@ -15,11 +17,11 @@ import numpy as np
 import pytest
 import scipy.sparse as sparse
 
-from safety_filter import _kernels
-from safety_filter.alphas import ClassK
-from safety_filter.barriers import evaluate_barriers
-from safety_filter.filter import constructive_acceleration
-from safety_filter.qp import AccelerationQP, check_acceleration
+from safety_filter.core.barriers import evaluate_barriers
+from safety_filter.core.class_k import ClassK
+from safety_filter.online import kernels as _kernels
+from safety_filter.online.barrier_filter import constructive_acceleration
+from safety_filter.online.qp_solver import AccelerationQP, check_acceleration
 
 
 def random_spd(rng: np.random.Generator, n: int) -> np.ndarray:

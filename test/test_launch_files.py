@@ -186,8 +186,8 @@ def test_sim_demo_feeds_the_filter_output_to_the_simulated_driver() -> None:
 
 
 def test_the_runner_starts_the_same_graphs(tmp_path: Path) -> None:
-    from safety_filter.demo_arms import demo_arm_files
     from safety_filter.ros.runner import NODES, hardware_graph, sim_demo_graph
+    from safety_filter.simulation.demo_arms import demo_arm_files
 
     scripts = console_scripts()
     for executable, (module, _) in NODES.items():
@@ -263,8 +263,8 @@ def test_hardware_launch_does_not_activate_unless_asked() -> None:
 
 def test_sim_arm_command_topic_is_not_the_hardware_default() -> None:
     """A sim graph's filter output and a real arm's driver cannot meet by default."""
-    from safety_filter.demo_arms import demo_arm_files
     from safety_filter.ros.runner import COMMAND_TOPIC, hardware_graph
+    from safety_filter.simulation.demo_arms import demo_arm_files
 
     hardware = LaunchFile(REPO / 'launch' / 'hardware.launch.py')
     default = _default(hardware, 'command_topic')
@@ -298,7 +298,7 @@ def test_sim_demo_launch_runs_on_an_isolated_domain() -> None:
 
 
 def test_run_graph_sim_gets_an_isolated_domain_and_hardware_does_not() -> None:
-    from safety_filter.cli_demo import graph_domain
+    from safety_filter.cli.demo import graph_domain
 
     for _ in range(20):
         domain, localhost_only = graph_domain('sim', None)
@@ -333,8 +333,8 @@ def test_hardware_launch_reads_the_robot_from_a_file_or_a_topic() -> None:
 
 
 def test_the_runner_puts_a_graph_in_a_namespace(tmp_path: Path) -> None:
-    from safety_filter.demo_arms import demo_arm_files
     from safety_filter.ros.runner import GraphError, hardware_graph, sim_demo_graph
+    from safety_filter.simulation.demo_arms import demo_arm_files
 
     urdf, limits = demo_arm_files('planar2')
     certificate = tmp_path / 'certificate.yaml'

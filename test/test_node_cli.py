@@ -50,7 +50,7 @@ def planar2() -> CertifiedArm:
 
 
 class NodeProcess:
-    """``python -m safety_filter.cli node ...`` with its output in files."""
+    """``python -m safety_filter.cli.main node ...`` with its output in files."""
 
     def __init__(self, arguments: list[str], folder: Path) -> None:
         env = dict(os.environ)
@@ -61,7 +61,7 @@ class NodeProcess:
         self.stderr_path = folder / 'node_stderr.txt'
         with open(self.stdout_path, 'wb') as out, open(self.stderr_path, 'wb') as err:
             self.process = subprocess.Popen(
-                [sys.executable, '-m', 'safety_filter.cli', 'node', *arguments],
+                [sys.executable, '-m', 'safety_filter.cli.main', 'node', *arguments],
                 stdout=out, stderr=err, env=env, cwd=folder)
 
     def output(self) -> str:
@@ -203,7 +203,7 @@ def test_no_default_robot_or_certificate_for_a_real_arm(
     """`safety-filter node` and `run-graph --graph hardware` never fall back to a demo arm
     or certificate: without the robot, its limits or the certificate they exit 2 and say
     what is missing."""
-    from safety_filter.cli import EXIT_BAD_INPUT, main
+    from safety_filter.cli.main import EXIT_BAD_INPUT, main
 
     arm = planar2
     options = {'robot': ['--urdf', str(arm.urdf_path)],
@@ -238,7 +238,7 @@ def test_robot_description_text_instead_of_a_urdf_file(
 
 def test_the_default_executor_is_the_single_threaded_one() -> None:
     """Not the experimental EventsExecutor on the safety path (it stays an option)."""
-    from safety_filter.cli import build_parser
+    from safety_filter.cli.main import build_parser
     from safety_filter.ros.filter_node import _parse_own_arguments
 
     assert _parse_own_arguments([]).executor == 'single_threaded'

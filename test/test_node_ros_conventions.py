@@ -35,11 +35,11 @@ from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy  # noqa: E
 from sensor_msgs.msg import JointState  # noqa: E402
 from std_msgs.msg import Float64MultiArray, String  # noqa: E402
 
-from safety_filter.certificate import PARAMETER_FILE_KEY, Certificate  # noqa: E402
-from safety_filter.cli import main as cli_main  # noqa: E402
-from safety_filter.demo_arms import demo_arm_files, load_demo_arm  # noqa: E402
+from safety_filter.cli.main import main as cli_main  # noqa: E402
+from safety_filter.core.certificate import PARAMETER_FILE_KEY, Certificate  # noqa: E402
+from safety_filter.online.status_layout import decode_fields, status_field_names  # noqa: E402
 from safety_filter.ros.filter_node import SafetyFilterNode, control_qos  # noqa: E402
-from safety_filter.status_layout import decode_fields, status_field_names  # noqa: E402
+from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm  # noqa: E402
 
 pytestmark = pytest.mark.ros
 

@@ -16,11 +16,11 @@ import pytest
 from filter_fixtures import demo_arm_and_certificate
 
 from safety_filter import SafetyFilter
-from safety_filter.demo_arms import demo_arm_files
-from safety_filter.dynamics import Dynamics
-from safety_filter.nominal import BangBang, PDBeyondLimits
-from safety_filter.simulate import ArmSimulator, limit_violations
-from safety_filter.uncertainty import model_with_inertials
+from safety_filter.core.dynamics import Dynamics
+from safety_filter.core.model_uncertainty import model_with_inertials
+from safety_filter.simulation.command_sources import BangBang, PDBeyondLimits
+from safety_filter.simulation.demo_arms import demo_arm_files
+from safety_filter.simulation.plant import ArmSimulator, limit_violations
 
 pin = pytest.importorskip('pinocchio', reason='the reference plant needs pin')
 

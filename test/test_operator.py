@@ -1,14 +1,15 @@
-"""The careless operator's schedule (safety_filter.operator): seeded, cycling, careless."""
+"""The careless operator's schedule (safety_filter.simulation.careless_operator): seeded, cycling,
+careless."""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
 
-from safety_filter.demo_arms import load_demo_arm
-from safety_filter.dynamics import Dynamics
+from safety_filter.core.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
-from safety_filter.operator import BEHAVIOURS, CarelessOperator
+from safety_filter.simulation.careless_operator import BEHAVIOURS, CarelessOperator
+from safety_filter.simulation.demo_arms import load_demo_arm
 
 
 @pytest.fixture(scope='module')

@@ -1,4 +1,4 @@
-"""The filter QP (safety_filter.qp) against an independent solver.
+"""The filter QP (safety_filter.online.qp_solver) against an independent solver.
 
 Outside source for the answers: the same QP written in *torque* variables (``u`` directly,
 the acceleration bounds through ``M^-1`` from numpy's ``inv``) and solved by Clarabel, an
@@ -14,8 +14,8 @@ import pytest
 from filter_fixtures import demo_arm_and_certificate, random_nominal, random_state_in_safe_set
 
 from safety_filter.errors import SafetyFilterError
-from safety_filter.filter import FilterMode, SafetyFilter
-from safety_filter.qp import (
+from safety_filter.online.barrier_filter import FilterMode, SafetyFilter
+from safety_filter.online.qp_solver import (
     ACCURATE_EPS,
     DEFAULT_EPS,
     STATUS_SOLVED,

@@ -29,10 +29,9 @@ from replay_fixtures import (
 )
 
 from safety_filter import Dynamics
-from safety_filter.bags import read_status
-from safety_filter.cli import main
-from safety_filter.nominal import PDBeyondLimits
-from safety_filter.replay import (
+from safety_filter.cli.main import main
+from safety_filter.recordings.bags import read_status
+from safety_filter.replay.bag_replay import (
     REPLAY_FILTERED_TOPIC,
     REPLAY_STATUS_FIELDS_TOPIC,
     REPLAY_STATUS_TOPIC,
@@ -48,14 +47,15 @@ from safety_filter.replay import (
     summarize,
     write_replay_bag,
 )
-from safety_filter.replay_batch import CertificateChoice, ReplayOptions, replay_bags
-from safety_filter.replay_report import (
+from safety_filter.replay.batch import CertificateChoice, ReplayOptions, replay_bags
+from safety_filter.reports.replay_report import (
     REPORT_HTML,
     REPORT_JSON,
     SUMMARY_HTML,
     SUMMARY_JSON,
     read_event_log,
 )
+from safety_filter.simulation.command_sources import PDBeyondLimits
 
 REPO = Path(__file__).resolve().parent.parent
 STORAGES = ('sqlite3', 'mcap')

@@ -38,11 +38,11 @@ from replay_fixtures import (
     write_run_bag,
 )
 
-from safety_filter.cli import main
-from safety_filter.nominal import PDBeyondLimits
-from safety_filter.replay import status_field_names
-from safety_filter.replay_batch import CertificateChoice, ReplayOptions, replay_bags
-from safety_filter.replay_cluster import ClusterError, inspect_worker, parse_address
+from safety_filter.cli.main import main
+from safety_filter.replay.bag_replay import status_field_names
+from safety_filter.replay.batch import CertificateChoice, ReplayOptions, replay_bags
+from safety_filter.replay.cluster import ClusterError, inspect_worker, parse_address
+from safety_filter.simulation.command_sources import PDBeyondLimits
 
 pytestmark = pytest.mark.slow
 REPO = Path(__file__).resolve().parent.parent
@@ -104,7 +104,7 @@ def _bag_messages(path: Path, solve_index: int) -> list[tuple[str, int, str]]:
     measured solve time blanked."""
     from rosbags.highlevel import AnyReader
 
-    from safety_filter.bags import typestore
+    from safety_filter.recordings.bags import typestore
 
     messages = []
     with AnyReader([path], default_typestore=typestore()) as reader:
@@ -418,8 +418,8 @@ def test_addresses_parse_to_tcp() -> None:
 
 def test_a_local_replay_does_not_import_dask() -> None:
     code = ('import sys\n'
-            'from safety_filter.cli import build_parser\n'
-            'import safety_filter.replay_batch, safety_filter.replay_cli\n'
+            'from safety_filter.cli.main import build_parser\n'
+            'import safety_filter.replay.batch, safety_filter.cli.replay\n'
             "build_parser().parse_args(['replay', 'x', '--certificate', 'c'])\n"
             "print(sorted(m for m in sys.modules if m.split('.')[0] in "
             "('dask', 'distributed')))\n")

@@ -28,8 +28,9 @@ import pytest
 from browser_fixtures import HeadlessChromium, chromium, image_statistics
 from command_runs import certify_run, demo_run, replay_run, stress_run
 
-from safety_filter import _report_common, replay_report
-from safety_filter.replay_report import (
+from safety_filter.reports import html_kit as _report_common
+from safety_filter.reports import replay_report
+from safety_filter.reports.replay_report import (
     INTERACTIVE_BUCKETS,
     INTERACTIVE_FULL_SAMPLES,
     MOMENT_WINDOW_S,

@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from safety_filter.cli_demo import (
+from safety_filter.cli.demo import (
     EXIT_GRAPH_OK,
     EXIT_LIMIT_BROKEN,
     EXIT_NODE_FAILED,
@@ -47,7 +47,7 @@ def test_exit_code_a_failed_node_first_then_a_broken_limit(capsys: Any) -> None:
 
 
 def test_run_graph_description_gives_every_exit_code() -> None:
-    from safety_filter.cli import build_parser
+    from safety_filter.cli.main import build_parser
 
     parser = build_parser()
     (commands,) = [a for a in parser._actions if hasattr(a, 'choices') and a.choices
@@ -78,8 +78,8 @@ def arm() -> Any:
 @ros
 def test_sim_graph_in_a_namespace_keeps_its_limits_and_exits_0(
         arm: Any, domain: int, tmp_path: Path, capsys: Any) -> None:
-    from safety_filter import bags
-    from safety_filter.cli import main
+    from safety_filter.cli.main import main
+    from safety_filter.recordings import bags
 
     namespace = f'/rg_{os.getpid()}'
     bag = tmp_path / 'bag'
@@ -104,7 +104,7 @@ def test_sim_graph_in_a_namespace_keeps_its_limits_and_exits_0(
 @ros
 def test_a_node_that_raises_makes_the_graph_exit_1(
         arm: Any, domain: int, monkeypatch: pytest.MonkeyPatch, capsys: Any) -> None:
-    from safety_filter.cli import main
+    from safety_filter.cli.main import main
     from safety_filter.ros.filter_node import SafetyFilterNode
 
     original = SafetyFilterNode._run_step
@@ -180,7 +180,7 @@ def test_hardware_graph_takes_the_robot_from_a_latched_description(
     from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
     from std_msgs.msg import String
 
-    from safety_filter.cli import main
+    from safety_filter.cli.main import main
 
     namespace = f'/rg_hw_{os.getpid()}'
     context = rclpy.context.Context()

@@ -1,7 +1,8 @@
-"""The simulated driver (safety_filter.sim_driver): the plant of the sim_arm node, no ROS.
+"""The simulated driver (safety_filter.simulation.sim_driver): the plant of the sim_arm node, no
+ROS.
 
 The accelerated simulator is checked against the package's reference simulator
-(:class:`safety_filter.simulate.ArmSimulator`, itself checked against SciPy's ``solve_ivp``
+(:class:`safety_filter.simulation.plant.ArmSimulator`, itself checked against SciPy's ``solve_ivp``
 in test_simulate.py); the driver's rules (brakes, saturation, command timeout, latency, noise)
 against hand-computed expectations.
 """
@@ -11,11 +12,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from safety_filter.demo_arms import load_demo_arm
-from safety_filter.dynamics import Dynamics
+from safety_filter.core.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
-from safety_filter.sim_driver import SimulatedDriver
-from safety_filter.simulate import ArmSimulator
+from safety_filter.simulation.demo_arms import load_demo_arm
+from safety_filter.simulation.plant import ArmSimulator
+from safety_filter.simulation.sim_driver import SimulatedDriver
 
 RATE = 1000.0
 PERIOD = 1.0 / RATE
@@ -153,18 +154,3 @@ def test_bad_options_are_refused(options) -> None:
     with pytest.raises(SafetyFilterError):
         SimulatedDriver(model, **kwargs)
 
-
-def test_the_demo_core_imports_no_ros() -> None:
-    import ast
-    from pathlib import Path
-
-    package = Path(__file__).resolve().parent.parent / 'safety_filter'
-    for name in ('operator', 'bags', 'sim_driver', 'demo_report', 'demo'):
-        tree = ast.parse((package / f'{name}.py').read_text(encoding='utf-8'))
-        top_level = [node for node in tree.body if isinstance(node, (ast.Import, ast.ImportFrom))]
-        imported = {alias.name.split('.')[0] for node in top_level if isinstance(node, ast.Import)
-                    for alias in node.names}
-        imported |= {node.module for node in top_level
-                     if isinstance(node, ast.ImportFrom) and node.module}
-        assert not {m.split('.')[0] for m in imported} & {'rclpy', 'sensor_msgs', 'std_msgs'}, name
-        assert not any(m.startswith('safety_filter.ros') for m in imported), name

@@ -13,9 +13,9 @@ import pytest
 from certify_fixtures import PlanarTwoLink
 from scipy.integrate import solve_ivp
 
-from safety_filter.demo_arms import load_demo_arm
-from safety_filter.dynamics import Dynamics
-from safety_filter.simulate import ArmSimulator, limit_violations
+from safety_filter.core.dynamics import Dynamics
+from safety_filter.simulation.demo_arms import load_demo_arm
+from safety_filter.simulation.plant import ArmSimulator, limit_violations
 
 DURATION_S = 0.5
 

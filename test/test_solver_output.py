@@ -2,7 +2,7 @@
 
 OSQP 1.x prints "Polishing not needed - no active set detected at optimal point" on every
 solve whose answer has no active constraint, whatever its ``verbose`` setting (the filter
-leaves the nominal alone on most steps, so that was most steps); ``safety_filter.qp``
+leaves the nominal alone on most steps, so that was most steps); ``safety_filter.online.qp_solver``
 keeps it, and anything else OSQP writes through Python, off standard output. These tests
 run the commands as subprocesses (the demo's ROS graph with the filter node in one process
 and with one process per node, replay with its worker processes, certify with HiGHS,
@@ -26,7 +26,7 @@ import numpy as np
 import pytest
 from command_runs import REPO, CommandRun, certify_run, demo_run, replay_run, stress_run
 
-from safety_filter import qp
+from safety_filter.online import qp_solver as qp
 
 # Phrases of OSQP 1.x (its polishing note, banner, summary and error prefix) and of HiGHS
 # (its log as printed with output on).
@@ -48,7 +48,7 @@ SOLVER_PATTERN = re.compile(
 _PROBE = textwrap.dedent("""
     import sys
     import numpy as np
-    import safety_filter.qp as qp
+    import safety_filter.online.qp_solver as qp
     if not {quiet}:
         qp.silence_solver_output = lambda: None
     solver = qp.AccelerationQP(np.array([10.0, 10.0]))

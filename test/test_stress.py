@@ -18,12 +18,18 @@ import numpy as np
 import pytest
 from certify_fixtures import certified_demo_arm
 
-from safety_filter import stress
-from safety_filter.cli import SAFETY_NOTICE, main
-from safety_filter.filter import SafetyFilter
-from safety_filter.nominal import LargeSinusoid, PDBeyondLimits, SafeTracking, ZeroTorque
-from safety_filter.simulate import limit_violations, run_closed_loop
-from safety_filter.stress import (
+from safety_filter.cli.main import SAFETY_NOTICE, main
+from safety_filter.core.model_uncertainty import Plant, nominal_plant
+from safety_filter.online.barrier_filter import SafetyFilter
+from safety_filter.simulation import stress_test as stress
+from safety_filter.simulation.command_sources import (
+    LargeSinusoid,
+    PDBeyondLimits,
+    SafeTracking,
+    ZeroTorque,
+)
+from safety_filter.simulation.plant import limit_violations, run_closed_loop
+from safety_filter.simulation.stress_test import (
     Push,
     VerdictRules,
     recovery_times,
@@ -31,7 +37,6 @@ from safety_filter.stress import (
     run_plant_loop,
     summarize_run,
 )
-from safety_filter.uncertainty import Plant, nominal_plant
 
 RATE_HZ = 1000.0
 
@@ -265,7 +270,7 @@ def test_verdict_rules() -> None:
 # ---------------------------------------------------------------------- SafeTracking
 @pytest.mark.parametrize('arm', ['planar2', 'bench6'])
 def test_safe_tracking_tracks_its_reference_and_keeps_every_limit(arm: str) -> None:
-    from safety_filter.demo_arms import load_demo_arm
+    from safety_filter.simulation.demo_arms import load_demo_arm
 
     model = load_demo_arm(arm)
     payload = 0.5 * (model.payload.mass_min + model.payload.mass_max)
@@ -368,8 +373,8 @@ def test_tip_force_torque_matches_the_planar_jacobian() -> None:
     (Spong, Hutchinson and Vidyasagar, Robot Modeling and Control, the planar elbow arm:
     tip (l1 c1 + l2 c12, l1 s1 + l2 s12) in the x-z plane, l1 = 0.5 m, l2 = 0.4 m as the URDF
     says)."""
-    from safety_filter.demo_arms import load_demo_arm
-    from safety_filter.stress import tip_force_torque
+    from safety_filter.simulation.demo_arms import load_demo_arm
+    from safety_filter.simulation.stress_test import tip_force_torque
 
     model = load_demo_arm('planar2')
     l1, l2 = 0.5, 0.4

@@ -17,9 +17,9 @@ from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPo
 from rclpy.signals import SignalHandlerOptions
 from rclpy.utilities import remove_ros_args
 
-from safety_filter.cli_options import EXECUTORS, executor_name
+from safety_filter.cli.robot_options import EXECUTORS, executor_name
+from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import SafetyFilterError
-from safety_filter.model import RobotModel
 
 EXIT_OK = 0
 EXIT_FAILED = 1

@@ -38,7 +38,7 @@ Publications:
   most of the traffic). The field names go out once, at configure, on
 * ``~/status_fields`` (``std_msgs/String``, transient-local: late subscribers and bag
   recorders still get it): the comma-separated field names of ``~/status``, in order (see
-  :mod:`safety_filter.status_layout`, :data:`STATUS_SCALAR_FIELDS` and
+  :mod:`safety_filter.online.status_layout`, :data:`STATUS_SCALAR_FIELDS` and
   :func:`status_field_names`)::
 
       stamp_s,step,mode,hold_nominal,intervention,solve_time_s,joint_state_age_s,
@@ -176,7 +176,7 @@ hardware`` load it.
 Operational parameters: ``joint_state_timeout_s`` (0.02) and ``nominal_timeout_s`` (0.1)
 [s] may change at any time (positive, finite); ``trigger`` (``'joint_state'``),
 ``watchdog_rate_hz`` (0 = the certificate's control rate), ``diagnostics_rate_hz`` (2.0) and
-``thin_margin`` (0.01, in the barrier's units: ``safety_filter.cli_options.THIN_MARGIN``,
+``thin_margin`` (0.01, in the barrier's units: ``safety_filter.cli.robot_options.THIN_MARGIN``,
 also the monitor's default) are read at configure and can be changed only while the node is
 unconfigured.
 
@@ -252,12 +252,17 @@ from rclpy.wait_for_message import wait_for_message
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray, MultiArrayDimension, String
 
-from safety_filter.certificate import FILTER_NODE_NAME, Certificate
-from safety_filter.cli_options import THIN_MARGIN
+from safety_filter.cli.robot_options import THIN_MARGIN
+from safety_filter.core.certificate import FILTER_NODE_NAME, Certificate
+from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import SafetyFilterError
-from safety_filter.filter import GRAVITY_CONVENTIONS, FilterMode, FilterOutput, SafetyFilter
-from safety_filter.model import RobotModel
-from safety_filter.status_layout import (  # noqa: F401 - re-exported: the node's interface
+from safety_filter.online.barrier_filter import (
+    GRAVITY_CONVENTIONS,
+    FilterMode,
+    FilterOutput,
+    SafetyFilter,
+)
+from safety_filter.online.status_layout import (  # noqa: F401 - re-exported: the node's interface
     DIAGNOSTIC_NAME_SUFFIX,
     STATUS_JOINT_FIELDS,
     STATUS_SCALAR_FIELDS,
@@ -302,7 +307,7 @@ ROBOT_DESCRIPTION_TIMEOUT_S = 10.0  # [s] default robot_description_timeout_s
 RCLError = _rclpy.RCLError
 EXIT_OK = 0
 EXIT_FAILED = 1
-EXECUTORS = ('single_threaded', 'events')  # of safety_filter.cli_options.EXECUTORS
+EXECUTORS = ('single_threaded', 'events')  # of safety_filter.cli.robot_options.EXECUTORS
 # Diagnostics WARN when the median step period exceeds the certified hold by more than this
 # fraction (see the module docstring), judged on at least STEP_PERIOD_MIN_SAMPLES periods.
 STEP_PERIOD_TOLERANCE = 0.1

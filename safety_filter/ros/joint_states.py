@@ -1,5 +1,5 @@
 """Listen to ``sensor_msgs/JointState`` for a while and keep every message (for
-``safety-filter check-gravity``, :mod:`safety_filter.gravity_check`).
+``safety-filter check-gravity``, :mod:`safety_filter.replay.gravity_convention`).
 
 A plain node, ``safety_filter_check_gravity_<pid>``, in an rclpy context of its own,
 subscribes best-effort (which matches reliable and best-effort publishers alike), keep-last

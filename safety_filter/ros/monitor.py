@@ -16,7 +16,7 @@ The limits come from ``--certificate`` (the certificate parameter file) or, with
 the filter node's parameters (read once through its ``get_parameters`` service when it
 appears). Without either, values are shown with ``?`` for bars and percentages.
 
-The screen is drawn with Rich (:mod:`safety_filter.monitor_screen`): on a terminal it is
+The screen is drawn with Rich (:mod:`safety_filter.monitor.screen`): on a terminal it is
 repainted in place and follows the window's size; it needs no mouse or special terminal
 features, so it works over SSH and in tmux. When stdout is not a terminal (or ``TERM`` is
 dumb, or with ``--plain``) each frame is printed after a separator line, without escape
@@ -27,8 +27,8 @@ The monitor is meant to cost the filter nothing: ``~/status`` is subscribed best
 acknowledgements or resends asked of the filter's publisher), ``/diagnostics`` with the
 default reliable QoS of diagnostics.
 
-Events (:mod:`safety_filter.monitor_state` lists the kinds and keys) go to ``--event-log``
-as JSON lines, flushed as they happen (:mod:`safety_filter.monitor_event_log`).
+Events (:mod:`safety_filter.monitor.state` lists the kinds and keys) go to ``--event-log``
+as JSON lines, flushed as they happen (:mod:`safety_filter.recordings.event_log`).
 ``--duration`` stops after that many seconds; Ctrl-C (SIGINT) and SIGTERM stop cleanly.
 """
 
@@ -53,11 +53,10 @@ from rclpy.signals import SignalHandlerOptions
 from rclpy.utilities import remove_ros_args
 from std_msgs.msg import Float64MultiArray, String
 
+from safety_filter.cli.monitor import add_monitor_arguments, check_monitor_arguments
 from safety_filter.errors import SafetyFilterError
-from safety_filter.monitor_cli import add_monitor_arguments, check_monitor_arguments
-from safety_filter.monitor_event_log import EventLogWriter
-from safety_filter.monitor_screen import MonitorFrame, Screen, plain_output
-from safety_filter.monitor_state import (
+from safety_filter.monitor.screen import MonitorFrame, Screen, plain_output
+from safety_filter.monitor.state import (
     DiagnosticSnapshot,
     JointLimits,
     MonitorEvent,
@@ -68,8 +67,9 @@ from safety_filter.monitor_state import (
     split_node_name,
     status_topic,
 )
+from safety_filter.online.status_layout import decode_fields, fields_topic, legacy_diagnostic_name
+from safety_filter.recordings.event_log import EventLogWriter
 from safety_filter.ros._common import make_executor
-from safety_filter.status_layout import decode_fields, fields_topic, legacy_diagnostic_name
 
 EXIT_OK = 0
 EXIT_BAD_INPUT = 2
@@ -145,7 +145,7 @@ class FilterMonitorNode(Node):
         """The one place that knows the ``~/status`` wire format: values in ``data``, field
         names announced once on ``~/status_fields`` (or, from earlier releases, in each
         message's ``layout.dim[0].label``; or, failing both, derived from the certificate's
-        joints), see :func:`safety_filter.status_layout.decode_fields`. The layout is built
+        joints), see :func:`safety_filter.online.status_layout.decode_fields`. The layout is built
         once per distinct (label, announced names, length). None while no usable field
         names are known."""
         dims = msg.layout.dim

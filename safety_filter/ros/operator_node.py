@@ -1,7 +1,8 @@
 """A careless operator as a ROS 2 node (``careless_operator``): the demo's command source.
 
 It emulates a person teleoperating the arm carelessly, with the seeded behaviour schedule of
-:class:`safety_filter.operator.CarelessOperator` (PD toward targets beyond the limits, sudden
+:class:`safety_filter.simulation.careless_operator.CarelessOperator` (PD toward targets beyond the
+limits, sudden
 full-effort jerks, a slack hold that lets gravity act, large sinusoids; a few seconds each,
 cycling). The same ``seed`` gives the same schedule, and the same torque for the same state.
 
@@ -36,7 +37,6 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray, MultiArrayDimension
 
 from safety_filter.errors import SafetyFilterError
-from safety_filter.operator import BEHAVIOURS, CarelessOperator
 from safety_filter.ros._common import (
     JointOrder,
     describe,
@@ -45,6 +45,7 @@ from safety_filter.ros._common import (
     spin_node,
     state_qos,
 )
+from safety_filter.simulation.careless_operator import BEHAVIOURS, CarelessOperator
 
 NODE_NAME = 'careless_operator'
 NOMINAL_TOPIC = 'nominal_torque'

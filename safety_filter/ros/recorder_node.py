@@ -1,7 +1,7 @@
 """A bag recorder node (``bag_recorder``) for the demo's topics, without ``rosbag2_py``.
 
 It subscribes to each topic it is given and writes every message to a rosbag2 bag through
-:class:`safety_filter.bags.BagWriter` (MCAP by default, SQLite 3 on request), with the
+:class:`safety_filter.recordings.bags.BagWriter` (MCAP by default, SQLite 3 on request), with the
 ROS 2 Jazzy message definitions and type hashes of the ``rosbags`` typestore, so that
 ``ros2 bag``, Foxglove and ``rosbags`` read it. Subscriptions are *raw*: the node stores
 the CDR bytes it receives, which are the bytes ``ros2 bag record`` would store, without
@@ -16,9 +16,10 @@ it was sent before the recorder subscribed, and recorded with that offered QoS.
 
 Parameters (read at start): ``bag_path`` (the bag folder to create; must not exist),
 ``storage`` (``'mcap'`` or ``'sqlite3'``), ``topics`` (absolute topic names; default
-:data:`safety_filter.bags.TOPIC_TYPES`), ``types`` (their message types, same order; may be
+:data:`safety_filter.recordings.bags.TOPIC_TYPES`), ``types`` (their message types, same order;
+may be
 left empty for the known topics), ``latched_topics`` (those of ``topics`` that are latched;
-default :data:`safety_filter.bags.LATCHED_TOPICS`).
+default :data:`safety_filter.recordings.bags.LATCHED_TOPICS`).
 """
 
 from __future__ import annotations
@@ -31,8 +32,8 @@ from typing import Any
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 
-from safety_filter.bags import LATCHED_TOPICS, TOPIC_TYPES, BagWriter
 from safety_filter.errors import SafetyFilterError
+from safety_filter.recordings.bags import LATCHED_TOPICS, TOPIC_TYPES, BagWriter
 from safety_filter.ros._common import describe, spin_node
 
 NODE_NAME = 'bag_recorder'

@@ -48,9 +48,9 @@ from typing import Any
 
 import yaml
 
-from safety_filter import bags
-from safety_filter.certificate import FILTER_NODE_NAME
+from safety_filter.core.certificate import FILTER_NODE_NAME
 from safety_filter.errors import SafetyFilterError
+from safety_filter.recordings import bags
 
 PACKAGE = 'safety_filter'
 SIM_DEMO_CONFIG = 'sim_demo.yaml'
@@ -63,7 +63,7 @@ HARDWARE_COMMAND_TOPIC = 'effort_command'
 # (as the demo does), unless given a domain.
 SIM_DOMAIN_RANGE = (150, 199)
 # An excursion past a limit of the simulated arm larger than this counts as a broken limit
-# (the demo report's tolerance, safety_filter.demo_report.VIOLATION_TOLERANCE).
+# (the demo report's tolerance, safety_filter.reports.demo_report.VIOLATION_TOLERANCE).
 LIMIT_TOLERANCE = 1e-6
 
 # Executable (console script) -> (module, node class) of this package's nodes.
@@ -110,7 +110,7 @@ def check_namespace(namespace: str) -> str:
     Raises:
         GraphError: any other text, with the rule it breaks.
     """
-    from safety_filter.cli_options import ros_namespace
+    from safety_filter.cli.robot_options import ros_namespace
 
     try:
         return ros_namespace(namespace)
@@ -234,7 +234,7 @@ def sim_demo_graph(*, urdf_path: str | Path, limits_path: str | Path,
     config = Path(config) if config is not None else config_file(SIM_DEMO_CONFIG)
     robot = {'urdf_path': str(urdf_path), 'limits_path': str(limits_path)}
     if control_rate_hz is None and certificate is not None:
-        from safety_filter.certificate import Certificate
+        from safety_filter.core.certificate import Certificate
 
         control_rate_hz = Certificate.load(certificate).control_rate_hz
     sim_parameters: dict[str, Any] = dict(robot, lockstep=bool(filtered),
@@ -423,7 +423,7 @@ def run_graph(specs: Sequence[NodeSpec], *, processes: bool = False, executor: s
             this order (a recorder first, the simulated arm last).
         processes: one subprocess per node (True) or every node in this process.
         executor: ``'events'`` (default), ``'single_threaded'`` or ``'multi_threaded'``
-            (:data:`safety_filter.cli_options.EXECUTORS`): the executor of the in-process
+            (:data:`safety_filter.cli.robot_options.EXECUTORS`): the executor of the in-process
             graph, and of each of this package's demo nodes in subprocess mode (the filter
             node's executable always uses its own single-threaded one). See
             :func:`safety_filter.ros._common.make_executor`.
@@ -439,7 +439,7 @@ def run_graph(specs: Sequence[NodeSpec], *, processes: bool = False, executor: s
         GraphError: a node could not be created, or the filter not configured and
             activated.
     """
-    from safety_filter.cli_options import EXECUTORS, executor_name
+    from safety_filter.cli.robot_options import EXECUTORS, executor_name
 
     executor = executor_name(executor)
     if not specs:

@@ -1,7 +1,9 @@
 """A simulated torque-controlled arm as a ROS 2 node (``sim_arm``): the plant of the demo.
 
-The node wraps :class:`safety_filter.sim_driver.SimulatedDriver` (which wraps the package's
-one simulation, :class:`safety_filter.simulate.ArmSimulator`): each control period it applies
+The node wraps :class:`safety_filter.simulation.sim_driver.SimulatedDriver` (which wraps the
+package's
+one simulation, :class:`safety_filter.simulation.plant.ArmSimulator`): each control period it
+applies
 the latest torque command, integrates the arm's dynamics over the period with RK4 at
 ``internal_rate_hz`` and publishes the measured state.
 
@@ -81,10 +83,10 @@ from rosgraph_msgs.msg import Clock as ClockMessage
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 
+from safety_filter.core.model_uncertainty import model_with_inertials
 from safety_filter.errors import SafetyFilterError
 from safety_filter.ros._common import describe, latest_qos, load_model, spin_node, state_qos
-from safety_filter.sim_driver import GRAVITY_CONVENTIONS, SimulatedDriver
-from safety_filter.uncertainty import model_with_inertials
+from safety_filter.simulation.sim_driver import GRAVITY_CONVENTIONS, SimulatedDriver
 
 NODE_NAME = 'sim_arm'
 # Not the hardware launch's default command topic (effort_command): a sim graph's filter

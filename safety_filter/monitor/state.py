@@ -1,0 +1,676 @@
+"""What the live monitor knows about a filter node, and the events it detects (no ROS).
+
+The ROS side (:mod:`safety_filter.ros.monitor`) only turns the filter node's messages into
+snapshots and hands them to a :class:`MonitorState`; everything it knows and decides is
+here, so it can be tested without DDS. How it is drawn is in
+:mod:`safety_filter.monitor.screen`, how events are logged in
+:mod:`safety_filter.recordings.event_log`.
+
+* :class:`StatusSnapshot` (one ``~/status`` array, with its :class:`StatusLayout`) and
+  :class:`DiagnosticSnapshot` (the filter's ``'<node>: filter'`` status of ``/diagnostics``);
+* :class:`JointLimits`: the joint names and limits the values are shown against, from the
+  certificate parameter file or the node's parameters;
+* :class:`MonitorState`: the latest snapshots, running totals, the alarms, and the **events**
+  it detects from the sequence of snapshots (:class:`MonitorEvent`).
+
+Events
+------
+Each event has a wall time ``t`` (when the monitor saw it), a ``kind``, a ``detail`` line
+for people, ``stamp_s`` (the same moment on the filter node's clock: the stamps of its
+``~/status`` and ``/diagnostics``, extrapolated with the wall clock; None before the first
+message) and the kind's extra keys (in brackets):
+
+- ``filter_appeared`` / ``filter_disappeared`` (``silent_s``): the first message after none
+  for ``absent_after_s`` (2 s), and such a silence; episodes still open at a disappearance
+  are ended first (``reason``).
+- ``level`` (``from``, ``to``, ``message``): diagnostics level changes (OK, WARN, ERROR,
+  STALE), the first report included (``from`` null).
+- ``mode`` (``from``, ``to``): every change of the filter's mode (``filtered``,
+  ``fallback``, ``recovering``, ``rejected``, ``stale``; ``inactive`` when the node reports
+  itself inactive), the first one included.
+- ``watchdog_trip`` (``joint_state_age_ms``) / ``watchdog_clear`` (``duration_s``,
+  ``steps``): the joint-state watchdog tripped (mode ``stale``: joint states timed out,
+  the filter sends its hold command) and ended.
+- ``fallback_start`` / ``fallback_end``, ``recovering_start`` / ``recovering_end``,
+  ``rejected_start`` / ``rejected_end`` (ends: ``duration_s``, ``steps`` seen).
+- ``thin_margin_start`` (``joint``, ``margin``, ``threshold``) / ``thin_margin_end``
+  (``joint``, ``min_margin``, ``duration_s``): a joint's barrier margin fell below the
+  threshold, and came back above it (with 20 % hysteresis, so a margin hovering at the
+  threshold does not flood the log).
+- ``certificate_mismatch`` (``node_certificate_id``, ``expected``): the node runs another
+  certificate than the ``--certificate`` file.
+
+Modes, margins and the watchdog are followed on ``~/status`` (every step); when it is
+silent for ``status_silent_s`` (1 s: the node inactive, or the status not reaching the
+monitor) the diagnostics' values stand in for it. Steps of the same mode between two
+status messages the monitor did not receive are not seen; the step totals shown come from
+the diagnostics' exact counts.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter, deque
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from safety_filter.cli.robot_options import THIN_MARGIN
+from safety_filter.errors import SafetyFilterError
+
+# The filter node's codes (safety_filter.ros.filter_node, which needs rclpy; a ROS test
+# checks that the two agree).
+MODE_NAMES = ('filtered', 'fallback', 'recovering', 'rejected', 'stale')
+LEVEL_NAMES = {0: 'OK', 1: 'WARN', 2: 'ERROR', 3: 'STALE'}
+LEVEL_OK, LEVEL_WARN, LEVEL_ERROR, LEVEL_STALE = 0, 1, 2, 3
+DIAGNOSTIC_NAME_SUFFIX = ': filter'
+EPISODE_MODES = ('fallback', 'recovering', 'rejected')
+MODE_INACTIVE = 'inactive'
+MODE_STALE = 'stale'
+
+DEFAULT_NODE_NAME = 'safety_filter'
+DEFAULT_THIN_MARGIN = THIN_MARGIN  # the filter node's thin_margin default too
+DEFAULT_ABSENT_AFTER_S = 2.0
+DEFAULT_STATUS_SILENT_S = 1.0
+THIN_MARGIN_HYSTERESIS = 0.2
+
+
+# ---------------------------------------------------------------------- names
+def split_node_name(node_name: str) -> tuple[str, str]:
+    """``(base name, fully qualified name)`` of ``'safety_filter'`` or ``'/ns/safety_filter'``.
+
+    Raises:
+        SafetyFilterError: an empty name or one ending in ``/``.
+    """
+    text = node_name.strip()
+    base = text.rstrip('/').rsplit('/', 1)[-1]
+    if not base or text.endswith('/'):
+        raise SafetyFilterError(f'not a node name: {node_name!r}')
+    full = text if text.startswith('/') else '/' + text
+    return base, full
+
+
+def diagnostic_name(node_name: str) -> str:
+    """The name of the filter's diagnostic status: ``'<fully qualified name>: filter'``
+    (``'/arm1/safety_filter: filter'``; :mod:`safety_filter.online.status_layout`)."""
+    return split_node_name(node_name)[1] + DIAGNOSTIC_NAME_SUFFIX
+
+
+def status_topic(node_name: str) -> str:
+    """The filter's ``~/status`` topic: ``'/<namespace>/<node>/status'``."""
+    return split_node_name(node_name)[1] + '/status'
+
+
+# ---------------------------------------------------------------------- snapshots
+def _number(text: str | None) -> float:
+    if text is None:
+        return math.nan
+    try:
+        return float(text)
+    except ValueError:
+        return math.nan
+
+
+@dataclass(frozen=True)
+class StatusLayout:
+    """Field names of a ``~/status`` array (``layout.dim[0].label``, comma separated)."""
+
+    fields: tuple[str, ...]
+    joint_names: tuple[str, ...]
+    index: Mapping[str, int]
+
+    @classmethod
+    def from_label(cls, label: str) -> StatusLayout:
+        """Parse the label; joints are those of the ``margin.<joint>`` fields, in order.
+
+        Raises:
+            SafetyFilterError: an empty label or repeated field names.
+        """
+        fields = tuple(name.strip() for name in label.split(',') if name.strip())
+        if not fields:
+            raise SafetyFilterError('status layout without field names')
+        if len(set(fields)) != len(fields):
+            raise SafetyFilterError('status layout with repeated field names')
+        joints = tuple(name[len('margin.'):] for name in fields if name.startswith('margin.'))
+        return cls(fields, joints, {name: i for i, name in enumerate(fields)})
+
+
+@dataclass(frozen=True)
+class StatusSnapshot:
+    """One ``~/status`` message.
+
+    Attributes:
+        layout: its field names.
+        values: the array, one value per field (missing trailing values read as NaN).
+        received_s: when it arrived, wall clock [s since the epoch].
+    """
+
+    layout: StatusLayout
+    values: Sequence[float]
+    received_s: float
+
+    @classmethod
+    def from_fields(cls, fields: Mapping[str, float], received_s: float) -> StatusSnapshot:
+        """A snapshot from ``{field: value}`` (for tests and tools)."""
+        layout = StatusLayout.from_label(','.join(fields))
+        return cls(layout, tuple(float(v) for v in fields.values()), received_s)
+
+    def get(self, name: str) -> float:
+        """Value of field ``name``; NaN when absent."""
+        i = self.layout.index.get(name)
+        if i is None or i >= len(self.values):
+            return math.nan
+        return float(self.values[i])
+
+    @property
+    def joint_names(self) -> tuple[str, ...]:
+        """The joints of the layout's ``margin.<joint>`` fields, in order."""
+        return self.layout.joint_names
+
+    def joint(self, quantity: str, joint: str) -> float:
+        """``quantity`` (margin, torque, nominal, position, velocity) of ``joint``."""
+        return self.get(f'{quantity}.{joint}')
+
+    @property
+    def mode(self) -> str | None:
+        """Mode name from the numeric code; None when absent."""
+        code = self.get('mode')
+        if not math.isfinite(code):
+            return None
+        index = int(round(code))
+        return MODE_NAMES[index] if 0 <= index < len(MODE_NAMES) else f'code {index}'
+
+    @property
+    def stamp_s(self) -> float:
+        """The filter node's clock at the step [s] (NaN when absent)."""
+        return self.get('stamp_s')
+
+
+@dataclass(frozen=True)
+class DiagnosticSnapshot:
+    """The filter's diagnostic status (one entry of a ``/diagnostics`` message).
+
+    Attributes:
+        level: 0 OK, 1 WARN, 2 ERROR, 3 STALE.
+        message: the status message.
+        values: its key values.
+        received_s: arrival, wall clock [s since the epoch].
+        stamp_s: the message header's stamp, the filter node's clock [s]; None if unset.
+    """
+
+    level: int
+    message: str
+    values: Mapping[str, str]
+    received_s: float
+    stamp_s: float | None = None
+
+    def number(self, key: str) -> float:
+        """Key value ``key`` as a number (NaN when missing or not a number)."""
+        return _number(self.values.get(key))
+
+    @property
+    def level_name(self) -> str:
+        """``'OK'``, ``'WARN'``, ``'ERROR'``, ``'STALE'`` (or ``'level N'``)."""
+        return LEVEL_NAMES.get(self.level, f'level {self.level}')
+
+    @property
+    def certificate_id(self) -> str | None:
+        """The id of the certificate the node runs; None when not reported."""
+        return self.values.get('certificate_id') or None
+
+    @property
+    def active(self) -> bool:
+        """False only when the node reports itself inactive."""
+        return self.values.get('active', 'true') != 'false'
+
+    @property
+    def mode(self) -> str | None:
+        """The node's mode: the last step's, ``'inactive'`` while inactive, None before any."""
+        if not self.active:
+            return MODE_INACTIVE
+        mode = self.values.get('mode')
+        return mode if mode and mode != 'none' else None
+
+    @property
+    def watchdog_tripped(self) -> bool:
+        """The message says the joint-state watchdog tripped."""
+        return 'watchdog tripped' in self.message
+
+
+# ---------------------------------------------------------------------- limits
+@dataclass(frozen=True)
+class JointLimits:
+    """Joint names and limits in the certificate's joint order.
+
+    Attributes:
+        joint_names: base to tip.
+        position_lower, position_upper: [rad or m]; velocity_limit [rad/s or m/s];
+            effort_limit [N m or N].
+        certificate_id: the certificate's id (None when unknown).
+        source: where they came from (for the screen).
+    """
+
+    joint_names: tuple[str, ...]
+    position_lower: tuple[float, ...]
+    position_upper: tuple[float, ...]
+    velocity_limit: tuple[float, ...]
+    effort_limit: tuple[float, ...]
+    certificate_id: str | None = None
+    source: str = ''
+
+    def __post_init__(self) -> None:
+        n = len(self.joint_names)
+        for name in ('position_lower', 'position_upper', 'velocity_limit', 'effort_limit'):
+            if len(getattr(self, name)) != n:
+                raise SafetyFilterError(
+                    f'limits: {name} has {len(getattr(self, name))} entries for {n} joints')
+
+    @classmethod
+    def from_parameters(cls, parameters: Mapping[str, Any], source: str) -> JointLimits:
+        """From certificate parameters (the ``ros__parameters`` of a certificate file, or the
+        filter node's parameters of the same names).
+
+        Raises:
+            SafetyFilterError: an entry missing or malformed.
+        """
+        try:
+            names = tuple(str(x) for x in parameters['joint_names'])
+            vectors = {key: tuple(float(x) for x in parameters[key]) for key in (
+                'position_lower', 'position_upper', 'velocity_limit', 'effort_limit')}
+        except KeyError as err:
+            raise SafetyFilterError(f'limits: no entry {err.args[0]!r} ({source})') from err
+        except (TypeError, ValueError) as err:
+            raise SafetyFilterError(f'limits: malformed entry ({source}): {err}') from err
+        certificate_id = parameters.get('certificate_id')
+        return cls(names, certificate_id=str(certificate_id) if certificate_id else None,
+                   source=source, **vectors)
+
+    @classmethod
+    def from_certificate_file(cls, path: str | Path) -> JointLimits:
+        """From a certificate parameter file written by ``safety-filter certify`` (checked:
+        an edited file is refused, as the node refuses it)."""
+        from safety_filter.core.certificate import Certificate
+
+        certificate = Certificate.load(path)
+        return cls.from_parameters(certificate.to_parameters(), f'certificate file {path}')
+
+    def of(self, joint: str) -> tuple[float, float, float, float] | None:
+        """``(lower, upper, velocity limit, effort limit)`` of ``joint``; None if unknown."""
+        try:
+            i = self.joint_names.index(joint)
+        except ValueError:
+            return None
+        return (self.position_lower[i], self.position_upper[i], self.velocity_limit[i],
+                self.effort_limit[i])
+
+
+# ---------------------------------------------------------------------- events
+@dataclass(frozen=True)
+class MonitorEvent:
+    """One event of the log (see the module docstring for the kinds and keys).
+
+    Attributes:
+        t: wall clock [s since the epoch] when the monitor saw it.
+        kind: the kind.
+        detail: one line for people.
+        stamp_s: the same moment on the filter node's clock [s] (None when unknown).
+        data: the kind's extra keys.
+    """
+
+    t: float
+    kind: str
+    detail: str
+    stamp_s: float | None = None
+    data: Mapping[str, Any] = field(default_factory=dict)
+
+    def to_dict(self, node: str = '', event_time: str = 'wall') -> dict[str, Any]:
+        """The JSON object of the log line (``event_time``: ``'wall'`` or ``'filter'``)."""
+        item: dict[str, Any] = {'t': self.t, 'kind': self.kind, 'detail': self.detail}
+        if event_time == 'filter' and self.stamp_s is not None:
+            item['t'] = self.stamp_s
+            item['wall_t'] = self.t
+        if node:
+            item['node'] = node
+        item['stamp_s'] = self.stamp_s
+        for key, value in self.data.items():
+            if key not in item:
+                item[key] = value
+        return item
+
+
+# ---------------------------------------------------------------------- the state
+@dataclass
+class _Episode:
+    start_s: float
+    steps: int = 0
+    extreme: float = math.inf
+
+
+def _percentile(sorted_values: Sequence[float], fraction: float) -> float:
+    if not sorted_values:
+        return math.nan
+    k = min(len(sorted_values) - 1, max(0, int(math.ceil(fraction * len(sorted_values))) - 1))
+    return sorted_values[k]
+
+
+class MonitorState:
+    """What the monitor knows about one filter node, fed with snapshots in arrival order.
+
+    :meth:`add_status`, :meth:`add_diagnostic` and :meth:`poll` return the events the new
+    information gives (and keep the last few in :attr:`recent_events`).
+
+    Args:
+        node_name: the filter node (``'safety_filter'`` or ``'/ns/safety_filter'``).
+        thin_margin: a barrier margin below this is thin (alarm and event).
+        limits: joint limits to show values against (or set :attr:`limits` later).
+        absent_after_s: no message for this long [s]: the filter is gone.
+        status_silent_s: ``~/status`` silent this long [s]: diagnostics stand in for it.
+        history: events kept for the screen.
+        expected_certificate_id: the certificate the node must run (from ``--certificate``);
+            another one is an alarm and a ``certificate_mismatch`` event.
+    """
+
+    def __init__(self, node_name: str = DEFAULT_NODE_NAME,
+                 thin_margin: float = DEFAULT_THIN_MARGIN, limits: JointLimits | None = None,
+                 absent_after_s: float = DEFAULT_ABSENT_AFTER_S,
+                 status_silent_s: float = DEFAULT_STATUS_SILENT_S, history: int = 6,
+                 expected_certificate_id: str | None = None) -> None:
+        if not math.isfinite(thin_margin):
+            raise SafetyFilterError(f'thin margin must be finite, got {thin_margin}')
+        if not (absent_after_s > 0 and status_silent_s > 0):
+            raise SafetyFilterError('absent_after_s and status_silent_s must be positive')
+        self.node_name = node_name
+        self.base_name = split_node_name(node_name)[0]
+        self.thin_margin = float(thin_margin)
+        self.thin_clear = self.thin_margin + THIN_MARGIN_HYSTERESIS * abs(self.thin_margin)
+        self.limits = limits
+        self.expected_certificate_id = expected_certificate_id
+        self.absent_after_s = float(absent_after_s)
+        self.status_silent_s = float(status_silent_s)
+        self.recent_events: deque[MonitorEvent] = deque(maxlen=history)
+        self.event_count = 0
+        self.status: StatusSnapshot | None = None
+        self.diagnostic: DiagnosticSnapshot | None = None
+        self.present = False
+        self.first_seen_s: float | None = None
+        self.last_seen_s: float | None = None
+        self.appearances = 0
+        self.status_count = 0
+        self.diagnostic_count = 0
+        self.step_totals: Counter[str] = Counter()  # steps per mode, from the diagnostics
+        self.episodes: Counter[str] = Counter()  # episodes started, per mode (incl. stale)
+        self.thin_episodes = 0
+        self.mode: str | None = None
+        self.level: int | None = None
+        self.certificate_mismatch = False
+        self._mode_episode: _Episode | None = None
+        self.thin: dict[str, _Episode] = {}
+        self._status_times: deque[float] = deque()
+        self._solve_times: deque[float] = deque(maxlen=2000)
+        self._interventions: deque[tuple[float, float]] = deque()
+        self._clock_pair: tuple[float, float] | None = None  # (wall, filter clock)
+
+    # ---- clocks
+    def filter_time(self, wall_s: float) -> float | None:
+        """``wall_s`` on the filter node's clock (from its latest stamp), None if unknown."""
+        if self._clock_pair is None:
+            return None
+        wall, stamp = self._clock_pair
+        return stamp + (wall_s - wall)
+
+    def _event(self, t: float, kind: str, detail: str, **data: Any) -> MonitorEvent:
+        event = MonitorEvent(t, kind, detail, self.filter_time(t), data)
+        self.recent_events.append(event)
+        self.event_count += 1
+        return event
+
+    # ---- inputs
+    def status_silent(self, now: float) -> bool:
+        """No ``~/status`` for :attr:`status_silent_s` (or never)."""
+        return self.status is None or now - self.status.received_s > self.status_silent_s
+
+    def add_status(self, snapshot: StatusSnapshot) -> list[MonitorEvent]:
+        """Take one ``~/status`` message; the events it gives."""
+        t = snapshot.received_s
+        if math.isfinite(snapshot.stamp_s):
+            self._clock_pair = (t, snapshot.stamp_s)
+        events = self._seen(t)
+        self.status = snapshot
+        self.status_count += 1
+        self._status_times.append(t)
+        while self._status_times and t - self._status_times[0] > 1.0:
+            self._status_times.popleft()
+        solve = snapshot.get('solve_time_s')
+        if math.isfinite(solve) and solve > 0.0:
+            self._solve_times.append(solve)
+        intervention = snapshot.get('intervention')
+        if math.isfinite(intervention):
+            self._interventions.append((t, intervention))
+        while self._interventions and t - self._interventions[0][0] > 1.0:
+            self._interventions.popleft()
+        mode = snapshot.mode
+        if mode is not None:
+            events += self._set_mode(mode, t, snapshot.get('joint_state_age_s'))
+        for joint in snapshot.joint_names:
+            events += self._margin(joint, snapshot.joint('margin', joint), t)
+        return events
+
+    def add_diagnostic(self, snapshot: DiagnosticSnapshot) -> list[MonitorEvent]:
+        """Take the filter's diagnostic status; the events it gives."""
+        t = snapshot.received_s
+        silent = self.status_silent(t)
+        if snapshot.stamp_s is not None and (silent or self._clock_pair is None):
+            self._clock_pair = (t, snapshot.stamp_s)
+        events = self._seen(t)
+        previous = self.level
+        if snapshot.level != previous:
+            old = LEVEL_NAMES.get(previous, None) if previous is not None else None
+            events.append(self._event(
+                t, 'level', f'{old or "none"} -> {snapshot.level_name}: {snapshot.message}',
+                **{'from': old, 'to': snapshot.level_name, 'message': snapshot.message}))
+            self.level = snapshot.level
+        self.diagnostic = snapshot
+        self.diagnostic_count += 1
+        for mode in MODE_NAMES:
+            count = snapshot.number(f'count.{mode}')
+            if math.isfinite(count):
+                self.step_totals[mode] += int(count)
+        expected = self.expected_certificate_id
+        found = snapshot.certificate_id
+        if expected and found and found != expected:
+            if not self.certificate_mismatch:
+                events.append(self._event(
+                    t, 'certificate_mismatch', f'the node runs certificate {found}, '
+                    f'not {expected}', node_certificate_id=found, expected=expected))
+            self.certificate_mismatch = True
+        else:
+            self.certificate_mismatch = False
+        if silent:
+            mode = snapshot.mode
+            if snapshot.active and snapshot.watchdog_tripped:
+                mode = MODE_STALE
+            if mode is not None:
+                events += self._set_mode(mode, t, snapshot.number('age.joint_state_ms') * 1e-3,
+                                         steps=0)
+            for key in snapshot.values:
+                if key.startswith('margin.'):
+                    events += self._margin(key[len('margin.'):], snapshot.number(key), t)
+        return events
+
+    def poll(self, now: float) -> list[MonitorEvent]:
+        """Events due to time passing: the filter disappearing (no message for a while)."""
+        if not self.present or self.last_seen_s is None:
+            return []
+        silent = now - self.last_seen_s
+        if silent <= self.absent_after_s:
+            return []
+        events = self._close_all(now, 'filter disappeared')
+        events.append(self._event(
+            now, 'filter_disappeared',
+            f'no message from {self.base_name} for {silent:.1f} s', silent_s=round(silent, 3)))
+        self.present = False
+        self.mode = None
+        self.level = None
+        return events
+
+    # ---- detection
+    def _seen(self, t: float) -> list[MonitorEvent]:
+        self.last_seen_s = t
+        if self.present:
+            return []
+        self.present = True
+        self.first_seen_s = t
+        self.appearances += 1
+        return [self._event(t, 'filter_appeared', f'{self.base_name} is publishing')]
+
+    def _set_mode(self, mode: str, t: float, joint_state_age_s: float,
+                  steps: int = 1) -> list[MonitorEvent]:
+        episode = self._mode_episode
+        if mode == self.mode:
+            if episode is not None:
+                episode.steps += steps
+            return []
+        old = self.mode
+        events = []
+        if episode is not None and old is not None:
+            duration = round(t - episode.start_s, 6)
+            if old == MODE_STALE:
+                events.append(self._event(
+                    t, 'watchdog_clear', f'joint states back after {duration:.3f} s ({old} -> '
+                    f'{mode})', duration_s=duration, steps=episode.steps))
+            elif old in EPISODE_MODES:
+                events.append(self._event(
+                    t, f'{old}_end', f'{old} ended after {duration:.3f} s, {episode.steps} '
+                    f'steps seen', duration_s=duration, steps=episode.steps))
+        events.append(self._event(t, 'mode', f'{old or "none"} -> {mode}',
+                                  **{'from': old, 'to': mode}))
+        self.mode = mode
+        self._mode_episode = None
+        if mode == MODE_STALE:
+            age_ms = joint_state_age_s * 1e3 if math.isfinite(joint_state_age_s) else None
+            age = f'{age_ms:.0f} ms old' if age_ms is not None and age_ms < 1e9 else 'missing'
+            events.append(self._event(
+                t, 'watchdog_trip', f'joint-state watchdog tripped: joint states {age}; the '
+                'filter sends the hold command', joint_state_age_ms=(
+                    round(age_ms, 3) if age_ms is not None and age_ms < 1e9 else None)))
+            self.episodes[mode] += 1
+            self._mode_episode = _Episode(t, steps)
+        elif mode in EPISODE_MODES:
+            events.append(self._event(t, f'{mode}_start', f'{mode} started ({old or "none"} -> '
+                                      f'{mode})'))
+            self.episodes[mode] += 1
+            self._mode_episode = _Episode(t, steps)
+        return events
+
+    def _margin(self, joint: str, margin: float, t: float) -> list[MonitorEvent]:
+        if not math.isfinite(margin):
+            return []
+        episode = self.thin.get(joint)
+        if margin < self.thin_margin:
+            if episode is None:
+                self.thin[joint] = _Episode(t, 1, margin)
+                self.thin_episodes += 1
+                return [self._event(
+                    t, 'thin_margin_start', f'{joint}: barrier margin {margin:.4g} < '
+                    f'{self.thin_margin:g}', joint=joint, margin=margin,
+                    threshold=self.thin_margin)]
+            episode.steps += 1
+            episode.extreme = min(episode.extreme, margin)
+            return []
+        if episode is not None:
+            episode.extreme = min(episode.extreme, margin)
+            if margin >= self.thin_clear:
+                del self.thin[joint]
+                return [self._thin_end(joint, episode, t, '')]
+        return []
+
+    def _thin_end(self, joint: str, episode: _Episode, t: float, reason: str
+                  ) -> MonitorEvent:
+        duration = round(t - episode.start_s, 6)
+        extra = {'reason': reason} if reason else {}
+        return self._event(
+            t, 'thin_margin_end', f'{joint}: margin back above {self.thin_clear:.4g} after '
+            f'{duration:.3f} s (min {episode.extreme:.4g}){", " + reason if reason else ""}',
+            joint=joint, min_margin=episode.extreme, duration_s=duration, **extra)
+
+    def _close_all(self, t: float, reason: str) -> list[MonitorEvent]:
+        events = []
+        episode = self._mode_episode
+        if episode is not None and self.mode is not None:
+            duration = round(t - episode.start_s, 6)
+            kind = 'watchdog_clear' if self.mode == MODE_STALE else f'{self.mode}_end'
+            events.append(self._event(t, kind, f'{self.mode} ended: {reason}',
+                                      duration_s=duration, steps=episode.steps, reason=reason))
+        self._mode_episode = None
+        for joint, thin in list(self.thin.items()):
+            events.append(self._thin_end(joint, thin, t, reason))
+        self.thin.clear()
+        return events
+
+    # ---- derived figures
+    def status_rate(self) -> float:
+        """``~/status`` messages received over the last second [1/s]."""
+        return float(len(self._status_times))
+
+    def solve_time_stats_us(self) -> tuple[float, float, float, int]:
+        """(median, p99, max, count) of the solve times of the recent status messages [us]."""
+        values = sorted(self._solve_times)
+        if not values:
+            return math.nan, math.nan, math.nan, 0
+        return (_percentile(values, 0.5) * 1e6, _percentile(values, 0.99) * 1e6,
+                values[-1] * 1e6, len(values))
+
+    def intervention_max_1s(self) -> float:
+        """Largest intervention of the status messages of the last second [N m]."""
+        return max((v for _, v in self._interventions), default=math.nan)
+
+    def joint_names(self) -> tuple[str, ...]:
+        """The joints to show: the status layout's, else the limits', else the
+        diagnostics' margin keys."""
+        if self.status is not None and self.status.joint_names:
+            return self.status.joint_names
+        if self.limits is not None:
+            return self.limits.joint_names
+        if self.diagnostic is not None:
+            return tuple(k[len('margin.'):] for k in self.diagnostic.values
+                         if k.startswith('margin.'))
+        return ()
+
+    def alarms(self, now: float) -> list[str]:
+        """The alarm lines for the screen (empty when all is well)."""
+        lines = []
+        diagnostic = self.diagnostic
+        if self.mode == MODE_STALE:
+            age = self.status.get('joint_state_age_s') * 1e3 if self.status else math.nan
+            age_text = f'{age:.0f} ms old' if math.isfinite(age) and age < 1e9 else 'missing'
+            lines.append(f'WATCHDOG TRIPPED: joint states {age_text}; the filter sends its '
+                         'hold command')
+        if diagnostic is not None and diagnostic.level in (LEVEL_ERROR, LEVEL_STALE):
+            lines.append(f'{diagnostic.level_name}: {diagnostic.message}')
+        if self.mode in EPISODE_MODES:
+            lines.append(f'mode {self.mode.upper()}')
+        for joint, episode in self.thin.items():
+            current = math.nan
+            if self.status is not None and not self.status_silent(now):
+                current = self.status.joint('margin', joint)
+            lines.append(f'thin margin {joint}: {format_value(current, 4)} '
+                         f'(min {episode.extreme:.4g}) < {self.thin_margin:g}')
+        if self.certificate_mismatch and diagnostic is not None:
+            lines.append(f'certificate mismatch: the node runs {diagnostic.certificate_id}, '
+                         f'expected {self.expected_certificate_id}')
+        if (diagnostic is not None and diagnostic.active and self.status_silent(now)
+                and now - diagnostic.received_s < self.absent_after_s):
+            last = (f'{now - self.status.received_s:.1f} s' if self.status is not None
+                    else 'ever')
+            lines.append(f'no ~/status received for {last}: not filtering, or not reaching '
+                         'the monitor')
+        return lines
+
+
+def format_value(value: float, digits: int = 3, sign: bool = False) -> str:
+    """``value`` with ``digits`` significant digits (``'nan'`` when not finite)."""
+    if value is None or not math.isfinite(value):
+        return 'nan'
+    return f'{value:+.{digits}g}' if sign else f'{value:.{digits}g}'
+
