@@ -33,7 +33,7 @@ from safety_filter.core.class_k import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
 from safety_filter.core.model_uncertainty import UncertaintySet
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.core.yaml_files import read_yaml_file
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import CertificateError, CertificateMismatch
 
 FILTER_NODE_NAME = 'safety_filter'
 # The parameter-file key of a certificate: every node in every namespace, i.e. the node the
@@ -43,27 +43,6 @@ CERTIFICATE_FORMAT = 'safety_filter/certificate-1'
 CONDITIONS = ('acceleration_authority', 'torque_coupling')
 DEFAULT_OBSERVER_PERIODS = 20.0  # the observer's slowest time constant [control periods]
 
-
-class CertificateError(SafetyFilterError):
-    """A certificate file that is missing, malformed or inconsistent."""
-
-
-class CertificateMismatch(CertificateError):
-    """A certificate used with a robot model it was not computed for.
-
-    Attributes:
-        expected, found: the certificate's model hash and the model's.
-        cause: what differs and what to do about it (see :meth:`Certificate.mismatch_cause`).
-    """
-
-    def __init__(self, expected: str, found: str, cause: str = '') -> None:
-        self.expected = expected
-        self.found = found
-        self.cause = cause or ('the model differs from the one certified; certify this model '
-                               'again')
-        super().__init__(
-            f'the certificate was computed for model hash {expected[:16]}..., but the model in '
-            f'use has hash {found[:16]}...: {self.cause}')
 
 
 _VECTOR_FIELDS = (

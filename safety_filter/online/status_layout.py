@@ -37,7 +37,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import StatusLayoutError
 
 STATUS_SCALAR_FIELDS = ('stamp_s', 'step', 'mode', 'hold_nominal', 'intervention',
                         'solve_time_s', 'joint_state_age_s', 'nominal_age_s')
@@ -46,9 +46,6 @@ FIELDS_TOPIC_SUFFIX = '_fields'
 FIELDS_TYPE = 'std_msgs/msg/String'
 DIAGNOSTIC_NAME_SUFFIX = ': filter'
 
-
-class StatusLayoutError(SafetyFilterError):
-    """Status records whose field names are missing or do not fit the records."""
 
 
 def status_field_names(joint_names: Sequence[str]) -> list[str]:

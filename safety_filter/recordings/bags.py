@@ -46,7 +46,7 @@ from typing import Any
 
 import numpy as np
 
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import BagError
 from safety_filter.online.status_layout import StatusLayoutError, decode_fields, fields_topic
 
 TOPIC_JOINT_STATES = '/joint_states'
@@ -74,9 +74,6 @@ LATCHED_TOPICS = (TOPIC_STATUS_FIELDS,)
 STORAGES = ('mcap', 'sqlite3')
 BAG_VERSION = 9  # the rosbag2 metadata version of ROS 2 Jazzy
 
-
-class BagError(SafetyFilterError):
-    """A bag that cannot be written or read as asked."""
 
 
 @functools.lru_cache(maxsize=1)

@@ -36,7 +36,7 @@ import numpy as np
 
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import BagError, SafetyFilterError
 from safety_filter.online import status_layout as _status_layout
 from safety_filter.online.barrier_filter import FilterMode, SafetyFilter
 from safety_filter.recordings import bags as _bags
@@ -53,14 +53,6 @@ REPLAY_STATUS_FIELDS_TOPIC = _status_layout.fields_topic(REPLAY_STATUS_TOPIC)
 STATUS_SCALAR_FIELDS = _status_layout.STATUS_SCALAR_FIELDS
 STATUS_JOINT_FIELDS = _status_layout.STATUS_JOINT_FIELDS
 
-
-class BagError(_bags.BagError):
-    """A bag that cannot be replayed (missing, truncated, wrong topics or joints).
-
-    A subclass of :class:`safety_filter.recordings.bags.BagError`, so one ``except`` catches the
-    bag
-    errors of both modules.
-    """
 
 
 @dataclass(frozen=True)

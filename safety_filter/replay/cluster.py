@@ -40,7 +40,7 @@ from pathlib import Path
 from typing import Any
 
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import ClusterError, SafetyFilterError
 from safety_filter.replay.batch import (
     CertificateChoice,
     ReplayOptions,
@@ -59,10 +59,6 @@ INSTALL_HINT = ("python3 -m pip install 'distributed>=2024.1.1' (or the package'
                 "python3 -m pip install '.[cluster]' in a clone)")
 _MISSING_SHOWN = 3  # paths named in an error about missing bags (then a count)
 
-
-class ClusterError(SafetyFilterError):
-    """The cluster cannot be used: no scheduler at the address, no workers, workers that
-    run other versions or do not see the bags or the output folder, Dask not installed."""
 
 
 def _import_distributed() -> Any:

@@ -49,7 +49,7 @@ from typing import Any
 import yaml
 
 from safety_filter.core.certificate import FILTER_NODE_NAME
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import GraphError, SafetyFilterError
 from safety_filter.recordings import bags
 
 PACKAGE = 'safety_filter'
@@ -74,9 +74,6 @@ NODES = {
     'bag_recorder': ('safety_filter.ros.recorder_node', 'BagRecorderNode'),
 }
 
-
-class GraphError(SafetyFilterError):
-    """A graph that could not be started or ran into trouble."""
 
 
 def config_file(name: str) -> Path:
