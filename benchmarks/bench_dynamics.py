@@ -34,13 +34,15 @@ try:
 except ImportError:  # run from a source checkout without installing
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from safety_filter import (  # noqa: E402
-    DEMO_ARMS,
+from safety_filter.core.dynamics import (  # noqa: E402
     Dynamics,
-    demo_arm_files,
     gravity_torque_batch,
-    load_demo_arm,
     mass_matrix_batch,
+)
+from safety_filter.simulation.demo_arms import (  # noqa: E402
+    DEMO_ARMS,
+    demo_arm_files,
+    load_demo_arm,
 )
 
 PER_CALL_HEADER = (f'{"arm":<8} {"n":>2} {"numpy [us]":>11} {"pinocchio [us]":>15} '

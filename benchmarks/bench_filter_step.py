@@ -57,9 +57,9 @@ from filter_fixtures import (  # noqa: E402
     random_state_in_safe_set,
 )
 
-from safety_filter import DEMO_ARMS  # noqa: E402
 from safety_filter.online.barrier_filter import FilterMode, SafetyFilter  # noqa: E402
 from safety_filter.online.qp_solver import ACCURATE_EPS  # noqa: E402
+from safety_filter.simulation.demo_arms import DEMO_ARMS  # noqa: E402
 
 HEADER = (f'{"arm":<8} {"n":>2} {"median":>8} {"p99":>8} {"max":>8} {"dyn":>6} {"solve":>6} '
           f'{"rest":>6} {"cvxpy med":>10} {"ratio":>6}  modes')

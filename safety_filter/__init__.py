@@ -9,72 +9,72 @@ the ROS 2 nodes are thin adapters around it. Public API::
     filt = SafetyFilter(model, cert)
     out = filt.step(q, v, u_nom)           # out.torque, out.mode, out.barrier_margin
 
+Everything else is imported from the module that defines it (for example
+``safety_filter.core.dynamics.Dynamics`` or ``safety_filter.simulation.demo_arms.DEMO_ARMS``).
+
+The names are loaded on first use (PEP 562): ``import safety_filter`` alone imports neither
+the compiled kernels nor the solvers, so a command's ``--help`` and the ROS entry points start
+quickly.
+
 This software is not a certified safety function. It does not replace hardware emergency
 stops, safety-rated monitoring or a risk assessment.
 """
 
+from __future__ import annotations
+
+import importlib
+from typing import TYPE_CHECKING, Any
+
 from safety_filter._version import __version__
-from safety_filter.certification.certify import (
-    CertificationOutcome,
-    CertifySettings,
-    certify,
-    certify_with_evidence,
-)
-from safety_filter.certification.dynamics_bounds import BoundSettings
-from safety_filter.certification.falsifier import FalsifierResult, falsify
-from safety_filter.core.certificate import Certificate, CertificateError, CertificateMismatch
-from safety_filter.core.class_k import ClassK
-from safety_filter.core.dynamics import (
-    Dynamics,
-    christoffel_batch,
-    gravity_torque_batch,
-    mass_matrix_batch,
-    rnea_batch,
-)
-from safety_filter.core.robot_model import PayloadRange, RobotModel
-from safety_filter.errors import (
-    InvalidInertia,
-    InvalidLimits,
-    RobotDescriptionError,
-    SafetyFilterError,
-    UnknownJoint,
-    UnknownLink,
-    UnsupportedChain,
-)
-from safety_filter.online.barrier_filter import FilterMode, FilterOutput, SafetyFilter
-from safety_filter.simulation.demo_arms import DEMO_ARMS, demo_arm_files, load_demo_arm
+
+if TYPE_CHECKING:
+    from safety_filter.certification.certify import CertifySettings, certify
+    from safety_filter.core.certificate import Certificate
+    from safety_filter.core.robot_model import PayloadRange, RobotModel
+    from safety_filter.errors import CertificateError, CertificateMismatch, SafetyFilterError
+    from safety_filter.online.barrier_filter import FilterMode, FilterOutput, SafetyFilter
+
+# Public name -> the module that defines it (imported on first access).
+_LAZY_NAMES: dict[str, str] = {
+    'Certificate': 'safety_filter.core.certificate',
+    'CertificateError': 'safety_filter.errors',
+    'CertificateMismatch': 'safety_filter.errors',
+    'CertifySettings': 'safety_filter.certification.certify',
+    'FilterMode': 'safety_filter.online.barrier_filter',
+    'FilterOutput': 'safety_filter.online.barrier_filter',
+    'PayloadRange': 'safety_filter.core.robot_model',
+    'RobotModel': 'safety_filter.core.robot_model',
+    'SafetyFilter': 'safety_filter.online.barrier_filter',
+    'SafetyFilterError': 'safety_filter.errors',
+    'certify': 'safety_filter.certification.certify',
+}
 
 __all__ = [
-    'BoundSettings',
     'Certificate',
     'CertificateError',
     'CertificateMismatch',
-    'CertificationOutcome',
     'CertifySettings',
-    'ClassK',
-    'DEMO_ARMS',
-    'FalsifierResult',
     'FilterMode',
     'FilterOutput',
-    'SafetyFilter',
-    'Dynamics',
-    'InvalidInertia',
-    'InvalidLimits',
     'PayloadRange',
-    'RobotDescriptionError',
     'RobotModel',
+    'SafetyFilter',
     'SafetyFilterError',
-    'UnknownJoint',
-    'UnknownLink',
-    'UnsupportedChain',
     '__version__',
     'certify',
-    'certify_with_evidence',
-    'christoffel_batch',
-    'demo_arm_files',
-    'falsify',
-    'gravity_torque_batch',
-    'load_demo_arm',
-    'mass_matrix_batch',
-    'rnea_batch',
 ]
+
+
+def __getattr__(name: str) -> Any:
+    """Import a public name from its defining module the first time it is asked for."""
+    module_name = _LAZY_NAMES.get(name)
+    if module_name is None:
+        raise AttributeError(f'module {__name__!r} has no attribute {name!r}')
+    value = getattr(importlib.import_module(module_name), name)
+    globals()[name] = value  # later lookups skip __getattr__
+    return value
+
+
+def __dir__() -> list[str]:
+    """The module's attributes, including the public names not yet loaded."""
+    return sorted(set(globals()) | set(__all__))

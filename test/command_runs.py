@@ -26,11 +26,11 @@ import numpy as np
 import pytest
 from replay_fixtures import START_NS, RecordedRun, record_filtered_run, write_run_bag
 
-from safety_filter import load_demo_arm
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.online.barrier_filter import SafetyFilter
 from safety_filter.simulation.command_sources import PDBeyondLimits
+from safety_filter.simulation.demo_arms import load_demo_arm
 
 REPO = Path(__file__).resolve().parent.parent
 ARM = 'planar2'

@@ -35,14 +35,14 @@ from conftest import (
     urdf_tree,
 )
 
-from safety_filter import (
+from safety_filter.core.dynamics import (
     Dynamics,
-    RobotModel,
     christoffel_batch,
     gravity_torque_batch,
     mass_matrix_batch,
     rnea_batch,
 )
+from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import InvalidLimits
 
 try:

@@ -28,12 +28,12 @@ from conftest import (
     urdf_tree,
 )
 
-from safety_filter import (
-    Dynamics,
+from safety_filter.core.dynamics import Dynamics
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.errors import (
     InvalidInertia,
     InvalidLimits,
     RobotDescriptionError,
-    RobotModel,
     SafetyFilterError,
     UnknownJoint,
     UnknownLink,
@@ -777,7 +777,8 @@ def test_model_survives_pickling_for_worker_processes() -> None:
     # travel with it, and the arrays must stay read-only.
     import pickle
 
-    from safety_filter import Dynamics, load_demo_arm
+    from safety_filter.core.dynamics import Dynamics
+    from safety_filter.simulation.demo_arms import load_demo_arm
 
     model = load_demo_arm('planar2')
     Dynamics(model).mass_matrix(np.zeros(2))  # fills the cache

@@ -232,3 +232,38 @@ def test_code_style_is_clean() -> None:
     result = subprocess.run([sys.executable, '-m', 'ruff', 'check', 'safety_filter', 'test',
                              'benchmarks'], cwd=REPO, capture_output=True, text=True)
     assert result.returncode == 0, result.stdout + result.stderr
+
+
+# The modules `import safety_filter` must not load: the solvers, the compiled kernels, the
+# optional backends and the report and bag libraries load on first use of a name that needs
+# them, so `--help`, `--version` and the ROS entry points start quickly.
+HEAVY_MODULES = ('scipy', 'osqp', 'numba', 'pinocchio', 'matplotlib', 'rosbags')
+
+
+def test_package_root_is_lazy_and_every_public_name_resolves() -> None:
+    import json
+    import subprocess
+    import sys
+
+    probe = (
+        'import json, sys\n'
+        'import safety_filter\n'
+        f'heavy = sorted(m for m in sys.modules if m.split(".")[0] in {HEAVY_MODULES!r})\n'
+        'names = list(safety_filter.__all__)\n'
+        'missing = [n for n in names if getattr(safety_filter, n, None) is None]\n'
+        'print(json.dumps({"heavy": heavy, "names": names, "missing": missing,\n'
+        '                  "dir": sorted(set(names) - set(dir(safety_filter)))}))\n'
+    )
+    done = subprocess.run([sys.executable, '-c', probe], cwd=REPO, capture_output=True,
+                          text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    found = json.loads(done.stdout.splitlines()[-1])
+    assert found['heavy'] == [], f'import safety_filter loads {found["heavy"]}'
+    assert found['missing'] == [] and found['dir'] == [], found
+    assert {'RobotModel', 'Certificate', 'SafetyFilter', 'certify'} <= set(found['names'])
+    assert len(found['names']) == len(set(found['names']))
+
+
+def test_package_root_refuses_unknown_names() -> None:
+    with pytest.raises(AttributeError, match='no attribute'):
+        safety_filter.NoSuchName  # noqa: B018

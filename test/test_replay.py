@@ -28,8 +28,8 @@ from replay_fixtures import (
     write_run_bag,
 )
 
-from safety_filter import Dynamics
 from safety_filter.cli.main import main
+from safety_filter.core.dynamics import Dynamics
 from safety_filter.recordings.bags import read_status
 from safety_filter.replay.bag_replay import (
     REPLAY_FILTERED_TOPIC,

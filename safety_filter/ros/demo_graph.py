@@ -66,7 +66,7 @@ class DemoOptions:
     """Options of :func:`run_demo`.
 
     Attributes:
-        arm: the demo arm (:data:`safety_filter.DEMO_ARMS`).
+        arm: the demo arm (:data:`safety_filter.simulation.demo_arms.DEMO_ARMS`).
         output: the output folder.
         duration_s: simulated seconds of motion per run.
         seed: the operator's seed (None: the parameter file's).

@@ -73,7 +73,7 @@ class SimulatedDriver:
         gravity_convention: ``'full'`` (commands are full torques) or
             ``'driver_compensated'`` (the driver adds ``g(q)`` to each command).
         start_time_s: simulated time at start [s].
-        backend: dynamics backend (see :class:`safety_filter.Dynamics`).
+        backend: dynamics backend (see :class:`safety_filter.core.dynamics.Dynamics`).
         coulomb_law: ``'stick_slip'`` (default) or ``'sign'``: how the simulation treats
             Coulomb friction (:class:`safety_filter.simulation.plant.ArmSimulator`).
 
