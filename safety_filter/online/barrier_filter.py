@@ -48,7 +48,6 @@ from __future__ import annotations
 import math
 from collections import Counter
 from dataclasses import dataclass
-from enum import Enum
 from typing import Any
 
 import numpy as np
@@ -60,6 +59,7 @@ from safety_filter.core.model_uncertainty import state_disturbance_bound
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import SafetyFilterError
 from safety_filter.online import kernels as _kernels
+from safety_filter.online.mode_codes import FilterMode
 from safety_filter.online.qp_solver import DEFAULT_EPS, DEFAULT_MAX_ITER, AccelerationQP
 
 GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
@@ -73,18 +73,6 @@ CHECK_TOLERANCE = 1e-6  # relative tolerance of the answer check (times max(1, s
 MAX_OBSERVER_GAIN = 1.0 / 3.0  # the disturbance observer's largest update per step
 JUMP_PERIODS = 10.0  # a position may move this many periods at speed between two samples
 JUMP_CONFIRM = 3  # agreeing samples after which a jumped position is accepted
-
-
-class FilterMode(str, Enum):
-    """What produced the torque of a step (the string values are what diagnostics show)."""
-
-    FILTERED = 'filtered'  # the QP answer, checked
-    FALLBACK = 'fallback'  # constructive fallback: the solver failed or its answer did not check
-    RECOVERING = 'recovering'  # state outside S: pushing back toward S
-    REJECTED = 'rejected'  # invalid input: hold command
-
-    def __str__(self) -> str:
-        return self.value
 
 
 @dataclass(slots=True)
