@@ -45,6 +45,9 @@ STATUS_JOINT_FIELDS = ('margin', 'torque', 'nominal', 'position', 'velocity')
 FIELDS_TOPIC_SUFFIX = '_fields'
 FIELDS_TYPE = 'std_msgs/msg/String'
 DIAGNOSTIC_NAME_SUFFIX = ': filter'
+# A barrier margin below this is thin [barrier units: rad or m]: the filter node's
+# diagnostics WARN (parameter thin_margin) and the live monitor alarms (--thin-margin).
+THIN_MARGIN = 0.01
 
 
 
