@@ -44,7 +44,8 @@ except ImportError:  # run from a source checkout without installing
 
 from safety_filter.certification.certify import CertifySettings, certify_with_evidence  # noqa: E402
 from safety_filter.certification.dynamics_bounds import BoundSettings  # noqa: E402
-from safety_filter.core.model_uncertainty import UncertaintySet, model_with_inertials  # noqa: E402
+from safety_filter.core.model_uncertainty import model_with_inertials  # noqa: E402
+from safety_filter.core.uncertainty_set import UncertaintySet  # noqa: E402
 from safety_filter.simulation.demo_arms import DEMO_ARMS, load_demo_arm  # noqa: E402
 
 STAGES = ('bounds', 'authority', 'sampling margin', 'gains', 'falsifier')

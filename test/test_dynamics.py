@@ -43,7 +43,7 @@ from safety_filter.core.dynamics import (
     rnea_batch,
 )
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import InvalidLimits
+from safety_filter.errors import InvalidValue, ShapeMismatch
 
 try:
     import pinocchio  # noqa: F401
@@ -420,9 +420,9 @@ def test_payload_is_a_point_mass_on_the_tip(case: str, backend: str, pin_module:
 
 def test_negative_payload_mass_is_rejected() -> None:
     model = load_demo('planar2')
-    with pytest.raises(InvalidLimits, match='payload'):
+    with pytest.raises(InvalidValue, match='payload'):
         Dynamics(model, payload_mass=-0.1)
-    with pytest.raises(InvalidLimits, match='payload'):
+    with pytest.raises(InvalidValue, match='payload'):
         mass_matrix_batch(model, np.zeros(2), payload_mass=-1.0)
 
 
@@ -523,12 +523,12 @@ def test_shape_errors_raise_value_error() -> None:
         lambda: rnea_batch(model, np.zeros((4, 2)), np.zeros((4, 3))),
     ]
     for call in calls:
-        with pytest.raises(ValueError):
+        with pytest.raises(ShapeMismatch):
             call()
 
 
 def test_unknown_backend_is_rejected() -> None:
-    with pytest.raises(ValueError, match='backend'):
+    with pytest.raises(InvalidValue, match='backend'):
         Dynamics(load_demo('planar2'), backend='casadi')
 
 

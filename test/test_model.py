@@ -33,6 +33,7 @@ from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import (
     InvalidInertia,
     InvalidLimits,
+    InvalidValue,
     RobotDescriptionError,
     SafetyFilterError,
     UnknownJoint,
@@ -533,9 +534,9 @@ def test_limits_file_errors(tmp_path: Path) -> None:
 
 def test_negative_payload_mass_for_the_inertials() -> None:
     model = RobotModel.from_urdf(GRIPPER3, **ARM_ONLY)
-    with pytest.raises(InvalidLimits, match='payload'):
+    with pytest.raises(InvalidValue, match='payload'):
         model.body_inertials(-0.5)
-    with pytest.raises(InvalidLimits, match='payload'):
+    with pytest.raises(InvalidValue, match='payload'):
         model.body_inertials(math.nan)
 
 

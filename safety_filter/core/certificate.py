@@ -30,8 +30,8 @@ import numpy as np
 import yaml
 
 from safety_filter.core.class_k import ALPHA1_KINDS, ALPHA2_KINDS, ClassK
-from safety_filter.core.model_uncertainty import UncertaintySet
 from safety_filter.core.robot_model import RobotModel
+from safety_filter.core.uncertainty_set import UncertaintySet
 from safety_filter.core.yaml_files import read_yaml_file
 from safety_filter.errors import CertificateError, CertificateMismatch
 

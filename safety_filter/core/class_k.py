@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 
 ALPHA_KINDS = ('linear', 'atan', 'tanh', 'cubic', 'sqrt')
 # concave on [0, inf): the gamma* formula applies
@@ -36,10 +36,10 @@ class ClassK:
 
     def __post_init__(self) -> None:
         if self.kind not in ALPHA_KINDS:
-            raise SafetyFilterError(f'unknown class-K family {self.kind!r}; '
-                                    f'choose one of {ALPHA_KINDS}')
+            raise InvalidValue('class-K family', self.kind, 'one of ' + ', '.join(ALPHA_KINDS),
+                               detail='unknown class-K family')
         if not (np.isfinite(self.scale) and self.scale > 0.0):
-            raise SafetyFilterError(f'class-K scale must be positive, got {self.scale}')
+            raise InvalidValue('class-K scale', self.scale, 'a finite number > 0')
 
     def value(self, x: np.ndarray | float) -> np.ndarray:
         """``alpha(x)``."""

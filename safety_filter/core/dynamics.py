@@ -19,14 +19,23 @@ recursion otherwise; the tests cross-check the two.
 
 from __future__ import annotations
 
+import weakref
 from typing import Any
 
 import numpy as np
 
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.core.spatial_algebra import axis_angle_matrix
+from safety_filter.errors import InvalidValue, ShapeMismatch
 
 BACKENDS = ('auto', 'numpy', 'pinocchio')
+# The Pinocchio twins of each model, per payload mass, for the batched functions. Kept here,
+# keyed weakly by the model, rather than on the (immutable) model: a twin is derived data of
+# this module, and it cannot be pickled (a model sent to a worker process carries none; the
+# worker builds its own on first use).
+_PINOCCHIO_TWINS: weakref.WeakKeyDictionary[RobotModel, dict[float, _PinocchioChain]] = \
+    weakref.WeakKeyDictionary()
+_TWINS_PER_MODEL = 16  # payload masses kept per model before the cache starts over
 
 
 class _ChainArrays:
@@ -148,14 +157,15 @@ def _rnea(
 def _as_batch(q: Any, n: int, name: str = 'q') -> np.ndarray:
     array = np.asarray(q, dtype=float)
     if array.ndim == 0 or array.shape[-1] != n:
-        raise ValueError(f'{name} must have shape (..., {n}), got {array.shape}')
+        raise ShapeMismatch(name, (n,), array.shape,
+                            detail=f'a batch of shape (..., {n}): joints on the last axis')
     return array
 
 
 # ---------------------------------------------------------------------- batched API
 def _resolve_backend(backend: str) -> str:
     if backend not in BACKENDS:
-        raise ValueError(f'backend must be one of {BACKENDS}, got {backend!r}')
+        raise InvalidValue('backend', backend, 'one of ' + ', '.join(BACKENDS))
     if backend == 'auto':
         return 'pinocchio' if _pinocchio_available() else 'numpy'
     if backend == 'pinocchio' and not _pinocchio_available():
@@ -165,11 +175,11 @@ def _resolve_backend(backend: str) -> str:
 
 
 def _pinocchio_chain(model: RobotModel, payload_mass: float) -> _PinocchioChain:
-    """The model's Pinocchio twin for a payload mass, cached on the model (private)."""
-    cache = model.__dict__.setdefault('_pinocchio_cache', {})
+    """The model's Pinocchio twin for a payload mass, cached per model (private)."""
+    cache = _PINOCCHIO_TWINS.setdefault(model, {})
     key = float(payload_mass)
     if key not in cache:
-        if len(cache) > 16:
+        if len(cache) > _TWINS_PER_MODEL:
             cache.clear()
         cache[key] = _PinocchioChain(_ChainArrays(model, key))
     return cache[key]
@@ -345,7 +355,7 @@ class Dynamics:
     def _check(self, x: Any, name: str) -> np.ndarray:
         array = np.asarray(x, dtype=float)
         if array.shape != (self.n,):
-            raise ValueError(f'{name} must have shape ({self.n},), got {array.shape}')
+            raise ShapeMismatch(name, (self.n,), array.shape)
         return array
 
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
