@@ -37,15 +37,13 @@ from certify_fixtures import (  # noqa: F401  (fixtures)
 )
 from scipy.optimize import linprog
 
-from safety_filter.certification.certify import (
-    CertifySettings,
+from safety_filter.certification.authority import (
     authority_problem,
     authority_row_sums,
-    beta_star,
-    certify_with_evidence,
-    gamma_star,
     useful_authority,
 )
+from safety_filter.certification.certify import CertifySettings, certify_with_evidence
+from safety_filter.certification.design_formulas import beta_star, gamma_star
 from safety_filter.certification.dynamics_bounds import BoundSettings, estimate_bounds
 from safety_filter.certification.falsifier import FalsifierResult, falsify
 from safety_filter.core.certificate import (

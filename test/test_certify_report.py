@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import dataclasses
 import html
 import json
 import re
@@ -103,8 +104,9 @@ def test_rows_match_the_certificate(planar2) -> None:
 def test_table_marks_the_joint_a_reason_names(planar2) -> None:
     outcome, model = planar2
     failed = copy.deepcopy(outcome)
-    failed.certificate.certified = False
-    failed.certificate.reasons = ["joint 'elbow': invented finding for the test"]
+    failed.certificate = dataclasses.replace(
+        failed.certificate, certified=False,
+        reasons=["joint 'elbow': invented finding for the test"])
     table = format_joint_table(failed, model)
     main_table = table.split('\n\n')[0]  # the model-error table below names the joints too
     rows = {line.split()[0]: line for line in main_table.splitlines() if line.split()}

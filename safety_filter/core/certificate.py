@@ -35,7 +35,6 @@ from safety_filter.core.uncertainty_set import UncertaintySet
 from safety_filter.core.yaml_files import read_yaml_file
 from safety_filter.errors import CertificateError, CertificateMismatch
 
-FILTER_NODE_NAME = 'safety_filter'
 # The parameter-file key of a certificate: every node in every namespace, i.e. the node the
 # file is given to (see the module docstring).
 PARAMETER_FILE_KEY = '/**'
@@ -43,17 +42,20 @@ CERTIFICATE_FORMAT = 'safety_filter/certificate-1'
 CONDITIONS = ('acceleration_authority', 'torque_coupling')
 DEFAULT_OBSERVER_PERIODS = 20.0  # the observer's slowest time constant [control periods]
 
-
-
 _VECTOR_FIELDS = (
     'position_lower', 'position_upper', 'velocity_limit', 'effort_limit', 'velocity_bound',
     'gamma', 'gamma_star', 'beta', 'beta_star', 'beta_floor', 'beta_cap', 'authority',
     'sampling_margin', 'viscous_friction', 'coulomb_friction')
 
 
-@dataclass
+@dataclass(frozen=True)
 class Certificate:
     """Certified per-joint gains with their provenance. Vectors are in joint order.
+
+    Immutable, since :attr:`certificate_id` hashes the content: the vectors are read-only
+    copies, and the lists and mappings are the certificate's own copies (not to be changed
+    in place). A changed certificate is a new one: ``dataclasses.replace(certificate,
+    certified=False, reasons=[...])``.
 
     Attributes (units: rad, rad/s, rad/s^2, N m; m, m/s, m/s^2, N for prismatic joints):
         joint_names: the chain's joints, base to tip.
@@ -118,37 +120,47 @@ class Certificate:
     acceleration_hold_s: float | None = None
 
     def __post_init__(self) -> None:
+        # The one place that sets fields: the constructor's checks and read-only copies.
+        def store(name: str, value: Any) -> None:
+            object.__setattr__(self, name, value)
+
+        store('joint_names', [str(name) for name in self.joint_names])
+        store('settings', dict(self.settings))
+        store('falsifier', dict(self.falsifier))
+        store('reasons', list(self.reasons))
         n = len(self.joint_names)
         bound = np.full(n, np.inf) if self.acceleration_bound is None else np.array(
             self.acceleration_bound, dtype=float).reshape(-1)
         if bound.shape != (n,) or np.any(np.isnan(bound)) or np.any(bound <= 0.0):
             raise CertificateError(f'acceleration_bound must have {n} positive entries')
         bound.flags.writeable = False
-        self.acceleration_bound = bound
+        store('acceleration_bound', bound)
         if self.acceleration_hold_s is not None:
             hold = float(self.acceleration_hold_s)
             if not (math.isfinite(hold) and hold > 0.0):
                 raise CertificateError(f'acceleration_hold_s must be positive, got {hold}')
-            self.acceleration_hold_s = hold
+            store('acceleration_hold_s', hold)
         speed_beta = np.zeros(n) if self.velocity_beta is None else np.array(
             self.velocity_beta, dtype=float).reshape(-1)
         if speed_beta.shape != (n,) or not np.all(np.isfinite(speed_beta)) \
                 or np.any(speed_beta < 0.0):
             raise CertificateError(f'velocity_beta must have {n} finite non-negative entries')
         speed_beta.flags.writeable = False
-        self.velocity_beta = speed_beta
+        store('velocity_beta', speed_beta)
         for name in _VECTOR_FIELDS:
             array = np.array(getattr(self, name), dtype=float).reshape(-1)
             if array.shape != (n,):
                 raise CertificateError(f'{name} must have {n} entries, got {array.shape[0]}')
             array.flags.writeable = False
-            setattr(self, name, array)
+            store(name, array)
         if self.condition not in CONDITIONS:
             raise CertificateError(f'unknown condition {self.condition!r}; expected {CONDITIONS}')
         if isinstance(self.alpha1, dict):
-            self.alpha1 = ClassK(**self.alpha1)
+            store('alpha1', ClassK(**self.alpha1))
         if isinstance(self.alpha2, dict):
-            self.alpha2 = ClassK(**self.alpha2)
+            store('alpha2', ClassK(**self.alpha2))
+        store('payload_mass_range', tuple(float(x) for x in self.payload_mass_range))
+        store('payload_point', tuple(float(x) for x in self.payload_point))
         if self.alpha1.kind not in ALPHA1_KINDS:
             raise CertificateError(f'alpha1 must be one of {ALPHA1_KINDS}')
         if self.alpha2.kind not in ALPHA2_KINDS:

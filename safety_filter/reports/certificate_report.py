@@ -30,7 +30,8 @@ from typing import Any
 
 import numpy as np
 
-from safety_filter.certification.certify import CertificationOutcome, _slice_ratio, beta_star
+from safety_filter.certification.certify import CertificationOutcome
+from safety_filter.certification.design_formulas import beta_star, slice_ratio
 from safety_filter.core.barriers import braking_set_area, safe_set_area
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.reports.html_kit import BASE_CSS, json_ready
@@ -463,7 +464,7 @@ def _plot_ratio(outcome: CertificationOutcome, model: RobotModel, i: int, path: 
     with np.errstate(divide='ignore', invalid='ignore'):
         t = (vv - edge_lo) / (edge_hi - edge_lo)
     inside = (t >= 0.0) & (t <= 1.0) & np.isfinite(t)
-    ratio = _slice_ratio(hp, np.clip(np.nan_to_num(t), 0.0, 1.0), r, usable, gamma, margin,
+    ratio = slice_ratio(hp, np.clip(np.nan_to_num(t), 0.0, 1.0), r, usable, gamma, margin,
                          cert.alpha1, cert.alpha2, **speed)
     shown = inside & np.isfinite(ratio)
     values = ratio[shown]

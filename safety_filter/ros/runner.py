@@ -48,9 +48,9 @@ from typing import Any
 
 import yaml
 
-from safety_filter.core.certificate import FILTER_NODE_NAME
 from safety_filter.errors import GraphError, SafetyFilterError
 from safety_filter.recordings import bags
+from safety_filter.ros.names import EXECUTORS, FILTER_NODE_NAME, executor_name, ros_namespace
 
 PACKAGE = 'safety_filter'
 SIM_DEMO_CONFIG = 'sim_demo.yaml'
@@ -105,14 +105,9 @@ def check_namespace(namespace: str) -> str:
     a digit (the ROS 2 name rules).
 
     Raises:
-        GraphError: any other text, with the rule it breaks.
+        InvalidValue: any other text, with the rule it breaks.
     """
-    from safety_filter.cli.robot_options import ros_namespace
-
-    try:
-        return ros_namespace(namespace)
-    except ValueError as err:
-        raise GraphError(str(err)) from err
+    return ros_namespace(namespace)
 
 
 def in_namespace(namespace: str, topic: str) -> str:
@@ -420,7 +415,7 @@ def run_graph(specs: Sequence[NodeSpec], *, processes: bool = False, executor: s
             this order (a recorder first, the simulated arm last).
         processes: one subprocess per node (True) or every node in this process.
         executor: ``'events'`` (default), ``'single_threaded'`` or ``'multi_threaded'``
-            (:data:`safety_filter.cli.robot_options.EXECUTORS`): the executor of the in-process
+            (:data:`safety_filter.ros.names.EXECUTORS`): the executor of the in-process
             graph, and of each of this package's demo nodes in subprocess mode (the filter
             node's executable always uses its own single-threaded one). See
             :func:`safety_filter.ros._common.make_executor`.
@@ -436,8 +431,6 @@ def run_graph(specs: Sequence[NodeSpec], *, processes: bool = False, executor: s
         GraphError: a node could not be created, or the filter not configured and
             activated.
     """
-    from safety_filter.cli.robot_options import EXECUTORS, executor_name
-
     executor = executor_name(executor)
     if not specs:
         raise GraphError('the graph has no nodes')

@@ -1,0 +1,131 @@
+"""Acceleration authority: what each joint may be asked for everywhere in the boxes.
+
+The row-sum LP (:func:`authority_row_sums`) and the torque-coupling condition
+(:func:`authority_torque_coupling`) of ``docs/method.md``, the data they take at a velocity
+box (:func:`authority_problem`: the dynamics bounds plus the declared model error), the
+disturbance observer's time constants, and the authority beyond which a joint gains little
+(:func:`useful_authority`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.optimize import linprog
+
+from safety_filter.certification.certify_settings import CertifySettings
+from safety_filter.certification.dynamics_bounds import DynamicsBounds
+from safety_filter.core.model_uncertainty import DisturbanceBound, disturbance_bound
+from safety_filter.core.robot_model import RobotModel
+
+
+def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.ndarray,
+                       weights: np.ndarray, cap: np.ndarray | None = None
+                       ) -> np.ndarray | None:
+    """Acceleration authority from the row-sum condition (docs/method.md), or None.
+
+    Solves ``max t`` s.t. ``Mbar e + hbar <= umax``, ``e >= t w``, then, with ``t`` fixed at
+    its optimum, spends the remaining slack: ``max sum e_i / w_i``. Every ``a`` with
+    ``|a_i| <= e_i`` then maps to a torque inside the box at every state of the boxes.
+    With a ``cap``, a joint whose share ``t w_i`` would exceed its cap is held at the cap
+    and the others share again (authority a joint has no use for goes to the others); the
+    second phase keeps every ``e_i`` at most its cap.
+    """
+    n = len(effort)
+    room = effort - bias_max
+    if np.any(room <= 0.0):
+        return None
+    held = np.zeros(n, dtype=bool)  # joints held at their cap
+    cap = np.full(n, np.inf) if cap is None else np.asarray(cap, dtype=float)
+    for _ in range(n + 1):
+        # Variables (e_1..e_n, t). Phase 1: maximise t.
+        share = np.where(held, 0.0, weights)
+        a_ub = np.vstack([np.hstack([mass_max, np.zeros((n, 1))]),
+                          np.hstack([-np.eye(n), share[:, None]])])
+        b_ub = np.concatenate([room, np.where(held, -cap, 0.0)])
+        c = np.zeros(n + 1)
+        c[-1] = -1.0
+        first = linprog(c, A_ub=a_ub, b_ub=b_ub, bounds=[(0, None)] * (n + 1),
+                        method='highs')
+        if first.status != 0 or first.x[-1] <= 0.0:
+            return None
+        t_best = first.x[-1] * (1.0 - 1e-9)
+        over = ~held & (t_best * weights > cap)
+        if not over.any():
+            break
+        held |= over
+    floor = np.where(held, cap, t_best * weights)
+    # Phase 2: keep every e_i >= its phase-1 share, maximise the weighted sum.
+    second = linprog(-1.0 / weights, A_ub=mass_max, b_ub=room,
+                     bounds=[(lo, None if not np.isfinite(hi) else max(hi, lo))
+                             for lo, hi in zip(floor, cap)], method='highs')
+    authority = second.x if second.status == 0 else first.x[:n]
+    # Guard against LP round-off: scale down until the inequality holds exactly.
+    usage = mass_max @ authority
+    scale = min(1.0, float(np.min(room / np.maximum(usage, 1e-300))))
+    return authority * scale
+
+
+def authority_torque_coupling(inverse_mass_max: np.ndarray, coupling_min: np.ndarray,
+                              bias_max: np.ndarray) -> np.ndarray | None:
+    """Authority ``rho - nu`` of the torque-coupling condition (docs/method.md), or None."""
+    nu = inverse_mass_max @ bias_max
+    authority = coupling_min - nu
+    return authority if np.all(authority > 0.0) else None
+
+
+def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                      velocity_box: np.ndarray, exact_model: bool = False
+                      ) -> tuple[np.ndarray, np.ndarray, DisturbanceBound]:
+    """The row-sum condition's data ``(mass bound, bias bound, model-error bound)`` at a
+    velocity box: ``mass @ e + bias <= umax`` (``docs/method.md``).
+
+    The filter's QP uses ``h - d_hat`` with ``d_hat`` inside the range of the plants' model
+    error at the state, so its bias is some plant's bias: the payload is already inside the
+    bounds (they cover the payload range); every other kind adds to them, and the inertial
+    part grows with the acceleration. ``exact_model`` leaves the uncertainty out.
+    """
+    disturbance = (DisturbanceBound({}, {}) if exact_model
+                   else model_error_bound(model, bounds, velocity_box, settings))
+    outside = disturbance.without('payload', static_only=True)
+    bias = bounds.bias_max(velocity_box, np.array(model.viscous_friction),
+                           np.array(model.coulomb_friction)) + outside.static_total
+    mass = bounds.mass_max + outside.inertial_total
+    return mass, bias, disturbance
+
+
+def model_error_bound(model: RobotModel, bounds: DynamicsBounds, velocity_box: np.ndarray,
+                      settings: CertifySettings) -> DisturbanceBound:
+    """The declared uncertainty set's torque bound at a velocity box (see
+    :func:`safety_filter.core.model_uncertainty.disturbance_bound`)."""
+    def coriolis(christoffel: np.ndarray) -> np.ndarray:
+        return np.einsum('ijk,j,k->i', christoffel, velocity_box, velocity_box)
+
+    return disturbance_bound(
+        model, model.uncertainty, gravity_max=bounds.gravity_max,
+        coriolis_max=coriolis(bounds.christoffel_max), mass_max=bounds.mass_max,
+        payload_gravity_max=bounds.payload_gravity_max,
+        payload_coriolis_max=coriolis(bounds.payload_christoffel_max),
+        payload_mass_max=bounds.payload_mass_max, velocity_box=velocity_box,
+        observer_time_constant_s=observer_time_constants(model, bounds, settings))
+
+
+def observer_time_constants(model: RobotModel, bounds: DynamicsBounds,
+                            settings: CertifySettings) -> np.ndarray:
+    """The disturbance observer's time constant per joint [s]: the fastest whose velocity
+    noise ``Mbar_ii v_noise / tau`` costs at most ``observer_noise_share`` of the joint's
+    torque limit, between two control periods and ``observer_periods``. A light joint gets a
+    fast observer: it feels a model error most, in acceleration, and its noise costs little
+    torque."""
+    period = 1.0 / settings.control_rate_hz
+    noise = model.uncertainty.velocity_noise * np.diag(bounds.mass_max)
+    wanted = noise / (settings.observer_noise_share * np.array(model.effort_limit))
+    return np.clip(wanted, 2.0 * period, settings.observer_periods * period)
+
+
+def useful_authority(model: RobotModel, settings: CertifySettings) -> np.ndarray:
+    """Authority beyond which a joint gains little: at its rated speed it then brakes within
+    ``braking_distance_share`` of its range, ``vmax^2 / (2 share r)``. More only enlarges the
+    accelerations the filter lets through, and with them the sampled-data margin (through
+    damping and the coupling of light links), without enlarging S noticeably."""
+    vmax = np.array(model.velocity_limit)
+    return vmax ** 2 / (2.0 * settings.braking_distance_share * np.array(model.position_range))

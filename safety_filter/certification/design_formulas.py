@@ -1,0 +1,194 @@
+"""The design formulas of certification: gamma*, beta*, the class-K family, the velocity
+barriers' rate and the choice of beta (``docs/method.md``, Certification, steps 3 and 5).
+
+A :class:`Design` holds one candidate: a velocity box with its authority and gains.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.optimize import minimize
+
+from safety_filter.certification.certify_settings import CertifySettings
+from safety_filter.core.class_k import ClassK
+from safety_filter.core.model_uncertainty import DisturbanceBound
+
+BETA_MIN_MARGIN = 1.02  # beta may sit at the cap if that is still 2 % above beta*
+
+
+@dataclass
+class Design:
+    """One candidate design: the velocity box, the authority and the gains it gives, the
+    class-K family and, once known, the velocity barriers and the acceleration bound."""
+
+    scale: float
+    condition: str
+    authority: np.ndarray
+    velocity_box: np.ndarray
+    gamma_star: np.ndarray
+    gamma: np.ndarray
+    disturbance: DisturbanceBound | None = None
+    alpha1: ClassK = field(default_factory=ClassK)
+    speed_beta: np.ndarray | None = None  # rate of the velocity barriers (None: lemma)
+    usable: np.ndarray | None = None  # authority - margin
+    fractions: np.ndarray | None = None  # velocity box / rated speed
+    accel_bound: np.ndarray | None = None  # |a| the filter allows (None: any)
+
+    @property
+    def has_speed_rows(self) -> bool:
+        """Whether the design keeps the velocity box by velocity barriers."""
+        return self.speed_beta is not None and bool(np.any(self.speed_beta > 0.0))
+
+
+def gamma_star(authority: np.ndarray, position_range: np.ndarray, alpha1: ClassK
+               ) -> np.ndarray:
+    """``gamma* = sqrt(e / max_{0<=x<=r} alpha1'(x) alpha1(x))`` per joint."""
+    peak = np.array([alpha1.max_value_times_slope(r) for r in position_range])
+    return np.sqrt(np.maximum(authority, 0.0) / peak)
+
+
+def slice_ratio(x: np.ndarray, t: np.ndarray, r: float, e_eff: float, gamma: float,
+                 margin: float, alpha1: ClassK, alpha2: ClassK, speed_bound: float = np.inf,
+                 speed_beta: float = 0.0) -> np.ndarray:
+    """The ratio whose maximum over joint i's slice of S is beta*.
+
+    ``x = hp`` in [0, r] and ``t`` in [0, 1] parametrise the slice: v runs from
+    ``max(-gamma alpha1(hn), -vS)`` to ``min(gamma alpha1(hp), vS)`` (``vS = speed_bound``
+    when the velocity box has barriers of its own, ``speed_beta > 0``).
+    """
+    hp, hn = x, r - x
+    a1p, a1n = alpha1.value(hp), alpha1.value(hn)
+    top, bottom = gamma * a1p, -gamma * a1n
+    rows = speed_beta > 0.0
+    if rows:
+        top, bottom = np.minimum(top, speed_bound), np.maximum(bottom, -speed_bound)
+    v = bottom + t * (top - bottom)
+    bp, bn = gamma * a1p - v, gamma * a1n + v
+    slope_p, slope_n = gamma * alpha1.derivative(hp) * v, gamma * alpha1.derivative(hn) * v
+    a2p, a2n = alpha2.value(bp), alpha2.value(bn)
+
+    def needed(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
+        # beta alpha2(b) >= numerator; at alpha2(b) = 0 only a non-positive one is met.
+        with np.errstate(divide='ignore', invalid='ignore'):
+            return np.where(denominator > 0.0, numerator / denominator,
+                            np.where(numerator <= 0.0, -np.inf, np.inf))
+
+    # Ap >= -e and An <= e (with the margin reserved), An + delta <= Ap - delta.
+    ratio = np.maximum(needed(slope_p - e_eff, a2p), needed(-slope_n - e_eff, a2n))
+    with np.errstate(divide='ignore', invalid='ignore'):
+        gap = (2.0 * margin + gamma * v * (alpha1.derivative(hp) - alpha1.derivative(hn))) \
+            / (a2p + a2n)
+    ratio = np.maximum(ratio, gap)
+    if rows:
+        # The velocity barriers' bounds against the position barriers' (docs/method.md):
+        # -beta_v (vS + v) + delta <= Ap - delta and An + delta <= beta_v (vS - v) - delta.
+        ratio = np.maximum(ratio, needed(2.0 * margin + slope_p - speed_beta * (speed_bound + v),
+                                         a2p))
+        ratio = np.maximum(ratio, needed(2.0 * margin - slope_n - speed_beta * (speed_bound - v),
+                                         a2n))
+    return ratio
+
+
+def beta_star(position_range: float, effective_authority: float, gamma: float, margin: float,
+              alpha1: ClassK, alpha2: ClassK, grid: int = 401, speed_bound: float = np.inf,
+              speed_beta: float = 0.0) -> tuple[float, float, float]:
+    """``beta*`` for one joint: dense grid over its slice of S, then local refinement.
+
+    Returns ``(beta*, hp, t)`` with the maximiser's coordinates (``inf`` when some state on
+    the boundary cannot be made feasible by any beta: gamma is too large). ``speed_bound``
+    and ``speed_beta`` describe the velocity barriers when S has them.
+    """
+    r = float(position_range)
+    xs = np.linspace(0.0, r, grid)
+    ts = np.linspace(0.0, 1.0, grid)
+    x, t = np.meshgrid(xs, ts, indexing='ij')
+    extra = (float(speed_bound), float(speed_beta))
+    values = slice_ratio(x, t, r, effective_authority, gamma, margin, alpha1, alpha2, *extra)
+    k = np.unravel_index(int(np.argmax(values)), values.shape)
+    best = float(values[k])
+    if not np.isfinite(best):
+        return (float(best), float(x[k]), float(t[k]))
+    best_x, best_t = float(x[k]), float(t[k])
+    order = np.argsort(values, axis=None)[::-1][:3]
+    for flat in order:
+        i, j = np.unravel_index(int(flat), values.shape)
+
+        def negative(z: np.ndarray) -> float:
+            return -float(slice_ratio(np.array(z[0]), np.array(z[1]), r, effective_authority,
+                                       gamma, margin, alpha1, alpha2, *extra))
+
+        found = minimize(negative, np.array([x[i, j], t[i, j]]), method='L-BFGS-B',
+                         bounds=[(0.0, r), (0.0, 1.0)])
+        if np.isfinite(found.fun) and -found.fun > best:
+            best, best_x, best_t = -float(found.fun), float(found.x[0]), float(found.x[1])
+    return max(best, 0.0), best_x, best_t
+
+
+def class_k_for_family(settings: CertifySettings, kind: str, usable: np.ndarray,
+                position_range: np.ndarray) -> ClassK:
+    """The class-K function of family ``kind`` for a design with usable authority ``usable``.
+
+    An explicit ``settings.alpha1`` is used as given. The automatic ``sqrt`` family takes
+    ``eps`` from the hold period: the slope term ``gamma alpha1'(h) v`` of the bounds may
+    drift by ``gamma alpha1'(0) e T = sqrt(e) e T / sqrt(2 eps)`` over a hold ``T`` at
+    ``gamma ~ sqrt(e)``; ``eps = (sqrt(e) T / share)^2 / 2`` keeps that at ``share`` of the
+    authority (``docs/method.md``, the braking-curve barrier).
+    """
+    if settings.alpha1 is not None:
+        return settings.alpha1
+    if kind != 'sqrt':
+        return ClassK(kind)
+    hold = settings.hold_period_s
+    eps = float(np.max(0.5 * (np.sqrt(np.maximum(usable, 0.0)) * hold
+                              / settings.braking_slope_share) ** 2))
+    return ClassK('sqrt', float(np.clip(eps, 1e-6, 0.1 * float(np.min(position_range)))))
+
+
+def velocity_barrier_rate(authority: np.ndarray, margin: np.ndarray, velocity_box: np.ndarray,
+                          settings: CertifySettings) -> np.ndarray:
+    """Rate ``beta_v`` [1/s] of the velocity barriers per joint.
+
+    Where the braking curve meets the velocity box (``v = vS``, ``bp = 0``) the position
+    barrier asks for a deceleration up to about the authority, while the lower velocity
+    barrier allows at most ``beta_v (vS + v) = 2 beta_v vS``: so ``beta_v >= (e + 2 delta) /
+    vS``, at least ``beta_sampling_limit / T`` (that of beta). At most ``1 / (2 T)``: the
+    velocity barriers stay invariant under a held acceleration for ``beta_v T <= 1``
+    (``docs/method.md``); beyond, ``beta*`` says the box is too slow for the authority.
+    """
+    hold = settings.hold_period_s
+    wanted = (authority + 2.0 * margin) / np.maximum(velocity_box, 1e-300)
+    return np.clip(wanted, settings.beta_sampling_limit / hold, 0.5 / hold)
+
+
+def choose_beta(design: Design, margin: np.ndarray, r: np.ndarray, settings: CertifySettings
+                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``(beta*, floor, cap, beta)`` per joint (docs/method.md).
+
+    The floor is the beta at which the bound at rest mid-range equals the authority (below
+    it the filter brakes needlessly early; ``beta = 0`` would freeze the arm); the cap keeps
+    ``beta * max(alpha2(b)/b) * T_hold`` at ``beta_sampling_limit``. ``beta`` is the larger
+    of ``beta_margin * beta*`` and the floor, never above the cap.
+    """
+    n = len(r)
+    alpha1, alpha2 = design.alpha1, settings.alpha2
+    usable = design.authority - margin
+    hold = settings.hold_period_s
+    b_star = np.zeros(n)
+    b_cap = np.zeros(n)
+    mid = alpha2.value(design.gamma * alpha1.value(0.5 * r))
+    # At rest mid-range the upper bound is beta alpha2(b) - margin: make it reach e.
+    b_floor = (design.authority + margin) / np.maximum(mid, 1e-300)
+    for i in range(n):
+        speed = ((float(design.velocity_box[i]), float(design.speed_beta[i]))
+                 if design.has_speed_rows else (np.inf, 0.0))
+        b_star[i], _, _ = beta_star(r[i], usable[i], design.gamma[i], margin[i], alpha1, alpha2,
+                                    speed_bound=speed[0], speed_beta=speed[1])
+        b_max = 2.0 * design.gamma[i] * float(alpha1.value(r[i]))
+        if design.has_speed_rows:
+            b_max = min(b_max, design.gamma[i] * float(alpha1.value(r[i]))
+                        + design.velocity_box[i])
+        b_cap[i] = settings.beta_sampling_limit / (hold * alpha2.max_ratio_to_identity(b_max))
+    beta = np.minimum(np.maximum(settings.beta_margin * b_star, b_floor), b_cap)
+    return b_star, b_floor, b_cap, beta
