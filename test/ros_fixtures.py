@@ -53,8 +53,9 @@ from safety_filter.certification.dynamics_bounds import BoundSettings  # noqa: E
 from safety_filter.core.certificate import Certificate  # noqa: E402
 from safety_filter.core.robot_model import RobotModel  # noqa: E402
 from safety_filter.online.barrier_filter import SafetyFilter  # noqa: E402
+from safety_filter.online.mode_codes import MODE_STALE, mode_code  # noqa: E402
+from safety_filter.online.status_layout import unpack_status  # noqa: E402
 from safety_filter.ros.filter_node import (  # noqa: E402
-    STATUS_SCALAR_FIELDS,
     SafetyFilterNode,
     control_qos,
     make_executor,
@@ -415,17 +416,12 @@ def parse_status(msg: Float64MultiArray, joint_names: Sequence[str]) -> StatusRe
     fields = status_field_names(joint_names)
     assert not msg.layout.dim, 'the status carries its field names in every message'
     assert len(fields) == len(msg.data)
-    data = np.array(msg.data)
-    n = len(joint_names)
-    base = len(STATUS_SCALAR_FIELDS)
-    scalars = dict(zip(fields[:base], data[:base]))
-    blocks = [data[base + k * n:base + (k + 1) * n] for k in range(5)]
-    return StatusRecord(int(scalars['step']), int(scalars['mode']),
-                        bool(scalars['hold_nominal']), float(scalars['intervention']),
-                        float(scalars['solve_time_s']), *blocks,
-                        stamp=float(scalars['stamp_s']),
-                        joint_state_age=float(scalars['joint_state_age_s']),
-                        nominal_age=float(scalars['nominal_age_s']))
+    record = unpack_status(msg.data, len(joint_names))
+    return StatusRecord(record.step, record.mode, record.hold_nominal, record.intervention,
+                        record.solve_time_s, record.margin, record.torque, record.nominal,
+                        record.position, record.velocity, stamp=record.stamp_s,
+                        joint_state_age=record.joint_state_age_s,
+                        nominal_age=record.nominal_age_s)
 
 
 def replay_statuses(records: Sequence[StatusRecord], reference: SafetyFilter,
@@ -444,9 +440,8 @@ def replay_statuses(records: Sequence[StatusRecord], reference: SafetyFilter,
             f'step {record.step}: node torque {record.torque} differs from the reference '
             f'{out.torque} by {error:.3e} (mode {record.mode}, inputs q={record.position} '
             f'v={record.velocity} u={record.nominal})')
-        if record.mode < 4:
-            assert int(record.mode) == ['filtered', 'fallback', 'recovering',
-                                        'rejected'].index(out.mode.value)
+        if record.mode != MODE_STALE:
+            assert record.mode == mode_code(out.mode)
     return len(records)
 
 

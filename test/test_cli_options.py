@@ -18,7 +18,9 @@ import pytest
 import yaml
 
 from safety_filter.cli.main import build_parser
-from safety_filter.cli.robot_options import EXECUTORS, STORAGES, THIN_MARGIN
+from safety_filter.online.status_layout import THIN_MARGIN
+from safety_filter.recordings.bags import STORAGES
+from safety_filter.ros.names import EXECUTORS
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -115,7 +117,7 @@ def option_problems(name: str, parser: argparse.ArgumentParser) -> list[str]:
         if first == '--quiet' and not text.startswith('print only'):
             problems.append(f'{label}: --quiet prints only the verdict (or summary) and files')
         if first == '--thin-margin' and action.default != THIN_MARGIN:
-            problems.append(f'{label}: the default thin margin is cli_options.THIN_MARGIN')
+            problems.append(f'{label}: the default thin margin is status_layout.THIN_MARGIN')
     return problems
 
 
@@ -223,7 +225,8 @@ def _with_exit_codes(parser: argparse.ArgumentParser) -> argparse.ArgumentParser
 
 
 def test_namespace_option_takes_ros_namespaces_only() -> None:
-    from safety_filter.cli.robot_options import ros_namespace
+    from safety_filter.errors import InvalidValue
+    from safety_filter.ros.names import ros_namespace
 
     parser = build_parser()
     for command in (['run-graph'], ['node', '--certificate', 'c.yaml', '--demo', 'planar2']):
@@ -234,7 +237,7 @@ def test_namespace_option_takes_ros_namespaces_only() -> None:
         for bad in ('2arm', 'a b', '/a//b', 'left/', '~/x'):
             with pytest.raises(SystemExit):
                 parser.parse_args([*command, '--namespace', bad])
-    with pytest.raises(ValueError, match='not a ROS namespace'):
+    with pytest.raises(InvalidValue, match='not a ROS namespace'):
         ros_namespace('arm-1')
     assert ros_namespace('/') == ''
 
@@ -249,7 +252,8 @@ def test_one_thin_margin_for_the_node_and_the_monitor() -> None:
     from safety_filter.monitor.state import DEFAULT_THIN_MARGIN
 
     assert DEFAULT_THIN_MARGIN == THIN_MARGIN
-    source = (REPO / 'safety_filter' / 'ros' / 'filter_node.py').read_text(encoding='utf-8')
+    source = (REPO / 'safety_filter' / 'ros' / 'filter_node_parameters.py').read_text(
+        encoding='utf-8')
     assert "declare_parameter('thin_margin', THIN_MARGIN," in source
     assert 'margin_warn' not in source
     config = yaml.safe_load((REPO / 'config' / 'filter.yaml').read_text(encoding='utf-8'))

@@ -20,6 +20,10 @@ The fields, in order (:func:`status_field_names`)::
     nominal_age_s,margin.<joint>...,torque.<joint>...,nominal.<joint>...,
     position.<joint>...,velocity.<joint>...
 
+The two writers (the node and the replay) pack a record with :func:`pack_status`;
+:func:`unpack_status` splits one record back into its fields by position (readers of
+recordings whose layout may be older go by the field names instead: :func:`decode_fields`).
+
 Earlier releases put the comma-separated names in every message (``layout.dim[0].label``);
 :func:`decode_fields` reads both forms, and, for a recording that lacks the ``_fields``
 topic, derives the names from the chain's joint names (the certificate's ``joint_names``)
@@ -35,9 +39,13 @@ base name only (``'safety_filter: filter'``: :func:`legacy_diagnostic_name`).
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 
-from safety_filter.errors import StatusLayoutError
+import numpy as np
+
+from safety_filter.errors import ShapeMismatch, StatusLayoutError
 
 STATUS_SCALAR_FIELDS = ('stamp_s', 'step', 'mode', 'hold_nominal', 'intervention',
                         'solve_time_s', 'joint_state_age_s', 'nominal_age_s')
@@ -57,6 +65,83 @@ def status_field_names(joint_names: Sequence[str]) -> list[str]:
     for field in STATUS_JOINT_FIELDS:
         names.extend(f'{field}.{joint}' for joint in joint_names)
     return names
+
+
+def status_record_size(n_joints: int) -> int:
+    """Number of values in a status record of a chain of ``n_joints`` joints."""
+    return len(STATUS_SCALAR_FIELDS) + len(STATUS_JOINT_FIELDS) * n_joints
+
+
+@dataclass(frozen=True, slots=True)
+class StatusRecord:
+    """One status record, split into its fields (see the module docstring).
+
+    Attributes:
+        stamp_s: the writer's clock at the step [s].
+        step: the step count since activation (1, 2, ...).
+        mode: the mode code (:mod:`safety_filter.online.mode_codes`).
+        hold_nominal: the hold command was used as the nominal.
+        intervention: ``|u* - u_nom|`` [N m].
+        solve_time_s: the QP solve time [s].
+        joint_state_age_s, nominal_age_s: the inputs' ages [s].
+        margin, torque, nominal, position, velocity: (n,) arrays, the chain's joint order.
+    """
+
+    stamp_s: float
+    step: int
+    mode: int
+    hold_nominal: bool
+    intervention: float
+    solve_time_s: float
+    joint_state_age_s: float
+    nominal_age_s: float
+    margin: np.ndarray
+    torque: np.ndarray
+    nominal: np.ndarray
+    position: np.ndarray
+    velocity: np.ndarray
+
+
+def pack_status(out: np.ndarray, *, stamp_s: float, step: int, mode: float,
+                hold_nominal: bool, intervention: float, solve_time_s: float,
+                joint_state_age_s: float, nominal_age_s: float, margin: np.ndarray,
+                torque: np.ndarray, nominal: np.ndarray, position: np.ndarray,
+                velocity: np.ndarray) -> np.ndarray:
+    """Write one status record into ``out`` (preallocated, :func:`status_record_size`
+    values: the node packs one per control period) and return it.
+
+    ``mode`` is the mode code (NaN when unknown). The per-joint arrays have shape (n,).
+
+    Raises:
+        ShapeMismatch: ``out`` is not of the size the arrays need.
+    """
+    n = len(margin)
+    base = len(STATUS_SCALAR_FIELDS)
+    if out.shape != (status_record_size(n),):
+        raise ShapeMismatch('status record', status_record_size(n), out.shape)
+    out[:base] = (stamp_s, step, mode, float(hold_nominal), intervention, solve_time_s,
+                  joint_state_age_s, nominal_age_s)
+    for k, values in enumerate((margin, torque, nominal, position, velocity)):
+        out[base + k * n:base + (k + 1) * n] = values
+    return out
+
+
+def unpack_status(values: Sequence[float] | np.ndarray, n_joints: int) -> StatusRecord:
+    """Split one record of the current layout (:func:`status_field_names`) into its fields.
+
+    Raises:
+        ShapeMismatch: not :func:`status_record_size` values.
+    """
+    data = np.asarray(values, dtype=float)
+    n = int(n_joints)
+    if data.shape != (status_record_size(n),):
+        raise ShapeMismatch('status record', status_record_size(n), data.shape)
+    base = len(STATUS_SCALAR_FIELDS)
+    stamp, step, mode, hold, intervention, solve, js_age, nominal_age = data[:base].tolist()
+    blocks = [data[base + k * n:base + (k + 1) * n].copy()
+              for k in range(len(STATUS_JOINT_FIELDS))]
+    return StatusRecord(stamp, int(step), int(mode) if math.isfinite(mode) else -1,
+                        bool(hold), intervention, solve, js_age, nominal_age, *blocks)
 
 
 def fields_topic(status_topic: str) -> str:

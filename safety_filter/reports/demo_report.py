@@ -29,6 +29,7 @@ import numpy as np
 from safety_filter.core.barriers import evaluate_barriers
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
+from safety_filter.online.mode_codes import MODE_NAMES
 from safety_filter.recordings import bags
 from safety_filter.reports.html_kit import BASE_CSS, json_ready
 from safety_filter.simulation.careless_operator import Segment
@@ -48,7 +49,6 @@ LIMITS = ('position', 'velocity', 'torque')
 # An excursion past a limit counts as a violation above this [rad, rad/s, N m]: far below
 # anything visible, far above rounding.
 VIOLATION_TOLERANCE = 1e-6
-MODE_NAMES = ('filtered', 'fallback', 'recovering', 'rejected', 'stale')
 BEHAVIOUR_COLOURS = {'pd_beyond_limits': '#fde0c5', 'jerk': '#f8c9d4', 'slack': '#d9e8f5',
                      'sinusoid': '#dcefd5'}
 
