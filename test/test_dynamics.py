@@ -564,3 +564,25 @@ def test_hold_mass_matrix_is_the_exact_zero_order_hold(damping_scale: float) -> 
         np.testing.assert_array_equal(held, mass)
     batch = hold_mass_matrix(np.stack([mass, 2.0 * mass]), damping, hold)
     np.testing.assert_allclose(batch[0], held, rtol=1e-12)
+
+
+def test_the_kernels_friction_is_the_one_of_core_friction() -> None:
+    """The filter's compiled kernel keeps an inline copy of the friction formula; it must
+    give what :func:`safety_filter.core.friction.friction_torque` gives (and what the
+    dynamics add to the bias)."""
+    from safety_filter.core.friction import friction_torque
+    from safety_filter.online import kernels
+
+    rng = np.random.default_rng(3)
+    model = load_demo('planar2')
+    for v in (rng.normal(size=2), np.zeros(2), np.array([0.0, -0.3])):
+        viscous, coulomb = rng.uniform(0.0, 2.0, 2), rng.uniform(0.0, 1.0, 2)
+        friction, bias = np.zeros(2), np.ones(2)
+        kernels.add_friction(v, viscous, coulomb, friction, bias)
+        expected = friction_torque(v, viscous, coulomb)
+        assert np.array_equal(friction, expected)
+        assert np.array_equal(bias, 1.0 + expected)
+    dynamics = Dynamics(model, backend='numpy')
+    v = np.array([0.4, -0.2])
+    assert np.array_equal(dynamics.friction_torque(v), friction_torque(
+        v, np.array(model.viscous_friction), np.array(model.coulomb_friction)))

@@ -35,11 +35,12 @@ from certify_fixtures import PlanarTwoLink
 from scipy.integrate import solve_ivp
 from scipy.optimize import minimize
 
+from safety_filter.core.friction import rest_accelerations
 from safety_filter.core.model_uncertainty import model_with_inertials
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import SafetyFilterError
 from safety_filter.simulation.demo_arms import load_demo_arm
-from safety_filter.simulation.plant import ArmSimulator, rest_accelerations
+from safety_filter.simulation.plant import ArmSimulator
 from safety_filter.simulation.sim_driver import SimulatedDriver
 
 INERTIA = 0.0021  # [kg m^2] about the joint axis

@@ -30,6 +30,7 @@ from safety_filter.core.dynamics import (
     mass_matrix_batch,
     rnea_batch,
 )
+from safety_filter.core.payload_affine import payload_affine_batch
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import SafetyFilterError
 
@@ -121,12 +122,9 @@ class _Evaluator:
 
     def _affine(self, function: Callable[..., np.ndarray], q: np.ndarray, mass: np.ndarray
                 ) -> np.ndarray:
-        base = function(self.model, q, payload_mass=0.0)
         if not self.has_payload:
-            return base
-        unit = function(self.model, q, payload_mass=1.0) - base
-        shape = mass.shape + (1,) * (base.ndim - mass.ndim)
-        return base + mass.reshape(shape) * unit
+            return function(self.model, q, payload_mass=0.0)
+        return payload_affine_batch(function, self.model, q, payload_mass=mass)
 
     def mass(self, q: np.ndarray, mass: np.ndarray) -> np.ndarray:
         self.count += len(q)

@@ -27,6 +27,7 @@ from scipy.optimize import linprog
 from safety_filter.certification.sampled_data_margin import BatchPlant, Gains, sample_safe_states
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.dynamics import hold_mass_matrix
+from safety_filter.core.friction import friction_torque
 from safety_filter.core.model_uncertainty import state_disturbance_bound
 from safety_filter.core.robot_model import RobotModel
 
@@ -90,7 +91,7 @@ def _disturbance_estimates(model: RobotModel, plant: BatchPlant, payload: np.nda
     if parameters is None:
         return np.zeros_like(bias)
     constant, link_error, payload_error = parameters
-    friction = plant.viscous * v + plant.coulomb * np.sign(v)
+    friction = friction_torque(v, plant.viscous, plant.coulomb)
     rigid = bias - friction
     gravity = plant.bias(q, np.zeros_like(v))
     heavier = BatchPlant(model, payload + 1.0).bias(q, v) - friction

@@ -34,6 +34,8 @@ import numpy as np
 from safety_filter.core.barriers import BarrierState, evaluate_barriers, safe_velocity_interval
 from safety_filter.core.class_k import ClassK
 from safety_filter.core.dynamics import hold_mass_matrix, mass_matrix_batch, rnea_batch
+from safety_filter.core.friction import friction_torque
+from safety_filter.core.payload_affine import payload_affine_batch
 from safety_filter.core.robot_model import RobotModel
 
 
@@ -62,7 +64,7 @@ class BatchPlant:
 
     With a few distinct payload masses, each group is evaluated with its own model; with
     many, ``M`` and ``h`` are evaluated at zero and unit payload and combined (both are
-    affine in the payload mass).
+    affine in the payload mass: ``safety_filter.core.payload_affine``).
     """
 
     def __init__(self, model: RobotModel, payload_mass: np.ndarray) -> None:
@@ -85,9 +87,7 @@ class BatchPlant:
                     out = np.empty((len(self.mass),) + part.shape[1:])
                 out[mask] = part
             return out
-        base = function(self.model, *args, payload_mass=0.0)
-        unit = function(self.model, *args, payload_mass=1.0) - base
-        return base + self.mass.reshape(self.mass.shape + (1,) * (base.ndim - 1)) * unit
+        return payload_affine_batch(function, self.model, *args, payload_mass=self.mass)
 
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
         """``M(q)`` per sample, shape (N, n, n)."""
@@ -97,8 +97,7 @@ class BatchPlant:
         """``h(q, v)`` per sample, shape (N, n)."""
         rigid = self._evaluate(lambda model, x, y, payload_mass: rnea_batch(
             model, x, y, payload_mass=payload_mass), q, v)
-        direction = np.sign(v) if self.coulomb_direction is None else self.coulomb_direction
-        return rigid + self.viscous * v + self.coulomb * direction
+        return rigid + friction_torque(v, self.viscous, self.coulomb, self.coulomb_direction)
 
     def acceleration(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
         """``M^-1 (u - h)`` per sample."""

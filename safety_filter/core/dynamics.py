@@ -24,6 +24,7 @@ from typing import Any
 
 import numpy as np
 
+from safety_filter.core.friction import friction_torque
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.core.spatial_algebra import axis_angle_matrix
 from safety_filter.errors import InvalidValue, ShapeMismatch
@@ -358,6 +359,20 @@ class Dynamics:
             raise ShapeMismatch(name, (self.n,), array.shape)
         return array
 
+    @property
+    def pinocchio_handles(self) -> tuple[Any, Any, Any] | None:
+        """``(pinocchio module, pinocchio model, its data)`` of the Pinocchio backend; None
+        with the numpy backend.
+
+        For a caller that runs Pinocchio's algorithms into its own preallocated arrays at the
+        control rate (the filter step), where the methods here, which return new arrays,
+        would cost more than the dynamics. The model includes the payload and gravity, not
+        friction. ``data`` is this object's workspace: use it from one thread.
+        """
+        if self._pin is None:
+            return None
+        return self._pin._pin, self._pin.model, self._pin.data
+
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
         """Joint-space inertia matrix ``M(q)``, shape (n, n)."""
         q = self._check(q, 'q')
@@ -383,7 +398,7 @@ class Dynamics:
     def friction_torque(self, v: np.ndarray) -> np.ndarray:
         """Viscous plus Coulomb friction ``D v + f_c sign(v)``, shape (n,)."""
         v = self._check(v, 'v')
-        return self._viscous * v + self._coulomb * np.sign(v)
+        return friction_torque(v, self._viscous, self._coulomb)
 
     def bias_torque(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
         """``h(q, v) = C v + D v + g + f_c sign(v)``, shape (n,)."""
@@ -392,7 +407,7 @@ class Dynamics:
             rigid = self._pin.nonlinear(q, v)
         else:
             rigid = _rnea(self._chain, q, v, None, with_gravity=True)
-        return rigid + self._viscous * v + self._coulomb * np.sign(v)
+        return rigid + friction_torque(v, self._viscous, self._coulomb)
 
     def mass_and_bias(self, q: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """``(M(q), h(q, v))`` in one call, as the filter step needs them."""
@@ -421,7 +436,7 @@ class Dynamics:
         if self._pin is not None:
             q, v = self._check(q, 'q'), self._check(v, 'v')
             # The articulated-body algorithm with friction moved to the torque side.
-            return self._pin.forward(q, v, u - self._viscous * v - self._coulomb * np.sign(v))
+            return self._pin.forward(q, v, u - friction_torque(v, self._viscous, self._coulomb))
         mass, bias = self.mass_and_bias(q, v)
         factor = np.linalg.cholesky(mass)
         return np.linalg.solve(factor.T, np.linalg.solve(factor, u - bias))

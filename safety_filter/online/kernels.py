@@ -191,6 +191,9 @@ def mirror_upper(source: np.ndarray, mass: np.ndarray) -> None:
 def add_friction(v: np.ndarray, viscous: np.ndarray, coulomb: np.ndarray,
                  friction: np.ndarray, bias: np.ndarray) -> None:
     """``friction = viscous v + coulomb sign(v)``; ``bias += friction``."""
+    # An inline copy of safety_filter.core.friction.friction_torque (the one home of the
+    # formula): a compiled kernel cannot call the numpy function without leaving for Python
+    # in the control step. test_dynamics checks the two agree.
     for i in range(v.shape[0]):
         s = 0.0
         if v[i] > 0.0:

@@ -34,12 +34,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from safety_filter.core.dynamics import Dynamics
+from safety_filter.core.friction import COULOMB_LAWS, rest_accelerations
 from safety_filter.core.model_uncertainty import Plant, model_with_inertials, nominal_plant
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import SafetyFilterError
 
 NominalPolicy = Callable[[float, np.ndarray, np.ndarray], np.ndarray]
-COULOMB_LAWS = ('stick_slip', 'sign')
 # Zero crossings of a joint's velocity found within one integration step: at most this many
 # per joint and step (a joint stops, breaks away and stops again); past it the rest of the
 # step is integrated with its joints' friction directions held.
@@ -49,57 +49,6 @@ _STOP_ITERATIONS = 12  # regula falsi steps to find the instant a joint stops
 # 1 + its speed at the step's start) of zero; the rest is set to zero. Far below any
 # velocity that matters (encoder noise is about 1e-2 rad/s) and than RK4's own error.
 _STOP_TOLERANCE = 1e-9
-
-
-def rest_accelerations(mass: np.ndarray, rest_force: np.ndarray, coulomb: np.ndarray,
-                       at_rest: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Accelerations of an arm some of whose joints are at rest, under Coulomb friction.
-
-    Solves ``M a = b - f`` where ``b`` is every torque on the joints but the Coulomb
-    friction of the joints at rest (drive, gravity, Coriolis, damping, and the friction of
-    the moving joints), and for each joint ``i`` at rest either it sticks (``a_i = 0`` and
-    the friction it needs, ``|f_i| <= f_c_i``) or it slips (``f_i = f_c_i sign(a_i)``).
-    This is the optimality condition of the strictly convex problem
-    ``min 1/2 a^T M a - b^T a + sum_rest f_c_i |a_i|``, so the answer is unique; it is
-    found by an active set: every joint at rest stuck at first, the one whose holding
-    torque exceeds its Coulomb level most released in the direction of that torque, a
-    released joint that would accelerate against its friction stuck again.
-
-    Args:
-        mass: ``M(q)``, shape (n, n), positive definite.
-        rest_force: ``b``, shape (n,) [N m].
-        coulomb: Coulomb friction levels ``f_c``, shape (n,) [N m].
-        at_rest: joints at rest (zero velocity), shape (n,) bool.
-
-    Returns:
-        ``(a, direction)``: the accelerations [rad/s^2] and, per joint at rest, the sign of
-        its motion (0: it sticks; +-1: it slips that way, its friction ``f_c`` against it).
-    """
-    n = len(rest_force)
-    stuck = np.asarray(at_rest, dtype=bool) & (np.asarray(coulomb) > 0.0)
-    released = np.zeros(n, dtype=bool)
-    direction = np.zeros(n)
-    a = np.zeros(n)
-    for _ in range(4 * n + 4):  # each round changes one joint; the problem is convex
-        force = rest_force - coulomb * direction
-        free = ~stuck
-        a = np.zeros(n)
-        if free.any():
-            a[free] = np.linalg.solve(mass[np.ix_(free, free)], force[free])
-        # The friction a stuck joint must supply to hold it: row i of M a = b - f with a_i = 0.
-        hold = force - mass @ a
-        excess = np.where(stuck, np.abs(hold) - coulomb * (1.0 + 1e-12), -np.inf)
-        backward = np.where(released, -direction * a, -np.inf)
-        if excess.max(initial=-np.inf) > 0.0:
-            i = int(np.argmax(excess))
-            stuck[i], released[i], direction[i] = False, True, np.sign(hold[i])
-        elif backward.max(initial=-np.inf) > 0.0:
-            i = int(np.argmax(backward))
-            stuck[i], released[i], direction[i] = True, False, 0.0
-        else:
-            break
-    a[stuck] = 0.0
-    return a, direction
 
 
 class ArmSimulator:

@@ -32,9 +32,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from safety_filter.core.friction import COULOMB_LAWS
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import SafetyFilterError
-from safety_filter.simulation.plant import COULOMB_LAWS, ArmSimulator
+from safety_filter.simulation.plant import ArmSimulator
 
 GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
 DEFAULT_INTERNAL_RATE_FACTOR = 10.0
