@@ -25,6 +25,7 @@ from typing import Any
 import numpy as np
 
 from safety_filter.core.friction import friction_torque
+from safety_filter.core.pinocchio_backend import PinocchioChain, pinocchio_available
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.core.spatial_algebra import axis_angle_matrix
 from safety_filter.errors import InvalidValue, ShapeMismatch
@@ -34,7 +35,7 @@ BACKENDS = ('auto', 'numpy', 'pinocchio')
 # keyed weakly by the model, rather than on the (immutable) model: a twin is derived data of
 # this module, and it cannot be pickled (a model sent to a worker process carries none; the
 # worker builds its own on first use).
-_PINOCCHIO_TWINS: weakref.WeakKeyDictionary[RobotModel, dict[float, _PinocchioChain]] = \
+_PINOCCHIO_TWINS: weakref.WeakKeyDictionary[RobotModel, dict[float, PinocchioChain]] = \
     weakref.WeakKeyDictionary()
 _TWINS_PER_MODEL = 16  # payload masses kept per model before the cache starts over
 
@@ -168,21 +169,21 @@ def _resolve_backend(backend: str) -> str:
     if backend not in BACKENDS:
         raise InvalidValue('backend', backend, 'one of ' + ', '.join(BACKENDS))
     if backend == 'auto':
-        return 'pinocchio' if _pinocchio_available() else 'numpy'
-    if backend == 'pinocchio' and not _pinocchio_available():
+        return 'pinocchio' if pinocchio_available() else 'numpy'
+    if backend == 'pinocchio' and not pinocchio_available():
         raise ImportError('the pinocchio backend needs the package pin '
                           '(python3 -m pip install pin)')
     return backend
 
 
-def _pinocchio_chain(model: RobotModel, payload_mass: float) -> _PinocchioChain:
+def _pinocchio_chain(model: RobotModel, payload_mass: float) -> PinocchioChain:
     """The model's Pinocchio twin for a payload mass, cached per model (private)."""
     cache = _PINOCCHIO_TWINS.setdefault(model, {})
     key = float(payload_mass)
     if key not in cache:
         if len(cache) > _TWINS_PER_MODEL:
             cache.clear()
-        cache[key] = _PinocchioChain(_ChainArrays(model, key))
+        cache[key] = PinocchioChain(_ChainArrays(model, key))
     return cache[key]
 
 
@@ -318,14 +319,6 @@ def hold_mass_matrix(mass: np.ndarray, viscous: np.ndarray, hold_s: float) -> np
     return np.einsum('...ij,...j,...kj->...ik', basis, growth, basis)
 
 
-def _pinocchio_available() -> bool:
-    try:
-        import pinocchio  # noqa: F401
-    except ImportError:
-        return False
-    return True
-
-
 class Dynamics:
     """Per-state dynamics of a :class:`RobotModel`, with a fixed payload mass.
 
@@ -351,7 +344,7 @@ class Dynamics:
         self._coulomb = np.array(model.coulomb_friction)
         self._pin: Any = None
         if backend == 'pinocchio':
-            self._pin = _PinocchioChain(self._chain)
+            self._pin = PinocchioChain(self._chain)
 
     def _check(self, x: Any, name: str) -> np.ndarray:
         array = np.asarray(x, dtype=float)
@@ -445,60 +438,3 @@ class Dynamics:
         """``1/2 v^T M(q) v`` [J]."""
         v = self._check(v, 'v')
         return 0.5 * float(v @ self.mass_matrix(q) @ v)
-
-
-class _PinocchioChain:
-    """The same chain built as a Pinocchio model (accelerated backend, private)."""
-
-    def __init__(self, chain: _ChainArrays) -> None:
-        import pinocchio as pin
-
-        self._pin = pin
-        model = pin.Model()
-        parent = 0
-        for i in range(chain.n):
-            placement = pin.SE3(chain.rotation[i], chain.translation[i])
-            joint = (pin.JointModelPrismaticUnaligned(chain.axis[i]) if chain.prismatic[i]
-                     else pin.JointModelRevoluteUnaligned(chain.axis[i]))
-            parent = model.addJoint(parent, joint, placement, f'joint_{i}')
-            model.appendBodyToJoint(
-                parent, pin.Inertia(float(chain.mass[i]), chain.com[i], chain.inertia[i]),
-                pin.SE3.Identity())
-        model.gravity.linear = chain.gravity
-        self.model = model
-        self.data = model.createData()
-        # A gravity-free copy for the velocity and acceleration terms alone.
-        self.model_free = model.copy()
-        self.model_free.gravity.linear = np.zeros(3)
-        self.data_free = self.model_free.createData()
-        self._zero = np.zeros(chain.n)
-        self._unit = np.eye(chain.n)
-
-    def mass_matrix(self, q: np.ndarray) -> np.ndarray:
-        upper = np.triu(self._pin.crba(self.model, self.data, q))
-        return upper + np.triu(upper, 1).T
-
-    def gravity(self, q: np.ndarray) -> np.ndarray:
-        return np.array(self._pin.computeGeneralizedGravity(self.model, self.data, q))
-
-    def nonlinear(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
-        return np.array(self._pin.nonLinearEffects(self.model, self.data, q, v))
-
-    def forward(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
-        return np.array(self._pin.aba(self.model, self.data, q, v, u))
-
-    def rnea(self, q: np.ndarray, v: np.ndarray, a: np.ndarray, with_gravity: bool
-             ) -> np.ndarray:
-        if with_gravity:
-            return self._pin.rnea(self.model, self.data, q, v, a)
-        return self._pin.rnea(self.model_free, self.data_free, q, v, a)
-
-    def christoffel(self, q: np.ndarray) -> np.ndarray:
-        # Pinocchio's Coriolis matrix is built from the same Christoffel symbols
-        # (C_ij = sum_k Gamma_ijk v_k), so a unit velocity along joint k gives Gamma[:, :, k].
-        n = len(q)
-        gamma = np.empty((n, n, n))
-        for k in range(n):
-            gamma[:, :, k] = self._pin.computeCoriolisMatrix(
-                self.model_free, self.data_free, q, self._unit[k])
-        return gamma
