@@ -32,7 +32,7 @@ from safety_filter.core.dynamics import (
 )
 from safety_filter.core.payload_affine import payload_affine_batch
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 
 ProgressCallback = Callable[[str, float], None]
 
@@ -59,11 +59,13 @@ class BoundSettings:
     seed: int = 0
 
     def __post_init__(self) -> None:
-        if self.samples < 16 or self.refine_starts < 0 or self.refine_iterations < 0:
-            raise SafetyFilterError(
-                'bound settings need samples >= 16, refine_starts >= 0, refine_iterations >= 0')
+        for what, value, least in (('samples', self.samples, 16),
+                                   ('refine_starts', self.refine_starts, 0),
+                                   ('refine_iterations', self.refine_iterations, 0)):
+            if value < least:
+                raise InvalidValue(f'bound settings: {what}', value, f'>= {least}')
         if not self.inflation >= 1.0:
-            raise SafetyFilterError(f'inflation must be >= 1, got {self.inflation}')
+            raise InvalidValue('bound settings: inflation', self.inflation, '>= 1')
 
 
 @dataclass

@@ -30,6 +30,7 @@ from safety_filter.core.dynamics import hold_mass_matrix
 from safety_filter.core.friction import friction_torque
 from safety_filter.core.model_uncertainty import state_disturbance_bound
 from safety_filter.core.robot_model import RobotModel
+from safety_filter.errors import SolverError
 
 
 @dataclass
@@ -78,7 +79,7 @@ def _lp_slack(mass: np.ndarray, bias: np.ndarray, lower: np.ndarray, upper: np.n
     if result.status == 2:
         return -np.inf
     if result.status != 0:
-        raise RuntimeError(f'the reference LP failed: {result.message}')
+        raise SolverError(f"the falsifier's reference LP failed: {result.message}")
     return float(result.x[-1])
 
 

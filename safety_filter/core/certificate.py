@@ -463,12 +463,12 @@ class Certificate:
         """Read a parameter file written by :meth:`save`; checks ``model`` when given."""
         document = read_yaml_file(path, CertificateError, 'certificate file')
         if not isinstance(document, dict) or not document:
-            raise CertificateError(f'{path}: not a parameter file')
+            raise CertificateError('not a parameter file', path)
         # Accept any node key (the user may have renamed the node) but only one.
         sections = [v for v in document.values()
                     if isinstance(v, dict) and 'ros__parameters' in v]
         if len(sections) != 1:
-            raise CertificateError(f'{path}: expected one node section with ros__parameters')
+            raise CertificateError('expected one node section with ros__parameters', path)
         certificate = cls.from_parameters(sections[0]['ros__parameters'])
         if model is not None:
             certificate.check_model(model)
