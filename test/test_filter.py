@@ -24,12 +24,8 @@ from filter_fixtures import (
 from safety_filter.core.certificate import CertificateError, CertificateMismatch
 from safety_filter.core.dynamics import Dynamics
 from safety_filter.errors import SafetyFilterError
-from safety_filter.online.barrier_filter import (
-    FilterMode,
-    FilterOutput,
-    SafetyFilter,
-    constructive_acceleration,
-)
+from safety_filter.online.barrier_filter import FilterMode, FilterOutput, SafetyFilter
+from safety_filter.online.constructive import constructive_acceleration
 from safety_filter.online.qp_solver import QPResult
 from safety_filter.simulation.demo_arms import load_demo_arm
 
@@ -635,6 +631,6 @@ def test_no_compilation_at_the_first_steps() -> None:
     np.testing.assert_array_equal(outputs[0].torque, outputs[1].torque)
     assert filt.statistics()['steps'] == 4  # the warm-up steps are not counted
     # The normalisation keeps shapes: a scalar stays a scalar (and is then rejected).
-    from safety_filter.online.barrier_filter import _kernel_input
-    assert _kernel_input(5.0).shape == ()
+    from safety_filter.online.step_dynamics import kernel_input
+    assert kernel_input(5.0).shape == ()
     assert filt.step(q, v, 5.0).mode is FilterMode.REJECTED

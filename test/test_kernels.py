@@ -20,7 +20,7 @@ import scipy.sparse as sparse
 from safety_filter.core.barriers import evaluate_barriers
 from safety_filter.core.class_k import ClassK
 from safety_filter.online import kernels as _kernels
-from safety_filter.online.barrier_filter import constructive_acceleration
+from safety_filter.online.constructive import constructive_acceleration
 from safety_filter.online.qp_solver import AccelerationQP, check_acceleration
 
 

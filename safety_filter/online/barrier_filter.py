@@ -1,7 +1,9 @@
 """The online filter step: from measured state and nominal torque to a safe torque.
 
 :class:`SafetyFilter` is the numeric core that the ROS node, the simulator and replay all
-call (no ROS imports here). One :meth:`SafetyFilter.step` (docs/method.md, the filter step):
+call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dynamics``,
+``disturbance_observer``, ``input_checks``, ``constructive``, ``hold_command``,
+``filter_options``, ``filter_output``. One :meth:`SafetyFilter.step` (docs/method.md):
 
 1. **Validate** ``q``, ``v``, ``u_nom`` (shape ``(n,)``, finite) and reject positions more than
    ``rejection_distance`` beyond a limit (by default half the smallest joint range: no arm
@@ -28,9 +30,8 @@ call (no ROS imports here). One :meth:`SafetyFilter.step` (docs/method.md, the f
    ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))`` pushes back toward S within the
    usable authority ``e = authority - sampling_margin``; mode ``'recovering'``. The nominal
    is used only when it meets those bounds itself.
-5. **Inside S** the QP (:mod:`safety_filter.online.qp_solver`) is solved; its answer is used only
-if OSQP
-   says solved and the answer passes an explicit constraint check. Otherwise the same
+5. **Inside S** the QP (:mod:`safety_filter.online.qp_solver`) is solved; its answer is used
+   only if OSQP says solved and the answer passes an explicit constraint check. Otherwise the same
    constructive formula (feasible by construction under the acceleration-authority
    certificate, docs/method.md) is used; mode ``'fallback'`` with the reason. (Under a
    torque-coupling certificate the formula has no such guarantee: its torque is still
@@ -47,188 +48,27 @@ from __future__ import annotations
 
 import math
 from collections import Counter
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from safety_filter.core.barriers import BarrierState, evaluate_barriers
-from safety_filter.core.certificate import Certificate, CertificateError
-from safety_filter.core.dynamics import Dynamics, hold_mass_matrix
-from safety_filter.core.model_uncertainty import state_disturbance_bound
+from safety_filter.core.certificate import Certificate
+from safety_filter.core.dynamics import Dynamics
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.online import filter_options as _options
 from safety_filter.online import kernels as _kernels
+from safety_filter.online.constructive import push_back_harder
+from safety_filter.online.disturbance_observer import DisturbanceObserver
+from safety_filter.online.filter_output import FilterOutput
+from safety_filter.online.hold_command import hold_command, rejected_output
+from safety_filter.online.input_checks import PositionJumpCheck, valid_position
 from safety_filter.online.mode_codes import FilterMode
 from safety_filter.online.qp_solver import DEFAULT_EPS, DEFAULT_MAX_ITER, AccelerationQP
+from safety_filter.online.step_dynamics import StepDynamics, kernel_input
 
-GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
-_CHECK_REASONS = {
-    _kernels.CHECK_PASSED: '',
-    _kernels.CHECK_TORQUE: 'answer failed the check: torque outside the box',
-    _kernels.CHECK_ACCELERATION: 'answer failed the check: acceleration bound violated',
-}
-HOLD_TIME_CONSTANT_PERIODS = 20.0  # default hold damping: velocity time constant [periods]
+GRAVITY_CONVENTIONS = _options.GRAVITY_CONVENTIONS
 CHECK_TOLERANCE = 1e-6  # relative tolerance of the answer check (times max(1, scale))
-MAX_OBSERVER_GAIN = 1.0 / 3.0  # the disturbance observer's largest update per step
-JUMP_PERIODS = 10.0  # a position may move this many periods at speed between two samples
-JUMP_CONFIRM = 3  # agreeing samples after which a jumped position is accepted
-
-
-@dataclass(slots=True)
-class FilterOutput:
-    """Result of one filter step. Arrays have shape (n,), in the model's joint order.
-
-    Attributes:
-        torque: torque to send, in the driver's convention [N m]; its full-torque form is
-            always inside the torque box.
-        mode: which branch produced it (:class:`FilterMode`).
-        intervention: ``|u* - u_nom|`` (2-norm, full-torque terms) [N m]; NaN when the
-            nominal was invalid.
-        barrier_margin: smallest of ``hp, hn, bp, bn`` per joint (negative: outside S);
-            NaN when the state was invalid.
-        active_upper, active_lower: the acceleration bound ``Ap`` / ``An`` is active.
-        torque_saturated: the full torque is at the box.
-        solve_time_s: time spent in the QP update and solve [s] (0 when not run).
-        solver_status: the solver's status text; ``'nominal feasible'`` when the nominal
-            met every constraint (it is then the QP's minimiser and is sent unchanged, no
-            solve needed); ``'not run'`` when recovering or rejected.
-        reason: why the step was not ``'filtered'``; empty when it was.
-    """
-
-    torque: np.ndarray
-    mode: FilterMode
-    intervention: float
-    barrier_margin: np.ndarray
-    active_upper: np.ndarray
-    active_lower: np.ndarray
-    torque_saturated: np.ndarray
-    solve_time_s: float
-    solver_status: str
-    reason: str
-
-
-class _StepDynamics:
-    """``M(q)`` and ``h(q, v)`` written into preallocated arrays (private).
-
-    With Pinocchio behind :class:`Dynamics` it calls CRBA and the nonlinear effects directly:
-    :meth:`Dynamics.mass_and_bias` returns new arrays and symmetrises with ``np.triu`` twice,
-    which costs several times the dynamics themselves at a 7-joint step. The tests check
-    that both give the same numbers.
-    """
-
-    def __init__(self, dynamics: Dynamics, hold_s: float | None = None) -> None:
-        self.dynamics = dynamics
-        # the accelerations are means over this hold (hold_mass_matrix), if set
-        self.hold_s = hold_s
-        n = dynamics.n
-        self._viscous = np.array(dynamics.model.viscous_friction)
-        self._coulomb = np.array(dynamics.model.coulomb_friction)
-        self._has_friction = bool(np.any(self._viscous != 0.0) or np.any(self._coulomb != 0.0))
-        self._friction = np.zeros(n)
-        chain = getattr(dynamics, '_pin', None)
-        self._pin: Any = None
-        if chain is not None and all(hasattr(chain, name) for name in ('_pin', 'model', 'data')):
-            self._pin = chain._pin
-            self._pin_model = chain.model
-            self._pin_data = chain.data
-
-    @property
-    def accelerated(self) -> bool:
-        """True when the direct Pinocchio path is used."""
-        return self._pin is not None
-
-    def mass_and_bias(self, q: np.ndarray, v: np.ndarray, mass_out: np.ndarray,
-                      bias_out: np.ndarray) -> None:
-        if self._pin is None:
-            mass, bias = self.dynamics.mass_and_bias(q, v)
-            mass_out[...] = mass
-            bias_out[...] = bias
-        else:
-            _kernels.mirror_upper(self._pin.crba(self._pin_model, self._pin_data, q), mass_out)
-            bias_out[...] = self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v)
-            if self._has_friction:
-                _kernels.add_friction(v, self._viscous, self._coulomb, self._friction,
-                                      bias_out)
-        if self.hold_s is not None:
-            mass_out[...] = hold_mass_matrix(mass_out, self._viscous, self.hold_s)
-
-    def nominal_acceleration(self, q: np.ndarray, v: np.ndarray, torque: np.ndarray,
-                             mass: np.ndarray, bias: np.ndarray,
-                             disturbance: np.ndarray | None = None) -> np.ndarray:
-        """``M^-1 (torque - h)`` at the state of the last :meth:`mass_and_bias` call (``bias``
-        already net of ``disturbance``, which the Pinocchio path adds back to the torque).
-
-        Pinocchio's articulated-body algorithm takes a few microseconds where
-        ``np.linalg.solve`` takes tens for these sizes; friction is moved to the torque side.
-        """
-        if self._pin is None or self.hold_s is not None:
-            return np.linalg.solve(mass, torque - bias)
-        effort = torque - self._friction if self._has_friction else torque
-        if disturbance is not None:
-            effort = effort + disturbance
-        return np.array(self._pin.aba(self._pin_model, self._pin_data, q, v, effort))
-
-    def rigid_bias(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
-        """``g(q) + C(q, v) v`` without friction."""
-        if self._pin is None:
-            return self.dynamics.gravity_torque(q) + self.dynamics.coriolis_torque(q, v)
-        return np.array(self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v))
-
-    def friction(self, v: np.ndarray) -> np.ndarray:
-        """The model's friction torque at ``v``."""
-        return self._viscous * v + self._coulomb * np.sign(v)
-
-    def gravity(self, q: np.ndarray) -> np.ndarray:
-        if self._pin is None:
-            return self.dynamics.gravity_torque(q)
-        return np.array(self._pin.computeGeneralizedGravity(self._pin_model, self._pin_data, q))
-
-
-def _kernel_input(values: Any) -> np.ndarray:
-    """``values`` as a writable C-contiguous float64 array (copied only if it is not one):
-    the kernels are compiled for that array type, and any other type would cost a
-    compilation inside the control loop."""
-    # Not np.ascontiguousarray: it makes a scalar a (1,) array, which would then pass the
-    # shape check of a one-joint arm.
-    array = np.asarray(values, dtype=float)
-    if array.flags.c_contiguous and array.flags.writeable:
-        return array
-    return array.copy(order='C')
-
-
-def constructive_acceleration(
-    acceleration_nominal: np.ndarray,
-    accel_lower: np.ndarray,
-    accel_upper: np.ndarray,
-    authority: np.ndarray,
-    upper_side_worse: np.ndarray | None = None,
-) -> np.ndarray:
-    """The constructive command (docs/method.md, the filter step) (and the recovery outside S).
-
-    ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))``. Where the interval is empty
-    (only possible outside S, or with a wrong certificate) the end that pushes back toward S
-    is taken, within the authority: ``max(min(Ap_i, e_i), -e_i)`` when the upper side's
-    barrier is the more negative one (``upper_side_worse``), ``min(max(An_i, -e_i), e_i)``
-    otherwise (and when ``upper_side_worse`` is None).
-
-    Args:
-        acceleration_nominal: ``a_nom = M^-1 (u_nom - h)`` [rad/s^2], shape (n,).
-        accel_lower, accel_upper: ``An``, ``Ap`` [rad/s^2].
-        authority: usable authority ``e`` [rad/s^2], positive.
-        upper_side_worse: bool per joint, see above.
-    """
-    low = np.maximum(accel_lower, -authority)
-    high = np.minimum(accel_upper, authority)
-    acceleration = np.minimum(np.maximum(acceleration_nominal, low), high)
-    empty = low > high
-    if empty.any():
-        push_down = np.maximum(high, -authority)
-        push_up = np.minimum(low, authority)
-        side = (np.zeros_like(empty) if upper_side_worse is None
-                else np.asarray(upper_side_worse, dtype=bool))
-        acceleration = np.where(empty, np.where(side, push_down, push_up), acceleration)
-    return acceleration
 
 
 class SafetyFilter:
@@ -268,7 +108,7 @@ class SafetyFilter:
     Raises:
         CertificateMismatch: the certificate belongs to another model.
         CertificateError: the certificate is not certified or unusable.
-        SafetyFilterError: an invalid option.
+        InvalidValue: an invalid option (the subclass and its attributes say which).
     """
 
     def __init__(
@@ -287,42 +127,12 @@ class SafetyFilter:
         solver_eps: float = DEFAULT_EPS,
         observer_time_constant_s: float | np.ndarray | None = None,
     ) -> None:
-        certificate.check_model(model)
-        if not certificate.certified:
-            reasons = '; '.join(certificate.reasons) or 'no reason recorded'
-            raise CertificateError(f'the certificate is not certified ({reasons}); the filter '
-                                   'refuses to run on it')
-        if gravity_convention not in GRAVITY_CONVENTIONS:
-            raise SafetyFilterError(f'gravity_convention must be one of {GRAVITY_CONVENTIONS}, '
-                                    f'got {gravity_convention!r}')
-        if rejection_distance is None:
-            rejection_distance = 0.5 * float(np.min(certificate.position_upper
-                                                    - certificate.position_lower))
-        if observer_time_constant_s is None:
-            observer_time_constant_s = certificate.observer_time_constants_s
-        try:
-            time_constants = np.broadcast_to(np.asarray(observer_time_constant_s, dtype=float),
-                                             (model.n_joints,)).copy()
-        except ValueError as err:
-            raise SafetyFilterError('observer_time_constant_s must be a number or one per '
-                                    f'joint, got {observer_time_constant_s}') from err
-        if not (np.all(np.isfinite(time_constants)) and np.all(time_constants >= 0.0)
-                and (np.all(time_constants > 0.0) or np.all(time_constants == 0.0))):
-            raise SafetyFilterError('observer_time_constant_s must be finite and > 0 per '
-                                    f'joint (or 0: no observer), got {observer_time_constant_s}')
-        if not (math.isfinite(rejection_distance) and rejection_distance >= 0.0):
-            raise SafetyFilterError(
-                f'rejection_distance must be finite and >= 0, got {rejection_distance}')
+        options = _options.check_filter_options(model, certificate, gravity_convention,
+                                                payload_mass, rejection_distance,
+                                                observer_time_constant_s)
+        time_constants, usable = options.time_constants, options.usable_authority
+        payload_mass, rejection_distance = options.payload_mass, options.rejection_distance
         n = model.n_joints
-        low, high = certificate.payload_mass_range
-        if payload_mass is None:
-            payload_mass = 0.5 * (float(low) + float(high))
-        if not (math.isfinite(payload_mass) and payload_mass >= 0.0):
-            raise SafetyFilterError(f'payload_mass must be finite and >= 0, got {payload_mass}')
-        usable = np.array(certificate.usable_authority)
-        if not np.all(usable > 0.0):
-            raise CertificateError('the certificate leaves no usable authority '
-                                   '(authority <= sampling_margin) at some joint')
 
         self.model = model
         self.certificate = certificate
@@ -331,7 +141,7 @@ class SafetyFilter:
         self.payload_mass = float(payload_mass)
         self.rejection_distance = float(rejection_distance)
         self.dynamics = Dynamics(model, self.payload_mass, backend=backend)
-        self._dyn = _StepDynamics(self.dynamics, certificate.acceleration_hold_s)
+        self._dyn = StepDynamics(self.dynamics, certificate.acceleration_hold_s)
         self._driver = gravity_convention == 'driver_compensated'
 
         def frozen(values: Any) -> np.ndarray:
@@ -343,47 +153,32 @@ class SafetyFilter:
         self.usable_authority = frozen(usable)
         self._lower = frozen(certificate.position_lower)
         self._upper = frozen(certificate.position_upper)
-        self._gamma = frozen(certificate.gamma)
-        self._beta = frozen(certificate.beta)
-        self._margin = frozen(certificate.sampling_margin)
-        self._alpha1 = certificate.alpha1
-        self._alpha2 = certificate.alpha2
         self._accel_tol = frozen(CHECK_TOLERANCE * np.maximum(1.0, usable))
         self._torque_tol = frozen(CHECK_TOLERANCE * np.maximum(1.0, self.torque_limit))
         self._torque_saturation = frozen(self.torque_limit - self._torque_tol)
 
         q_mid = 0.5 * (self._lower + self._upper)
         mass_mid = self.dynamics.mass_matrix(q_mid)
-        if hold_damping is None:
-            damping = np.diag(mass_mid) * certificate.control_rate_hz \
-                / HOLD_TIME_CONSTANT_PERIODS
-        else:
-            damping = np.broadcast_to(np.asarray(hold_damping, dtype=float), (n,)).copy()
-        if not (np.all(np.isfinite(damping)) and np.all(damping >= 0.0)):
-            raise SafetyFilterError(f'hold_damping must be finite and >= 0, got {hold_damping}')
-        self.hold_damping = frozen(damping)
-        self.observer_time_constant_s = time_constants
-        self.observer_time_constant_s.flags.writeable = False
+        self.hold_damping = frozen(_options.checked_hold_damping(hold_damping, mass_mid,
+                                                        certificate.control_rate_hz))
+        self.observer_time_constant_s = frozen(time_constants)
         self._observing = bool(np.all(time_constants > 0.0))
         # The torque that acted over the last period was sent delay + 1 steps ago.
         uncertainty = certificate.uncertainty
         self.observer_delay_periods = int(uncertainty.delay_periods) if uncertainty else 0
-        self._obs_sent = np.zeros((self.observer_delay_periods + 1, n))
-        self._obs_count = 0
-        self._velocity_limit = np.array(certificate.velocity_limit)
-        self._position_noise = float(uncertainty.position_noise) if uncertainty else 0.0
-        self._jump_candidate: tuple[np.ndarray, int] | None = None
-        self._steps_since_valid = 0
         # The range the estimate is kept in: where the certificate's authority accounts for
         # it (docs/method.md); a second model one kilogram heavier gives the payload's share.
-        self._disturbance_parameters = certificate.disturbance_parameters
-        self._dyn_heavier = (_StepDynamics(Dynamics(model, self.payload_mass + 1.0,
-                                                    backend=backend))
-                             if self._disturbance_parameters is not None else None)
-        self._disturbance = np.zeros(n)  # estimated torque beyond the model [N m]
-        self._obs_v = np.zeros(n)  # velocity at the last step
-        self._obs_valid = False  # _obs_v belongs to the step before this one
-        self._obs_step = np.empty(n)
+        parameters = certificate.disturbance_parameters
+        heavier = (StepDynamics(Dynamics(model, self.payload_mass + 1.0, backend=backend))
+                   if parameters is not None else None)
+        self._observer = DisturbanceObserver(
+            time_constants, self.observer_delay_periods, self.torque_limit, self._dyn,
+            heavier, parameters, certificate.control_period_s)
+        self._jump_check = PositionJumpCheck(
+            model.joint_names, certificate.velocity_limit,
+            float(uncertainty.position_noise) if uncertainty else 0.0,
+            certificate.control_period_s)
+        self._steps_since_valid = 0
 
         acceleration_weights = (None if torque_weights is not None
                                 else 1.0 / np.maximum(usable, 1e-9) ** 2)
@@ -395,23 +190,12 @@ class SafetyFilter:
         self.objective = self._qp.objective
 
         # Private writable copies of the constants for the compiled kernels (one array type).
-        self._k_lower = np.array(self._lower)
-        self._k_upper = np.array(self._upper)
-        self._k_gamma = np.array(self._gamma)
-        self._k_beta = np.array(self._beta)
-        self._k_margin = np.array(self._margin)
-        self._k_speed_bound = np.array(certificate.velocity_bound, dtype=float)
-        self._k_speed_beta = np.array(certificate.velocity_beta, dtype=float)
-        self._k_accel_bound = np.array(certificate.acceleration_bound, dtype=float)
-        self._k_alpha = (_kernels.ALPHA_CODES[self._alpha1.kind], float(self._alpha1.scale),
-                         _kernels.ALPHA_CODES[self._alpha2.kind], float(self._alpha2.scale))
+        self._k_barrier = _kernels.barrier_arguments(certificate)
         self._k_torque_limit = np.array(self.torque_limit)
         self._k_torque_bound = self.torque_limit + self._torque_tol  # the answer check's box
         self._k_accel_tol = np.array(self._accel_tol)
         self._k_saturation = np.array(self._torque_saturation)
         self._k_authority = np.array(usable)
-        self._k_unbounded = np.full(n, np.inf)  # the push back the bounds ask for, in full
-        self._k_observer_plausible = 2.0 * np.array(self.torque_limit)
 
         # Preallocated per-step buffers.
         self._inputs = np.empty((3, n))
@@ -427,7 +211,6 @@ class SafetyFilter:
         self._a_nom: np.ndarray | None = None
         self._last_q = np.zeros(n)
         self._has_last_q = False
-        self._shape = (n,)
         self.mode_counts: dict[FilterMode, int] = {}
         self.reason_counts: Counter[str] = Counter()
         self.reset()
@@ -451,10 +234,8 @@ class SafetyFilter:
         counters."""
         self._qp.reset_warm_start()
         self._has_last_q = False
-        self._disturbance[:] = 0.0
-        self._obs_valid = False
-        self._obs_count = 0
-        self._jump_candidate = None
+        self._observer.reset()
+        self._jump_check.reset()
         self._steps_since_valid = 0
         self.mode_counts = {mode: 0 for mode in FilterMode}
         self.reason_counts = Counter()
@@ -479,97 +260,12 @@ class SafetyFilter:
     def _evaluate_barriers(self, q: np.ndarray, v: np.ndarray) -> None:
         """Fill ``_rows = [hp; hn; bp; bn; Ap; An; sp; sn]`` (shape (8, n)) at one state (the
         step does the same inside its first kernel; the tests use this one)."""
-        code1, scale1, code2, scale2 = self._k_alpha
-        _kernels.barrier_rows(q, v, self._k_lower, self._k_upper, self._k_gamma, self._k_beta,
-                              self._k_margin, self._k_speed_bound, self._k_speed_beta,
-                              self._k_accel_bound, code1, scale1, code2, scale2, self._rows,
-                              np.empty(self.n))
-
-    def _observe(self, q: np.ndarray, v: np.ndarray, mass: np.ndarray, bias: np.ndarray,
-                 period_s: float | None) -> None:
-        """Update the disturbance estimate and take it out of ``bias`` (in place).
-
-        The arm obeys ``M a + h = u + d`` in the filter's model, with ``d`` the torque that
-        the model misses. Over the last period the measured velocity change gives
-        ``d ~ M (v - v_prev) / T + h - u_prev``; a first-order low-pass with time constant
-        ``observer_time_constant_s`` smooths it (its noise is ``M * velocity noise / time
-        constant``, as for a momentum observer). ``u = M a + h - d`` then gives the arm the
-        acceleration ``a`` that the barrier bounds were checked for.
-        """
-        period = self.certificate.control_period_s if period_s is None else float(period_s)
-        full = self._obs_count > self.observer_delay_periods
-        if self._obs_valid and full and math.isfinite(period) and period > 0.0:
-            step = self._obs_step
-            np.subtract(v, self._obs_v, out=step)
-            step /= period
-            measured = mass @ step
-            measured += bias
-            measured -= self._obs_sent[0]  # what acted: sent delay + 1 steps ago
-            # A torque beyond twice the box cannot act on the arm: the two samples are not
-            # one period apart (a gap, a reset, a replayed jump); skip them.
-            if _kernels.within_box(measured, self._k_observer_plausible):
-                # At most 1/3 (a time constant of at least two of the actual periods): then
-                # a delay one period longer or shorter than declared cannot make the
-                # estimate oscillate (the loop's poles stay inside the unit circle).
-                gain = np.minimum(period / (period + self.observer_time_constant_s),
-                                  MAX_OBSERVER_GAIN)
-                self._disturbance += gain * (measured - self._disturbance)
-        # Never beyond what a plant of the declared set can need at this state (so the
-        # certified authority holds), and never beyond the torque box.
-        limit = self._disturbance_limit(q, v, bias)
-        np.clip(self._disturbance, -limit, limit, out=self._disturbance)
-        self._obs_v[:] = v
-        bias -= self._disturbance
-
-    def _disturbance_limit(self, q: np.ndarray, v: np.ndarray, bias: np.ndarray) -> np.ndarray:
-        """Bound of the model error at ``(q, v)`` [N m] (``state_disturbance_bound``)."""
-        if self._disturbance_parameters is None or self._dyn_heavier is None:
-            return self._k_torque_limit
-        constant, link_error, payload_error = self._disturbance_parameters
-        rigid = bias - self._dyn.friction(v)
-        payload = self._dyn_heavier.rigid_bias(q, v) - rigid
-        limit = state_disturbance_bound(constant, link_error, payload_error,
-                                        self._dyn.gravity(q), rigid, payload)
-        return np.minimum(limit, self._k_torque_limit)
-
-    def _position_jump(self, q: np.ndarray, v: np.ndarray, period_s: float | None) -> str:
-        """Why ``q`` cannot follow the last valid position (empty when it can).
-
-        Between two samples a joint moves at most ``JUMP_PERIODS`` periods at the larger of its
-        rated and measured speed, per period since the last valid sample, plus ten times the
-        declared position noise. A position beyond that is a sensor fault unless it stays:
-        after ``JUMP_CONFIRM`` samples that agree with each other it is accepted (a re-homed
-        encoder) and the observer starts afresh. Only while the observer runs (the filter then
-        reads consecutive steps as one motion).
-        """
-        period = self.certificate.control_period_s if period_s is None else float(period_s)
-        if not (math.isfinite(period) and period > 0.0):
-            return ''
-        speed = np.maximum(self._velocity_limit, np.abs(v))
-        allowed = (JUMP_PERIODS * period * (1 + self._steps_since_valid) * speed
-                   + 10.0 * self._position_noise)
-        if np.all(np.abs(q - self._last_q) <= allowed):
-            self._jump_candidate = None
-            return ''
-        candidate = self._jump_candidate
-        if candidate is not None and np.all(np.abs(q - candidate[0]) <= allowed):
-            self._jump_candidate = (q.copy(), candidate[1] + 1)
-        else:
-            self._jump_candidate = (q.copy(), 1)
-        if self._jump_candidate[1] >= JUMP_CONFIRM:
-            self._jump_candidate = None
-            self._obs_valid = False
-            self._obs_count = 0
-            return ''
-        joints = [self.model.joint_names[i] for i in
-                  np.flatnonzero(np.abs(q - self._last_q) > allowed)]
-        return (f'position jumped at {", ".join(joints)} farther than the velocity allows '
-                'since the last valid sample (a sensor fault unless it stays)')
+        _kernels.barrier_rows(q, v, *self._k_barrier, self._rows, np.empty(self.n))
 
     @property
     def disturbance_estimate(self) -> np.ndarray:
         """The observer's estimate of the torque the model misses [N m], shape (n,)."""
-        return self._disturbance.copy()
+        return self._observer.disturbance.copy()
 
     def step(self, q: Any, v: Any, u_nom: Any, period_s: float | None = None) -> FilterOutput:
         """Filter one nominal torque at the measured state.
@@ -589,12 +285,12 @@ class SafetyFilter:
         # compiled kernel (safety_filter.online.kernels) on preallocated buffers. See
         # benchmarks/bench_filter_step.py.
         try:
-            q_in = _kernel_input(q)
-            v_in = _kernel_input(v)
-            u_in = _kernel_input(u_nom)
+            q_in = kernel_input(q)
+            v_in = kernel_input(v)
+            u_in = kernel_input(u_nom)
         except (TypeError, ValueError) as err:
             return self._reject(q, v, f'input is not numeric: {err}', 'input not numeric')
-        shape = self._shape
+        shape = (self.n,)
         if q_in.shape != shape or v_in.shape != shape or u_in.shape != shape:
             return self._reject(q, v, f'expected arrays of shape {shape}, got q {q_in.shape}, '
                                 f'v {v_in.shape}, u_nom {u_in.shape}', 'wrong shape')
@@ -602,11 +298,8 @@ class SafetyFilter:
         out_real = np.empty((2, self.n))  # [torque; barrier margin], returned to the caller
         out_flags = np.empty((3, self.n), dtype=bool)  # [active upper; active lower; saturated]
         torque, barrier_margin = out_real[0], out_real[1]
-        code1, scale1, code2, scale2 = self._k_alpha
         flags, worst, deepest = _kernels.stage_and_bound(
-            q_in, v_in, u_in, inputs, self._k_lower, self._k_upper, self._k_gamma, self._k_beta,
-            self._k_margin, self._k_speed_bound, self._k_speed_beta, self._k_accel_bound, code1,
-            scale1, code2, scale2, self._rows, barrier_margin)
+            q_in, v_in, u_in, inputs, *self._k_barrier, self._rows, barrier_margin)
         if flags:
             names = [name for name, bit in (('q', _kernels.NONFINITE_Q),
                                             ('v', _kernels.NONFINITE_V),
@@ -625,7 +318,10 @@ class SafetyFilter:
                                 f'a limit at {", ".join(far)}', 'position far outside limits',
                                 position=q, barrier_margin=barrier_margin, u_nom=u_nom_in)
         if self._observing and self._has_last_q:
-            jumped = self._position_jump(q, v, period_s)
+            jumped, accepted = self._jump_check.check(q, v, self._last_q,
+                                                      self._steps_since_valid, period_s)
+            if accepted:
+                self._observer.restart()  # a re-homed encoder: a new motion
             if jumped:
                 return self._reject(q, v, jumped, 'position jump', position=self._last_q.copy(),
                                     barrier_margin=barrier_margin, u_nom=u_nom_in)
@@ -636,7 +332,7 @@ class SafetyFilter:
         mass, bias = self._mass, self._bias
         self._dyn.mass_and_bias(q, v, mass, bias)
         if self._observing:
-            self._observe(q, v, mass, bias, period_s)
+            self._observer.observe(q, v, mass, bias, period_s)
         gravity = self._no_gravity
         if self._driver:
             gravity = self._dyn.gravity(q)
@@ -679,7 +375,7 @@ class SafetyFilter:
                 check = _kernels.torque_and_check(
                     mass, bias, acceleration, accel_lower, accel_upper, self._k_torque_bound,
                     self._k_accel_tol, torque)
-                failed = _CHECK_REASONS[check]
+                failed = _kernels.CHECK_REASONS[check]
                 have_torque = True
             else:
                 failed = f'solver status: {status}'
@@ -695,7 +391,9 @@ class SafetyFilter:
         if acceleration is None:
             acceleration = self._constructive(u_full)
             if mode is FilterMode.RECOVERING:
-                acceleration = self._push_back_harder(acceleration, mass, bias)
+                acceleration = push_back_harder(
+                    acceleration, self._a_nom if self._a_nom is not None else acceleration,
+                    accel_lower, accel_upper, self._rows, mass, bias, self._k_torque_limit)
         if not have_torque:
             _kernels.torque_and_check(mass, bias, acceleration, accel_lower, accel_upper,
                                       self._k_torque_bound, self._k_accel_tol, torque)
@@ -707,12 +405,7 @@ class SafetyFilter:
                                        self._k_torque_limit, self._k_accel_tol,
                                        self._k_saturation, gravity, self._driver, out_flags)
         if self._observing:
-            sent = self._obs_sent
-            if len(sent) > 1:
-                sent[:-1] = sent[1:]
-            np.add(torque, gravity, out=sent[-1])
-            self._obs_count += 1
-            self._obs_valid = True
+            self._observer.sent(torque + gravity)
         self.steps += 1
         self.mode_counts[mode] += 1
         if key:
@@ -738,7 +431,7 @@ class SafetyFilter:
             try:
                 self._a_nom = self._dyn.nominal_acceleration(
                     inputs[0], inputs[1], u_full, self._mass, self._bias,
-                    self._disturbance if self._observing else None)
+                    self._observer.disturbance if self._observing else None)
             except np.linalg.LinAlgError:
                 self._a_nom = np.zeros(self.n)
         return self._a_nom
@@ -751,60 +444,10 @@ class SafetyFilter:
                               self._rows, acceleration)
         return acceleration
 
-    def _push_back_harder(self, cautious: np.ndarray, mass: np.ndarray, bias: np.ndarray
-                          ) -> np.ndarray:
-        """Outside S, where the QP cannot meet the barriers' bounds: from the constructive
-        command (within the certified authority, which is what every joint is guaranteed at
-        once in the worst configuration) toward what the bounds ask, as far as the torque box
-        allows at this state (bisection on the segment between the two)."""
-        wanted = np.empty(self.n)
-        _kernels.constructive(self._a_nom if self._a_nom is not None else cautious,
-                              self._accel_lower, self._accel_upper, self._k_unbounded,
-                              self._rows, wanted)
-        limit = self._k_torque_limit
-
-        def fits(acceleration: np.ndarray) -> bool:
-            return _kernels.within_box(mass @ acceleration + bias, limit)
-
-        if not fits(cautious):
-            return cautious
-        if fits(wanted):
-            return wanted
-        step = wanted - cautious
-        low, high = 0.0, 1.0
-        for _ in range(12):  # to 1/4096 of the way
-            middle = 0.5 * (low + high)
-            if fits(cautious + middle * step):
-                low = middle
-            else:
-                high = middle
-        return cautious + low * step
-
-    def _valid_position(self, q: Any) -> np.ndarray | None:
-        try:
-            position = np.array(q, dtype=float)
-        except (TypeError, ValueError):
-            return None
-        if position.shape != self._shape or not np.all(np.isfinite(position)):
-            return None
-        distance = self.rejection_distance
-        if np.any(position < self._lower - distance) or np.any(position > self._upper + distance):
-            return None
-        return position
-
     def _hold_full(self, position: np.ndarray, v: Any) -> tuple[np.ndarray, np.ndarray]:
         """Full-torque hold command ``clip(g(q) - hold_damping v)`` and ``g(q)``."""
-        n = self.n
         gravity = self._dyn.gravity(np.array(position, dtype=float))
-        damping = np.zeros(n)
-        try:
-            velocity = np.asarray(v, dtype=float)
-            if velocity.shape == (n,):
-                damping = np.where(np.isfinite(velocity), -self.hold_damping * velocity, 0.0)
-        except (TypeError, ValueError):
-            pass
-        full = np.clip(gravity + damping, -self.torque_limit, self.torque_limit)
-        return full, gravity
+        return hold_command(gravity, v, self.hold_damping, self.torque_limit), gravity
 
     def hold_torque(self, q: Any, v: Any) -> np.ndarray:
         """The hold command at ``(q, v)`` in the driver's convention, without a filter step.
@@ -814,7 +457,7 @@ class SafetyFilter:
         joint-state watchdog trips. Uses the last valid position when ``q`` is invalid, and
         zero torque when there has never been one.
         """
-        position = self._valid_position(q)
+        position = valid_position(q, self._lower, self._upper, self.rejection_distance)
         if position is None:
             if not self._has_last_q:
                 return np.zeros(self.n)
@@ -839,32 +482,19 @@ class SafetyFilter:
         (shape (n,), finite, within the rejection distance; it then becomes the last valid
         position), else the last valid position, else none (zero torque).
         """
-        n = self.n
         if position is None:
-            position = self._valid_position(q)
+            position = valid_position(q, self._lower, self._upper, self.rejection_distance)
             if position is not None:
                 self._last_q[:] = position
                 self._has_last_q = True
         if position is None and self._has_last_q:
             position = self._last_q
-        torque = np.zeros(n)
-        saturated = np.zeros(n, dtype=bool)
-        intervention = math.nan
-        if position is not None:
-            full, gravity = self._hold_full(position, v)
-            if u_nom is not None:
-                nominal_full = u_nom + gravity if self._driver else u_nom
-                intervention = float(np.linalg.norm(full - nominal_full))
-            saturated = np.abs(full) >= self.torque_limit - self._torque_tol
-            torque = full - gravity if self._driver else full
-        if barrier_margin is None:
-            barrier_margin = np.full(n, math.nan)
-        false = np.zeros(n, dtype=bool)
-        self._obs_valid = False
-        self._obs_count = 0
+        hold = self._hold_full(position, v) if position is not None else None
+        self._observer.restart()
         self._steps_since_valid += 1
         self.steps += 1
         self.mode_counts[FilterMode.REJECTED] += 1
         self.reason_counts[key] += 1
-        return FilterOutput(torque, FilterMode.REJECTED, intervention, barrier_margin,
-                            false, false.copy(), saturated, 0.0, 'not run', reason)
+        return rejected_output(self.n, hold, reason, driver_compensated=self._driver,
+                               saturation=self.torque_limit - self._torque_tol, u_nom=u_nom,
+                               barrier_margin=barrier_margin)

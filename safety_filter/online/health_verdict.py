@@ -26,7 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from safety_filter.online.barrier_filter import FilterOutput
+from safety_filter.online.filter_output import FilterOutput
 from safety_filter.online.input_supervision import InputDecision
 from safety_filter.online.mode_codes import (
     MODE_FALLBACK,

@@ -49,7 +49,8 @@ from typing import Any
 import numpy as np
 
 from safety_filter.errors import InvalidValue
-from safety_filter.online.barrier_filter import FilterOutput, SafetyFilter
+from safety_filter.online.barrier_filter import SafetyFilter
+from safety_filter.online.filter_output import FilterOutput
 from safety_filter.online.mode_codes import MODE_CODES, MODE_STALE
 
 JOINT_STATE_TIMEOUT_S = 0.02  # [s] default: 20 periods of a 1 kHz loop (docs/node.md)

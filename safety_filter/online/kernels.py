@@ -19,6 +19,7 @@ Class-K families are passed as integer codes (:data:`ALPHA_CODES`).
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 from numba import njit
@@ -33,6 +34,20 @@ HUGE_VALUE = 8
 HUGE_LIMIT = 1e150  # beyond this the products in the step could overflow
 
 _JIT = {'cache': True, 'nogil': True, 'error_model': 'numpy'}
+
+
+def barrier_arguments(certificate: Any) -> tuple[Any, ...]:
+    """The certificate's constants as :func:`barrier_rows` and :func:`stage_and_bound` take
+    them, after the state: ``(lower, upper, gamma, beta, margin, speed_bound, speed_beta,
+    accel_bound, code1, scale1, code2, scale2)``. Writable float64 copies, the one array type
+    the kernels are compiled for.
+    """
+    c = certificate
+    arrays = tuple(np.array(values, dtype=float) for values in (
+        c.position_lower, c.position_upper, c.gamma, c.beta, c.sampling_margin,
+        c.velocity_bound, c.velocity_beta, c.acceleration_bound))
+    return arrays + (ALPHA_CODES[c.alpha1.kind], float(c.alpha1.scale),
+                     ALPHA_CODES[c.alpha2.kind], float(c.alpha2.scale))
 
 
 @njit(**_JIT)
@@ -343,6 +358,11 @@ def unscale(x: np.ndarray, scale: np.ndarray, out: np.ndarray) -> None:
 CHECK_PASSED = 0
 CHECK_TORQUE = 1
 CHECK_ACCELERATION = 2
+CHECK_REASONS = {  # the reason a step gives for each check result
+    CHECK_PASSED: '',
+    CHECK_TORQUE: 'answer failed the check: torque outside the box',
+    CHECK_ACCELERATION: 'answer failed the check: acceleration bound violated',
+}
 
 
 @njit(**_JIT)

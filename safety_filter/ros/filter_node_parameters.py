@@ -20,7 +20,6 @@ from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPo
 from rclpy.wait_for_message import wait_for_message
 from std_msgs.msg import String
 
-from safety_filter.cli.robot_options import THIN_MARGIN
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import (
@@ -30,7 +29,7 @@ from safety_filter.errors import (
     RunFailed,
     SafetyFilterError,
 )
-from safety_filter.online.barrier_filter import GRAVITY_CONVENTIONS
+from safety_filter.online.filter_options import GRAVITY_CONVENTIONS
 from safety_filter.online.input_supervision import (
     JOINT_STATE_TIMEOUT_S,
     NOMINAL_TIMEOUT_S,
@@ -38,6 +37,7 @@ from safety_filter.online.input_supervision import (
     check_trigger,
     positive_finite,
 )
+from safety_filter.online.status_layout import THIN_MARGIN
 
 # Every key of Certificate.to_parameters() (a test checks they agree).
 CERTIFICATE_PARAMETERS = (

@@ -1,0 +1,123 @@
+"""The filter's disturbance observer: the torque the model misses, from the measured motion.
+
+The arm obeys ``M a + h = u + d`` in the filter's model, with ``d`` the torque that the model
+misses (payload, inertia and friction errors, the driver's torque error). Over the last
+period the measured velocity change gives ``d ~ M (v - v_prev) / T + h - u_prev``; a
+first-order low-pass with the observer's time constant smooths it (its noise is
+``M * velocity noise / time constant``, as for a momentum observer). The filter takes the
+estimate out of ``h``, so ``u = M a + h - d`` gives the arm the acceleration ``a`` the
+barrier bounds were checked for (docs/method.md).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from safety_filter.core.model_uncertainty import state_disturbance_bound
+from safety_filter.online import kernels as _kernels
+from safety_filter.online.step_dynamics import StepDynamics
+
+MAX_OBSERVER_GAIN = 1.0 / 3.0  # the disturbance observer's largest update per step
+
+
+class DisturbanceObserver:
+    """The estimate ``d`` and what it needs from step to step.
+
+    Args:
+        time_constants: the low-pass time constant per joint [s] (> 0).
+        delay_periods: the torque that acted over the last period was sent this many
+            periods before the last one (the certificate's declared delay).
+        torque_limit: the torque box [N m]; the estimate stays inside it.
+        dynamics: the filter's step dynamics (friction and gravity for the bound).
+        heavier: the same model one kilogram heavier (the payload's share of the bound), or
+            None when ``disturbance_parameters`` is None.
+        disturbance_parameters: ``(constant, link_error, payload_error)`` of the certificate
+            (``state_disturbance_bound``): the range the estimate is kept in, where the
+            certificate's authority accounts for it; None: the torque box only.
+        control_period_s: the period assumed when a step gives none [s].
+    """
+
+    def __init__(self, time_constants: np.ndarray, delay_periods: int,
+                 torque_limit: np.ndarray, dynamics: StepDynamics,
+                 heavier: StepDynamics | None,
+                 disturbance_parameters: tuple[np.ndarray, np.ndarray, np.ndarray] | None,
+                 control_period_s: float) -> None:
+        n = len(torque_limit)
+        self.time_constants = time_constants
+        self.delay_periods = int(delay_periods)
+        self.control_period_s = float(control_period_s)
+        self._torque_limit = np.array(torque_limit, dtype=float)
+        self._plausible = 2.0 * self._torque_limit
+        self._dyn = dynamics
+        self._heavier = heavier
+        self._parameters = disturbance_parameters
+        self.disturbance = np.zeros(n)  # estimated torque beyond the model [N m]
+        self._sent = np.zeros((self.delay_periods + 1, n))  # full torques sent, oldest first
+        self._count = 0  # torques recorded since the last restart
+        self._v = np.zeros(n)  # velocity at the last step
+        self._valid = False  # _v belongs to the step before this one
+        self._step = np.empty(n)
+
+    def reset(self) -> None:
+        """Forget the estimate and the history."""
+        self.disturbance[:] = 0.0
+        self.restart()
+
+    def restart(self) -> None:
+        """Start the history afresh (invalid input, a confirmed position jump); the estimate
+        is kept."""
+        self._valid = False
+        self._count = 0
+
+    def observe(self, q: np.ndarray, v: np.ndarray, mass: np.ndarray, bias: np.ndarray,
+                period_s: float | None) -> None:
+        """Update the estimate at ``(q, v)`` and take it out of ``bias`` (in place).
+
+        ``mass`` and ``bias`` are ``M`` and ``h`` at the state; ``period_s`` the time since the
+        last step (None: the control period).
+        """
+        period = self.control_period_s if period_s is None else float(period_s)
+        full = self._count > self.delay_periods
+        if self._valid and full and math.isfinite(period) and period > 0.0:
+            step = self._step
+            np.subtract(v, self._v, out=step)
+            step /= period
+            measured = mass @ step
+            measured += bias
+            measured -= self._sent[0]  # what acted: sent delay + 1 steps ago
+            # A torque beyond twice the box cannot act on the arm: the two samples are not
+            # one period apart (a gap, a reset, a replayed jump); skip them.
+            if _kernels.within_box(measured, self._plausible):
+                # At most 1/3 (a time constant of at least two of the actual periods): then
+                # a delay one period longer or shorter than declared cannot make the
+                # estimate oscillate (the loop's poles stay inside the unit circle).
+                gain = np.minimum(period / (period + self.time_constants), MAX_OBSERVER_GAIN)
+                self.disturbance += gain * (measured - self.disturbance)
+        # Never beyond what a plant of the declared set can need at this state (so the
+        # certified authority holds), and never beyond the torque box.
+        limit = self.limit(q, v, bias)
+        np.clip(self.disturbance, -limit, limit, out=self.disturbance)
+        self._v[:] = v
+        bias -= self.disturbance
+
+    def limit(self, q: np.ndarray, v: np.ndarray, bias: np.ndarray) -> np.ndarray:
+        """Bound of the model error at ``(q, v)`` [N m] (``state_disturbance_bound``)."""
+        if self._parameters is None or self._heavier is None:
+            return self._torque_limit
+        constant, link_error, payload_error = self._parameters
+        rigid = bias - self._dyn.friction(v)
+        payload = self._heavier.rigid_bias(q, v) - rigid
+        limit = state_disturbance_bound(constant, link_error, payload_error,
+                                        self._dyn.gravity(q), rigid, payload)
+        return np.minimum(limit, self._torque_limit)
+
+    def sent(self, torque_full: np.ndarray) -> None:
+        """Record the full torque sent at this step (it acts over the next period)."""
+        sent = self._sent
+        if len(sent) > 1:
+            sent[:-1] = sent[1:]
+        sent[-1] = torque_full
+        self._count += 1
+        self._valid = True

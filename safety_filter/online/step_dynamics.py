@@ -1,0 +1,105 @@
+"""The dynamics the filter step needs, computed into preallocated arrays.
+
+:class:`StepDynamics` gives ``M(q)``, ``h(q, v)``, ``g(q)`` and ``M^-1 (u - h)`` for one
+state at the control rate: with Pinocchio behind :class:`Dynamics` it calls Pinocchio's
+algorithms directly into the filter's buffers (:attr:`Dynamics.pinocchio_handles`); else it
+uses :class:`Dynamics`' own methods. :func:`kernel_input` prepares an input array for the
+compiled kernels.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from safety_filter.core.dynamics import Dynamics, hold_mass_matrix
+from safety_filter.core.friction import friction_torque
+from safety_filter.online import kernels as _kernels
+
+
+class StepDynamics:
+    """``M(q)`` and ``h(q, v)`` written into preallocated arrays (the filter step's).
+
+    With Pinocchio behind :class:`Dynamics` it calls CRBA and the nonlinear effects directly:
+    :meth:`Dynamics.mass_and_bias` returns new arrays and symmetrises with ``np.triu`` twice,
+    which costs several times the dynamics themselves at a 7-joint step. The tests check
+    that both give the same numbers.
+    """
+
+    def __init__(self, dynamics: Dynamics, hold_s: float | None = None) -> None:
+        self.dynamics = dynamics
+        # the accelerations are means over this hold (hold_mass_matrix), if set
+        self.hold_s = hold_s
+        n = dynamics.n
+        self._viscous = np.array(dynamics.model.viscous_friction)
+        self._coulomb = np.array(dynamics.model.coulomb_friction)
+        self._has_friction = bool(np.any(self._viscous != 0.0) or np.any(self._coulomb != 0.0))
+        self._friction = np.zeros(n)
+        handles = dynamics.pinocchio_handles
+        self._pin: Any = None
+        if handles is not None:
+            self._pin, self._pin_model, self._pin_data = handles
+
+    @property
+    def accelerated(self) -> bool:
+        """True when the direct Pinocchio path is used."""
+        return self._pin is not None
+
+    def mass_and_bias(self, q: np.ndarray, v: np.ndarray, mass_out: np.ndarray,
+                      bias_out: np.ndarray) -> None:
+        if self._pin is None:
+            mass, bias = self.dynamics.mass_and_bias(q, v)
+            mass_out[...] = mass
+            bias_out[...] = bias
+        else:
+            _kernels.mirror_upper(self._pin.crba(self._pin_model, self._pin_data, q), mass_out)
+            bias_out[...] = self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v)
+            if self._has_friction:
+                _kernels.add_friction(v, self._viscous, self._coulomb, self._friction,
+                                      bias_out)
+        if self.hold_s is not None:
+            mass_out[...] = hold_mass_matrix(mass_out, self._viscous, self.hold_s)
+
+    def nominal_acceleration(self, q: np.ndarray, v: np.ndarray, torque: np.ndarray,
+                             mass: np.ndarray, bias: np.ndarray,
+                             disturbance: np.ndarray | None = None) -> np.ndarray:
+        """``M^-1 (torque - h)`` at the state of the last :meth:`mass_and_bias` call (``bias``
+        already net of ``disturbance``, which the Pinocchio path adds back to the torque).
+
+        Pinocchio's articulated-body algorithm takes a few microseconds where
+        ``np.linalg.solve`` takes tens for these sizes; friction is moved to the torque side.
+        """
+        if self._pin is None or self.hold_s is not None:
+            return np.linalg.solve(mass, torque - bias)
+        effort = torque - self._friction if self._has_friction else torque
+        if disturbance is not None:
+            effort = effort + disturbance
+        return np.array(self._pin.aba(self._pin_model, self._pin_data, q, v, effort))
+
+    def rigid_bias(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """``g(q) + C(q, v) v`` without friction."""
+        if self._pin is None:
+            return self.dynamics.gravity_torque(q) + self.dynamics.coriolis_torque(q, v)
+        return np.array(self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v))
+
+    def friction(self, v: np.ndarray) -> np.ndarray:
+        """The model's friction torque at ``v``."""
+        return friction_torque(v, self._viscous, self._coulomb)
+
+    def gravity(self, q: np.ndarray) -> np.ndarray:
+        if self._pin is None:
+            return self.dynamics.gravity_torque(q)
+        return np.array(self._pin.computeGeneralizedGravity(self._pin_model, self._pin_data, q))
+
+
+def kernel_input(values: Any) -> np.ndarray:
+    """``values`` as a writable C-contiguous float64 array (copied only if it is not one):
+    the kernels are compiled for that array type, and any other type would cost a
+    compilation inside the control loop."""
+    # Not np.ascontiguousarray: it makes a scalar a (1,) array, which would then pass the
+    # shape check of a one-joint arm.
+    array = np.asarray(values, dtype=float)
+    if array.flags.c_contiguous and array.flags.writeable:
+        return array
+    return array.copy(order='C')
