@@ -45,13 +45,14 @@ sys.path.insert(0, str(ROOT / 'test'))
 from filter_fixtures import demo_arm_and_certificate  # noqa: E402
 from replay_fixtures import record_filtered_run, write_run_bag  # noqa: E402
 
-from safety_filter.replay.bag_replay import read_trial, replay_open_loop  # noqa: E402
-from safety_filter.replay.batch import (  # noqa: E402
+from safety_filter.campaigns.replay_batch import replay_bags  # noqa: E402
+from safety_filter.campaigns.replay_job import (  # noqa: E402
     CertificateChoice,
     ReplayOptions,
     replay_bag,
-    replay_bags,
 )
+from safety_filter.replay.open_loop import replay_open_loop  # noqa: E402
+from safety_filter.replay.trial import read_trial  # noqa: E402
 from safety_filter.simulation.command_sources import LargeSinusoid  # noqa: E402
 
 RATE_HZ = 1000.0

@@ -118,8 +118,11 @@ def test_errors(tmp_path: Path) -> None:
         bags.BagWriter(path)
     with pytest.raises(bags.BagError, match='storage'):
         bags.BagWriter(tmp_path / 'other', storage='csv')
-    with pytest.raises(bags.BagError, match='not a rosbag2 folder'):
+    with pytest.raises(bags.BagError, match='no such bag'):
         bags.topic_summary(tmp_path / 'missing')
+    (tmp_path / 'empty').mkdir()
+    with pytest.raises(bags.BagError, match='not a rosbag2 folder'):
+        bags.topic_summary(tmp_path / 'empty')
     assert bags.read_status(path) == {}
 
 

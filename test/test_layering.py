@@ -28,6 +28,7 @@ LAYERS = (
     ('recordings',),
     ('replay',),
     ('reports',),
+    ('campaigns',),
     ('monitor',),
     ('ros',),
     ('cli',),

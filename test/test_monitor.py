@@ -30,21 +30,20 @@ import yaml
 from safety_filter.cli.monitor import check_monitor_arguments
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.class_k import ClassK
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import ExitCode, InvalidValue, SafetyFilterError, StatusLayoutError
 from safety_filter.monitor.screen import ALARM_PREFIX, SEPARATOR, render_frame
-from safety_filter.monitor.state import (
-    MODE_NAMES,
+from safety_filter.monitor.snapshots import (
     DiagnosticSnapshot,
     JointLimits,
-    MonitorState,
     StatusLayout,
     StatusSnapshot,
     diagnostic_name,
     split_node_name,
     status_topic,
 )
-from safety_filter.recordings.event_log import EventLogWriter
-from safety_filter.reports.replay_report import read_event_log
+from safety_filter.monitor.state import MonitorState
+from safety_filter.online.mode_codes import MODE_NAMES
+from safety_filter.recordings.event_log import EventLogWriter, read_event_log
 
 JOINTS = ('shoulder', 'elbow')
 LIMITS = JointLimits(JOINTS, position_lower=(-2.0, -2.5), position_upper=(2.0, 2.5),
@@ -99,7 +98,7 @@ def test_names_of_the_filter_topics_and_diagnostics() -> None:
     assert diagnostic_name('/arm1/safety_filter') == '/arm1/safety_filter: filter'
     assert status_topic('safety_filter') == '/safety_filter/status'
     for bad in ('', '/', 'arm/'):
-        with pytest.raises(SafetyFilterError):
+        with pytest.raises(InvalidValue, match='not a node name'):
             split_node_name(bad)
 
 
@@ -114,9 +113,9 @@ def test_status_snapshot_reads_the_self_describing_layout() -> None:
     # Fewer values than fields: the missing ones read NaN, nothing raises.
     short = StatusSnapshot(snapshot.layout, list(snapshot.values)[:3], T0)
     assert math.isnan(short.joint('velocity', 'elbow'))
-    with pytest.raises(SafetyFilterError):
+    with pytest.raises(StatusLayoutError, match='without field names'):
         StatusLayout.from_label('')
-    with pytest.raises(SafetyFilterError):
+    with pytest.raises(StatusLayoutError, match='repeated field names'):
         StatusLayout.from_label('a,b,a')
 
 
@@ -352,7 +351,7 @@ def test_frame_styles_alarms_and_modes_on_a_terminal() -> None:
     plain = render_frame(_troubled_state(), T0 + 0.35, color=False, width=100)
     assert '\x1b' not in plain
     assert ANSI.sub('', coloured).splitlines() == plain.splitlines()
-    with pytest.raises(ValueError, match='width'):
+    with pytest.raises(InvalidValue, match='width'):
         render_frame(_troubled_state(), T0, width=0)
 
 
@@ -549,14 +548,17 @@ def test_monitor_command_line() -> None:
     for option, value in (('--refresh-rate', '0'), ('--duration', '-1'), ('--absent-after', '0'),
                           ('--node-name', '/')):
         bad = build_parser().parse_args(['monitor', option, value])
-        with pytest.raises(SafetyFilterError):
+        with pytest.raises(InvalidValue, match='--node-name|node name' if option == '--node-name'
+                           else option) as raised:
             check_monitor_arguments(bad)
+        assert raised.value.exit_code == ExitCode.BAD_INPUT
 
 
 # ---------------------------------------------------------------------- across DDS
 GRAPH_SCRIPT = """
 import sys
-from safety_filter.ros.runner import run_graph, sim_demo_graph
+from safety_filter.ros.graph_specs import sim_demo_graph
+from safety_filter.ros.runner import run_graph
 certificate, urdf, limits, domain = sys.argv[1:5]
 specs = sim_demo_graph(urdf_path=urdf, limits_path=limits, certificate=certificate)
 graph = [s for s in specs if s.executable != 'sim_arm']
@@ -644,7 +646,7 @@ def test_monitor_follows_a_live_graph_and_logs_the_watchdog_trip(tmp_path: Path)
     ros_fixtures = pytest.importorskip(
         'ros_fixtures', reason="rclpy is missing: pip install -e '.[ros]'")
     from safety_filter.ros import filter_node
-    from safety_filter.ros.runner import config_file, sim_demo_graph
+    from safety_filter.ros.graph_specs import config_file, sim_demo_graph
 
     assert diagnostic_name('safety_filter') == \
         '/safety_filter' + filter_node.DIAGNOSTIC_NAME_SUFFIX

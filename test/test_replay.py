@@ -21,39 +21,35 @@ import pytest
 from replay_fixtures import (
     START_NS,
     RecordedRun,
-    planar2_quick_certificate,
+    planar2_certificate,
     record_filtered_run,
     tree_digest,
     truncate_storage,
     write_run_bag,
 )
 
+from safety_filter.campaigns.replay_batch import replay_bags
+from safety_filter.campaigns.replay_job import CertificateChoice, ReplayOptions
 from safety_filter.cli.main import main
 from safety_filter.core.dynamics import Dynamics
-from safety_filter.recordings.bags import read_status
-from safety_filter.replay.bag_replay import (
+from safety_filter.errors import BagError
+from safety_filter.recordings.bags import find_bags, read_status
+from safety_filter.recordings.event_log import read_event_log
+from safety_filter.replay.closed_loop import resimulate
+from safety_filter.replay.open_loop import agreement, compare, replay_open_loop, summarize
+from safety_filter.replay.replay_bag import (
     REPLAY_FILTERED_TOPIC,
     REPLAY_STATUS_FIELDS_TOPIC,
     REPLAY_STATUS_TOPIC,
-    BagError,
-    Trial,
-    agreement,
-    compare,
-    find_bags,
-    read_trial,
-    replay_open_loop,
-    resimulate,
     status_field_names,
-    summarize,
     write_replay_bag,
 )
-from safety_filter.replay.batch import CertificateChoice, ReplayOptions, replay_bags
+from safety_filter.replay.trial import Trial, read_trial
 from safety_filter.reports.replay_report import (
     REPORT_HTML,
     REPORT_JSON,
     SUMMARY_HTML,
     SUMMARY_JSON,
-    read_event_log,
 )
 from safety_filter.simulation.command_sources import PDBeyondLimits
 
@@ -64,8 +60,8 @@ SIM_RATE_HZ = 2000.0  # RK4 rate of the simulated arm: enough for planar2, and f
 
 @pytest.fixture(scope='session')
 def arm() -> Any:
-    """planar2, a certificate from the real certification (reduced settings), its file."""
-    return planar2_quick_certificate()
+    """planar2 and the session's certificate of it (the real certification, default settings)."""
+    return planar2_certificate()
 
 
 @pytest.fixture(scope='session')

@@ -32,16 +32,17 @@ import numpy as np
 import pytest
 from distributed import Client, LocalCluster
 from replay_fixtures import (
-    planar2_quick_certificate,
+    planar2_certificate,
     record_filtered_run,
     truncate_storage,
     write_run_bag,
 )
 
+from safety_filter.campaigns.replay_batch import replay_bags
+from safety_filter.campaigns.replay_cluster import ClusterError, inspect_worker, parse_address
+from safety_filter.campaigns.replay_job import CertificateChoice, ReplayOptions
 from safety_filter.cli.main import main
-from safety_filter.replay.bag_replay import status_field_names
-from safety_filter.replay.batch import CertificateChoice, ReplayOptions, replay_bags
-from safety_filter.replay.cluster import ClusterError, inspect_worker, parse_address
+from safety_filter.replay.replay_bag import status_field_names
 from safety_filter.simulation.command_sources import PDBeyondLimits
 
 pytestmark = pytest.mark.slow
@@ -52,7 +53,7 @@ KEY_PREFIX = 'safety-filter-replay-'  # the cluster tasks' keys (replay_cluster)
 @pytest.fixture(scope='module')
 def arm() -> Any:
     """planar2 and a certificate from the real certification (reduced settings)."""
-    return planar2_quick_certificate()
+    return planar2_certificate()
 
 
 @pytest.fixture(scope='module')
@@ -419,7 +420,7 @@ def test_addresses_parse_to_tcp() -> None:
 def test_a_local_replay_does_not_import_dask() -> None:
     code = ('import sys\n'
             'from safety_filter.cli.main import build_parser\n'
-            'import safety_filter.replay.batch, safety_filter.cli.replay\n'
+            'import safety_filter.campaigns.replay_batch, safety_filter.cli.replay\n'
             "build_parser().parse_args(['replay', 'x', '--certificate', 'c'])\n"
             "print(sorted(m for m in sys.modules if m.split('.')[0] in "
             "('dask', 'distributed')))\n")

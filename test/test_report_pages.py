@@ -28,9 +28,8 @@ import pytest
 from browser_fixtures import HeadlessChromium, chromium, image_statistics
 from command_runs import certify_run, demo_run, replay_run, stress_run
 
-from safety_filter.reports import html_kit as _report_common
-from safety_filter.reports import replay_report
-from safety_filter.reports.replay_report import (
+from safety_filter.reports import html_kit, replay_report
+from safety_filter.reports.replay_interactive import (
     INTERACTIVE_BUCKETS,
     INTERACTIVE_FULL_SAMPLES,
     MOMENT_WINDOW_S,
@@ -44,13 +43,13 @@ SHIFT, CTRL = 8, 2  # DevTools modifier bits
 
 # ---------------------------------------------------------------------- without a browser
 def test_the_vendored_plotting_library_is_the_recorded_release() -> None:
-    folder = _report_common.UPLOT_DIR
+    folder = html_kit.UPLOT_DIR
     source = (folder / 'SOURCE.md').read_text(encoding='utf-8')
     for name in UPLOT_FILES:
         digest = hashlib.sha256((folder / name).read_bytes()).hexdigest()
         assert f'{digest}  {name}' in source, f'{name} differs from the copy SOURCE.md names'
     code = (folder / 'uPlot.iife.min.js').read_text(encoding='utf-8')
-    assert f'(v{_report_common.UPLOT_VERSION})' in code.splitlines()[0]
+    assert f'(v{html_kit.UPLOT_VERSION})' in code.splitlines()[0]
     assert 'MIT License' in (folder / 'LICENSE').read_text(encoding='utf-8')
     assert '</script' not in code  # inlined as is
 

@@ -16,26 +16,33 @@ import json
 
 import numpy as np
 import pytest
-from certify_fixtures import certified_demo_arm
+from certify_fixtures import demo_certificate
 
+from safety_filter.campaigns import stress_runs
+from safety_filter.campaigns.stress_matrix import NOMINALS
+from safety_filter.campaigns.stress_verdict import (
+    VerdictRules,
+    recovery_times,
+    return_time_bounds,
+    run_failures,
+    summarize_run,
+)
 from safety_filter.cli.main import SAFETY_NOTICE, main
 from safety_filter.core.model_uncertainty import Plant, nominal_plant
+from safety_filter.errors import ExitCode
 from safety_filter.online.barrier_filter import SafetyFilter
-from safety_filter.simulation import stress_test as stress
 from safety_filter.simulation.command_sources import (
     LargeSinusoid,
     PDBeyondLimits,
     SafeTracking,
     ZeroTorque,
 )
-from safety_filter.simulation.plant import limit_violations, run_closed_loop
-from safety_filter.simulation.stress_test import (
+from safety_filter.simulation.plant import (
+    PlantLog,
     Push,
-    VerdictRules,
-    recovery_times,
-    run_failures,
+    limit_violations,
+    run_closed_loop,
     run_plant_loop,
-    summarize_run,
 )
 
 RATE_HZ = 1000.0
@@ -43,8 +50,7 @@ RATE_HZ = 1000.0
 
 @pytest.fixture(scope='module')
 def planar2():  # noqa: ANN201
-    model, outcome = certified_demo_arm('planar2')
-    return model, outcome.certificate
+    return demo_certificate('planar2')
 
 
 def _plant(model, payload: float, **changes) -> Plant:  # noqa: ANN001
@@ -192,7 +198,7 @@ def test_recovery_times_on_a_hand_made_log() -> None:
     margin = np.ones((10, 2))
     margin[[3, 4], 1] = -0.5
     margin[8:, 0] = -0.1
-    log = stress.PlantLog(time_s, *[np.zeros((10, 2))] * 9, np.array(['filtered'] * 10),
+    log = PlantLog(time_s, *[np.zeros((10, 2))] * 9, np.array(['filtered'] * 10),
                           margin)
     pushes = [Push(0.2, 0.1, np.zeros(2)), Push(0.6, 0.1, np.zeros(2))]
     result = recovery_times(log, pushes, 0.1)
@@ -216,40 +222,40 @@ def test_return_time_bounds_on_a_hand_made_log(planar2) -> None:
     _, high = certificate.safe_velocity_interval(q[0])
     v = np.zeros((steps, 2))
     v[:, 1] = high[1] + np.array([0.08, 0.06, 0.04, 0.02, 0.0, -0.02])  # back in S at step 4
-    log = stress.PlantLog(np.arange(steps) * period, q, v, *[np.zeros((steps, 2))] * 7,
+    log = PlantLog(np.arange(steps) * period, q, v, *[np.zeros((steps, 2))] * 7,
                           np.array(['recovering'] * steps), np.ones((steps, 2)))
     push = Push(0.0, 0.0, np.zeros(2))
     needed = np.max(certificate.recovery_time(q[:4], v[:4]), axis=1)
     assert np.all(np.isfinite(needed)) and needed[0] > 0.0
     expected = float(np.max(np.arange(4) * period + needed)) + 0.002 + period
-    found = stress.return_time_bounds(log, [push], certificate, [4 * period], period, 0.002)
+    found = return_time_bounds(log, [push], certificate, [4 * period], period, 0.002)
     assert found[0] == pytest.approx(expected)
-    assert stress.return_time_bounds(log, [push], certificate, [0.0], period, 0.0) == [None]
-    fast = stress.PlantLog(log.time_s, q.copy(), v.copy(), *[np.zeros((steps, 2))] * 7,
+    assert return_time_bounds(log, [push], certificate, [0.0], period, 0.0) == [None]
+    fast = PlantLog(log.time_s, q.copy(), v.copy(), *[np.zeros((steps, 2))] * 7,
                            log.mode, log.margin)
     fast.v[0, 0] = 1.1 * certificate.velocity_bound[0]  # beyond the certified domain
     later = float(np.max(np.arange(1, 4) * period + needed[1:])) + period
-    assert stress.return_time_bounds(fast, [push], certificate, [4 * period], period,
+    assert return_time_bounds(fast, [push], certificate, [4 * period], period,
                                      0.0) == [pytest.approx(later)]
     fast.v[4, 0] = fast.v[0, 0]  # not back within the domain when back in S
-    assert stress.return_time_bounds(fast, [push], certificate, [4 * period], period,
+    assert return_time_bounds(fast, [push], certificate, [4 * period], period,
                                      0.0) == [None]
     # speeds just beyond the box (mid-range, where the box binds the elbow): the domain
     # allows the velocity tolerance of "back in S"
-    boxed = stress.PlantLog(log.time_s[:4], np.tile(_mid(model), (4, 1)), np.zeros((4, 2)),
+    boxed = PlantLog(log.time_s[:4], np.tile(_mid(model), (4, 1)), np.zeros((4, 2)),
                             *[np.zeros((4, 2))] * 7, log.mode[:4], log.margin[:4])
     boxed.v[:, 1] = certificate.velocity_bound[1] + np.array([0.02, 0.015, 0.008, 0.004])
-    assert stress.return_time_bounds(boxed, [push], certificate, [3 * period], period,
+    assert return_time_bounds(boxed, [push], certificate, [3 * period], period,
                                      0.0) == [None]
     needed = np.max(certificate.recovery_time(boxed.q[2:], boxed.v[2:]), axis=1)
     assert np.all(np.isfinite(needed))
     within = float(np.max(np.arange(2, 4) * period + needed)) + period
-    assert stress.return_time_bounds(boxed, [push], certificate, [3 * period], period,
+    assert return_time_bounds(boxed, [push], certificate, [3 * period], period,
                                      0.0, tolerance=0.01) == [pytest.approx(within)]
-    beyond = stress.PlantLog(log.time_s, q.copy(), v.copy(), *[np.zeros((steps, 2))] * 7,
+    beyond = PlantLog(log.time_s, q.copy(), v.copy(), *[np.zeros((steps, 2))] * 7,
                              log.mode, log.margin)
     beyond.q[2, 1] = model.position_upper[1] - 1e-4  # far too fast to stop there
-    assert stress.return_time_bounds(beyond, [push], certificate, [4 * period], period,
+    assert return_time_bounds(beyond, [push], certificate, [4 * period], period,
                                      0.0) == [None]
 
 
@@ -299,18 +305,18 @@ def _run_cli(argv: list[str], capsys) -> tuple[int, str, str]:  # noqa: ANN001
     return code, captured.out, captured.err
 
 
-def test_cli_end_to_end_on_planar2(tmp_path, capsys, planar2) -> None:
+def test_cli_end_to_end_on_planar2(tmp_path, capsys, planar2, demo_certificate_files) -> None:
     model, certificate = planar2
-    path = certificate.save(tmp_path / 'planar2_certificate.yaml')
+    path = demo_certificate_files.path('planar2')
     out = tmp_path / 'stress'
     code, stdout, stderr = _run_cli(
         ['stress', '--demo', 'planar2', '--certificate', str(path), '--duration', '0.4',
          '--plants', '1', '--jobs', '2', '--seed', '3', '--output-dir', str(out), '--no-progress'],
         capsys)
     summary = json.loads((out / 'stress_summary.json').read_text(encoding='utf-8'))
-    assert code == (stress.EXIT_OK if summary['passed'] else stress.EXIT_STRESS_FAILED)
-    assert len(summary['runs']) == 7 * len(stress.NOMINALS)  # 6 fixed plants + 1 random
-    assert {r['nominal'] for r in summary['runs']} == set(stress.NOMINALS)
+    assert code == (ExitCode.OK if summary['passed'] else ExitCode.STRESS_FAILED)
+    assert len(summary['runs']) == 7 * len(NOMINALS)  # 6 fixed plants + 1 random
+    assert {r['nominal'] for r in summary['runs']} == set(NOMINALS)
     assert summary['certificate']['id'] == certificate.certificate_id
     for name in ('stress_report.html', 'positions.png', 'velocities.png', 'torques.png',
                  'margin.png'):
@@ -326,15 +332,15 @@ def test_cli_end_to_end_on_planar2(tmp_path, capsys, planar2) -> None:
     assert summary['worst_run'] == summary['runs'][0]['index']
 
 
-def test_cli_failed_verdict_exits_5(tmp_path, capsys, planar2, monkeypatch) -> None:
-    model, certificate = planar2
-    path = certificate.save(tmp_path / 'c.yaml')
-    monkeypatch.setattr(stress, 'run_failures', lambda *args: ['made to fail'])
+def test_cli_failed_verdict_exits_5(tmp_path, capsys, monkeypatch,
+                                    demo_certificate_files) -> None:
+    path = demo_certificate_files.path('planar2')
+    monkeypatch.setattr(stress_runs, 'run_failures', lambda *args: ['made to fail'])
     code, stdout, _ = _run_cli(
         ['stress', '--demo', 'planar2', '--certificate', str(path), '--duration', '0.05',
          '--plants', '0', '--jobs', '1', '--output-dir', str(tmp_path / 'o'), '--quiet',
          '--no-plots'], capsys)
-    assert code == stress.EXIT_STRESS_FAILED == 5
+    assert code == ExitCode.STRESS_FAILED == 5
     assert stdout.splitlines()[0].startswith('verdict: FAIL (36 of 36 runs')
 
 
@@ -343,7 +349,7 @@ def test_cli_demo_arm_without_certificate_certifies_then_reuses(tmp_path, capsys
     argv = ['stress', '--demo', 'planar2', '--duration', '0.05', '--plants', '0', '--jobs',
             '1', '--output-dir', str(out), '--no-plots', '--quiet']
     code, stdout, _ = _run_cli(argv, capsys)
-    assert code in (stress.EXIT_OK, stress.EXIT_STRESS_FAILED)
+    assert code in (ExitCode.OK, ExitCode.STRESS_FAILED)
     assert (out / 'planar2_certificate.yaml').is_file()
     summary = json.loads((out / 'stress_summary.json').read_text(encoding='utf-8'))
     assert 'certified now, 20000 falsifier states' in summary['certificate']['source']
@@ -354,17 +360,17 @@ def test_cli_demo_arm_without_certificate_certifies_then_reuses(tmp_path, capsys
 
 @pytest.mark.parametrize('options, message', [
     (['--certificate', 'no_such_file.yaml'], 'certificate file not found'),
-    (['--urdf', 'arm.urdf'], '--certificate is required with --urdf'),
-    (['--duration', '-1'], '--duration must be positive'),
-    (['--jobs', '0'], '--jobs must be >= 1'),
-    (['--plants', '-2'], '--plants must be >= 0'),
+    (['--urdf', 'arm.urdf'], "--certificate with --urdf: 'missing'"),
+    (['--duration', '-1'], '--duration: -1.0 (expected > 0)'),
+    (['--jobs', '0'], '--jobs: 0 (expected >= 1)'),
+    (['--plants', '-2'], '--plants: -2 (expected >= 0)'),
 ])
 def test_bad_input_exits_2_with_a_clear_message(tmp_path, capsys, options, message) -> None:
     code, _, stderr = _run_cli(['stress', '--demo', 'planar2', '--output-dir', str(tmp_path),
                                 *options]
                                if '--urdf' not in options else
                                ['stress', '--output-dir', str(tmp_path), *options], capsys)
-    assert code == stress.EXIT_BAD_INPUT == 2
+    assert code == ExitCode.BAD_INPUT == 2
     assert message in stderr
 
 
@@ -373,8 +379,8 @@ def test_tip_force_torque_matches_the_planar_jacobian() -> None:
     (Spong, Hutchinson and Vidyasagar, Robot Modeling and Control, the planar elbow arm:
     tip (l1 c1 + l2 c12, l1 s1 + l2 s12) in the x-z plane, l1 = 0.5 m, l2 = 0.4 m as the URDF
     says)."""
+    from safety_filter.campaigns.stress_matrix import tip_force_torque
     from safety_filter.simulation.demo_arms import load_demo_arm
-    from safety_filter.simulation.stress_test import tip_force_torque
 
     model = load_demo_arm('planar2')
     l1, l2 = 0.5, 0.4

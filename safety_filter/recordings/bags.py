@@ -1,36 +1,17 @@
-"""Writing and reading rosbag2 files of our topics, without ROS (the ``rosbags`` library).
+"""The one bag reader, and the package's bag API (no ROS: the ``rosbags`` library).
 
-The demo records its runs with these helpers and replay reads them back. Bags are rosbag2
-folders (``metadata.yaml`` plus the storage file) in MCAP (default) or SQLite 3 storage,
-with the ROS 2 Jazzy message definitions and type hashes, so that ``ros2 bag``, Foxglove and
-``rosbags`` itself can read them.
+The demo records its runs with :class:`~safety_filter.recordings.bag_writer.BagWriter`; replay,
+the demo report and the gravity check read them back here. The topics and message types
+are in :mod:`safety_filter.recordings.bag_format` (and importable from here, as the writer
+is). Bags are rosbag2 folders in MCAP or SQLite 3 storage, or bare ``.mcap`` / ``.db3``
+files (:func:`open_bag`, :func:`find_bags`).
 
-Topics of a safety-filter graph (:data:`TOPIC_TYPES`):
-
-* ``/joint_states`` (``sensor_msgs/msg/JointState``): the arm's state;
-* ``/nominal_torque`` (``std_msgs/msg/Float64MultiArray``): the command source's torque;
-* ``/sim_effort_command`` (``std_msgs/msg/Float64MultiArray``): what the driver was sent (the
-  filter's ``filtered_torque``, remapped);
-* ``/diagnostics`` (``diagnostic_msgs/msg/DiagnosticArray``): the filter's diagnostics;
-* ``/safety_filter/status`` (``std_msgs/msg/Float64MultiArray``): one record per filter
-  step, values only;
-* ``/safety_filter/status_fields`` (``std_msgs/msg/String``): their field names, sent once
-  by the node (transient-local; :mod:`safety_filter.online.status_layout`). Bags of earlier
-  releases have no such topic: their status records name the fields in
-  ``layout.dim[0].label``. :func:`read_status` and :func:`status_records` read both.
-
-Writing: :class:`BagWriter` takes either messages built with the Jazzy typestore
-(:func:`joint_state_message`, :func:`float64_array_message`, or any ``typestore().types``
-class), serialised here with :meth:`Typestore.serialize_cdr`, or CDR bytes a subscriber
-received (the same bytes rosbag2 stores). Reading: :func:`topic_summary`,
-:func:`read_messages`, :func:`read_joint_states`, :func:`read_float64_arrays`,
-:func:`read_status` and :func:`read_diagnostics` return numpy arrays in time order; to read
-several topics in one pass, :func:`read_topics` and the matching ``*_series`` /
-``*_records`` functions.
-
-Latched topics (``latched`` of :class:`BagWriter`; the status field names) are written with
-the transient-local offered QoS they were published with, so that ``ros2 bag play`` offers
-them to late subscribers as the node did.
+Reading: :func:`topic_summary`, :func:`read_messages`, :func:`read_joint_states`,
+:func:`read_float64_arrays`, :func:`read_status` and :func:`read_diagnostics` return numpy
+arrays in time order; to read several topics in one pass, :func:`read_topics` and the
+matching ``*_series`` / ``*_records`` functions. Status records: bags of earlier releases
+have no ``status_fields`` topic; their status records name the fields in
+``layout.dim[0].label``. :func:`read_status` and :func:`status_records` read both.
 
 Times: every message has a log time (receipt on the recorder's clock) [ns];
 ``JointState`` also has its ``header.stamp``.
@@ -38,7 +19,7 @@ Times: every message has a log time (receipt on the recorder's clock) [ns];
 
 from __future__ import annotations
 
-import functools
+import os
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -48,195 +29,31 @@ import numpy as np
 
 from safety_filter.errors import BagError
 from safety_filter.online.status_layout import StatusLayoutError, decode_fields, fields_topic
-
-TOPIC_JOINT_STATES = '/joint_states'
-TOPIC_NOMINAL = '/nominal_torque'
-TOPIC_COMMAND = '/sim_effort_command'
-TOPIC_DIAGNOSTICS = '/diagnostics'
-TOPIC_STATUS = '/safety_filter/status'
-TOPIC_STATUS_FIELDS = fields_topic(TOPIC_STATUS)  # '/safety_filter/status_fields'
-
-JOINT_STATE = 'sensor_msgs/msg/JointState'
-FLOAT64_ARRAY = 'std_msgs/msg/Float64MultiArray'
-DIAGNOSTIC_ARRAY = 'diagnostic_msgs/msg/DiagnosticArray'
-STRING = 'std_msgs/msg/String'
-
-TOPIC_TYPES = {
-    TOPIC_JOINT_STATES: JOINT_STATE,
-    TOPIC_NOMINAL: FLOAT64_ARRAY,
-    TOPIC_COMMAND: FLOAT64_ARRAY,
-    TOPIC_DIAGNOSTICS: DIAGNOSTIC_ARRAY,
-    TOPIC_STATUS: FLOAT64_ARRAY,
-    TOPIC_STATUS_FIELDS: STRING,
-}
-# Topics published once with transient-local durability (recorded with that offered QoS).
-LATCHED_TOPICS = (TOPIC_STATUS_FIELDS,)
-STORAGES = ('mcap', 'sqlite3')
-BAG_VERSION = 9  # the rosbag2 metadata version of ROS 2 Jazzy
+from safety_filter.recordings.bag_format import (  # noqa: F401 (the package's bag API)
+    BAG_SUFFIXES,
+    BAG_VERSION,
+    DIAGNOSTIC_ARRAY,
+    FLOAT64_ARRAY,
+    JOINT_STATE,
+    LATCHED_TOPICS,
+    STORAGES,
+    STRING,
+    TOPIC_COMMAND,
+    TOPIC_DIAGNOSTICS,
+    TOPIC_JOINT_STATES,
+    TOPIC_NOMINAL,
+    TOPIC_STATUS,
+    TOPIC_STATUS_FIELDS,
+    TOPIC_TYPES,
+    float64_array_message,
+    joint_state_message,
+    latched_qos,
+    string_message,
+    typestore,
+)
+from safety_filter.recordings.bag_writer import BagWriter, describe_error  # noqa: F401
 
 
-
-@functools.lru_cache(maxsize=1)
-def typestore() -> Any:
-    """The ``rosbags`` typestore of ROS 2 Jazzy (message classes, definitions, hashes)."""
-    from rosbags.typesys import Stores, get_typestore
-
-    return get_typestore(Stores.ROS2_JAZZY)
-
-
-def _split_ns(nanoseconds: int) -> tuple[int, int]:
-    seconds, rest = divmod(int(nanoseconds), 1_000_000_000)
-    return seconds, rest
-
-
-def joint_state_message(stamp_ns: int, names: Sequence[str], position: Sequence[float],
-                        velocity: Sequence[float] = (), effort: Sequence[float] = (),
-                        frame_id: str = '') -> Any:
-    """A ``sensor_msgs/msg/JointState`` of the Jazzy typestore.
-
-    Args:
-        stamp_ns: ``header.stamp`` [ns]; names: joint names; position [rad or m],
-        velocity [rad/s or m/s], effort [N m or N]: one entry per name, or empty.
-    """
-    types = typestore().types
-    sec, nanosec = _split_ns(stamp_ns)
-    header = types['std_msgs/msg/Header'](
-        stamp=types['builtin_interfaces/msg/Time'](sec=sec, nanosec=nanosec),
-        frame_id=frame_id)
-    return types[JOINT_STATE](
-        header=header, name=[str(x) for x in names],
-        position=np.asarray(position, dtype=np.float64).reshape(-1),
-        velocity=np.asarray(velocity, dtype=np.float64).reshape(-1),
-        effort=np.asarray(effort, dtype=np.float64).reshape(-1))
-
-
-def latched_qos() -> Any:
-    """The offered QoS of a latched topic as rosbag2 records it: reliable, transient-local,
-    keep-last 1 (a ``rosbags`` ``Qos``)."""
-    from rosbags.rosbag2.metadata import (
-        Qos,
-        QosDurability,
-        QosHistory,
-        QosLiveliness,
-        QosReliability,
-        QosTime,
-    )
-
-    forever = QosTime(sec=0x7FFFFFFF, nsec=0xFFFFFFFF)  # rosbag2's "infinite" duration
-    return Qos(history=QosHistory.KEEP_LAST, depth=1, reliability=QosReliability.RELIABLE,
-               durability=QosDurability.TRANSIENT_LOCAL, deadline=forever, lifespan=forever,
-               liveliness=QosLiveliness.AUTOMATIC, liveliness_lease_duration=forever,
-               avoid_ros_namespace_conventions=False)
-
-
-def string_message(text: str) -> Any:
-    """A ``std_msgs/msg/String`` of the Jazzy typestore."""
-    return typestore().types[STRING](data=str(text))
-
-
-def float64_array_message(values: Sequence[float], label: str = '') -> Any:
-    """A ``std_msgs/msg/Float64MultiArray`` with one layout dimension named ``label``."""
-    types = typestore().types
-    data = np.asarray(values, dtype=np.float64).reshape(-1)
-    layout = types['std_msgs/msg/MultiArrayLayout'](
-        dim=[types['std_msgs/msg/MultiArrayDimension'](
-            label=label, size=int(data.size), stride=int(data.size))] if label else [],
-        data_offset=0)
-    return types[FLOAT64_ARRAY](layout=layout, data=data)
-
-
-class BagWriter:
-    """Writes one rosbag2 bag; connections are added on the first message of each topic.
-
-    Args:
-        path: the bag folder to create (must not exist).
-        storage: ``'mcap'`` or ``'sqlite3'``.
-        latched: topics recorded with the transient-local offered QoS of a latched topic
-            (default :data:`LATCHED_TOPICS`).
-
-    Use as a context manager, or call :meth:`close` (the bag is unreadable until then).
-    """
-
-    def __init__(self, path: str | Path, storage: str = 'mcap',
-                 latched: Sequence[str] = LATCHED_TOPICS) -> None:
-        from rosbags.rosbag2 import StoragePlugin, Writer
-
-        if storage not in STORAGES:
-            raise BagError(f'storage must be one of {STORAGES}, got {storage!r}')
-        self.path = Path(path)
-        if self.path.exists():
-            raise BagError(f'{self.path} exists already; rosbag2 writes a new folder')
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        plugin = StoragePlugin.MCAP if storage == 'mcap' else StoragePlugin.SQLITE3
-        self.storage = storage
-        self._writer = Writer(self.path, version=BAG_VERSION, storage_plugin=plugin)
-        try:
-            self._writer.open()
-        except Exception as err:
-            raise BagError(f'cannot open {self.path} for writing: {err}') from err
-        self._connections: dict[str, Any] = {}
-        self._types: dict[str, str] = {}
-        self._latched = frozenset(latched)
-        self.counts: dict[str, int] = {}
-        self._open = True
-
-    def __enter__(self) -> BagWriter:
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self.close()
-
-    def _connection(self, topic: str, msgtype: str) -> Any:
-        connection = self._connections.get(topic)
-        if connection is None:
-            store = typestore()
-            if msgtype not in store.types:
-                raise BagError(f'unknown message type {msgtype!r} (not in the Jazzy typestore)')
-            qos = [latched_qos()] if topic in self._latched else []
-            connection = self._writer.add_connection(topic, msgtype, typestore=store,
-                                                     offered_qos_profiles=qos)
-            self._connections[topic] = connection
-            self._types[topic] = msgtype
-            self.counts[topic] = 0
-        elif self._types[topic] != msgtype:
-            raise BagError(f'topic {topic} was written as {self._types[topic]}, not {msgtype}')
-        return connection
-
-    def write_cdr(self, topic: str, msgtype: str, log_time_ns: int,
-                  data: bytes | memoryview) -> None:
-        """Write a CDR-serialised message (as a ROS 2 subscriber receives it) [ns]."""
-        if not self._open:
-            raise BagError(f'{self.path} is closed')
-        self._writer.write(self._connection(topic, msgtype), int(log_time_ns), data)
-        self.counts[topic] += 1
-
-    def write(self, topic: str, log_time_ns: int, message: Any) -> None:
-        """Serialise a typestore message with the Jazzy typestore and write it [ns]."""
-        msgtype = getattr(message, '__msgtype__', None)
-        if not isinstance(msgtype, str):
-            raise BagError(f'not a typestore message: {type(message).__name__}')
-        self.write_cdr(topic, msgtype, log_time_ns, typestore().serialize_cdr(message, msgtype))
-
-    def write_joint_state(self, topic: str, log_time_ns: int, stamp_ns: int,
-                          names: Sequence[str], position: Sequence[float],
-                          velocity: Sequence[float] = (), effort: Sequence[float] = ()) -> None:
-        """Write a ``JointState`` (see :func:`joint_state_message`)."""
-        self.write(topic, log_time_ns,
-                   joint_state_message(stamp_ns, names, position, velocity, effort))
-
-    def write_float64_array(self, topic: str, log_time_ns: int, values: Sequence[float],
-                            label: str = '') -> None:
-        """Write a ``Float64MultiArray`` (see :func:`float64_array_message`)."""
-        self.write(topic, log_time_ns, float64_array_message(values, label))
-
-    def close(self) -> None:
-        """Finish the bag (writes ``metadata.yaml``); idempotent."""
-        if self._open:
-            self._open = False
-            self._writer.close()
-
-
-# ---------------------------------------------------------------------- reading
 @dataclass(frozen=True)
 class TopicInfo:
     """A topic of a bag: its message type and count."""
@@ -246,23 +63,91 @@ class TopicInfo:
     count: int
 
 
-def _reader(path: str | Path) -> Any:
-    from rosbags.rosbag2 import Reader
+def bag_location(path: str | Path) -> Path:
+    """What to open for ``path``: the rosbag2 folder of a storage file inside one, else
+    ``path`` itself."""
+    path = Path(path)
+    if path.is_file() and path.suffix in BAG_SUFFIXES and (path.parent / 'metadata.yaml').exists():
+        return path.parent
+    return path
+
+
+def open_bag(path: str | Path) -> Any:
+    """The one way the package opens a bag for reading: an opened ``rosbags`` ``AnyReader``
+    on a rosbag2 folder, a storage file inside one, or a bare ``.mcap`` / ``.db3`` file,
+    with the Jazzy typestore. Close it when done. Input bags are only ever read (SQLite
+    files are opened ``immutable``).
+
+    Raises:
+        BagError: no such bag, not a bag, or a bag that cannot be read (truncated, foreign).
+    """
+    from rosbags.highlevel import AnyReader
 
     path = Path(path)
-    if not (path / 'metadata.yaml').is_file():
-        raise BagError(f'{path} is not a rosbag2 folder (no metadata.yaml)')
+    if not path.exists():
+        raise BagError(f'{path}: no such bag', path)
+    if path.is_dir() and not (path / 'metadata.yaml').exists():
+        raise BagError(f'{path}: not a bag (a folder without metadata.yaml is not a rosbag2 '
+                       'folder)', path)
+    if path.is_file() and path.suffix not in BAG_SUFFIXES:
+        raise BagError(f'{path}: not a bag (expected a rosbag2 folder, .mcap or .db3 file)',
+                       path)
+    reader = AnyReader([bag_location(path)], default_typestore=typestore())
     try:
-        reader = Reader(path)
         reader.open()
-    except Exception as err:
-        raise BagError(f'cannot read the bag {path}: {err}') from err
+    except Exception as err:  # rosbags raises many types for truncated or foreign files
+        raise BagError(f'{path}: cannot read the bag: {describe_error(err)}', path) from err
     return reader
+
+
+def close_quietly(reader: Any) -> None:
+    """Close a reader; one that failed half-way may not close cleanly, which is ignored."""
+    try:
+        reader.close()
+    except Exception:
+        pass
+
+
+def _is_rosbag2_folder(path: Path) -> bool:
+    return path.is_dir() and (path / 'metadata.yaml').is_file()
+
+
+def find_bags(path: str | Path, *, exclude: Iterable[str | Path] = ()) -> list[Path]:
+    """The bags at ``path``: itself when it is a bag, else every bag below it, sorted.
+
+    A bag is a rosbag2 folder (with ``metadata.yaml``; its storage files are not listed
+    again) or a bare ``.mcap`` / ``.db3`` file. A file given directly is returned as it is
+    (reading it says whether it is a bag). Hidden folders and the folders in ``exclude``
+    (e.g. the output folder of a replay) are not searched.
+
+    Raises:
+        BagError: ``path`` does not exist.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise BagError(f'{path}: no such file or folder', path)
+    if path.is_file() or _is_rosbag2_folder(path):
+        return [path]
+    skip = {Path(p).resolve() for p in exclude}
+    found: list[Path] = []
+    for root, folders, files in os.walk(path):
+        here = Path(root)
+        if here.resolve() in skip:
+            folders[:] = []
+            continue
+        if (here / 'metadata.yaml').is_file():
+            found.append(here)
+            folders[:] = []
+            continue
+        folders[:] = sorted(f for f in folders if not f.startswith('.'))
+        found += [here / name for name in sorted(files)
+                  if Path(name).suffix in BAG_SUFFIXES and not name.startswith('.')]
+    return sorted(found)
 
 
 def topic_summary(path: str | Path) -> dict[str, TopicInfo]:
     """Topics of a bag with their message type and count."""
-    reader = _reader(path)
+    reader = open_bag(path)
     try:
         summary: dict[str, TopicInfo] = {}
         for connection in reader.connections:
@@ -276,7 +161,7 @@ def topic_summary(path: str | Path) -> dict[str, TopicInfo]:
 
 def read_messages(path: str | Path, topic: str) -> Iterator[tuple[int, Any]]:
     """``(log_time_ns, message)`` of one topic in log-time order (deserialised)."""
-    reader = _reader(path)
+    reader = open_bag(path)
     try:
         store = typestore()
         connections = [c for c in reader.connections if c.topic == topic]
@@ -292,7 +177,7 @@ def read_topics(path: str | Path, topics: Sequence[str] | None = None
                 ) -> dict[str, list[tuple[int, Any]]]:
     """``{topic: [(log_time_ns, message), ...]}`` of several topics in one pass over the bag
     (default: every topic); topics absent from the bag are absent from the result."""
-    reader = _reader(path)
+    reader = open_bag(path)
     try:
         store = typestore()
         connections = [c for c in reader.connections if topics is None or c.topic in topics]

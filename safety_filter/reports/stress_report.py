@@ -1,8 +1,8 @@
 """The stress test's report: a terminal table, ``stress_summary.json``, ``stress_report.html``.
 
-:func:`format_table` renders :func:`safety_filter.simulation.stress_test.run_stress`'s result as
-plain text
-(one row per plant x nominal x rate, worst first, then a summary and the verdict).
+:func:`format_table` renders the result of :func:`safety_filter.campaigns.stress_runs.run_stress`
+as plain text (one row per plant x nominal x rate, worst first, then a summary and the
+verdict).
 :func:`write_report` writes the JSON summary and a self-contained HTML page (our own CSS, no
 external URLs) with PNG plots of the worst run: positions, velocities and torques against
 the limits, and the barrier margin of the true state. Matplotlib is imported only when plots
@@ -11,23 +11,36 @@ are drawn, with the Agg canvas and its object-oriented API only.
 
 from __future__ import annotations
 
+import dataclasses
 import html
 import json
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any, Protocol
 
 import numpy as np
 
+from safety_filter.online.mode_codes import FILTER_MODE_NAMES
 from safety_filter.reports.certificate_report import SAFETY_NOTICE
 from safety_filter.reports.html_kit import BASE_CSS, json_ready
 
-if TYPE_CHECKING:
-    from safety_filter.simulation.stress_test import StressResult
+
+class StressResult(Protocol):
+    """What the report reads of a stress test's result
+    (:class:`safety_filter.campaigns.stress_runs.StressResult`; the report sits a layer
+    below the campaign, so it names the attributes instead of importing the class)."""
+
+    summaries: list[dict[str, Any]]  # per run, worst first
+    worst: dict[str, Any]
+    worst_log: Any  # safety_filter.simulation.plant.PlantLog
+    worst_pushes: list[Any]  # safety_filter.simulation.plant.Push
+    context: Any  # the matrix: model, certificate, uncertainty, settings, rules, plants...
+    wall_s: float
+    passed: bool
 
 REPORT_HTML = 'stress_report.html'
 SUMMARY_JSON = 'stress_summary.json'
 PLOTS = ('positions.png', 'velocities.png', 'torques.png', 'margin.png')
-_MODES = ('filtered', 'fallback', 'recovering', 'rejected')
+_MODES = FILTER_MODE_NAMES  # the modes of a filter step (no node watchdog in a stress run)
 
 
 def _num(value: float | None, digits: int = 3) -> str:
@@ -144,8 +157,6 @@ def format_table(result: StressResult, source: str) -> str:
 # ---------------------------------------------------------------------- JSON, HTML, plots
 def report_data(result: StressResult, source: str) -> dict[str, Any]:
     """Everything of :data:`SUMMARY_JSON`."""
-    from safety_filter.simulation.stress_test import settings_record
-
     context = result.context
     return json_ready({
         'robot': context.model.name,
@@ -154,7 +165,7 @@ def report_data(result: StressResult, source: str) -> dict[str, Any]:
                         'control_rate_hz': context.certificate.control_rate_hz,
                         'sampling_factor': context.certificate.sampling_factor},
         'uncertainty': context.uncertainty.record(),
-        'settings': settings_record(context.settings),
+        'settings': dataclasses.asdict(context.settings),
         'rules': {'position_tolerance': context.rules.position_tolerance,
                   'velocity_allowance': context.rules.velocity_allowance,
                   'torque_tolerance_relative': context.rules.torque_tolerance,

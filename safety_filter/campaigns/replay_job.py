@@ -1,12 +1,10 @@
-"""Replay a bag or a folder of bags: per-bag reports, in parallel, failures listed not fatal.
+"""Replay one bag as a campaign does: read, replay with each certificate, report; never raise.
 
 :func:`replay_bag` does everything for one bag (read, open-loop replay with each
 certificate, optional closed-loop re-simulation, optional replay bag, report) and returns a
-plain entry that says ``'ok'`` or ``'failed'`` with the error: a bad bag never raises.
-:func:`replay_bags` runs it over many bags across processes (``concurrent.futures``) with a
-progress bar, or on the workers of a running Dask cluster
-(:mod:`safety_filter.replay.cluster`, imported only then); the command
-``safety-filter replay`` is a thin layer over it.
+plain entry that says ``'ok'`` or ``'failed'`` with the error: a bad bag never raises. It is
+the job a worker runs, in a local process (:mod:`safety_filter.campaigns.replay_batch`) or
+on a Dask worker (:mod:`safety_filter.campaigns.replay_cluster`).
 
 Output folder layout: ``<out>/<bag name>/replay_report.html`` (+ JSON, plots) per bag,
 ``<out>/<bag name>/<bag name>_replay`` (the replay bag, with ``write_bags``), and
@@ -15,11 +13,9 @@ Output folder layout: ``<out>/<bag name>/replay_report.html`` (+ JSON, plots) pe
 
 from __future__ import annotations
 
-import copy
 import dataclasses
 import os
 import shutil
-import sys
 import time
 import traceback
 import uuid
@@ -30,25 +26,19 @@ from typing import Any
 
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
-from safety_filter.replay.bag_replay import (
-    BAG_SUFFIXES,
-    BagError,
-    ReplayTopics,
-    read_trial,
-    replay_open_loop,
-    resimulate,
-    write_replay_bag,
-)
+from safety_filter.errors import BagError, SafetyFilterError
+from safety_filter.recordings.bags import BAG_SUFFIXES
+from safety_filter.recordings.event_log import EventLog
+from safety_filter.replay.closed_loop import resimulate
+from safety_filter.replay.open_loop import replay_open_loop
+from safety_filter.replay.replay_bag import write_replay_bag
+from safety_filter.replay.trial import ReplayTopics, read_trial
 from safety_filter.reports.replay_report import (
     REPORT_HTML,
     CertificateRun,
-    EventLog,
     format_trial_summary,
     write_trial_report,
 )
-
-DEFAULT_JOBS = 2
 
 
 @dataclass(frozen=True)
@@ -114,18 +104,6 @@ def bag_names(bags: Sequence[Path], root: Path) -> list[str]:
     return names
 
 
-def portable_model(model: RobotModel) -> RobotModel:
-    """A shallow copy of ``model`` that pickles (for worker processes).
-
-    The model caches its Pinocchio model (a module object inside), which cannot be pickled;
-    the copy starts with an empty cache and builds its own.
-    """
-    clone = copy.copy(model)
-    if hasattr(clone, '_pinocchio_cache'):
-        clone._pinocchio_cache = {}  # type: ignore[attr-defined]
-    return clone
-
-
 def _figures(data: dict[str, Any]) -> dict[str, Any]:
     run = data['runs'][0]
     summary = run['summary']
@@ -149,7 +127,7 @@ def _remove_old_replay_bag(path: Path) -> None:
         shutil.rmtree(path)
         return
     raise BagError(f'{path} exists and is not a replay bag written by safety_filter; '
-                   'move it or choose another --output-dir')
+                   'move it or choose another --output-dir', path)
 
 
 def failed_entry(bag: str, name: str, error: str | None, detail: str | None = None
@@ -196,7 +174,8 @@ def _write_replay_bag_atomically(bag: str, result: Any, target: Path, storage: s
         try:
             os.rename(staged, target)
         except OSError as err:
-            raise BagError(f'cannot put the replay bag in place at {target}: {err}') from err
+            raise BagError(f'cannot put the replay bag in place at {target}: {err}',
+                           target) from err
     finally:
         shutil.rmtree(staging, ignore_errors=True)
 
@@ -288,99 +267,3 @@ def replay_bag(bag: str | Path, name: str, model: RobotModel,
         entry['error'] = rename(text)
     entry['seconds'] = time.perf_counter() - started
     return entry
-
-
-_WORKER: dict[str, Any] = {}
-_PRELOAD = ['safety_filter.replay.batch', 'matplotlib.backends.backend_agg',
-            'rosbags.highlevel']
-
-
-def _worker_context(multiprocessing: Any) -> Any:
-    """'forkserver' with the heavy imports preloaded once (workers fork from it, no threads
-    of this process are copied); 'spawn' where there is no forkserver."""
-    if 'forkserver' in multiprocessing.get_all_start_methods():
-        context = multiprocessing.get_context('forkserver')
-        context.set_forkserver_preload(_PRELOAD)
-        return context
-    return multiprocessing.get_context('spawn')
-
-
-def _init_worker(model: RobotModel, certificates: Sequence[CertificateChoice],
-                 options: ReplayOptions, out_dir: str, events: EventLog | None) -> None:
-    _WORKER.update(model=model, certificates=certificates, options=options, out_dir=out_dir,
-                   events=events)
-
-
-def _work(bag: str, name: str) -> dict[str, Any]:
-    return replay_bag(bag, name, _WORKER['model'], _WORKER['certificates'],
-                      _WORKER['options'], _WORKER['out_dir'], _WORKER['events'])
-
-
-def replay_bags(bags: Sequence[str | Path], model: RobotModel,
-                certificates: Sequence[CertificateChoice], options: ReplayOptions,
-                out_dir: str | Path, *, names: Sequence[str] | None = None,
-                jobs: int = DEFAULT_JOBS, events: EventLog | None = None,
-                progress: bool = True, cluster: str | None = None) -> list[dict[str, Any]]:
-    """Replay every bag (see :func:`replay_bag`), ``jobs`` at a time in worker processes.
-
-    One bag, or ``jobs <= 1``, runs in this process. With ``cluster``, the address of a
-    running Dask scheduler (``tcp://HOST:PORT``), the bags are replayed on its workers
-    instead and ``jobs`` is not used (:func:`safety_filter.replay.cluster.replay_on_cluster`:
-    the bags and ``out_dir`` must be at the same paths on the workers). A progress bar goes
-    to stderr when it is a terminal and ``progress`` is set. Returns the entries in the
-    order of ``bags``.
-
-    Raises:
-        SafetyFilterError: ``jobs`` < 1, or ``names`` of the wrong length;
-            :class:`safety_filter.replay.cluster.ClusterError` when the cluster cannot be
-            used (before any bag is replayed).
-    """
-    from tqdm import tqdm
-
-    if jobs < 1:
-        raise SafetyFilterError(f'jobs must be >= 1, got {jobs}')
-    bags = [str(b) for b in bags]
-    names = list(names) if names is not None else bag_names([Path(b) for b in bags],
-                                                             Path(bags[0]).parent if bags
-                                                             else Path('.'))
-    if len(names) != len(bags):
-        raise SafetyFilterError('one name per bag is needed')
-    if cluster is not None:
-        # Dask is imported only here: a local replay does not pay for it.
-        from safety_filter.replay.cluster import replay_on_cluster
-
-        return replay_on_cluster(cluster, bags, model, certificates, options, out_dir,
-                                 names=names, events=events, progress=progress)
-    entries: list[dict[str, Any] | None] = [None] * len(bags)
-    bar = tqdm(total=len(bags), unit='bag', file=sys.stderr, disable=None if progress else True,
-               desc='replay', leave=False)
-    try:
-        if jobs == 1 or len(bags) <= 1:
-            for k, (bag, name) in enumerate(zip(bags, names)):
-                entries[k] = replay_bag(bag, name, model, certificates, options, out_dir,
-                                        events)
-                bar.update(1)
-        else:
-            import multiprocessing
-            from concurrent.futures import ProcessPoolExecutor, as_completed
-
-            context = _worker_context(multiprocessing)
-            with ProcessPoolExecutor(
-                    max_workers=min(jobs, len(bags)), mp_context=context,
-                    initializer=_init_worker,
-                    initargs=(portable_model(model), list(certificates), options,
-                              str(out_dir), events)) as pool:
-                futures = {pool.submit(_work, bag, name): k
-                           for k, (bag, name) in enumerate(zip(bags, names))}
-                for future in as_completed(futures):
-                    k = futures[future]
-                    try:
-                        entries[k] = future.result()
-                    except Exception as err:  # a worker died (killed, out of memory)
-                        entries[k] = failed_entry(bags[k], names[k],
-                                                  f'{bags[k]}: the worker process failed: '
-                                                  f'{type(err).__name__}: {err}')
-                    bar.update(1)
-    finally:
-        bar.close()
-    return [e for e in entries if e is not None]

@@ -2,7 +2,7 @@
 
 The machine that starts the run (the client) finds the bags, as a local run does, and hands
 each bag to the cluster's scheduler as one task; a worker runs
-:func:`safety_filter.replay.batch.replay_bag` on it and writes the bag's report into the
+:func:`safety_filter.campaigns.replay_job.replay_bag` on it and writes the bag's report into the
 output folder itself. What travels over the network is small: the robot model, the
 certificates, the options and the event log (pickled once per run, a few kB) and, per
 bag, its absolute path and the absolute output folder. The bags are never copied: every
@@ -39,16 +39,16 @@ from importlib import metadata
 from pathlib import Path
 from typing import Any
 
-from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import ClusterError, SafetyFilterError
-from safety_filter.replay.batch import (
+from safety_filter.campaigns.replay_job import (
     CertificateChoice,
     ReplayOptions,
     failed_entry,
-    portable_model,
     replay_bag,
 )
-from safety_filter.reports.replay_report import EventLog
+from safety_filter.campaigns.worker_processes import portable_model
+from safety_filter.core.robot_model import RobotModel
+from safety_filter.errors import ClusterError, ShapeMismatch
+from safety_filter.recordings.event_log import EventLog
 
 # How long to wait for the scheduler to answer, and for a first worker [s].
 CONNECT_TIMEOUT_S = 10.0
@@ -58,7 +58,6 @@ PINNED_DISTRIBUTIONS = ('numpy', 'scipy', 'osqp', 'pin', 'numba', 'matplotlib', 
 INSTALL_HINT = ("python3 -m pip install 'distributed>=2024.1.1' (or the package's extra: "
                 "python3 -m pip install '.[cluster]' in a clone)")
 _MISSING_SHOWN = 3  # paths named in an error about missing bags (then a count)
-
 
 
 def _import_distributed() -> Any:
@@ -304,7 +303,7 @@ def replay_on_cluster(address: str, bags: Sequence[str | Path], model: RobotMode
                       ) -> list[dict[str, Any]]:
     """Replay every bag on the workers of the Dask scheduler at ``address``.
 
-    The same entries, reports and files as :func:`safety_filter.replay.batch.replay_bags`
+    The same entries, reports and files as :func:`safety_filter.campaigns.replay_batch.replay_bags`
     run locally, with the paths spelled as given here. Bags and ``out_dir`` are sent as
     absolute paths (relative ones joined to this process's working folder; symbolic links
     are not resolved), which must name the same files on every worker. A progress bar goes
@@ -323,7 +322,7 @@ def replay_on_cluster(address: str, bags: Sequence[str | Path], model: RobotMode
     bags = [str(b) for b in bags]
     names = list(names)
     if len(names) != len(bags):
-        raise SafetyFilterError('one name per bag is needed')
+        raise ShapeMismatch('names (one per bag)', len(bags), len(names))
     out_dir = Path(out_dir)
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
