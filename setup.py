@@ -133,7 +133,7 @@ setup(
             'careless_operator = safety_filter.ros.operator_node:main',
             'bag_recorder = safety_filter.ros.recorder_node:main',
             # The live terminal monitor and event log (`safety-filter monitor`).
-            'filter_monitor = safety_filter.ros.monitor:main',
+            'filter_monitor = safety_filter.cli.monitor:filter_monitor_main',
         ],
     },
 )

@@ -7,9 +7,10 @@ from pathlib import Path
 import pytest
 import yaml
 
-from safety_filter.cli.main import EXIT_BAD_INPUT, EXIT_NOT_CERTIFIED, EXIT_OK, main
+from safety_filter.cli.main import main
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
+from safety_filter.errors import ExitCode
 from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm
 
 FAST = ['--samples', '256', '--falsifier-states', '2000']
@@ -30,7 +31,7 @@ def test_certify_planar2_writes_a_loadable_certificate_and_report(tmp_path, caps
     output = tmp_path / 'out' / 'planar2.yaml'
     code = main(['certify', '--demo', 'planar2', *FAST, '--output', str(output)])
     captured = capsys.readouterr()
-    assert code == EXIT_OK, captured.err
+    assert code == ExitCode.OK, captured.err
     certificate = Certificate.load(output, load_demo_arm('planar2'))
     assert certificate.certified and not certificate.reasons
     assert certificate.falsifier['states'] == 2000
@@ -50,7 +51,7 @@ def test_torque_below_gravity_load_exits_3_and_says_why(tmp_path, capsys, weak_l
     code = main(['certify', '--urdf', str(urdf), '--limits', str(weak_limits), *FAST,
                  '--output', str(output)])
     captured = capsys.readouterr()
-    assert code == EXIT_NOT_CERTIFIED
+    assert code == ExitCode.NOT_CERTIFIED
     assert 'NOT CERTIFIED' in captured.out
     text = ' '.join(captured.out.split())
     assert "joint 'shoulder'" in text
@@ -72,7 +73,7 @@ def test_quiet_and_no_report_still_give_the_reasons(tmp_path, capsys, weak_limit
     code = main(['certify', '--urdf', str(urdf), '--limits', str(weak_limits), *FAST,
                  '--no-report', '--quiet'])
     captured = capsys.readouterr()
-    assert code == EXIT_NOT_CERTIFIED
+    assert code == ExitCode.NOT_CERTIFIED
     assert 'verdict: NOT CERTIFIED' in captured.out and 'shoulder' in captured.out
     assert 'gamma*' not in captured.out  # no table
     written = sorted(p.name for p in tmp_path.iterdir())
@@ -86,7 +87,7 @@ def test_failed_certify_leaves_a_good_certificate_untouched(tmp_path, capsys,
     with its report; the failed attempt and its report go next to it, and the output says
     so. A later certified run replaces the file atomically (no temporary file is left)."""
     output = tmp_path / 'arm.yaml'
-    assert main(['certify', '--demo', 'planar2', *FAST, '--output', str(output)]) == EXIT_OK
+    assert main(['certify', '--demo', 'planar2', *FAST, '--output', str(output)]) == ExitCode.OK
     good = output.read_bytes()
     report = tmp_path / 'arm_report' / 'certificate_report.json'
     good_report = report.read_bytes()
@@ -95,7 +96,7 @@ def test_failed_certify_leaves_a_good_certificate_untouched(tmp_path, capsys,
     code = main(['certify', '--urdf', str(demo_arm_files('planar2')[0]), '--limits',
                  str(weak_limits), *FAST, '--output', str(output)])
     captured = capsys.readouterr()
-    assert code == EXIT_NOT_CERTIFIED
+    assert code == ExitCode.NOT_CERTIFIED
     assert output.read_bytes() == good
     assert report.read_bytes() == good_report
     assert Certificate.load(output, load_demo_arm('planar2')).certified
@@ -109,7 +110,7 @@ def test_failed_certify_leaves_a_good_certificate_untouched(tmp_path, capsys,
     output.write_text('stale\n', encoding='utf-8')
     output.chmod(0o640)
     assert main(['certify', '--demo', 'planar2', *FAST, '--output', str(output),
-                 '--no-report']) == EXIT_OK
+                 '--no-report']) == ExitCode.OK
     assert Certificate.load(output, load_demo_arm('planar2')).certified
     assert output.stat().st_mode & 0o777 == 0o640  # the replaced file keeps its mode
     assert not [p.name for p in tmp_path.iterdir() if p.name.endswith('.tmp')]
@@ -129,7 +130,7 @@ def test_interrupted_write_keeps_the_old_file(tmp_path, capsys, monkeypatch) -> 
     monkeypatch.setattr(Certificate, 'save', partial_save)
     code = main(['certify', '--demo', 'planar2', *FAST, '--output', str(output),
                  '--no-report', '--quiet'])
-    assert code == EXIT_BAD_INPUT
+    assert code == ExitCode.BAD_INPUT
     assert 'No space left on device' in capsys.readouterr().err
     assert output.read_text(encoding='utf-8') == 'previous certificate\n'
     assert sorted(p.name for p in tmp_path.iterdir()) == ['arm.yaml']
@@ -139,7 +140,7 @@ def test_missing_urdf_exits_2(tmp_path, capsys) -> None:
     code = main(['certify', '--urdf', str(tmp_path / 'nowhere.urdf'), '--output',
                  str(tmp_path / 'x.yaml')])
     captured = capsys.readouterr()
-    assert code == EXIT_BAD_INPUT
+    assert code == ExitCode.BAD_INPUT
     assert 'nowhere.urdf' in captured.err
     assert not (tmp_path / 'x.yaml').exists()
 
@@ -151,7 +152,7 @@ def test_malformed_limits_file_exits_2(tmp_path, capsys) -> None:
     code = main(['certify', '--urdf', str(demo_arm_files('planar2')[0]), '--limits',
                  str(limits), '--output', str(tmp_path / 'x.yaml')])
     captured = capsys.readouterr()
-    assert code == EXIT_BAD_INPUT
+    assert code == ExitCode.BAD_INPUT
     assert 'bad_limits.yaml' in captured.err
     assert not (tmp_path / 'x.yaml').exists()
 
@@ -168,25 +169,26 @@ def test_malformed_limits_file_exits_2(tmp_path, capsys) -> None:
 ])
 def test_bad_options_exit_2(tmp_path, capsys, options) -> None:
     code = main(['certify', '--demo', 'planar2', *options, '--output', str(tmp_path / 'x.yaml')])
-    assert code == EXIT_BAD_INPUT
+    assert code == ExitCode.BAD_INPUT
     assert not (tmp_path / 'x.yaml').exists()
     assert capsys.readouterr().err
 
 
 def test_inspect_still_works(capsys) -> None:
-    assert main(['inspect', '--demo', 'planar2', '--states', '0']) == EXIT_OK
+    assert main(['inspect', '--demo', 'planar2', '--states', '0']) == ExitCode.OK
     assert 'model hash' in capsys.readouterr().out
 
 
 def test_sampling_factor_reaches_the_settings(capsys) -> None:
-    from safety_filter.cli.main import _certify_settings, build_parser
+    from safety_filter.cli.certify import certify_settings
+    from safety_filter.cli.main import build_parser
 
     parser = build_parser()
     args = parser.parse_args(['certify', '--demo', 'planar2', '--sampling-factor', '2'])
-    settings = _certify_settings(args)
+    settings = certify_settings(args)
     assert settings.sampling_factor == 2.0
     assert settings.hold_period_s == pytest.approx(2.0 / settings.control_rate_hz)
-    default = _certify_settings(parser.parse_args(['certify', '--demo', 'planar2']))
+    default = certify_settings(parser.parse_args(['certify', '--demo', 'planar2']))
     assert default.sampling_factor == 1.0
     assert main(['certify', '--help']) == 0
     assert '--sampling-factor' in capsys.readouterr().out
@@ -194,9 +196,10 @@ def test_sampling_factor_reaches_the_settings(capsys) -> None:
 
 @pytest.mark.parametrize('form, expected', [('auto', None), ('start', False), ('mean', True)])
 def test_acceleration_form_reaches_the_settings(form: str, expected: bool | None) -> None:
-    from safety_filter.cli.main import _certify_settings, build_parser
+    from safety_filter.cli.certify import certify_settings
+    from safety_filter.cli.main import build_parser
 
     args = build_parser().parse_args(['certify', '--demo', 'planar2',
                                       '--acceleration-form', form])
-    settings = _certify_settings(args)
+    settings = certify_settings(args)
     assert settings.mean_over_hold is expected

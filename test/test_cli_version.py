@@ -11,13 +11,14 @@ from pathlib import Path
 import pytest
 
 from safety_filter._version import __version__
-from safety_filter.cli.main import EXIT_OK, main
+from safety_filter.cli.main import main
+from safety_filter.errors import ExitCode
 
 PACKAGE_XML = Path(__file__).resolve().parents[1] / 'package.xml'
 
 
 def test_version_prints_the_package_version(capsys) -> None:
-    assert main(['--version']) == EXIT_OK
+    assert main(['--version']) == ExitCode.OK
     captured = capsys.readouterr()
     assert captured.out.strip() == f'safety-filter {__version__}'
     # The released version, as the ROS package manifest states it (read with xml.etree).

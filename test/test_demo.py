@@ -33,7 +33,8 @@ from safety_filter.reports.demo_report import (  # noqa: E402
     range_and_speed_used,
 )
 from safety_filter.ros.demo_graph import DemoOptions, run_demo  # noqa: E402
-from safety_filter.ros.runner import run_graph, sim_demo_graph  # noqa: E402
+from safety_filter.ros.graph_specs import sim_demo_graph  # noqa: E402
+from safety_filter.ros.runner import run_graph  # noqa: E402
 from safety_filter.simulation.demo_arms import load_demo_arm  # noqa: E402
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]

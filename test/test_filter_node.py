@@ -186,7 +186,7 @@ def test_defaults_are_the_values_of_config_filter_yaml(planar2: CertifiedArm,
     behaves as one started with it."""
     import yaml
 
-    from safety_filter.ros.runner import FILTER_CONFIG, config_file
+    from safety_filter.ros.graph_specs import FILTER_CONFIG, config_file
 
     values = yaml.safe_load(config_file(FILTER_CONFIG).read_text(encoding='utf-8'))
     values = values['/**/safety_filter']['ros__parameters']

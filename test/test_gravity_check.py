@@ -1,4 +1,4 @@
-"""``safety-filter check-gravity`` (safety_filter.replay.gravity_convention) on bags written here.
+"""``safety-filter check-gravity`` (safety_filter.replay.gravity_check) on bags written here.
 
 The bags hold what a driver would publish: the arm moves between rest poses (efforts during
 motion are nonsense on purpose: they must be ignored), then rests at each pose with velocity
@@ -24,8 +24,9 @@ from safety_filter.cli.main import SAFETY_NOTICE, main
 from safety_filter.core.dynamics import Dynamics
 from safety_filter.core.model_uncertainty import model_with_inertials
 from safety_filter.core.robot_model import RobotModel
+from safety_filter.errors import ExitCode, InvalidValue
 from safety_filter.recordings import bags
-from safety_filter.replay import gravity_convention as gc
+from safety_filter.replay import gravity_check as gc
 from safety_filter.simulation.demo_arms import load_demo_arm
 
 START_NS = 1_700_000_000_000_000_000
@@ -111,7 +112,7 @@ def test_efforts_equal_to_g_read_as_full(tmp_path: Path, bench6: RobotModel) -> 
     write_rest_bag(path, bench6, BENCH6_POSES, gravity_of(bench6, 0.5))
     result = check_bag(path, bench6)
     assert result.convention == 'full', result.format()
-    assert result.exit_code == gc.EXIT_CONSISTENT
+    assert result.exit_code == ExitCode.OK
     assert result.payload_mass == 0.5
     assert result.rest_samples == 2 * 200  # every rest sample, no moving one
     verdicts = {j.name: j.verdict for j in result.joints}
@@ -131,7 +132,7 @@ def test_zero_efforts_read_as_driver_compensated(tmp_path: Path, bench6: RobotMo
     write_rest_bag(path, bench6, BENCH6_POSES, lambda q: np.zeros(6), storage='sqlite3')
     result = check_bag(path, bench6)
     assert result.convention == 'driver_compensated', result.format()
-    assert result.exit_code == gc.EXIT_CONSISTENT
+    assert result.exit_code == ExitCode.OK
     verdicts = {j.name: j.verdict for j in result.joints}
     assert verdicts['shoulder_pitch'] == verdicts['elbow_pitch'] == gc.NO_GRAVITY
     assert 'gravity_convention: driver_compensated' in result.format()
@@ -145,7 +146,7 @@ def test_thirty_percent_heavier_link_is_inconclusive(tmp_path: Path,
     write_rest_bag(path, planar2, PLANAR2_POSES, gravity_of(heavier_link(planar2, 1), 0.0))
     result = check_bag(path, planar2, payload_mass=0.0)
     assert result.convention is None
-    assert result.exit_code == gc.EXIT_INCONCLUSIVE
+    assert result.exit_code == ExitCode.INCONCLUSIVE
     elbow = result.joints[1]
     assert elbow.verdict == gc.INCONCLUSIVE
     assert elbow.residual == pytest.approx(0.3 * elbow.gravity, rel=0.05)
@@ -180,7 +181,7 @@ def test_motion_only_gives_too_few_rest_samples(tmp_path: Path, planar2: RobotMo
                                      v, gravity(q))
     result = check_bag(path, planar2)
     assert result.rest_samples == 0
-    assert result.exit_code == gc.EXIT_INCONCLUSIVE
+    assert result.exit_code == ExitCode.INCONCLUSIVE
     assert result.reasons[0].startswith('too few rest samples')
 
 
@@ -195,7 +196,7 @@ def test_efforts_missing_is_inconclusive(tmp_path: Path, planar2: RobotModel) ->
     path = tmp_path / 'no_effort'
     write_rest_bag(path, planar2, PLANAR2_POSES, None)
     result = check_bag(path, planar2)
-    assert result.exit_code == gc.EXIT_INCONCLUSIVE
+    assert result.exit_code == ExitCode.INCONCLUSIVE
     assert any(r.startswith('efforts missing') for r in result.reasons)
     assert all(j.verdict == gc.INCONCLUSIVE and j.reason == 'no effort reported'
                for j in result.joints)
@@ -233,10 +234,13 @@ def test_pairing_skips_messages_without_the_chain() -> None:
 
 def test_bad_options_raise(planar2: RobotModel) -> None:
     samples = gc.pair_samples([], planar2.joint_names)
-    for options in ({'tolerance': 1.5}, {'rest_velocity': 0.0}, {'min_samples': 0},
-                    {'payload_mass': -1.0}):
-        with pytest.raises(gc.SafetyFilterError):
+    for options, option in (({'tolerance': 1.5}, '--tolerance'),
+                            ({'rest_velocity': 0.0}, '--rest-velocity'),
+                            ({'min_samples': 0}, '--min-samples'),
+                            ({'payload_mass': -1.0}, '--payload-mass')):
+        with pytest.raises(InvalidValue, match=option) as raised:
             gc.check_gravity(planar2, samples, **options)
+        assert raised.value.what == option and raised.value.exit_code == ExitCode.BAD_INPUT
 
 
 # ---------------------------------------------------------------------- the command
@@ -267,7 +271,7 @@ def test_cli_inconclusive_exit_code(tmp_path: Path, planar2: RobotModel,
     code = main(['check-gravity', str(path), '--urdf', str(urdf), '--limits', str(limits),
                  '--payload-mass', '0'])
     out, _ = capsys.readouterr()
-    assert code == 4
+    assert code == ExitCode.INCONCLUSIVE == 6
     assert 'verdict: inconclusive' in out
     assert any(line.startswith('  - large residual at') and 'elbow' in line
                for line in out.splitlines()), out

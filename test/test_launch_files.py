@@ -186,7 +186,7 @@ def test_sim_demo_feeds_the_filter_output_to_the_simulated_driver() -> None:
 
 
 def test_the_runner_starts_the_same_graphs(tmp_path: Path) -> None:
-    from safety_filter.ros.runner import NODES, hardware_graph, sim_demo_graph
+    from safety_filter.ros.graph_specs import NODES, hardware_graph, sim_demo_graph
     from safety_filter.simulation.demo_arms import demo_arm_files
 
     scripts = console_scripts()
@@ -263,7 +263,7 @@ def test_hardware_launch_does_not_activate_unless_asked() -> None:
 
 def test_sim_arm_command_topic_is_not_the_hardware_default() -> None:
     """A sim graph's filter output and a real arm's driver cannot meet by default."""
-    from safety_filter.ros.runner import COMMAND_TOPIC, hardware_graph
+    from safety_filter.ros.graph_specs import COMMAND_TOPIC, hardware_graph
     from safety_filter.simulation.demo_arms import demo_arm_files
 
     hardware = LaunchFile(REPO / 'launch' / 'hardware.launch.py')
@@ -333,7 +333,8 @@ def test_hardware_launch_reads_the_robot_from_a_file_or_a_topic() -> None:
 
 
 def test_the_runner_puts_a_graph_in_a_namespace(tmp_path: Path) -> None:
-    from safety_filter.ros.runner import GraphError, hardware_graph, sim_demo_graph
+    from safety_filter.errors import InvalidValue
+    from safety_filter.ros.graph_specs import hardware_graph, sim_demo_graph
     from safety_filter.simulation.demo_arms import demo_arm_files
 
     urdf, limits = demo_arm_files('planar2')
@@ -349,10 +350,10 @@ def test_the_runner_puts_a_graph_in_a_namespace(tmp_path: Path) -> None:
                               limits_path=limits, namespace='/cell2/left')
     assert topic.parameters['robot_description_topic'] == 'robot_description'
     assert topic.parameters['urdf_path'] == ''
-    with pytest.raises(GraphError, match='one of them'):
+    with pytest.raises(InvalidValue, match='one of them'):
         hardware_graph(certificate=certificate, urdf_path=urdf,
                        robot_description_topic='robot_description')
-    with pytest.raises(GraphError, match='not a ROS namespace'):
+    with pytest.raises(InvalidValue, match='not a ROS namespace'):
         hardware_graph(certificate=certificate, urdf_path=urdf, namespace='a b')
     specs = sim_demo_graph(urdf_path=urdf, limits_path=limits, certificate=certificate,
                            control_rate_hz=1000.0, bag_path=tmp_path / 'bag', namespace='/sim1')

@@ -203,7 +203,8 @@ def test_no_default_robot_or_certificate_for_a_real_arm(
     """`safety-filter node` and `run-graph --graph hardware` never fall back to a demo arm
     or certificate: without the robot, its limits or the certificate they exit 2 and say
     what is missing."""
-    from safety_filter.cli.main import EXIT_BAD_INPUT, main
+    from safety_filter.cli.main import main
+    from safety_filter.errors import ExitCode
 
     arm = planar2
     options = {'robot': ['--urdf', str(arm.urdf_path)],
@@ -211,7 +212,7 @@ def test_no_default_robot_or_certificate_for_a_real_arm(
                'certificate': ['--certificate', str(arm.certificate_path)]}
     arguments = [part for key, value in options.items() if key != missing for part in value]
     prefix = ['node'] if command == 'node' else ['run-graph', '--graph', 'hardware']
-    assert main([*prefix, *arguments]) == EXIT_BAD_INPUT
+    assert main([*prefix, *arguments]) == ExitCode.BAD_INPUT
     err = capsys.readouterr().err
     expected = {'robot': '--urdf', 'limits': '--limits', 'certificate': '--certificate'}
     assert expected[missing] in err, err

@@ -159,7 +159,7 @@ def test_readme_commissioning_commands_run_in_a_colcon_install_layout(tmp_path: 
                               timeout=300)
 
     where = run([sys.executable, '-c', 'import safety_filter, sys; '
-                 'from safety_filter.ros.runner import config_file; '
+                 'from safety_filter.ros.graph_specs import config_file; '
                  'print(safety_filter.__file__); print(config_file("filter.yaml"))'])
     assert where.returncode == 0, where.stderr
     module, config = where.stdout.split()

@@ -18,12 +18,8 @@ from typing import Any
 import numpy as np
 import pytest
 
-from safety_filter.cli.demo import (
-    EXIT_GRAPH_OK,
-    EXIT_LIMIT_BROKEN,
-    EXIT_NODE_FAILED,
-    graph_exit_code,
-)
+from safety_filter.cli.demo import graph_exit_code
+from safety_filter.errors import ExitCode
 from safety_filter.ros.runner import LIMIT_TOLERANCE, GraphResult
 
 
@@ -31,16 +27,16 @@ def test_exit_code_a_failed_node_first_then_a_broken_limit(capsys: Any) -> None:
     kept = GraphResult(wall_s=1.0, joint_names=['a', 'b'],
                        excursions={'position': [0.0, LIMIT_TOLERANCE], 'velocity': [0.0, 0.0],
                                    'torque': [0.0, 0.0]})
-    assert graph_exit_code(kept) == EXIT_GRAPH_OK == 0
+    assert graph_exit_code(kept) == ExitCode.OK == 0
     assert 'kept every limit' in capsys.readouterr().out
     broken = GraphResult(wall_s=1.0, joint_names=['a', 'b'],
                          excursions={'position': [0.0, 0.02], 'velocity': [0.5, 0.0],
                                      'torque': [0.0, 0.0]})
     assert broken.broken_limits == ['b position by 0.02', 'a velocity by 0.5']
-    assert graph_exit_code(broken) == EXIT_LIMIT_BROKEN == 4
+    assert graph_exit_code(broken) == ExitCode.LIMIT_BROKEN == 4
     assert 'BROKE LIMITS' in capsys.readouterr().out
     broken.failures.append('/x/safety_filter exited early (code 1)')
-    assert graph_exit_code(broken) == EXIT_NODE_FAILED == 1  # the cause, not its effect
+    assert graph_exit_code(broken) == ExitCode.FAILED == 1  # the cause, not its effect
     out = capsys.readouterr().out
     assert 'NODE FAILED: /x/safety_filter exited early' in out and 'BROKE LIMITS' in out
     assert graph_exit_code(GraphResult(wall_s=1.0)) == 0  # hardware graph: nothing to check
@@ -121,7 +117,7 @@ def test_a_node_that_raises_makes_the_graph_exit_1(
                  '--certificate', str(arm.default_certificate_path), '--duration', '5',
                  '--domain-id', str(domain), '--executor', 'single_threaded'])
     out = capsys.readouterr().out
-    assert code == EXIT_NODE_FAILED, out
+    assert code == ExitCode.FAILED, out
     assert 'NODE FAILED' in out and 'injected failure of the filter step' in out
     assert 'in failing_step' in out  # where it was raised
 
@@ -201,6 +197,6 @@ def test_hardware_graph_takes_the_robot_from_a_latched_description(
     finally:
         context.try_shutdown()
     out = capsys.readouterr().out
-    assert code == EXIT_GRAPH_OK, out
+    assert code == ExitCode.OK, out
     assert f'ros2 lifecycle set {namespace}/safety_filter activate' in out
     assert 'NODE FAILED' not in out

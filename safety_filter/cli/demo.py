@@ -1,7 +1,8 @@
-"""The ``demo`` and ``run-graph`` subcommands of ``safety-filter`` (see
-:mod:`safety_filter.cli.main`).
+"""``safety-filter demo`` and ``safety-filter run-graph``: the one-command demo, and a node
+graph of the launch files run without ``ros2 launch``.
 
-They need rclpy (the ``ros`` extra) at run time, not to build the parser.
+They need rclpy (the ``ros`` extra) at run time, not to build the parser: the handlers ask
+:mod:`safety_filter.ros.availability` and import the ROS modules when they run.
 """
 
 from __future__ import annotations
@@ -13,66 +14,27 @@ from pathlib import Path
 from typing import Any
 
 from safety_filter.cli.robot_options import (
-    EXECUTORS,
-    GRAVITY_CONVENTIONS,
-    LOG_LEVELS,
-    STORAGES,
+    add_graph_arguments,
+    add_gravity_convention_argument,
+    add_payload_mass_argument,
     deprecated,
-    executor_name,
     namespace_argument,
 )
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import ExitCode, FileFormatError, InvalidValue
+from safety_filter.recordings.bags import STORAGES
 from safety_filter.simulation.demo_arms import DEMO_ARMS, demo_arm_files
 
-EXIT_INTERRUPTED = 130
 GRAPHS = ('sim', 'hardware')
-# run-graph's exit codes (its description lists them).
-EXIT_GRAPH_OK = 0
-EXIT_NODE_FAILED = 1
-EXIT_BAD_INPUT = 2
-EXIT_LIMIT_BROKEN = 4
-
-
-def _require_rclpy() -> None:
-    try:
-        import rclpy  # noqa: F401
-    except ImportError as err:
-        raise SafetyFilterError(
-            "this command needs rclpy: python3 -m pip install -e '.[ros]' (the ROS 2 "
-            'Jazzy wheels), or source a ROS 2 Jazzy install') from err
-
-
-def _add_graph_options(parser: argparse.ArgumentParser) -> None:
-    group = parser.add_argument_group('how the graph runs')
-    group.add_argument('--processes', action='store_true',
-                       help='one process per node (default: every node in one process)')
-    group.add_argument('--executor', type=executor_name, choices=EXECUTORS, default=None,
-                       help="executor of the nodes: 'events' (rclpy's EventsExecutor, "
-                       "experimental in Jazzy; the demo's and sim graph's default), "
-                       "'single_threaded' (rclpy's SingleThreadedExecutor; the hardware "
-                       "graph's default: the filter on a real arm's safety path) or "
-                       "'multi_threaded' ('single' and 'multi': deprecated spellings)")
-    group.add_argument('--domain-id', type=int, default=None, metavar='N',
-                       help='ROS domain of the graph (demo and sim graph default: a random '
-                       'one in 150..199, discovery on this machine only; hardware graph '
-                       'default: ROS_DOMAIN_ID)')
-    group.add_argument('--log-level', choices=LOG_LEVELS, default='warn',
-                       help="the nodes' log level (default: warn)")
-    group.add_argument('--verbose', dest='log_level', action='store_const', const='info',
-                       help=deprecated('the same as --log-level info', '--verbose'))
 
 
 # ---------------------------------------------------------------------- demo
 def _command_demo(args: argparse.Namespace) -> int:
-    from safety_filter.ros.demo_graph import (
-        DEMO_FALSIFIER_STATES,
-        EXIT_LIMITS_BROKEN,
-        EXIT_OK,
-        DemoOptions,
-        run_demo,
-    )
+    """Run ``safety-filter demo`` (exit codes: its parser's description)."""
+    from safety_filter.ros.availability import require_rclpy
 
-    _require_rclpy()
+    require_rclpy('the demo')
+    from safety_filter.ros.demo_graph import DEMO_FALSIFIER_STATES, DemoOptions, run_demo
+
     options = DemoOptions(
         arm=args.demo, output=Path(args.output_dir), duration_s=args.duration,
         seed=args.seed, processes=args.processes, executor=args.executor or 'events',
@@ -85,7 +47,7 @@ def _command_demo(args: argparse.Namespace) -> int:
         result = run_demo(options)
     except KeyboardInterrupt:
         print('interrupted', flush=True)
-        return EXIT_INTERRUPTED
+        return ExitCode.INTERRUPTED
     print()
     print(result.summary)
     print(f'\nreport: {result.report.resolve()}')
@@ -97,8 +59,8 @@ def _command_demo(args: argparse.Namespace) -> int:
               'or another --seed')
     if not result.filtered_kept_all:
         print('FILTERED RUN BROKE A LIMIT: see the report')
-        return EXIT_LIMITS_BROKEN
-    return EXIT_OK
+        return ExitCode.LIMIT_BROKEN
+    return ExitCode.OK
 
 
 def add_demo_parser(commands: argparse._SubParsersAction) -> None:
@@ -110,7 +72,7 @@ def add_demo_parser(commands: argparse._SubParsersAction) -> None:
         'a simulated arm driven by a careless operator twice (unfiltered, possible only in '
         'simulation, then through the safety filter), record both runs to rosbag2 bags and '
         'write a report with the limit violations of each. Exit code 0: the filtered run '
-        'kept every limit; 4: it did not; 2: bad input or a failed run; 130: interrupted '
+        'kept every limit; 4: it did not; 1: a run failed; 2: bad input; 130: interrupted '
         '(Ctrl-C).')
     demo.add_argument('--demo', '--arm', dest='demo', choices=DEMO_ARMS, default='bench6',
                       help=deprecated('the demo arm (default: bench6)', '--arm'))
@@ -129,7 +91,7 @@ def add_demo_parser(commands: argparse._SubParsersAction) -> None:
     demo.add_argument('--quiet', action='store_true',
                       help='print only the summary and the files written, not what is going '
                       'on')
-    _add_graph_options(demo)
+    add_graph_arguments(demo)
     demo.set_defaults(handler=_command_demo)
 
 
@@ -139,17 +101,20 @@ def _robot_files(args: argparse.Namespace) -> tuple[Path | str, Path | str, str]
                                       ('--robot-description-topic',
                                        args.robot_description_topic)) if value is not None]
     if len(given) > 1:
-        raise SafetyFilterError(f'give one of {", ".join(given)}, not several')
+        raise InvalidValue(given[1], 'given', detail=f'give one of {", ".join(given)}, not '
+                           'several')
     if args.robot_description_topic is not None:
         if args.graph == 'sim':
-            raise SafetyFilterError('--robot-description-topic is for the hardware graph: the '
-                                    "sim graph's simulated arm loads the robot from --urdf "
-                                    '(or --demo)')
+            raise InvalidValue('--robot-description-topic', args.robot_description_topic,
+                               detail='--robot-description-topic is for the hardware graph: '
+                               "the sim graph's simulated arm loads the robot from --urdf (or "
+                               '--demo)')
         return '', (Path(args.limits) if args.limits else ''), 'robot_description'
     if args.urdf is not None:
         return Path(args.urdf), (Path(args.limits) if args.limits else ''), Path(args.urdf).stem
     if args.limits:
-        raise SafetyFilterError('--limits needs --urdf or --robot-description-topic')
+        raise InvalidValue('--limits', args.limits,
+                           detail='--limits needs --urdf or --robot-description-topic')
     arm = args.demo or 'bench6'
     urdf, limits = demo_arm_files(arm)
     return urdf, limits, arm
@@ -167,25 +132,25 @@ def _require_hardware_robot(args: argparse.Namespace) -> None:
     if not args.certificate:
         missing.append('--certificate ARM_CERTIFICATE.yaml')
     if missing:
-        raise SafetyFilterError(
-            f'--graph hardware needs {", ".join(missing)}: the robot the filter guards and '
-            'its certificate (there is no default robot for a real arm; --demo <arm> names '
-            'a demo arm explicitly)')
+        raise InvalidValue(
+            '--graph', 'hardware', detail=f'--graph hardware needs {", ".join(missing)}: the '
+            'robot the filter guards and its certificate (there is no default robot for a '
+            'real arm; --demo <arm> names a demo arm explicitly)')
     if args.limits and not Path(args.limits).is_file():
-        raise SafetyFilterError(f'limits file not found: {args.limits}')
+        raise FileFormatError(f'limits file not found: {args.limits}', args.limits)
     if args.urdf is not None and not Path(args.urdf).is_file():
-        raise SafetyFilterError(f'URDF file not found: {args.urdf}')
+        raise FileFormatError(f'URDF file not found: {args.urdf}', args.urdf)
 
 
 def graph_domain(graph: str, domain_id: int | None) -> tuple[int | None, bool]:
     """The ROS domain and localhost-only discovery of a graph run by ``run-graph``.
 
     The sim graph runs isolated, like the demo: on ``domain_id`` or else a random domain of
-    :data:`safety_filter.ros.runner.SIM_DOMAIN_RANGE`, discovery on this machine only, so
+    :data:`safety_filter.ros.graph_specs.SIM_DOMAIN_RANGE`, discovery on this machine only, so
     that its nodes and a real arm's cannot meet. The hardware graph joins the user's
     network: ``domain_id`` or the environment's ``ROS_DOMAIN_ID`` (None), any discovery.
     """
-    from safety_filter.ros.runner import SIM_DOMAIN_RANGE
+    from safety_filter.ros.graph_specs import SIM_DOMAIN_RANGE
 
     if graph != 'sim':
         return domain_id, False
@@ -195,8 +160,12 @@ def graph_domain(graph: str, domain_id: int | None) -> tuple[int | None, bool]:
 
 
 def _command_run_graph(args: argparse.Namespace) -> int:
-    _require_rclpy()
-    from safety_filter.ros.runner import hardware_graph, run_graph, sim_demo_graph
+    """Run ``safety-filter run-graph`` (exit codes: its parser's description)."""
+    from safety_filter.ros.availability import require_rclpy
+
+    require_rclpy('run-graph')
+    from safety_filter.ros.graph_specs import hardware_graph, sim_demo_graph
+    from safety_filter.ros.runner import run_graph
 
     if args.graph == 'hardware':
         _require_hardware_robot(args)
@@ -205,9 +174,10 @@ def _command_run_graph(args: argparse.Namespace) -> int:
     certificate = (Path(args.certificate) if args.certificate
                    else Path('out/demo') / f'{name}_certificate.yaml')
     if not certificate.is_file():
-        raise SafetyFilterError(
+        raise FileFormatError(
             f'no certificate at {certificate}: give --certificate, or write one with '
-            f'`safety-filter certify` (or `safety-filter demo`, which puts it there)')
+            f'`safety-filter certify` (or `safety-filter demo`, which puts it there)',
+            certificate)
     if args.graph == 'sim':
         specs = sim_demo_graph(urdf_path=urdf, limits_path=limits, certificate=certificate,
                                duration_s=args.duration, seed=args.seed,
@@ -216,8 +186,8 @@ def _command_run_graph(args: argparse.Namespace) -> int:
         duration = 0.0  # the simulated arm stops itself
     else:
         if args.output_dir:
-            raise SafetyFilterError('--output-dir records the sim graph only; use ros2 bag '
-                                    'record')
+            raise InvalidValue('--output-dir', args.output_dir, detail='--output-dir records '
+                               'the sim graph only; use ros2 bag record')
         specs = hardware_graph(
             certificate=certificate, urdf_path=urdf, limits_path=limits,
             command_topic=args.command_topic, joint_states_topic=args.joint_states_topic,
@@ -261,8 +231,8 @@ def graph_exit_code(result: Any) -> int:
     elif result.excursions:
         print('the simulated arm kept every limit (position, velocity, commanded torque)')
     if result.failures:
-        return EXIT_NODE_FAILED
-    return EXIT_LIMIT_BROKEN if broken else EXIT_GRAPH_OK
+        return ExitCode.FAILED
+    return ExitCode.LIMIT_BROKEN if broken else ExitCode.OK
 
 
 def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
@@ -278,8 +248,8 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
         'stopped (Ctrl-C, --duration, or the simulated arm finished) with every node '
         'healthy and, in the sim graph, every limit of the simulated arm kept; 1: a node '
         'failed while the graph ran (raised an exception, exited early or with an error '
-        'code, or did not stop); 2: bad input (options, robot, certificate) or a graph that '
-        'could not start (a node not created, the filter not configured); 4: sim graph: the '
+        'code, or did not stop), or the graph could not start (a node not created, the '
+        'filter not configured); 2: bad input (options, robot, certificate); 4: sim graph: the '
         'simulated arm went past a position or velocity limit, or was sent a torque beyond '
         'its effort limit.')
     run.add_argument('--graph', choices=GRAPHS, default='sim',
@@ -302,9 +272,8 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
                        help='certificate parameter file (hardware: required; sim default: '
                        'out/demo/<arm or URDF stem>_certificate.yaml, where safety-filter '
                        'demo writes it)')
-    robot.add_argument('--payload-mass', type=float, default=None, metavar='KG',
-                       help='mounted payload [kg] (hardware default: the middle of the '
-                       'certified range)')
+    add_payload_mass_argument(robot, help='mounted payload [kg] (hardware default: the '
+                              'middle of the certified range)')
     run.add_argument('--namespace', type=namespace_argument, default='', metavar='NS',
                      help="the ROS namespace of the graph's nodes, e.g. /arm1 (default: the "
                      'root); their relative and ~/ topics and services resolve in it, the '
@@ -329,9 +298,9 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
                           'joint_states)')
     hardware.add_argument('--nominal-topic', default='nominal_torque', metavar='TOPIC',
                           help="the command source's torque topic (default: nominal_torque)")
-    hardware.add_argument('--gravity-convention', choices=GRAVITY_CONVENTIONS,
-                          default='full', help="what the driver takes (default: 'full' "
-                          'torque; driver_compensated: it adds gravity compensation itself)')
+    add_gravity_convention_argument(hardware, help="what the driver takes (default: 'full' "
+                                    'torque; driver_compensated: it adds gravity compensation '
+                                    'itself)')
     hardware.add_argument('--activate-at-start', action='store_true',
                           help='activate the filter at once, so that it commands the driver '
                           'as soon as joint states arrive (default: configured and inactive '
@@ -339,5 +308,5 @@ def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
     hardware.add_argument('--watchdog-rate', type=float, default=0.0, metavar='HZ',
                           help="the filter's watchdog rate [Hz] (parameter "
                           "watchdog_rate_hz; default 0: the certificate's control rate)")
-    _add_graph_options(run)
+    add_graph_arguments(run)
     run.set_defaults(handler=_command_run_graph)

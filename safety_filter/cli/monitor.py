@@ -1,22 +1,20 @@
-"""The options and the subcommand of ``safety-filter monitor`` (the ``filter_monitor``
-executable takes the same options). The command itself runs in
-:func:`safety_filter.ros.monitor.run`; this module needs no ROS, so ``safety-filter --help``
-works without it."""
+"""``safety-filter monitor`` and the ``filter_monitor`` executable (the same options): their
+options, their checks and their entry points. The monitor itself runs in
+:func:`safety_filter.ros.monitor.run`, imported when the command runs; this module needs no
+ROS, so ``safety-filter --help`` works without it."""
 
 from __future__ import annotations
 
 import argparse
 import math
+import sys
+from collections.abc import Sequence
 
 from safety_filter.cli.robot_options import deprecated
-from safety_filter.errors import SafetyFilterError
-from safety_filter.monitor.state import (
-    DEFAULT_ABSENT_AFTER_S,
-    DEFAULT_NODE_NAME,
-    DEFAULT_THIN_MARGIN,
-    split_node_name,
-)
-from safety_filter.recordings.event_log import EVENT_TIMES
+from safety_filter.errors import InvalidValue, SafetyFilterError
+from safety_filter.monitor.snapshots import split_node_name
+from safety_filter.monitor.state import DEFAULT_ABSENT_AFTER_S, DEFAULT_THIN_MARGIN
+from safety_filter.recordings.event_log import DEFAULT_NODE_NAME, EVENT_TIMES
 
 DEFAULT_RATE_HZ = 4.0
 
@@ -65,26 +63,29 @@ def add_monitor_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def check_monitor_arguments(args: argparse.Namespace) -> None:
-    """Raise :class:`SafetyFilterError` for option values out of range."""
+    """Check the monitor's option values.
+
+    Raises:
+        InvalidValue: an option value out of range, or a node name that is not one.
+    """
     if not (math.isfinite(args.refresh_rate) and args.refresh_rate > 0):
-        raise SafetyFilterError(f'--refresh-rate must be positive, got {args.refresh_rate}')
+        raise InvalidValue('--refresh-rate', args.refresh_rate, 'a positive number')
     if not math.isfinite(args.thin_margin):
-        raise SafetyFilterError('--thin-margin must be finite')
+        raise InvalidValue('--thin-margin', args.thin_margin, 'a finite number')
     if not (math.isfinite(args.duration) and args.duration >= 0):
-        raise SafetyFilterError('--duration must be >= 0')
+        raise InvalidValue('--duration', args.duration, '>= 0')
     if not (math.isfinite(args.absent_after) and args.absent_after > 0):
-        raise SafetyFilterError('--absent-after must be positive')
+        raise InvalidValue('--absent-after', args.absent_after, 'a positive number')
     split_node_name(args.node_name)
 
 
-def _command_monitor(args: argparse.Namespace) -> int:
-    try:
-        from safety_filter.ros import monitor
-    except ImportError as err:
-        raise SafetyFilterError(
-            f'the monitor needs rclpy and the ROS 2 message packages ({err}); install them '
-            "with pip install -e '.[ros]' or source a ROS 2 Jazzy install") from err
-    return monitor.run(args)
+def command_monitor(args: argparse.Namespace) -> int:
+    """Run ``safety-filter monitor``: exit code 0 on a clean stop, or an input error (2)."""
+    from safety_filter.ros.availability import import_ros_module
+
+    check_monitor_arguments(args)
+    monitor = import_ros_module('safety_filter.ros.monitor', 'the monitor')
+    return int(monitor.run(args))
 
 
 def add_monitor_parser(commands: argparse._SubParsersAction) -> None:
@@ -102,4 +103,30 @@ def add_monitor_parser(commands: argparse._SubParsersAction) -> None:
     add_monitor_arguments(parser)
     parser.add_argument('--ros-args', dest='ros_args', nargs=argparse.REMAINDER, default=[],
                         metavar='ROS_ARGS', help='everything after this goes to ROS')
-    parser.set_defaults(handler=_command_monitor)
+    parser.set_defaults(handler=command_monitor)
+
+
+def filter_monitor_main(args: Sequence[str] | None = None) -> int:
+    """Entry point of ``filter_monitor`` (the same options as ``safety-filter monitor``;
+    ROS arguments after ``--ros-args``)."""
+    argv = list(sys.argv if args is None else args)
+    ros_part: list[str] = []
+    own = argv[1:]
+    if '--ros-args' in argv:  # everything after it goes to ROS
+        at = argv.index('--ros-args')
+        own, ros_part = argv[1:at], argv[at + 1:]
+    parser = argparse.ArgumentParser(
+        prog='filter_monitor', description='Watch a running safety_filter node live in the '
+        'terminal and log its events (see safety-filter monitor --help).')
+    add_monitor_arguments(parser)
+    options = parser.parse_args(own)
+    options.ros_args = ros_part
+    try:
+        return command_monitor(options)
+    except SafetyFilterError as err:
+        print(f'error: {err}', file=sys.stderr)
+        return int(err.exit_code)
+
+
+if __name__ == '__main__':
+    sys.exit(filter_monitor_main())

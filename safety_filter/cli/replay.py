@@ -1,8 +1,7 @@
-"""The ``safety-filter replay`` command (registered by
-:func:`safety_filter.cli.main.build_parser`).
+"""``safety-filter replay``: replay recorded bags through the filter, write reports.
 
-Kept apart from :mod:`safety_filter.cli.main` so that the command's options and its handler sit
-together; it loads the robot with the same options as every other command.
+It loads the robot with the same options as every other command
+(:mod:`safety_filter.cli.robot_options`).
 """
 
 from __future__ import annotations
@@ -10,10 +9,18 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from safety_filter.cli.robot_options import GRAVITY_CONVENTIONS, STORAGES, deprecated
-from safety_filter.errors import SafetyFilterError
+from safety_filter.cli.robot_options import (
+    add_certificate_argument,
+    add_gravity_convention_argument,
+    add_payload_mass_argument,
+    add_progress_arguments,
+    add_robot_arguments,
+    deprecated,
+    load_robot,
+)
+from safety_filter.errors import BagError, ExitCode, FileFormatError, InvalidValue
+from safety_filter.recordings.bags import STORAGES
 
-EXIT_ALL_BAGS_FAILED = 1
 DEFAULT_OUT = Path('out') / 'replay'
 
 _DESCRIPTION = (
@@ -34,8 +41,7 @@ _DESCRIPTION = (
 
 def add_replay_parser(commands: argparse._SubParsersAction) -> None:
     """Add the ``replay`` subcommand to ``safety-filter``'s subparsers."""
-    from safety_filter.cli.main import add_robot_arguments
-    from safety_filter.replay.batch import DEFAULT_JOBS
+    from safety_filter.campaigns.replay_batch import DEFAULT_JOBS
 
     replay = commands.add_parser(
         'replay', help='replay recorded bags through the filter; reports, comparisons',
@@ -44,8 +50,7 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
                         help='a bag (rosbag2 folder, .mcap or .db3 file) or a folder of bags')
     add_robot_arguments(replay)
     filt = replay.add_argument_group('filter')
-    filt.add_argument('--certificate', required=True, metavar='PATH',
-                      help='certificate parameter file written by `safety-filter certify`')
+    add_certificate_argument(filt)
     filt.add_argument('--compare', metavar='PATH',
                       help='a second certificate (other gains) to compare with, side by side')
     filt.add_argument('--closed-loop', action='store_true',
@@ -57,11 +62,8 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
     filt.add_argument('--trigger', choices=('nominal', 'joint_state'), default='nominal',
                       help="what starts a step, as the node's trigger parameter (default: "
                       'nominal)')
-    filt.add_argument('--gravity-convention', choices=GRAVITY_CONVENTIONS,
-                      default='full', help="what the driver takes (default: 'full' torque)")
-    filt.add_argument('--payload-mass', type=float, default=None, metavar='KG',
-                      help='payload mass of the model [kg] (default: middle of the certified '
-                      'range)')
+    add_gravity_convention_argument(filt)
+    add_payload_mass_argument(filt)
     filt.add_argument('--joint-state-timeout', type=float, default=0.05, metavar='S',
                       help="joint states older than this are a gap; the node's watchdog "
                       'holds [s] (default: 0.05)')
@@ -100,45 +102,36 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
                         'a missing file is ignored, malformed lines are reported')
     output.add_argument('--no-plots', action='store_true',
                         help='reports without plots (JSON and tables: faster for big batches)')
-    output.add_argument('--no-progress', action='store_true', help='no progress bar')
-    output.add_argument('--quiet', action='store_true',
-                        help='print only the count of bags replayed, the failed ones and the '
-                        'files written, not the per-bag summaries (implies --no-progress)')
+    add_progress_arguments(output, quiet_help='print only the count of bags replayed, the '
+                           'failed ones and the files written, not the per-bag summaries '
+                           '(implies --no-progress)')
     replay.set_defaults(handler=command_replay)
 
 
 def _check_positive(value: float, option: str) -> None:
     if not (value > 0.0 and value < float('inf')):
-        raise SafetyFilterError(f'{option} must be positive and finite, got {value}')
+        raise InvalidValue(option, value, 'a positive finite number')
 
 
 def command_replay(args: argparse.Namespace) -> int:
     """Run ``safety-filter replay`` (see the parser's description for the exit codes)."""
-    from safety_filter.cli.main import EXIT_OK, load_robot
+    from safety_filter.campaigns.replay_batch import DEFAULT_JOBS, replay_bags
+    from safety_filter.campaigns.replay_job import CertificateChoice, ReplayOptions, bag_names
     from safety_filter.core.certificate import Certificate
     from safety_filter.online.barrier_filter import SafetyFilter
-    from safety_filter.replay.bag_replay import ReplayTopics, find_bags
-    from safety_filter.replay.batch import (
-        DEFAULT_JOBS,
-        CertificateChoice,
-        ReplayOptions,
-        bag_names,
-        replay_bags,
-    )
-    from safety_filter.reports.replay_report import (
-        format_batch_summary,
-        read_event_log,
-        write_batch_summary,
-    )
+    from safety_filter.recordings.bags import find_bags
+    from safety_filter.recordings.event_log import read_event_log
+    from safety_filter.replay.trial import ReplayTopics
+    from safety_filter.reports.replay_report import format_batch_summary, write_batch_summary
 
     if args.cluster is not None and args.jobs is not None:
-        raise SafetyFilterError('--jobs and --cluster exclude each other: on a cluster, its '
-                                'workers replay the bags')
+        raise InvalidValue('--jobs', args.jobs, detail='--jobs and --cluster exclude each '
+                           'other: on a cluster, its workers replay the bags')
     jobs = DEFAULT_JOBS if args.jobs is None else args.jobs
     if jobs < 1:
-        raise SafetyFilterError(f'--jobs must be >= 1, got {jobs}')
+        raise InvalidValue('--jobs', jobs, '>= 1')
     if args.cluster is not None:
-        from safety_filter.replay.cluster import parse_address
+        from safety_filter.campaigns.replay_cluster import parse_address
 
         parse_address(args.cluster)  # a malformed address is bad input, found before any work
     _check_positive(args.joint_state_timeout, '--joint-state-timeout')
@@ -161,15 +154,14 @@ def command_replay(args: argparse.Namespace) -> int:
     out = Path(args.output_dir)
     bags = find_bags(source, exclude=[out])
     if not bags:
-        raise SafetyFilterError(f'{source}: no bags found (rosbag2 folders with metadata.yaml, '
-                                '.mcap or .db3 files)')
+        raise BagError('no bags found (rosbag2 folders with metadata.yaml, .mcap or .db3 '
+                       'files)', source)
     resolved_out = out.resolve()
     for bag in bags:
         root = bag.resolve()
         if bag.is_dir() and (resolved_out == root or root in resolved_out.parents):
-            raise SafetyFilterError(f'--output-dir {out} lies inside the bag {bag}; the '
-                                    'input is '
-                                    'never written to: choose another folder')
+            raise InvalidValue('--output-dir', str(out), detail=f'it lies inside the bag {bag}; '
+                               'the input is never written to: choose another folder')
     if source.is_dir() and not (source / 'metadata.yaml').is_file():
         names = bag_names(bags, source)  # a folder of bags
     else:
@@ -185,7 +177,7 @@ def command_replay(args: argparse.Namespace) -> int:
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as err:
-        raise SafetyFilterError(f'cannot create --output-dir {out}: {err}') from err
+        raise FileFormatError(f'cannot create --output-dir {out}: {err}', out) from err
     entries = replay_bags(bags, model, choices, options, out, names=names, jobs=jobs,
                           events=events, progress=not (args.quiet or args.no_progress),
                           cluster=args.cluster)
@@ -193,7 +185,7 @@ def command_replay(args: argparse.Namespace) -> int:
         summary_path = write_batch_summary(out, entries, options=options.record(),
                                            events=events)
     except OSError as err:
-        raise SafetyFilterError(f'cannot write the summary in {out}: {err}') from err
+        raise FileFormatError(f'cannot write the summary in {out}: {err}', out) from err
     if args.quiet:
         ok = sum(entry['status'] == 'ok' for entry in entries)
         print('\n'.join([f'FAILED {e["name"]}: {e["error"]}' for e in entries
@@ -209,4 +201,4 @@ def command_replay(args: argparse.Namespace) -> int:
         print(f'event log {events.path}: not found (ignored)')
     print(f'summary: {(out / "index.html").resolve()} ({summary_path.name})')
     ok = any(entry['status'] == 'ok' for entry in entries)
-    return EXIT_OK if ok else EXIT_ALL_BAGS_FAILED
+    return ExitCode.OK if ok else ExitCode.FAILED

@@ -44,15 +44,15 @@ from rich.segment import Segment
 from rich.table import Table
 from rich.text import Text
 
-from safety_filter.monitor.state import (
+from safety_filter.errors import InvalidValue
+from safety_filter.monitor.snapshots import (
     LEVEL_ERROR,
     LEVEL_OK,
     LEVEL_STALE,
     LEVEL_WARN,
-    MonitorState,
-    format_value,
     split_node_name,
 )
+from safety_filter.monitor.state import MonitorState, format_value
 
 ALARM_PREFIX = '!! '
 PLAIN_WIDTH = 100
@@ -363,10 +363,10 @@ def render_text(renderable: RenderableType, width: int = PLAIN_WIDTH,
     given), with ANSI styles when ``color``; trailing spaces removed.
 
     Raises:
-        ValueError: a width or height below 1.
+        InvalidValue: a width or height below 1.
     """
     if width < 1 or (height is not None and height < 1):
-        raise ValueError(f'width and height must be at least 1, got {width} x {height}')
+        raise InvalidValue('width and height', (width, height), 'at least 1 each')
     console = Console(file=io.StringIO(), width=width, height=height or 10_000,
                       force_terminal=color, color_system='standard' if color else None,
                       no_color=not color, highlight=False, emoji=False, markup=False)

@@ -17,12 +17,9 @@ from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPo
 from rclpy.signals import SignalHandlerOptions
 from rclpy.utilities import remove_ros_args
 
-from safety_filter.cli.robot_options import EXECUTORS, executor_name
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
-
-EXIT_OK = 0
-EXIT_FAILED = 1
+from safety_filter.errors import ExitCode, InvalidValue, SafetyFilterError
+from safety_filter.ros.names import EXECUTORS, executor_name
 
 
 def state_qos() -> QoSProfile:
@@ -49,7 +46,8 @@ def describe(text: str) -> ParameterDescriptor:
 def load_model(urdf_path: str, limits_path: str) -> RobotModel:
     """The robot model from the ``urdf_path`` and ``limits_path`` parameters."""
     if not urdf_path:
-        raise SafetyFilterError('urdf_path is not set: give the robot URDF')
+        raise InvalidValue('urdf_path', urdf_path, 'a URDF file',
+                           detail='urdf_path is not set: give the robot URDF')
     return RobotModel.from_urdf(urdf_path, limits=limits_path or None)
 
 
@@ -97,7 +95,7 @@ def make_executor(kind: str, context: Any) -> Any:
         from rclpy.executors import MultiThreadedExecutor
 
         return MultiThreadedExecutor(num_threads=2, context=context)
-    raise SafetyFilterError(f'executor must be one of {EXECUTORS}, got {kind!r}')
+    raise InvalidValue('executor', kind, f'one of {", ".join(EXECUTORS)}')
 
 
 def _executor_argument(argv: Sequence[str]) -> str:
@@ -138,7 +136,7 @@ def spin_node(node_factory: Callable[[Any], Any], args: Sequence[str] | None,
             node = node_factory(context)
         except SafetyFilterError as err:
             print(f'error: {err}', file=sys.stderr)
-            return EXIT_FAILED
+            return ExitCode.FAILED
         executor = make_executor(executor_kind, context)
         executor.add_node(node)
         while context.ok() and not (done is not None and done(node)):
@@ -156,4 +154,4 @@ def spin_node(node_factory: Callable[[Any], Any], args: Sequence[str] | None,
                 close()
             node.destroy_node()
         context.try_shutdown()
-    return EXIT_OK
+    return ExitCode.OK

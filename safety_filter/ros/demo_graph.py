@@ -7,11 +7,12 @@ One command does it all, in an output folder (default ``out/demo``):
    by ``safety-filter certify`` with its defaults but :data:`DEMO_FALSIFIER_STATES`
    falsifier states (see there), in a subprocess that runs beside the unfiltered run (which
    needs no certificate), and its report is written to ``certificate_report/``.
-2. **Two runs** of the simulated graph (:func:`safety_filter.ros.runner.sim_demo_graph`), each
-   for the same simulated duration with the same operator seed: the *unfiltered* run (the
-   operator's torque straight to the simulated arm; a graph without the filter that exists
-   only here, around the simulated arm: the filter node has no bypass) and the *filtered*
-   run (operator -> filter -> arm). Both are recorded to rosbag2 bags in ``bags/``.
+2. **Two runs** of the simulated graph
+   (:func:`safety_filter.ros.graph_specs.sim_demo_graph`), each for the same simulated
+   duration with the same operator seed: the *unfiltered* run (the operator's torque
+   straight to the simulated arm; a graph without the filter that exists only here, around
+   the simulated arm: the filter node has no bypass) and the *filtered* run (operator ->
+   filter -> arm). Both are recorded to rosbag2 bags in ``bags/``.
 3. **Report.** ``report/demo_report.html`` with PNG plots and ``report/demo_summary.json``
    (:mod:`safety_filter.reports.demo_report`), and a terminal summary of the limit violations per
    joint for each run.
@@ -33,9 +34,9 @@ from typing import Any
 
 import yaml
 
-from safety_filter.core.certificate import Certificate, CertificateError
+from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue, RunFailed
 from safety_filter.recordings import bags
 from safety_filter.reports.demo_report import (
     RunData,
@@ -47,19 +48,15 @@ from safety_filter.reports.demo_report import (
 )
 from safety_filter.simulation.careless_operator import CarelessOperator
 from safety_filter.simulation.demo_arms import DEMO_ARMS, demo_arm_files, load_demo_arm
+from safety_filter.simulation.demo_certificate import (
+    DEMO_FALSIFIER_STATES,
+    reusable_certificate,
+)
 
-# The demo certifies with the defaults of `safety-filter certify` but 20 000 falsifier
-# states instead of 100 000 (the falsifier is an independent check on top of the
-# certification; the certificate must still pass it, so a demo certificate is a real one).
-# Saves about ten seconds.
 DEFAULT_FALSIFIER_STATES = 100_000
-DEMO_FALSIFIER_STATES = 20_000
 RUNS = ('unfiltered', 'filtered')
 DEFAULT_OUTPUT = Path('out/demo')
 DEFAULT_DURATION_S = 10.0
-EXIT_OK = 0
-EXIT_LIMITS_BROKEN = 4  # the filtered run broke a limit
-
 
 @dataclass
 class DemoOptions:
@@ -132,27 +129,6 @@ def _demo_config(path: Path) -> dict[str, Any]:
             for node, section in document.items() if isinstance(section, dict)}
 
 
-def reusable_certificate(model: RobotModel, path: Path, control_rate_hz: float
-                         ) -> tuple[Certificate | None, str]:
-    """The certificate at ``path`` if the demo can reuse it, with the reason if not.
-
-    Reusable: it loads, belongs to ``model`` (model hash), is certified and is for
-    ``control_rate_hz``.
-    """
-    if not path.is_file():
-        return None, 'no certificate yet'
-    try:
-        certificate = Certificate.load(path, model)
-    except CertificateError as err:
-        return None, f'the existing certificate is not reusable: {err}'
-    if not certificate.certified:
-        return None, 'the existing certificate is not certified'
-    if abs(certificate.control_rate_hz - control_rate_hz) > 1e-9:
-        return None, (f'the existing certificate is for {certificate.control_rate_hz:g} Hz, '
-                      f'the demo runs at {control_rate_hz:g} Hz')
-    return certificate, 'reused (model hash matches)'
-
-
 class _BackgroundCertification:
     """``safety-filter certify`` in a subprocess, so that it runs beside the unfiltered run
     (which needs no certificate) on the other core."""
@@ -177,8 +153,8 @@ class _BackgroundCertification:
         tail = '\n'.join(self.log.read_text(encoding='utf-8', errors='replace')
                          .strip().splitlines()[-12:])
         if code != 0:
-            raise SafetyFilterError(f'certification failed (exit code {code}; log '
-                                    f'{self.log}):\n{tail}')
+            raise RunFailed(f'certification failed (exit code {code}; log '
+                            f'{self.log}):\n{tail}')
         return Certificate.load(self.path, model), seconds
 
     def stop(self) -> None:
@@ -193,19 +169,21 @@ def _fresh_bag_path(path: Path) -> Path:
         if path.is_dir() and ((path / 'metadata.yaml').is_file() or not any(path.iterdir())):
             shutil.rmtree(path)
         else:
-            raise SafetyFilterError(f'{path} exists and is not a bag of a previous demo; '
-                                    'move it away or choose another --output-dir')
+            raise InvalidValue('--output-dir', str(path.parent),
+                               detail=f'{path} exists and is not a bag of a previous demo; '
+                               'move it away or choose another --output-dir')
     return path
 
 
 def run_demo(options: DemoOptions) -> DemoResult:
     """Certify (or reuse), run both graphs, write the report (see the module docstring)."""
-    from safety_filter.ros.runner import SIM_DEMO_CONFIG, config_file, run_graph, sim_demo_graph
+    from safety_filter.ros.graph_specs import SIM_DEMO_CONFIG, config_file, sim_demo_graph
+    from safety_filter.ros.runner import run_graph
 
     if options.arm not in DEMO_ARMS:
-        raise SafetyFilterError(f'unknown demo arm {options.arm!r}; choose one of {DEMO_ARMS}')
+        raise InvalidValue('demo arm', options.arm, f'one of {", ".join(DEMO_ARMS)}')
     if not options.duration_s > 0.0:
-        raise SafetyFilterError('the duration must be positive')
+        raise InvalidValue('duration', options.duration_s, 'a positive number')
     output = Path(options.output)
     output.mkdir(parents=True, exist_ok=True)
     model = load_demo_arm(options.arm)
@@ -226,8 +204,8 @@ def run_demo(options: DemoOptions) -> DemoResult:
     background = None
     if certificate is None:
         if options.falsifier_states < 1:
-            raise SafetyFilterError('falsifier_states must be >= 1: the certificate needs '
-                                    'the falsifier')
+            raise InvalidValue('falsifier_states', options.falsifier_states, '>= 1',
+                               detail='the certificate needs the falsifier')
         log = output / 'certify.log'
         _say(options, f'certifying {options.arm} at {control_rate:g} Hz in the background '
                       f'({note}; log {log}) ...')
@@ -268,8 +246,8 @@ def run_demo(options: DemoOptions) -> DemoResult:
             if result.interrupted:  # SIGINT/SIGTERM: stop like any interrupted command
                 raise KeyboardInterrupt
             if not result.finished:
-                raise SafetyFilterError(f'the {label} run did not finish within '
-                                        f'{options.wall_timeout_s:g} s of wall time')
+                raise RunFailed(f'the {label} run did not finish within '
+                                f'{options.wall_timeout_s:g} s of wall time')
             results[label] = result
             command_topic = bags.TOPIC_COMMAND if filtered else bags.TOPIC_NOMINAL
             runs[label] = load_run(bag, model, label, command_topic)
@@ -279,7 +257,7 @@ def run_demo(options: DemoOptions) -> DemoResult:
         if background is not None:
             background.stop()
     if certificate is None:  # cannot happen: set by the reuse check or the certification
-        raise SafetyFilterError('no certificate')
+        raise RunFailed('no certificate')
 
     pairs = [(runs[label], violations[label]) for label in RUNS]
     summary = format_summary(model, pairs)

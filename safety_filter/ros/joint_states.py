@@ -1,5 +1,5 @@
-"""Listen to ``sensor_msgs/JointState`` for a while and keep every message (for
-``safety-filter check-gravity``, :mod:`safety_filter.replay.gravity_convention`).
+"""Listen to ``sensor_msgs/JointState`` for a while and keep every message (the live source
+of ``safety-filter check-gravity``; the check is :mod:`safety_filter.replay.gravity_check`).
 
 A plain node, ``safety_filter_check_gravity_<pid>``, in an rclpy context of its own,
 subscribes best-effort (which matches reliable and best-effort publishers alike), keep-last
@@ -12,6 +12,7 @@ from __future__ import annotations
 import os
 import signal
 import time
+from collections.abc import Sequence
 from typing import Any
 
 import rclpy
@@ -20,6 +21,8 @@ from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 from rclpy.signals import SignalHandlerOptions
 from sensor_msgs.msg import JointState
+
+from safety_filter.replay.gravity_check import JointStateSamples, pair_samples, require_chain
 
 
 def listen_qos() -> QoSProfile:
@@ -65,3 +68,16 @@ def collect_joint_states(topic: str, duration_s: float, domain_id: int | None = 
             node.destroy_node()
         context.try_shutdown()
     return received
+
+
+def listen_chain_samples(topic: str, duration_s: float, joint_names: Sequence[str],
+                         domain_id: int | None = None) -> tuple[JointStateSamples, str]:
+    """The joint states heard on ``topic`` during ``duration_s`` [s], mapped onto the chain
+    ``joint_names``, and where they came from (``'<topic> (live, <duration> s)'``).
+
+    Raises:
+        BagError: no joint state heard, or none carrying every chain joint.
+    """
+    messages = collect_joint_states(topic, duration_s, domain_id=domain_id)
+    where = f'{topic} (live, {duration_s:g} s)'
+    return require_chain(pair_samples(messages, joint_names), where), where

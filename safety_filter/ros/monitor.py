@@ -50,29 +50,24 @@ from rclpy.node import Node
 from rclpy.parameter import parameter_value_to_python
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 from rclpy.signals import SignalHandlerOptions
-from rclpy.utilities import remove_ros_args
 from std_msgs.msg import Float64MultiArray, String
 
-from safety_filter.cli.monitor import add_monitor_arguments, check_monitor_arguments
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import ExitCode, SafetyFilterError
 from safety_filter.monitor.screen import MonitorFrame, Screen, plain_output
-from safety_filter.monitor.state import (
+from safety_filter.monitor.snapshots import (
     DiagnosticSnapshot,
     JointLimits,
-    MonitorEvent,
-    MonitorState,
     StatusLayout,
     StatusSnapshot,
     diagnostic_name,
     split_node_name,
     status_topic,
 )
+from safety_filter.monitor.state import MonitorState
 from safety_filter.online.status_layout import decode_fields, fields_topic, legacy_diagnostic_name
-from safety_filter.recordings.event_log import EventLogWriter
+from safety_filter.recordings.event_log import EventLogWriter, MonitorEvent
 from safety_filter.ros._common import make_executor
 
-EXIT_OK = 0
-EXIT_BAD_INPUT = 2
 LIMIT_PARAMETERS = ('joint_names', 'position_lower', 'position_upper', 'velocity_limit',
                     'effort_limit', 'certificate_id')
 PARAMETER_RETRY_S = 3.0
@@ -239,15 +234,16 @@ class _StopRequest:
 
 
 def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
-    """Run the monitor with parsed options (see :func:`add_monitor_arguments`).
+    """Run the monitor with parsed options (those of
+    :func:`safety_filter.cli.monitor.add_monitor_arguments`, checked by
+    :func:`safety_filter.cli.monitor.check_monitor_arguments`).
 
     Returns:
         0 on a clean stop (Ctrl-C, SIGTERM or ``--duration``).
 
     Raises:
-        SafetyFilterError: bad options, an unreadable certificate or event log.
+        InputError: an unreadable certificate or event log.
     """
-    check_monitor_arguments(args)
     stream = stream if stream is not None else sys.stdout
     limits = JointLimits.from_certificate_file(args.certificate) if args.certificate else None
     state = MonitorState(args.node_name, thin_margin=args.thin_margin, limits=limits,
@@ -290,29 +286,5 @@ def run(args: argparse.Namespace, stream: IO[str] | None = None) -> int:
         if node is not None:
             node.destroy_node()
         context.try_shutdown()
-    return EXIT_OK
+    return ExitCode.OK
 
-
-def main(args: Sequence[str] | None = None) -> int:
-    """Entry point of ``filter_monitor`` (the same options as ``safety-filter monitor``;
-    ROS arguments after ``--ros-args``)."""
-    argv = list(sys.argv if args is None else args)
-    own = remove_ros_args(argv)[1:]
-    ros_part: list[str] = []
-    if '--ros-args' in argv:
-        ros_part = argv[argv.index('--ros-args') + 1:]
-    parser = argparse.ArgumentParser(
-        prog='filter_monitor', description='Watch a running safety_filter node live in the '
-        'terminal and log its events (see safety-filter monitor --help).')
-    add_monitor_arguments(parser)
-    options = parser.parse_args(own)
-    options.ros_args = ros_part
-    try:
-        return run(options)
-    except SafetyFilterError as err:
-        print(f'error: {err}', file=sys.stderr)
-        return EXIT_BAD_INPUT
-
-
-if __name__ == '__main__':
-    sys.exit(main())

@@ -1,4 +1,4 @@
-"""``safety-filter check-gravity``: do the driver's joint efforts carry gravity?
+"""The gravity-convention check: do the driver's joint efforts carry gravity?
 
 A torque driver either takes the full joint torque (``gravity_convention: full``) or adds
 gravity compensation itself and takes only the rest (``driver_compensated``). Setting the
@@ -20,7 +20,9 @@ gravity but reports total motor torque reads as full; one that reports no torque
 (zeros) reads as "the efforts do not carry gravity". Check the driver's documentation when
 its verdict surprises you.
 
-The steps, all without ROS (the live subscriber is :mod:`safety_filter.ros.joint_states`):
+This module holds the check itself and the reading of bags, all without ROS; the live
+subscriber is :mod:`safety_filter.ros.joint_states`, the command ``safety-filter
+check-gravity`` is :mod:`safety_filter.cli.check_gravity`. The steps:
 
 1. **pairing** (:func:`pair_samples`): each ``JointState`` is mapped by joint name onto the
    model's chain (other joints ignored; a message lacking a chain joint is skipped and
@@ -61,18 +63,18 @@ The steps, all without ROS (the live subscriber is :mod:`safety_filter.ros.joint
 
 from __future__ import annotations
 
-import argparse
 import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from safety_filter.cli.robot_options import deprecated
-from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import BagError, ExitCode, InvalidValue, ShapeMismatch
+
+if TYPE_CHECKING:
+    from safety_filter.core.robot_model import RobotModel
 
 DEFAULT_REST_VELOCITY = 0.02  # [rad/s or m/s]
 MIN_REST_S = 0.2  # [s] shortest run of still samples that counts as rest
@@ -87,9 +89,6 @@ NO_GRAVITY = 'the efforts do not carry gravity'
 TOO_LITTLE = 'too little gravity to tell'
 INCONCLUSIVE = 'inconclusive'
 
-EXIT_CONSISTENT = 0
-EXIT_BAD_INPUT = 2
-EXIT_INCONCLUSIVE = 4
 
 
 # ---------------------------------------------------------------------- pairing
@@ -235,8 +234,9 @@ class GravityCheck:
     source: str = ''
 
     @property
-    def exit_code(self) -> int:
-        return EXIT_CONSISTENT if self.convention is not None else EXIT_INCONCLUSIVE
+    def exit_code(self) -> ExitCode:
+        """The command's exit code: OK for one convention, INCONCLUSIVE (6) otherwise."""
+        return ExitCode.OK if self.convention is not None else ExitCode.INCONCLUSIVE
 
     def format(self) -> str:
         """The terminal report: a table per joint and the verdict."""
@@ -287,23 +287,26 @@ def check_gravity(model: RobotModel, samples: JointStateSamples, *,
     """Compare the rest samples' efforts with the model's ``g(q)`` (see the module text).
 
     Raises:
-        SafetyFilterError: option values out of range.
+        ShapeMismatch: samples not in the model's joint order.
+        InvalidValue: option values out of range.
     """
     from safety_filter.core.dynamics import gravity_torque_batch
 
     if list(samples.joint_names) != list(model.joint_names):
-        raise SafetyFilterError('the samples are not in the model joint order')
+        raise ShapeMismatch('joint order of the samples', len(model.joint_names),
+                            len(samples.joint_names),
+                            detail='the samples are not in the model joint order')
     if not (math.isfinite(rest_velocity) and rest_velocity > 0):
-        raise SafetyFilterError(f'--rest-velocity must be positive, got {rest_velocity}')
+        raise InvalidValue('--rest-velocity', rest_velocity, 'a positive number')
     tolerance = default_tolerance(model) if tolerance is None else float(tolerance)
     if not (math.isfinite(tolerance) and 0 < tolerance < 1):
-        raise SafetyFilterError(f'--tolerance must be in (0, 1), got {tolerance}')
+        raise InvalidValue('--tolerance', tolerance, 'in (0, 1)')
     if min_samples < 1:
-        raise SafetyFilterError(f'--min-samples must be >= 1, got {min_samples}')
+        raise InvalidValue('--min-samples', min_samples, '>= 1')
     if payload_mass is None:
         payload_mass = 0.5 * (model.payload.mass_min + model.payload.mass_max)
     if not (math.isfinite(payload_mass) and payload_mass >= 0):
-        raise SafetyFilterError(f'--payload-mass must be finite and >= 0, got {payload_mass}')
+        raise InvalidValue('--payload-mass', payload_mass, 'finite and >= 0')
     mask = rest_mask(samples, rest_velocity)
     result = GravityCheck([], None, [], samples.count, int(mask.sum()), samples.skipped,
                           float(payload_mass), rest_velocity, tolerance, source)
@@ -387,7 +390,7 @@ def bag_folder(path: str | Path) -> Path:
     """The rosbag2 folder of ``path`` (the folder itself, or the folder of its storage file).
 
     Raises:
-        SafetyFilterError: not a rosbag2 bag.
+        BagError: not a rosbag2 bag.
     """
     path = Path(path)
     if path.is_dir() and (path / 'metadata.yaml').is_file():
@@ -395,8 +398,8 @@ def bag_folder(path: str | Path) -> Path:
     if path.is_file() and (path.parent / 'metadata.yaml').is_file():
         return path.parent
     if not path.exists():
-        raise SafetyFilterError(f'bag not found: {path}')
-    raise SafetyFilterError(f'{path} is not a rosbag2 bag (a folder with metadata.yaml)')
+        raise BagError(f'bag not found: {path}', path)
+    raise BagError(f'{path} is not a rosbag2 bag (a folder with metadata.yaml)', path)
 
 
 def bag_topic(topic: str) -> str:
@@ -409,7 +412,7 @@ def read_bag_samples(path: str | Path, topic: str, joint_names: Sequence[str]
     """The joint states of a bag's ``topic`` paired with ``joint_names``.
 
     Raises:
-        SafetyFilterError: no such bag or topic, or no message with the chain's joints.
+        BagError: no such bag or topic, or no message with the chain's joints.
     """
     from safety_filter.recordings import bags
 
@@ -418,124 +421,22 @@ def read_bag_samples(path: str | Path, topic: str, joint_names: Sequence[str]
     summary = bags.topic_summary(folder)
     if name not in summary:
         found = ', '.join(f'{t} ({i.msgtype})' for t, i in sorted(summary.items())) or 'none'
-        raise SafetyFilterError(f'{folder} has no topic {name} (--joint-states-topic); '
-                                f'topics: {found}')
+        raise BagError(f'{folder} has no topic {name} (--joint-states-topic); topics: {found}',
+                       folder)
     if summary[name].msgtype != bags.JOINT_STATE:
-        raise SafetyFilterError(f'{name} in {folder} is {summary[name].msgtype}, not '
-                                f'{bags.JOINT_STATE}')
+        raise BagError(f'{name} in {folder} is {summary[name].msgtype}, not '
+                       f'{bags.JOINT_STATE}', folder)
     return require_chain(pair_samples(bags.read_messages(folder, name), joint_names),
                          f'{name} in {folder}')
 
 
 def require_chain(samples: JointStateSamples, where: str) -> JointStateSamples:
-    """``samples``, or SafetyFilterError when no message carried the chain's joints."""
+    """``samples``, or BagError when no message carried the chain's joints (``where``: the
+    topic and the bag or the live source)."""
     if samples.messages == 0:
-        raise SafetyFilterError(f'no joint state on {where}')
+        raise BagError(f'no joint state on {where}')
     if samples.count == 0:
-        raise SafetyFilterError(
+        raise BagError(
             f'no joint state on {where} carries every chain joint {samples.joint_names}; '
             f'they name {samples.names_seen}')
     return samples
-
-
-# ---------------------------------------------------------------------- command line
-_DESCRIPTION = (
-    "Check which gravity convention the arm's driver uses, before the first filtered "
-    "motion. Record the arm at rest, held by its driver's own controller or gravity "
-    'compensation with the brakes released, from a few seconds to a minute, at one or more '
-    'poses where the shoulder and elbow carry weight. The command reads sensor_msgs/'
-    'JointState (from a bag, or live from --joint-states-topic for --duration seconds), '
-    'keeps the '
-    "samples at rest, maps joints by name to the model's chain and compares per joint the "
-    "mean measured effort with the model's g(q) at the same positions: efforts equal to g "
-    '(the driver reports total motor torque): gravity_convention full; efforts near zero '
-    'while g is not (the driver compensates gravity itself and reports the rest): '
-    'driver_compensated; otherwise inconclusive, with the reason. The check assumes the '
-    'driver reports efforts in the convention of its commands. Exit code 0: consistent with '
-    'one convention (printed); 4: inconclusive; 2: bad input.')
-
-
-def add_check_gravity_parser(commands: argparse._SubParsersAction) -> None:
-    """Add ``safety-filter check-gravity``."""
-    from safety_filter.simulation.demo_arms import DEMO_ARMS
-
-    parser = commands.add_parser(
-        'check-gravity', help="check the driver's gravity convention from joint efforts at "
-        'rest (a bag or a live topic)', description=_DESCRIPTION)
-    parser.add_argument('bag', nargs='?', default=None, metavar='BAG',
-                        help='a rosbag2 bag (folder, or its .mcap/.db3 file) of the arm at '
-                        'rest; without it, listen live on --joint-states-topic for --duration '
-                        'seconds')
-    robot = parser.add_argument_group('robot (required: --urdf and --limits, or --demo)')
-    robot.add_argument('--urdf', help='path of the robot URDF')
-    robot.add_argument('--limits', help='limits file (YAML): chain, payload range, '
-                       'uncertainty')
-    robot.add_argument('--demo', choices=DEMO_ARMS, default=None,
-                       help='a built-in demo arm instead of --urdf')
-    robot.add_argument('--base-link', help='first link of the chain (default: the limits '
-                       "file's or the URDF root)")
-    robot.add_argument('--tip-link', help='last link of the chain')
-    robot.add_argument('--joints', help='comma-separated chain joints, base to tip')
-    robot.add_argument('--payload-mass', type=float, default=None, metavar='KG',
-                       help='payload mounted during the recording [kg] (default: the middle '
-                       "of the limits file's payload range; give the real one, 0 without "
-                       'payload)')
-    source = parser.add_argument_group('joint states')
-    source.add_argument('--joint-states-topic', '--topic', dest='joint_states_topic',
-                        default=DEFAULT_TOPIC, metavar='TOPIC', help=deprecated(
-                            'sensor_msgs/JointState topic, live or in the bag (default: '
-                            f'{DEFAULT_TOPIC}; /{DEFAULT_TOPIC} in a bag)', '--topic'))
-    source.add_argument('--duration', type=float, default=DEFAULT_DURATION_S, metavar='S',
-                        help='live: seconds to listen (default: '
-                        f'{DEFAULT_DURATION_S:g}); Ctrl-C stops early and checks what came')
-    source.add_argument('--domain-id', type=int, default=None, metavar='N',
-                        help='live: ROS domain id (default: ROS_DOMAIN_ID or 0)')
-    check = parser.add_argument_group('check')
-    check.add_argument('--rest-velocity', type=float, default=DEFAULT_REST_VELOCITY,
-                       metavar='V', help='a sample is at rest when every joint has |v| below '
-                       f'this [rad/s or m/s] for at least {MIN_REST_S:g} s (default: '
-                       f'{DEFAULT_REST_VELOCITY:g}, twice the default declared velocity '
-                       'noise)')
-    check.add_argument('--tolerance', type=float, default=None, metavar='F',
-                       help='a joint matches when its mean deviation is within F x its max '
-                       '|g(q)| plus its declared Coulomb friction and driver torque offset '
-                       '(default: max(0.15, link_mass_error + torque_error_relative) of the '
-                       "limits file's uncertainty section)")
-    check.add_argument('--min-samples', type=int, default=DEFAULT_MIN_SAMPLES, metavar='N',
-                       help='fewest rest samples for a verdict (default: '
-                       f'{DEFAULT_MIN_SAMPLES})')
-    parser.set_defaults(handler=command_check_gravity)
-
-
-def command_check_gravity(args: argparse.Namespace) -> int:
-    """Run ``safety-filter check-gravity``; exit code 0, 4, or SafetyFilterError (2)."""
-    from safety_filter.cli.main import load_robot
-
-    if args.urdf is None and args.demo is None:
-        raise SafetyFilterError('the robot is required: give --urdf ARM.urdf --limits '
-                                'ARM_LIMITS.yaml (or --demo <arm>)')
-    if not (math.isfinite(args.duration) and args.duration > 0):
-        raise SafetyFilterError(f'--duration must be positive, got {args.duration}')
-    if args.bag is not None:
-        bag_folder(args.bag)  # bad paths before the model loads
-    model = load_robot(args)
-    if args.bag is not None:
-        samples = read_bag_samples(args.bag, args.joint_states_topic, model.joint_names)
-        where = f'{bag_topic(args.joint_states_topic)} in {bag_folder(args.bag)}'
-    else:
-        try:
-            from safety_filter.ros.joint_states import collect_joint_states
-        except ImportError as err:
-            raise SafetyFilterError(
-                f'listening live needs rclpy and sensor_msgs ({err}); install them with '
-                "pip install -e '.[ros]', source a ROS 2 Jazzy install, or give a bag") from err
-        topic = args.joint_states_topic
-        print(f'listening on {topic} for {args.duration:g} s ...', flush=True)
-        messages = collect_joint_states(topic, args.duration, domain_id=args.domain_id)
-        where = f'{topic} (live, {args.duration:g} s)'
-        samples = require_chain(pair_samples(messages, model.joint_names), where)
-    result = check_gravity(model, samples, payload_mass=args.payload_mass,
-                           rest_velocity=args.rest_velocity, tolerance=args.tolerance,
-                           min_samples=args.min_samples, source=where)
-    print(result.format())
-    return result.exit_code
