@@ -44,7 +44,7 @@ import numpy as np
 import osqp
 import scipy.sparse as sparse
 
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 from safety_filter.online import kernels as _kernels
 
 STATUS_SOLVED = 1  # OSQP_SOLVED in OSQP 0.6 and 1.x
@@ -235,7 +235,7 @@ class AccelerationQP:
             pattern is dense anyway); default identity.
 
     Raises:
-        SafetyFilterError: on invalid sizes, weights or settings.
+        InvalidValue: on invalid sizes, weights or settings.
     """
 
     def __init__(
@@ -253,27 +253,28 @@ class AccelerationQP:
         umax = np.array(torque_limit, dtype=float).reshape(-1)
         n = len(umax)
         if n < 1:
-            raise SafetyFilterError('the QP needs at least one joint')
+            raise InvalidValue('torque_limit', umax.tolist(), 'one value per joint, at least one')
         if not np.all(np.isfinite(umax)) or np.any(umax <= 0):
-            raise SafetyFilterError(f'torque_limit must be positive and finite, got {umax}')
+            raise InvalidValue('torque_limit', umax.tolist(), 'positive and finite')
         weights = np.ones(n) if torque_weights is None else np.array(
             torque_weights, dtype=float).reshape(-1)
         if weights.shape != (n,) or not np.all(np.isfinite(weights)) or np.any(weights <= 0):
-            raise SafetyFilterError(
-                f'torque_weights must be {n} positive finite numbers, got {torque_weights!r}')
+            raise InvalidValue('torque_weights', torque_weights,
+                               f'{n} positive finite numbers')
         accel_weights = None
         if acceleration_weights is not None:
             accel_weights = np.array(acceleration_weights, dtype=float).reshape(-1)
             if accel_weights.shape != (n,) or not np.all(np.isfinite(accel_weights)) \
                     or np.any(accel_weights <= 0):
-                raise SafetyFilterError(f'acceleration_weights must be {n} positive finite '
-                                        f'numbers, got {acceleration_weights!r}')
+                raise InvalidValue('acceleration_weights', acceleration_weights,
+                                   f'{n} positive finite numbers')
             if torque_weights is not None:
-                raise SafetyFilterError('give torque_weights or acceleration_weights, not both')
+                raise InvalidValue('weights', 'torque_weights and acceleration_weights',
+                                   'one of them, not both')
         if time_limit_s is not None and not (math.isfinite(time_limit_s) and time_limit_s > 0):
-            raise SafetyFilterError(f'time_limit_s must be positive, got {time_limit_s}')
+            raise InvalidValue('time_limit_s', time_limit_s, 'positive and finite')
         if not (eps > 0 and max_iter >= 1):
-            raise SafetyFilterError(f'need eps > 0 and max_iter >= 1, got {eps}, {max_iter}')
+            raise InvalidValue('eps, max_iter', (eps, max_iter), 'eps > 0 and max_iter >= 1')
         silence_solver_output()
         self.n = n
         for values in (umax, weights):
@@ -314,7 +315,7 @@ class AccelerationQP:
 
         mass = np.eye(n) if mass_hint is None else np.array(mass_hint, dtype=float)
         if mass.shape != (n, n) or not np.all(np.isfinite(mass)):
-            raise SafetyFilterError(f'mass_hint must be a finite {n} x {n} matrix')
+            raise InvalidValue('mass_hint', f'shape {mass.shape}', f'a finite {n} x {n} matrix')
         zeros = np.zeros(n)
         self._fill(mass, zeros, zeros, -np.ones(n), np.ones(n))
         p_matrix = sparse.csc_matrix((self._px.copy(), self._p_rows, p_indptr), shape=(n, n))
