@@ -68,11 +68,13 @@ def _replay_records(result: ReplayResult, filtered_connection: Any, status_conne
             yield stamp, 1, fields_connection, store.serialize_cdr(text, STRING)
         filtered = float64_array_message(result.torque[k], torque_label)
         yield stamp, 1, filtered_connection, store.serialize_cdr(filtered, FLOAT64_ARRAY)
-        row[:8] = (stamp * 1e-9, step, MODE_CODES.get(str(result.mode[k]), np.nan),
-                   float(hold[k]), result.intervention[k], result.solve_time_s[k],
-                   result.state_age[k], nominal_age[k])
-        row[8:] = np.concatenate([result.margin[k], result.torque[k], result.nominal[k],
-                                  result.q[k], result.v[k]])
+        _status_layout.pack_status(
+            row, stamp_s=stamp * 1e-9, step=step,
+            mode=MODE_CODES.get(str(result.mode[k]), np.nan), hold_nominal=bool(hold[k]),
+            intervention=result.intervention[k], solve_time_s=result.solve_time_s[k],
+            joint_state_age_s=result.state_age[k], nominal_age_s=nominal_age[k],
+            margin=result.margin[k], torque=result.torque[k], nominal=result.nominal[k],
+            position=result.q[k], velocity=result.v[k])
         status = float64_array_message(row)
         yield stamp, 2, status_connection, store.serialize_cdr(status, FLOAT64_ARRAY)
         step += 1
