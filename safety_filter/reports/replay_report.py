@@ -52,6 +52,7 @@ from typing import Any
 
 from safety_filter.core.limit_tolerance import limit_broken
 from safety_filter.core.robot_model import RobotModel
+from safety_filter.online.mode_codes import NON_FILTERED_MODE_NAMES
 from safety_filter.recordings.event_log import EventLog
 from safety_filter.replay.trial import Trial
 from safety_filter.reports.html_kit import (
@@ -165,7 +166,7 @@ def format_trial_summary(data: dict[str, Any]) -> str:
             st = summary['solve_time_us']
             lines.append(f'    solve time [us]: median {_num(st["median"], 3)}, p99 '
                          f'{_num(st["p99"], 3)}, max {_num(st["max"], 3)}')
-        for mode in ('fallback', 'recovering', 'rejected', 'stale'):
+        for mode in NON_FILTERED_MODE_NAMES:
             episodes = summary['episodes'][mode]
             if episodes or mode in ('fallback', 'recovering'):
                 lines.append(f'    {mode} episodes: {_episode_text(episodes, start)}')
