@@ -32,7 +32,8 @@ if TYPE_CHECKING:
     from safety_filter.core.certificate import Certificate
     from safety_filter.core.robot_model import PayloadRange, RobotModel
     from safety_filter.errors import CertificateError, CertificateMismatch, SafetyFilterError
-    from safety_filter.online.barrier_filter import FilterMode, FilterOutput, SafetyFilter
+    from safety_filter.online.barrier_filter import FilterOutput, SafetyFilter
+    from safety_filter.online.mode_codes import FilterMode
 
 # Public name -> the module that defines it (imported on first access).
 _LAZY_NAMES: dict[str, str] = {
@@ -40,7 +41,7 @@ _LAZY_NAMES: dict[str, str] = {
     'CertificateError': 'safety_filter.errors',
     'CertificateMismatch': 'safety_filter.errors',
     'CertifySettings': 'safety_filter.certification.certify',
-    'FilterMode': 'safety_filter.online.barrier_filter',
+    'FilterMode': 'safety_filter.online.mode_codes',
     'FilterOutput': 'safety_filter.online.barrier_filter',
     'PayloadRange': 'safety_filter.core.robot_model',
     'RobotModel': 'safety_filter.core.robot_model',
