@@ -1,10 +1,17 @@
-"""Certified demo arms for the certification, simulation and closed-loop tests.
+"""Certified demo arms for the certification, simulation, closed-loop, replay and node tests.
 
-Certification takes tens of seconds per arm, so each demo arm is certified ONCE per test
-session with the default :class:`CertifySettings`: :func:`certified_demo_arm` is cached, and
-the session-scoped fixtures below call it (the cache, not the fixture scope, is what makes it
-once per session: pytest keeps a separate fixture instance for every module that imports a
-fixture, but they all share this cache).
+Certification takes seconds per arm, so each demo arm is certified ONCE per test session with
+the default :class:`CertifySettings` (at the default 1 kHz control rate, or at another rate
+where a test needs one): :func:`certified_demo_arm` is cached, and every test that only needs
+a demo arm's certificate takes it from there (:func:`demo_certificate`; the file in a
+session folder from the ``demo_certificate_files`` fixture of ``conftest.py``), so the suite
+certifies planar2 and bench6 once each and not once per test module. A certification that
+does not certify fails the tests that need its certificate (it is a regression, not a reason
+to skip them).
+
+The session-scoped fixtures below call the cache (the cache, not the fixture scope, is what
+makes it once per session: pytest keeps a separate fixture instance for every module that
+imports a fixture, but they all share this cache).
 
 Also here: the two-link planar arm in closed form (Spong, Hutchinson and Vidyasagar,
 *Robot Modeling and Control*, the planar elbow manipulator), with the numbers of
@@ -16,22 +23,63 @@ from __future__ import annotations
 
 import functools
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pytest
 
-from safety_filter.certification.certify import CertificationOutcome, certify_with_evidence
+from safety_filter.certification.certify import (
+    CertificationOutcome,
+    CertifySettings,
+    certify_with_evidence,
+)
+from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.simulation.demo_arms import load_demo_arm
 
 CERTIFIED_ARMS = ('planar2', 'bench6')
+DEFAULT_RATE_HZ = CertifySettings().control_rate_hz
 
 
 @functools.lru_cache(maxsize=None)
-def certified_demo_arm(name: str) -> tuple[RobotModel, CertificationOutcome]:
-    """A demo arm and the outcome of certifying it with the default settings (cached)."""
+def certified_demo_arm(name: str, control_rate_hz: float = DEFAULT_RATE_HZ
+                       ) -> tuple[RobotModel, CertificationOutcome]:
+    """A demo arm and the outcome of certifying it with the default settings at
+    ``control_rate_hz`` (cached: once per arm and rate per session)."""
     model = load_demo_arm(name)
-    return model, certify_with_evidence(model)
+    settings = CertifySettings(control_rate_hz=control_rate_hz)
+    return model, certify_with_evidence(model, settings)
+
+
+def demo_certificate(name: str, control_rate_hz: float = DEFAULT_RATE_HZ
+                     ) -> tuple[RobotModel, Certificate]:
+    """A demo arm and its session certificate (default settings); fails the calling test,
+    with the certification's reasons, when the arm did not certify."""
+    model, outcome = certified_demo_arm(name, control_rate_hz)
+    if not outcome.certified:
+        pytest.fail(f'{name} did not certify with the default settings at '
+                    f'{control_rate_hz:g} Hz: {outcome.certificate.reasons}')
+    return model, outcome.certificate
+
+
+class DemoCertificateFiles:
+    """The session's demo-arm certificates as files, each written once to ``folder`` the
+    way ``safety-filter certify`` writes it (:meth:`Certificate.save`)."""
+
+    def __init__(self, folder: Path) -> None:
+        self.folder = folder
+        self._paths: dict[tuple[str, float], Path] = {}
+
+    def path(self, name: str, control_rate_hz: float = DEFAULT_RATE_HZ) -> Path:
+        """The certificate file of demo arm ``name`` (fails the test if it did not
+        certify). Treat it as read-only: other tests read the same file."""
+        key = (name, control_rate_hz)
+        if key not in self._paths:
+            _, certificate = demo_certificate(name, control_rate_hz)
+            stem = name if control_rate_hz == DEFAULT_RATE_HZ else \
+                f'{name}_{control_rate_hz:g}hz'
+            self._paths[key] = certificate.save(self.folder / f'{stem}_certificate.yaml')
+        return self._paths[key]
 
 
 @pytest.fixture(scope='session')

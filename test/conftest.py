@@ -7,6 +7,8 @@
   of our code: Pinocchio (package ``pin``) is the outside reference of METHOD section 6.
 * :func:`demo_arm` and friends read the demo arms' files and parse their URDFs with
   ``xml.etree`` (again without our loader), for closed-form checks.
+* ``demo_certificate_files``: the session's certificate file of each demo arm (default
+  certification settings, certified once per session: ``certify_fixtures.py``).
 """
 
 from __future__ import annotations
@@ -15,11 +17,14 @@ import math
 import xml.etree.ElementTree as ET
 from collections.abc import Mapping, Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pytest
 import yaml
+
+if TYPE_CHECKING:  # imported by the fixture itself: it loads the certification
+    from certify_fixtures import DemoCertificateFiles
 
 ROBOTS = Path(__file__).resolve().parent.parent / 'safety_filter' / 'robots'
 TEST_URDF = Path(__file__).resolve().parent / 'urdf'
@@ -307,6 +312,15 @@ def random_states(rng: np.random.Generator, lower: np.ndarray, upper: np.ndarray
     q = rng.uniform(lower, upper, size=(count, len(lower)))
     v = rng.uniform(-speed, speed, size=(count, len(lower)))
     return q, v
+
+
+@pytest.fixture(scope='session')
+def demo_certificate_files(tmp_path_factory: pytest.TempPathFactory) -> DemoCertificateFiles:
+    """The demo arms' certificates as files in a session folder, ``.path('planar2')``
+    (``certify_fixtures.DemoCertificateFiles``; each arm certified once per session)."""
+    from certify_fixtures import DemoCertificateFiles
+
+    return DemoCertificateFiles(tmp_path_factory.mktemp('demo_certificates'))
 
 
 @pytest.fixture(scope='session')

@@ -11,7 +11,6 @@ writer) so that the tests read bags made independently of the code under test.
 
 from __future__ import annotations
 
-import functools
 import hashlib
 import shutil
 import tempfile
@@ -47,19 +46,13 @@ class RecordedRun:
     modes: list[str]
 
 
-@functools.lru_cache(maxsize=None)
-def planar2_quick_certificate() -> tuple[RobotModel, Certificate]:
-    """planar2 and a certificate from the real certification with reduced settings (fewer
-    bound samples and falsifier states), once per test session."""
-    from safety_filter.certification.certify import CertifySettings, certify
-    from safety_filter.certification.dynamics_bounds import BoundSettings
-    from safety_filter.simulation.demo_arms import load_demo_arm
+def planar2_certificate() -> tuple[RobotModel, Certificate]:
+    """planar2 and its session certificate (the real certification with the default
+    settings, once per test session and shared with the other tests: ``certify_fixtures``).
+    """
+    from certify_fixtures import demo_certificate
 
-    model = load_demo_arm('planar2')
-    certificate = certify(model, CertifySettings(bounds=BoundSettings(samples=512),
-                                                 falsifier_states=2000))
-    assert certificate.certified, certificate.reasons
-    return model, certificate
+    return demo_certificate('planar2')
 
 
 def record_filtered_run(model: RobotModel, certificate: Certificate,

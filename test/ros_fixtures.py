@@ -1,7 +1,8 @@
 """Shared pieces of the ROS node tests: certificates, a DDS domain, a test harness node.
 
-* :func:`certified_arm` certifies a demo arm once per test session (reduced settings, for
-  speed) and saves the certificate parameter file to a temporary directory.
+* :func:`certified_arm` takes a demo arm's session certificate (``certify_fixtures.py``:
+  default settings, certified once per session) and saves its parameter files to a
+  temporary directory.
 * :func:`isolate_ros_domain` gives a test module its own DDS domain (random id in 100..200,
   discovery limited to localhost), so parallel runs and other ROS traffic do not mix.
 * :class:`NodeRunner` runs a :class:`SafetyFilterNode` in this process, in its own rclpy
@@ -17,7 +18,6 @@
 from __future__ import annotations
 
 import atexit
-import dataclasses
 import functools
 import itertools
 import math
@@ -34,6 +34,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+from certify_fixtures import demo_certificate
 
 rclpy = pytest.importorskip(
     'rclpy', reason='rclpy is missing: install the ROS 2 wheels with '
@@ -48,8 +49,6 @@ from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy  # noqa: E
 from sensor_msgs.msg import JointState  # noqa: E402
 from std_msgs.msg import Float64MultiArray, String  # noqa: E402
 
-from safety_filter.certification.certify import CertifySettings, certify  # noqa: E402
-from safety_filter.certification.dynamics_bounds import BoundSettings  # noqa: E402
 from safety_filter.core.certificate import Certificate  # noqa: E402
 from safety_filter.core.robot_model import RobotModel  # noqa: E402
 from safety_filter.online.barrier_filter import SafetyFilter  # noqa: E402
@@ -61,10 +60,8 @@ from safety_filter.ros.filter_node import (  # noqa: E402
     make_executor,
     status_field_names,
 )
-from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm  # noqa: E402
+from safety_filter.simulation.demo_arms import demo_arm_files  # noqa: E402
 
-# Reduced certification settings: seconds instead of minutes, still a real certificate.
-TEST_CERTIFY_SETTINGS = CertifySettings(bounds=BoundSettings(samples=512), falsifier_states=2000)
 NODE_NAME = 'safety_filter'
 ANY_NAMESPACE_KEY = f'/**/{NODE_NAME}'  # parameter-file key matching the node in any namespace
 TRANSITIONS = {'configure': Transition.TRANSITION_CONFIGURE,
@@ -113,18 +110,11 @@ def _certificate_dir() -> Path:
 
 @functools.lru_cache(maxsize=None)
 def certified_arm(name: str, control_rate_hz: float = 1000.0) -> CertifiedArm:
-    """Certify demo arm ``name`` (at ``control_rate_hz``) once per session and save its
-    certificate (skips when the certification does not certify: the node refuses uncertified
-    certificates)."""
-    model = load_demo_arm(name)
-    settings = TEST_CERTIFY_SETTINGS
-    stem = name
-    if control_rate_hz != settings.control_rate_hz:
-        settings = dataclasses.replace(settings, control_rate_hz=control_rate_hz)
-        stem = f'{name}_{control_rate_hz:g}hz'
-    certificate = certify(model, settings)
-    if not certificate.certified:
-        pytest.skip(f'{name} did not certify with the test settings: {certificate.reasons}')
+    """Demo arm ``name`` with its session certificate at ``control_rate_hz`` and the
+    certificate's parameter files (fails the test, with the reasons, when the arm does not
+    certify: that is a regression of the certification, not a reason to skip node tests)."""
+    model, certificate = demo_certificate(name, control_rate_hz)
+    stem = name if control_rate_hz == 1000.0 else f'{name}_{control_rate_hz:g}hz'
     default_path = certificate.save(_certificate_dir() / f'{stem}_certificate.yaml')
     path = certificate.save(_certificate_dir() / f'{stem}_certificate_any_namespace.yaml',
                             node_name=ANY_NAMESPACE_KEY)
