@@ -77,18 +77,18 @@ def test_uncertified_certificate_raises() -> None:
         SafetyFilter(model, uncertified(certificate))
 
 
-@pytest.mark.parametrize('kwargs', [
-    {'gravity_convention': 'half'},
-    {'rejection_distance': -0.1},
-    {'rejection_distance': math.nan},
-    {'hold_damping': -1.0},
-    {'payload_mass': -1.0},
-    {'torque_weights': np.zeros(2)},
-    {'solver_time_limit_s': -1.0},
+@pytest.mark.parametrize(('kwargs', 'match'), [
+    ({'gravity_convention': 'half'}, 'gravity_convention'),
+    ({'rejection_distance': -0.1}, 'rejection_distance'),
+    ({'rejection_distance': math.nan}, 'rejection_distance'),
+    ({'hold_damping': -1.0}, 'hold_damping'),
+    ({'payload_mass': -1.0}, 'payload_mass'),
+    ({'torque_weights': np.zeros(2)}, 'torque_weights'),
+    ({'solver_time_limit_s': -1.0}, 'time_limit_s'),
 ])
-def test_invalid_options_raise(kwargs: dict) -> None:
-    """Configuration errors raise the package's error (STYLE: errors)."""
-    with pytest.raises(SafetyFilterError):
+def test_invalid_options_raise(kwargs: dict, match: str) -> None:
+    """Configuration errors raise the package's error (STYLE: errors), naming the option."""
+    with pytest.raises(SafetyFilterError, match=match):
         make_filter('planar2', **kwargs)
 
 

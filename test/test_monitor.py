@@ -532,7 +532,7 @@ def test_event_log_is_json_lines_the_replay_report_reads(tmp_path: Path) -> None
     last = json.loads(path.read_text().splitlines()[-1])
     assert last['t'] == pytest.approx(T0 + 1.0 - 100.0)  # the filter's clock
     assert last['wall_t'] == pytest.approx(T0 + 1.0)
-    with pytest.raises(SafetyFilterError):
+    with pytest.raises(SafetyFilterError, match='event_time'):
         EventLogWriter(path, event_time='bag')
 
 

@@ -321,16 +321,17 @@ def test_check_acceleration() -> None:
                               tol, tol) != ''
 
 
-@pytest.mark.parametrize('kwargs', [
-    {'torque_limit': [1.0, -1.0]},
-    {'torque_limit': [1.0, np.inf]},
-    {'torque_limit': [1.0, 1.0], 'torque_weights': [1.0, -2.0]},
-    {'torque_limit': [1.0, 1.0], 'torque_weights': [1.0]},
-    {'torque_limit': [1.0, 1.0], 'time_limit_s': 0.0},
-    {'torque_limit': [1.0, 1.0], 'max_iter': 0},
-    {'torque_limit': []},
+@pytest.mark.parametrize(('kwargs', 'match'), [
+    ({'torque_limit': [1.0, -1.0]}, 'torque_limit'),
+    ({'torque_limit': [1.0, np.inf]}, 'torque_limit'),
+    ({'torque_limit': [1.0, 1.0], 'torque_weights': [1.0, -2.0]}, 'torque_weights'),
+    ({'torque_limit': [1.0, 1.0], 'torque_weights': [1.0]}, 'torque_weights'),
+    ({'torque_limit': [1.0, 1.0], 'time_limit_s': 0.0}, 'time_limit_s'),
+    ({'torque_limit': [1.0, 1.0], 'max_iter': 0}, 'max_iter'),
+    ({'torque_limit': []}, 'torque_limit|at least one joint'),
 ])
-def test_invalid_setup_raises(kwargs: dict) -> None:
-    """Configuration errors are exceptions of the package (STYLE: errors)."""
-    with pytest.raises(SafetyFilterError):
+def test_invalid_setup_raises(kwargs: dict, match: str) -> None:
+    """Configuration errors are exceptions of the package (STYLE: errors) that say which
+    setting is wrong."""
+    with pytest.raises(SafetyFilterError, match=match):
         AccelerationQP(**kwargs)
