@@ -279,3 +279,34 @@ def test_launch_arguments_name_the_concepts_of_run_graph(launch: str) -> None:
         option = '--' + re.sub(r'_(path|hz)$', '', argument).replace('_', '-')
         assert option not in ALTERNATIVES, argument
         assert option in options, f'launch argument {argument}: no run-graph {option}'
+
+
+def test_the_gravity_conventions_offered_are_the_filters() -> None:
+    from safety_filter.cli.robot_options import GRAVITY_CONVENTIONS
+    from safety_filter.online.barrier_filter import GRAVITY_CONVENTIONS as FILTER_CONVENTIONS
+
+    assert GRAVITY_CONVENTIONS == FILTER_CONVENTIONS
+
+
+# What building the parser must not load: `safety-filter --help` and `safety-filter <command>
+# --help` answer without the solver, the kernels, the plots, the bag reader or ROS.
+HEAVY_LIBRARIES = ('scipy', 'osqp', 'numba', 'pinocchio', 'matplotlib', 'rosbags', 'rclpy',
+                   'dask', 'plotly')
+
+
+def test_help_loads_no_numeric_or_ros_library() -> None:
+    import subprocess
+    import sys
+
+    script = ('import sys\n'
+              'from safety_filter.cli.main import build_parser\n'
+              'build_parser()\n'
+              'loaded = {m.split(".")[0] for m in sys.modules}\n'
+              f'print(sorted(loaded & set({HEAVY_LIBRARIES!r})))\n'
+              'print(sorted(m for m in sys.modules if m.startswith("safety_filter.online.")\n'
+              '             and m != "safety_filter.online.status_layout"))\n')
+    result = subprocess.run([sys.executable, '-c', script], capture_output=True, text=True,
+                            check=True, cwd=REPO)
+    libraries, filter_modules = result.stdout.splitlines()
+    assert libraries == '[]', libraries
+    assert filter_modules == '[]', filter_modules

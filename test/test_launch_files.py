@@ -109,8 +109,17 @@ def _elements(launch: LaunchFile, expression: ast.expr) -> list[ast.expr]:
 
 
 def _module_source(executable: str) -> str:
+    """The source of an executable's module and of the ROS modules of this package it
+    imports (the node class may live beside the entry point)."""
+    def source(module: str) -> str:
+        return (REPO / Path(*module.split('.'))).with_suffix('.py').read_text(encoding='utf-8')
+
     module = console_scripts()[executable]
-    return (REPO / Path(*module.split('.'))).with_suffix('.py').read_text(encoding='utf-8')
+    text = source(module)
+    imported = {node.module for node in ast.walk(ast.parse(text))
+                if isinstance(node, ast.ImportFrom) and node.module
+                and node.module.startswith('safety_filter.ros.')}
+    return '\n'.join([text, *(source(name) for name in sorted(imported))])
 
 
 @pytest.fixture(scope='module', params=[p.name for p in LAUNCH_FILES])

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from safety_filter.core.dynamics import Dynamics
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 from safety_filter.simulation.careless_operator import BEHAVIOURS, CarelessOperator
 from safety_filter.simulation.demo_arms import load_demo_arm
 
@@ -122,5 +122,7 @@ def test_driver_compensated_output_leaves_gravity_out(bench6) -> None:
     {'behaviours': ['slack', 'slack']}, {'behaviours': ['dance']},
     {'output_convention': 'half'}])
 def test_bad_options_are_refused(bench6, options) -> None:
-    with pytest.raises(SafetyFilterError):
+    (name,) = options  # the message names the option refused
+    with pytest.raises(InvalidValue, match=name) as raised:
         CarelessOperator(bench6, **options)
+    assert raised.value.what == name

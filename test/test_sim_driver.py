@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from safety_filter.core.dynamics import Dynamics
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 from safety_filter.simulation.demo_arms import load_demo_arm
 from safety_filter.simulation.plant import ArmSimulator
 from safety_filter.simulation.sim_driver import SimulatedDriver
@@ -151,6 +151,8 @@ def test_noise_is_seeded_and_has_the_asked_spread(model) -> None:
 def test_bad_options_are_refused(options) -> None:
     model = load_demo_arm('planar2')
     kwargs = {'control_rate_hz': RATE, **options}
-    with pytest.raises(SafetyFilterError):
+    (name,) = options  # the message names the option refused
+    with pytest.raises(InvalidValue, match=name) as raised:
         SimulatedDriver(model, **kwargs)
+    assert raised.value.what == name
 

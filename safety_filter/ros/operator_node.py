@@ -36,7 +36,7 @@ from rclpy.node import Node
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray, MultiArrayDimension
 
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 from safety_filter.ros._common import (
     JointOrder,
     describe,
@@ -84,7 +84,7 @@ class CarelessOperatorNode(Node):
         model = load_model(str(value('urdf_path')), str(value('limits_path')))
         rate = float(value('rate_hz'))
         if not rate > 0.0:
-            raise SafetyFilterError(f'rate_hz must be positive, got {rate}')
+            raise InvalidValue('rate_hz', rate, 'a positive number')
         self.operator = CarelessOperator(
             model, seed=int(value('seed')),
             segment_s=(float(value('segment_min_s')), float(value('segment_max_s'))),

@@ -32,7 +32,7 @@ from typing import Any
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue, ShapeMismatch
 from safety_filter.recordings.bags import LATCHED_TOPICS, TOPIC_TYPES, BagWriter
 from safety_filter.ros._common import describe, spin_node
 
@@ -44,11 +44,12 @@ def message_class(msgtype: str) -> Any:
     """The rclpy message class of a type name like ``sensor_msgs/msg/JointState``."""
     parts = msgtype.split('/')
     if len(parts) != 3 or parts[1] != 'msg':
-        raise SafetyFilterError(f'not a message type name: {msgtype!r}')
+        raise InvalidValue('message type', msgtype, 'a name like sensor_msgs/msg/JointState')
     try:
         return getattr(importlib.import_module(f'{parts[0]}.msg'), parts[2])
     except (ImportError, AttributeError) as err:
-        raise SafetyFilterError(f'message type {msgtype} is not installed') from err
+        raise InvalidValue('message type', msgtype, 'an installed message type',
+                           detail=f'message type {msgtype} is not installed') from err
 
 
 class BagRecorderNode(Node):
@@ -56,7 +57,8 @@ class BagRecorderNode(Node):
     the bag (the executable does so on SIGINT/SIGTERM).
 
     Raises:
-        SafetyFilterError: invalid parameters, or the bag cannot be created.
+        InvalidValue: invalid parameters.
+        BagError: the bag cannot be created.
     """
 
     def __init__(self, node_name: str = NODE_NAME, **kwargs: Any) -> None:
@@ -70,15 +72,18 @@ class BagRecorderNode(Node):
             'topics of topics published once, transient-local (subscribed and recorded so)'))
         path = str(self.get_parameter('bag_path').value)
         if not path:
-            raise SafetyFilterError('bag_path is not set')
+            raise InvalidValue('bag_path', path, 'a bag folder to create',
+                               detail='bag_path is not set')
         topics = [str(t) for t in self.get_parameter('topics').value]
         types = [str(t) for t in self.get_parameter('types').value if str(t)]
         if types and len(types) != len(topics):
-            raise SafetyFilterError(f'{len(types)} types for {len(topics)} topics')
+            raise ShapeMismatch('types', len(topics), len(types),
+                                detail=f'{len(types)} types for {len(topics)} topics')
         if not types:
             unknown = [t for t in topics if t not in TOPIC_TYPES]
             if unknown:
-                raise SafetyFilterError(f'give the types of {unknown} (parameter types)')
+                raise InvalidValue('types', types, f'the types of {unknown}',
+                                   detail=f'give the types of {unknown} (parameter types)')
             types = [TOPIC_TYPES[t] for t in topics]
         classes = [message_class(t) for t in types]
         latched = [str(t) for t in self.get_parameter('latched_topics').value if str(t)]

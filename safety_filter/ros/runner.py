@@ -30,14 +30,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from safety_filter.core.limit_tolerance import LIMIT_TOLERANCE  # (a broken limit)
 from safety_filter.errors import GraphError, InvalidValue, SafetyFilterError
 from safety_filter.recordings import bags
 from safety_filter.ros.graph_specs import NODES, NodeSpec, write_overrides
 from safety_filter.ros.names import EXECUTORS, executor_name
-
-# An excursion past a limit of the simulated arm larger than this counts as a broken limit
-# (the demo report's tolerance, safety_filter.reports.demo_report.VIOLATION_TOLERANCE).
-LIMIT_TOLERANCE = 1e-6
 
 
 # ---------------------------------------------------------------------- running

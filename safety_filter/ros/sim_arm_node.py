@@ -84,7 +84,7 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 
 from safety_filter.core.model_uncertainty import model_with_inertials
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 from safety_filter.ros._common import describe, latest_qos, load_model, spin_node, state_qos
 from safety_filter.simulation.sim_driver import GRAVITY_CONVENTIONS, SimulatedDriver
 
@@ -145,13 +145,14 @@ class SimArmNode(Node):
         model = load_model(str(value('urdf_path')), str(value('limits_path')))
         scale = float(value('link_mass_scale'))
         if not (math.isfinite(scale) and scale > 0.0):
-            raise SafetyFilterError(f'link_mass_scale must be positive, got {scale}')
+            raise InvalidValue('link_mass_scale', scale, 'a positive number')
         if scale != 1.0:
             model = model_with_inertials(model, body_mass=np.array(model.body_mass) * scale,
                                          body_inertia=np.array(model.body_inertia) * scale)
         convention = str(value('gravity_convention'))
         if convention not in GRAVITY_CONVENTIONS:
-            raise SafetyFilterError(f'gravity_convention must be one of {GRAVITY_CONVENTIONS}')
+            raise InvalidValue('gravity_convention', convention,
+                               f'one of {", ".join(GRAVITY_CONVENTIONS)}')
         rate = float(value('control_rate_hz'))
         try:
             initial = value('initial_positions')
@@ -172,9 +173,9 @@ class SimArmNode(Node):
         self._lockstep_timeout = float(value('lockstep_timeout_s'))
         self._duration = float(value('duration_s'))
         if not (math.isfinite(self._duration) and self._duration >= 0.0):
-            raise SafetyFilterError('duration_s must be finite and >= 0')
+            raise InvalidValue('duration_s', self._duration, 'finite and >= 0')
         if not (math.isfinite(self._lockstep_timeout) and self._lockstep_timeout > 0.0):
-            raise SafetyFilterError('lockstep_timeout_s must be positive')
+            raise InvalidValue('lockstep_timeout_s', self._lockstep_timeout, 'a positive number')
         self.finished = False
         self.lockstep_timeouts = 0
         self._report_path = str(value('report_path'))

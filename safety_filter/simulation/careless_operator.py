@@ -33,7 +33,7 @@ import numpy as np
 
 from safety_filter.core.dynamics import Dynamics
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 from safety_filter.simulation.command_sources import LargeSinusoid, PDBeyondLimits, ZeroTorque
 
 BEHAVIOURS = ('pd_beyond_limits', 'jerk', 'slack', 'sinusoid')
@@ -124,16 +124,15 @@ class CarelessOperator:
                  gravity: Callable[[np.ndarray], np.ndarray] | None = None) -> None:
         low, high = (float(x) for x in segment_s)
         if not (math.isfinite(low) and math.isfinite(high) and 0.0 < low <= high):
-            raise SafetyFilterError(f'segment_s must be 0 < shortest <= longest, got '
-                                    f'{segment_s}')
+            raise InvalidValue('segment_s', segment_s, '0 < shortest <= longest')
         behaviours = tuple(str(b) for b in behaviours)
         unknown = [b for b in behaviours if b not in BEHAVIOURS]
         if not behaviours or unknown or len(set(behaviours)) != len(behaviours):
-            raise SafetyFilterError(f'behaviours must be distinct names from {BEHAVIOURS}, '
-                                    f'got {list(behaviours)}')
+            raise InvalidValue('behaviours', list(behaviours),
+                               f'distinct names from {", ".join(BEHAVIOURS)}')
         if output_convention not in OUTPUT_CONVENTIONS:
-            raise SafetyFilterError(f'output_convention must be one of {OUTPUT_CONVENTIONS}, '
-                                    f'got {output_convention!r}')
+            raise InvalidValue('output_convention', output_convention,
+                               f'one of {", ".join(OUTPUT_CONVENTIONS)}')
         self.model = model
         self.seed = int(seed)
         self.segment_s = (low, high)

@@ -13,6 +13,7 @@ import numpy as np
 
 from safety_filter.core.dynamics import Dynamics
 from safety_filter.core.robot_model import RobotModel
+from safety_filter.errors import InvalidValue
 
 
 class BangBang:
@@ -104,9 +105,9 @@ class SafeTracking:
                  speed_fraction: float = 0.5, inset: float = 0.1, bandwidth: float = 30.0,
                  seed: int = 0) -> None:
         if not 0.0 <= inset < 0.5:
-            raise ValueError(f'inset must be in [0, 0.5), got {inset}')
+            raise InvalidValue('inset', inset, 'in [0, 0.5)')
         if not speed_fraction > 0.0:
-            raise ValueError(f'speed_fraction must be positive, got {speed_fraction}')
+            raise InvalidValue('speed_fraction', speed_fraction, 'a positive number')
         if payload_mass is None:
             payload_mass = 0.5 * (model.payload.mass_min + model.payload.mass_max)
         rng = np.random.default_rng(seed)

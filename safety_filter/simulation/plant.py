@@ -37,7 +37,7 @@ from safety_filter.core.dynamics import Dynamics
 from safety_filter.core.friction import COULOMB_LAWS, rest_accelerations
 from safety_filter.core.model_uncertainty import Plant, model_with_inertials, nominal_plant
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue, NonFiniteValue, ShapeMismatch
 
 NominalPolicy = Callable[[float, np.ndarray, np.ndarray], np.ndarray]
 # Zero crossings of a joint's velocity found within one integration step: at most this many
@@ -73,9 +73,9 @@ class ArmSimulator:
                  internal_rate_hz: float = 10_000.0, backend: str = 'auto',
                  coulomb_law: str = 'stick_slip') -> None:
         if not internal_rate_hz > 0.0:
-            raise ValueError('internal_rate_hz must be positive')
+            raise InvalidValue('internal_rate_hz', internal_rate_hz, 'a positive number')
         if coulomb_law not in COULOMB_LAWS:
-            raise ValueError(f'coulomb_law must be one of {COULOMB_LAWS}, got {coulomb_law!r}')
+            raise InvalidValue('coulomb_law', coulomb_law, f'one of {", ".join(COULOMB_LAWS)}')
         self.model = model
         self.dynamics = Dynamics(model, payload_mass=payload_mass, backend=backend)
         self.internal_period_s = 1.0 / internal_rate_hz
@@ -99,9 +99,10 @@ class ArmSimulator:
         q = np.asarray(q, dtype=float)
         v = np.zeros_like(q) if v is None else np.asarray(v, dtype=float)
         if q.shape != (self.model.n_joints,) or v.shape != q.shape:
-            raise ValueError(f'state must have {self.model.n_joints} entries')
+            raise ShapeMismatch('state', self.model.n_joints, q.shape if q.shape != (
+                self.model.n_joints,) else v.shape)
         if not (np.all(np.isfinite(q)) and np.all(np.isfinite(v))):
-            raise ValueError('state must be finite')
+            raise NonFiniteValue('state')
         self.q, self.v, self.time_s = q.copy(), v.copy(), float(time_s)
 
     def _derivative(self, q: np.ndarray, v: np.ndarray, u: np.ndarray
@@ -111,8 +112,10 @@ class ArmSimulator:
     def advance(self, torque: np.ndarray, duration_s: float) -> None:
         """Hold ``torque`` (saturated to the effort limits) for ``duration_s`` seconds."""
         u = np.clip(np.asarray(torque, dtype=float), -self.effort_limit, self.effort_limit)
-        if u.shape != self.q.shape or not np.all(np.isfinite(u)):
-            raise ValueError('torque must be finite with one entry per joint')
+        if u.shape != self.q.shape:
+            raise ShapeMismatch('torque', self.q.shape, u.shape)
+        if not np.all(np.isfinite(u)):
+            raise NonFiniteValue('torque', u.tolist())
         steps = max(1, int(round(duration_s / self.internal_period_s)))
         dt = duration_s / steps
         q, v = self.q, self.v
@@ -406,7 +409,8 @@ def run_plant_loop(
             filt.constraint_bounds(q, v).smallest``.
     """
     if not (control_rate_hz > 0.0 and duration_s > 0.0):
-        raise SafetyFilterError('the control rate and the duration must be positive')
+        raise InvalidValue('control rate and duration', (control_rate_hz, duration_s),
+                           'both positive')
     model = plant.model
     n = model.n_joints
     rng = np.random.default_rng(0) if rng is None else rng

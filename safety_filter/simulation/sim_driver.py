@@ -34,7 +34,7 @@ import numpy as np
 
 from safety_filter.core.friction import COULOMB_LAWS
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue
 from safety_filter.simulation.plant import ArmSimulator
 
 GRAVITY_CONVENTIONS = ('full', 'driver_compensated')
@@ -93,7 +93,7 @@ class SimulatedDriver:
             value = float(value)
             if not math.isfinite(value) or value < 0.0 or (positive and value == 0.0):
                 kind = 'positive' if positive else '>= 0'
-                raise SafetyFilterError(f'{name} must be finite and {kind}, got {value}')
+                raise InvalidValue(name, value, f'finite and {kind}')
             return value
 
         control_rate_hz = check('control_rate_hz', control_rate_hz, positive=True)
@@ -101,11 +101,11 @@ class SimulatedDriver:
             internal_rate_hz = DEFAULT_INTERNAL_RATE_FACTOR * control_rate_hz
         internal_rate_hz = check('internal_rate_hz', internal_rate_hz, positive=True)
         if internal_rate_hz < control_rate_hz:
-            raise SafetyFilterError(f'internal_rate_hz {internal_rate_hz:g} must be at least '
-                                    f'the control rate {control_rate_hz:g}')
+            raise InvalidValue('internal_rate_hz', internal_rate_hz,
+                               f'at least the control rate {control_rate_hz:g}')
         if gravity_convention not in GRAVITY_CONVENTIONS:
-            raise SafetyFilterError(f'gravity_convention must be one of {GRAVITY_CONVENTIONS}, '
-                                    f'got {gravity_convention!r}')
+            raise InvalidValue('gravity_convention', gravity_convention,
+                               f'one of {", ".join(GRAVITY_CONVENTIONS)}')
         self.model = model
         self.n = model.n_joints
         self.control_period_s = 1.0 / control_rate_hz
@@ -117,16 +117,15 @@ class SimulatedDriver:
         self.command_timeout_s = check('command_timeout_s', command_timeout_s, positive=True)
         self.gravity_convention = gravity_convention
         if coulomb_law not in COULOMB_LAWS:
-            raise SafetyFilterError(f'coulomb_law must be one of {COULOMB_LAWS}, got '
-                                    f'{coulomb_law!r}')
+            raise InvalidValue('coulomb_law', coulomb_law, f'one of {", ".join(COULOMB_LAWS)}')
         self.simulator = ArmSimulator(model, self.payload_mass, internal_rate_hz, backend,
                                       coulomb_law=coulomb_law)
         q0 = (0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
               if initial_positions is None or len(initial_positions) == 0
               else np.asarray(initial_positions, dtype=float))
         if q0.shape != (self.n,) or not np.all(np.isfinite(q0)):
-            raise SafetyFilterError(f'initial_positions must have {self.n} finite entries '
-                                    f'(joints {list(model.joint_names)}), got {q0.tolist()}')
+            raise InvalidValue('initial_positions', q0.tolist(),
+                               f'{self.n} finite entries (joints {list(model.joint_names)})')
         self.simulator.reset(q0, None, float(start_time_s))
         self.effort_limit = np.array(model.effort_limit)
         self._rng = np.random.default_rng(int(noise_seed))
