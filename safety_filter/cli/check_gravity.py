@@ -33,7 +33,8 @@ _DESCRIPTION = (
     'while g is not (the driver compensates gravity itself and reports the rest): '
     'driver_compensated; otherwise inconclusive, with the reason. The check assumes the '
     'driver reports efforts in the convention of its commands. Exit code 0: consistent with '
-    'one convention (printed); 6: inconclusive; 2: bad input.')
+    'one convention (printed); 6: inconclusive; 2: bad input; 1: listening live without '
+    'rclpy.')
 
 
 def add_check_gravity_parser(commands: argparse._SubParsersAction) -> None:

@@ -98,8 +98,8 @@ def add_monitor_parser(commands: argparse._SubParsersAction) -> None:
         'counts, input ages and certificate id, with alarms (!!) for thin margins, the '
         'watchdog and stale states. On a terminal the screen is repainted in place and fits '
         "the window's size; plain frames when stdout is not a terminal. Ctrl-C quits. "
-        'Exit code 0: stopped (Ctrl-C, SIGTERM or --duration); 2: bad input (options, '
-        'certificate file).')
+        'Exit code 0: stopped (Ctrl-C, SIGTERM or --duration); 1: rclpy or the ROS 2 '
+        'messages not installed; 2: bad input (options, certificate file).')
     add_monitor_arguments(parser)
     parser.add_argument('--ros-args', dest='ros_args', nargs=argparse.REMAINDER, default=[],
                         metavar='ROS_ARGS', help='everything after this goes to ROS')

@@ -115,7 +115,8 @@ def add_node_parser(commands: argparse._SubParsersAction) -> None:
         'SIGINT or SIGTERM end it cleanly. Topics: '
         'joint_states, nominal_torque in, filtered_torque, ~/status, /diagnostics out (remap '
         'with --ros-args -r filtered_torque:=/driver/commands). Exit code 0 on a clean stop, 1 '
-        'when configure/activate failed (reason in the log), 2 on bad options.')
+        'when configure/activate failed (reason in the log) or rclpy is not installed, 2 on '
+        'bad options.')
     add_certificate_argument(node)
     robot = node.add_argument_group('robot')
     robot.add_argument('--urdf', help='path of the robot URDF, or a .xacro file when the '
