@@ -481,7 +481,8 @@ class SafetyFilterNode(LifecycleNode):
             trigger=self._trigger, certificate_id=self._certificate_id,
             disturbance_estimate=(self._filter.disturbance_estimate
                                   if self._filter is not None else None))
-        status = DiagnosticStatus(level=verdict.level, name=self._diagnostic_name,
+        # The message's level is a byte (diagnostic_msgs' OK, WARN, ERROR, STALE).
+        status = DiagnosticStatus(level=bytes([verdict.level]), name=self._diagnostic_name,
                                   message=verdict.message, hardware_id=model.name)
         status.values = [KeyValue(key=key, value=value) for key, value in verdict.values]
         return status
