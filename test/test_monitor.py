@@ -678,7 +678,7 @@ def test_monitor_follows_a_live_graph_and_logs_the_watchdog_trip(tmp_path: Path)
              *sim_spec.ros_arguments(overrides, 'warn')], env=env, stdout=logs['sim'],
             stderr=subprocess.STDOUT, start_new_session=True)
         monitor = subprocess.Popen(
-            [sys.executable, '-m', 'safety_filter.ros.monitor', '--certificate',
+            [sys.executable, '-m', 'safety_filter.cli.monitor', '--certificate',
              str(arm.certificate_path), '--event-log', str(event_log), '--refresh-rate', '4',
              '--duration', '240'], env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
             text=True, start_new_session=True)
