@@ -65,7 +65,7 @@ from safety_filter.ros.filter_node_parameters import (  # noqa: F401 - re-export
     TRIGGERS,
 )
 
-EXECUTORS = ('single_threaded', 'events')  # of safety_filter.cli.robot_options.EXECUTORS
+EXECUTORS = ('single_threaded', 'events')  # of safety_filter.ros.names.EXECUTORS
 
 
 # ---------------------------------------------------------------------- executable
