@@ -29,7 +29,7 @@ def build_parser() -> argparse.ArgumentParser:
     from safety_filter.cli.certify import add_certify_parser
     from safety_filter.cli.check_gravity import add_check_gravity_parser
     from safety_filter.cli.demo import add_demo_parser, add_run_graph_parser
-    from safety_filter.cli.inspect import add_inspect_parser
+    from safety_filter.cli.inspect_robot import add_inspect_parser
     from safety_filter.cli.monitor import add_monitor_parser
     from safety_filter.cli.node import add_node_parser
     from safety_filter.cli.replay import add_replay_parser

@@ -1,4 +1,8 @@
-"""``safety-filter inspect``: load a robot and print its chain, limits and dynamics."""
+"""``safety-filter inspect``: load a robot and print its chain, limits and dynamics.
+
+(Not named ``inspect.py``: run as a script from this folder, that name would hide the
+standard library's ``inspect``.)
+"""
 
 from __future__ import annotations
 
