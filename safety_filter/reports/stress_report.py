@@ -13,15 +13,21 @@ from __future__ import annotations
 
 import dataclasses
 import html
-import json
 from pathlib import Path
 from typing import Any, Protocol
 
 import numpy as np
 
 from safety_filter.online.mode_codes import FILTER_MODE_NAMES
-from safety_filter.reports.certificate_report import SAFETY_NOTICE
-from safety_filter.reports.html_kit import BASE_CSS, json_ready
+from safety_filter.reports.html_kit import (
+    caution_element,
+    figure_element,
+    json_ready,
+    new_figure,
+    page,
+    verdict_element,
+    write_json,
+)
 
 
 class StressResult(Protocol):
@@ -186,15 +192,6 @@ def report_data(result: StressResult, source: str) -> dict[str, Any]:
     })
 
 
-def _new_figure(width: float, height: float) -> Any:
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    figure = Figure(figsize=(width, height), dpi=100)
-    FigureCanvasAgg(figure)
-    return figure
-
-
 def _shade_pushes(axes: Any, result: StressResult) -> None:
     for push in result.worst_pushes:
         axes.axvspan(push.start_s, push.end_s, color='#f4b400', alpha=0.35, lw=0)
@@ -204,7 +201,7 @@ def _joint_figure(result: StressResult, path: Path, kind: str) -> None:
     model = result.context.model
     log = result.worst_log
     n = model.n_joints
-    figure = _new_figure(9.0, 1.7 * n + 0.8)
+    figure = new_figure(9.0, 1.7 * n + 0.8)
     axes_list = figure.subplots(n, 1, sharex=True, squeeze=False)[:, 0]
     t = log.time_s
     for i, axes in enumerate(axes_list):
@@ -247,7 +244,7 @@ def _joint_figure(result: StressResult, path: Path, kind: str) -> None:
 
 def _margin_figure(result: StressResult, path: Path) -> None:
     log = result.worst_log
-    figure = _new_figure(9.0, 3.2)
+    figure = new_figure(9.0, 3.2)
     axes = figure.add_subplot(1, 1, 1)
     for i, name in enumerate(result.context.model.joint_names):
         axes.plot(log.time_s, log.margin[:, i], lw=1.0, label=name)
@@ -280,8 +277,8 @@ def _page(result: StressResult, source: str, plots: bool) -> str:
         '<p>The model, certificate and filter in closed loop against plants drawn from the '
         'declared uncertainty set, with adversarial and benign nominals, the control rates '
         'the certificate covers, and external torque pushes.</p>',
-        f'<p class="caution">{esc(SAFETY_NOTICE)}</p>',
-        f'<p class="verdict {"pass" if result.passed else "fail"}">{esc(verdict)}</p>',
+        caution_element(),
+        verdict_element(result.passed, verdict),
         '<h2>Summary</h2><ul>'
         + ''.join(f'<li>{esc(line)}</li>' for line in summary_lines(result, source)[:-1])
         + '</ul>',
@@ -302,24 +299,10 @@ def _page(result: StressResult, source: str, plots: bool) -> str:
                           'means outside the safe set S.',
         }
         for name in PLOTS:
-            body.append(f'<figure><img src="{esc(name)}" alt="{esc(name)}">'
-                        f'<figcaption>{esc(captions[name])}</figcaption></figure>')
+            body.append(figure_element(name, captions[name]))
     body += ['<h2>All runs, worst first</h2>', f'<table>{head}{rows}</table>',
              f'<p>Machine-readable: <code>{SUMMARY_JSON}</code>.</p>']
-    css = BASE_CSS + """
-.verdict { font-size: 1.2em; font-weight: bold; padding: 0.5em 1em; border-radius: 4px; }
-.pass { background: #e3f4e3; color: #14601a; }
-.fail { background: #fbe4e4; color: #8a1010; }
-td.bad { color: #8a1010; font-weight: bold; }
-td.ok { color: #14601a; font-weight: bold; }
-figure { margin: 0.8em 0; }
-figcaption { font-size: 0.88em; color: #444; }
-"""
-    return '\n'.join(['<!DOCTYPE html>', '<html lang="en">', '<head>', '<meta charset="utf-8">',
-                      f'<title>safety_filter stress test: '
-                      f'{esc(result.context.model.name)}</title>',
-                      f'<style>{css}</style>', '</head>', '<body>', *body, '</body>',
-                      '</html>']) + '\n'
+    return page(f'safety_filter stress test: {result.context.model.name}', body)
 
 
 def write_report(folder: str | Path, result: StressResult, source: str, *, plots: bool = True
@@ -329,12 +312,11 @@ def write_report(folder: str | Path, result: StressResult, source: str, *, plots
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     summary = folder / SUMMARY_JSON
-    summary.write_text(json.dumps(report_data(result, source), indent=2, allow_nan=False)
-                       + '\n', encoding='utf-8')
+    write_json(summary, report_data(result, source))
     if plots:
         for kind in ('positions', 'velocities', 'torques'):
             _joint_figure(result, folder / f'{kind}.png', kind)
         _margin_figure(result, folder / 'margin.png')
-    page = folder / REPORT_HTML
-    page.write_text(_page(result, source, plots), encoding='utf-8')
-    return page, summary
+    path = folder / REPORT_HTML
+    path.write_text(_page(result, source, plots), encoding='utf-8')
+    return path, summary
