@@ -30,7 +30,14 @@ import yaml
 from safety_filter.cli.monitor import check_monitor_arguments
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.class_k import ClassK
-from safety_filter.errors import ExitCode, InvalidValue, SafetyFilterError, StatusLayoutError
+from safety_filter.errors import (
+    CertificateError,
+    ExitCode,
+    FileFormatError,
+    InvalidValue,
+    SafetyFilterError,
+    StatusLayoutError,
+)
 from safety_filter.monitor.screen import ALARM_PREFIX, SEPARATOR, render_frame
 from safety_filter.monitor.snapshots import (
     DiagnosticSnapshot,
@@ -144,9 +151,9 @@ def test_limits_from_a_certificate_file(tmp_path: Path) -> None:
     (key,) = document  # the file's one node key (its spelling is the certificate's business)
     document[key]['ros__parameters']['effort_limit'] = [400.0, 20.0]
     path.write_text(yaml.safe_dump(document))
-    with pytest.raises(SafetyFilterError, match='edited'):
+    with pytest.raises(CertificateError, match='edited'):
         JointLimits.from_certificate_file(path)
-    with pytest.raises(SafetyFilterError, match='velocity_limit'):
+    with pytest.raises(FileFormatError, match='velocity_limit'):
         JointLimits.from_parameters({'joint_names': ['a'], 'position_lower': [0.0],
                                      'position_upper': [1.0], 'effort_limit': [1.0]}, 'x')
 
