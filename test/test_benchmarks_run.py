@@ -27,6 +27,7 @@ def test_bench_dynamics_quick_runs_and_prints_its_tables() -> None:
         assert out.count(name) == 2, out  # one row in each table
 
 
+@pytest.mark.slow
 def test_bench_model_error_quick_keeps_limits_with_the_observer() -> None:
     """The model-error benchmark runs, and with the observer on (its default) no plant of
     planar2's breaks a limit (the plants: payload at both ends untold, links +-10 %)."""
@@ -66,6 +67,7 @@ def test_bench_replay_cluster_quick_prints_local_and_cluster_rows() -> None:
     assert 'bags/min' in result.stdout and 'vs 1 process' in result.stdout
 
 
+@pytest.mark.slow
 def test_bench_permissiveness_quick_prints_three_controllers_and_the_filter_keeps_limits(
         ) -> None:
     """The permissiveness benchmark runs its quick form on bench6: one row per controller

@@ -67,6 +67,7 @@ def _planar2_with(joint_overrides: dict) -> RobotModel:
 
 
 # ---------------------------------------------------------------------- the demo arms
+@pytest.mark.slow
 def test_demo_arm_certifies_with_default_settings(certified_arm) -> None:  # noqa: ANN001, F811
     model, outcome = certified_arm
     c = outcome.certificate
@@ -102,6 +103,7 @@ def test_demo_arm_certifies_with_default_settings(certified_arm) -> None:  # noq
     assert {entry['alpha1'] for entry in tried} == set(CertifySettings().families)
 
 
+@pytest.mark.slow
 def test_falsifier_finds_no_infeasible_state(certified_arm) -> None:  # noqa: ANN001, F811
     """The falsifier (falsify.falsify) as certification ran it, with 100 000 states."""
     model, outcome = certified_arm
@@ -116,6 +118,7 @@ def test_falsifier_finds_no_infeasible_state(certified_arm) -> None:  # noqa: AN
           f'limits ({result.lp_solved} LPs), witness slack {result.witness_min_slack:.4f}')
 
 
+@pytest.mark.slow
 def test_falsifier_catches_an_inflated_gamma(certified_arm) -> None:  # noqa: ANN001, F811
     """The falsifier CAN fail: gamma three times gamma* leaves the boundary b = 0 infeasible."""
     model, outcome = certified_arm
@@ -130,6 +133,7 @@ def test_falsifier_catches_an_inflated_gamma(certified_arm) -> None:  # noqa: AN
 
 
 # ---------------------------------------------------------------------- authority LP
+@pytest.mark.slow
 def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F811
     model, outcome = certified_arm
     c = outcome.certificate
@@ -167,6 +171,7 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
     assert np.sum(authority / weights) >= np.sum(reference.x[:n] / weights) * (1 - 1e-6)
 
 
+@pytest.mark.slow
 def test_authority_holds_for_the_true_dynamics(certified_arm) -> None:  # noqa: ANN001, F811
     """Every |a_i| <= e_i (all 2^n vertices) maps to a torque in the box at sampled states."""
     model, outcome = certified_arm
@@ -363,6 +368,7 @@ def test_weak_shoulder_fails_with_the_gravity_shortfall() -> None:
     assert not any('elbow' in reason for reason in c.reasons)  # the elbow is strong enough
 
 
+@pytest.mark.slow
 def test_slow_control_rate_fails_naming_a_joint(planar2_certified) -> None:  # noqa: ANN001, F811
     model, good = planar2_certified
     outcome = certify_with_evidence(model, CertifySettings(control_rate_hz=20.0))
@@ -376,6 +382,7 @@ def test_slow_control_rate_fails_naming_a_joint(planar2_certified) -> None:  # n
     assert np.all(c.sampling_margin > good.certificate.sampling_margin)
 
 
+@pytest.mark.slow
 def test_unsettled_sampling_margin_is_reported_not_raised(monkeypatch) -> None:  # noqa: ANN001
     """A sampled-data margin that keeps growing (but stays below the authority) at every
     velocity scale: certification must return an uncertified certificate that says so.
@@ -469,6 +476,7 @@ def test_hand_edited_certificate_is_refused(planar2_certified, tmp_path) -> None
     assert not isinstance(raised.value, CertificateMismatch)
 
 
+@pytest.mark.slow
 def test_declared_uncertainty_that_uses_up_a_joint_is_named_with_its_kinds() -> None:
     """planar2 with a 20 N m shoulder: enough for the model (gravity with the heaviest
     payload about 19.3 N m, the planar two-link closed form of the URDF's comment gives

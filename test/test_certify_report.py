@@ -35,6 +35,9 @@ from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm
 
 PNG_SIGNATURE = b'\x89PNG\r\n\x1a\n'  # PNG specification (ISO/IEC 15948), section 5.2
 FAST = CertifySettings(bounds=BoundSettings(samples=256), falsifier_states=2000)
+# Certifies planar2 and a weak-shouldered planar2 with real (if reduced) settings, and
+# draws the plots: some ten seconds in all.
+pytestmark = pytest.mark.slow
 
 
 def weak_shoulder_planar2() -> RobotModel:

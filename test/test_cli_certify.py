@@ -27,6 +27,7 @@ def weak_limits(tmp_path: Path) -> Path:
     return path
 
 
+@pytest.mark.slow
 def test_certify_planar2_writes_a_loadable_certificate_and_report(tmp_path, capsys) -> None:
     output = tmp_path / 'out' / 'planar2.yaml'
     code = main(['certify', '--demo', 'planar2', *FAST, '--output', str(output)])
@@ -81,6 +82,7 @@ def test_quiet_and_no_report_still_give_the_reasons(tmp_path, capsys, weak_limit
     assert written == ['planar2_certificate.failed.yaml', 'weak_limits.yaml']
 
 
+@pytest.mark.slow
 def test_failed_certify_leaves_a_good_certificate_untouched(tmp_path, capsys,
                                                            weak_limits) -> None:
     """A certified file at --output survives a failed run over the same path byte for byte,
@@ -116,6 +118,7 @@ def test_failed_certify_leaves_a_good_certificate_untouched(tmp_path, capsys,
     assert not [p.name for p in tmp_path.iterdir() if p.name.endswith('.tmp')]
 
 
+@pytest.mark.slow
 def test_interrupted_write_keeps_the_old_file(tmp_path, capsys, monkeypatch) -> None:
     """A write that fails half-way (here a disk-full error after some bytes) leaves the
     previous file at --output and no temporary file behind: the new one is written to a

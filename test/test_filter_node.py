@@ -441,6 +441,7 @@ def test_stale_nominal_is_never_used(trigger: str, executor: str, planar2: Certi
 
 # ---------------------------------------------------------------------- measured loop
 @pytest.mark.parametrize('rate_factor', [1.0, 0.5], ids=['certified-rate', 'half-rate'])
+@pytest.mark.slow
 def test_diagnostics_warn_when_the_loop_is_slower_than_the_certified_hold(
         rate_factor: float, harness: Harness, start_node: Any) -> None:
     """Joint states at the certified rate: the measured step period is the certified hold and

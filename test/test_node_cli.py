@@ -33,7 +33,7 @@ from ros_fixtures import (
     wait_for,
 )
 
-pytestmark = pytest.mark.ros
+pytestmark = [pytest.mark.ros, pytest.mark.slow]
 
 REPO = Path(__file__).resolve().parent.parent
 START_TIMEOUT_S = 120.0  # imports take a while on a loaded machine

@@ -477,6 +477,7 @@ def test_batch_api_in_one_process_matches_workers(arm: Any, files: dict[str, Pat
 
 
 # ---------------------------------------------------------------------- benchmark
+@pytest.mark.slow
 def test_bench_replay_quick_runs_and_prints_its_figures() -> None:
     result = subprocess.run([sys.executable, str(REPO / 'benchmarks' / 'bench_replay.py'),
                              '--quick'], capture_output=True, text=True, timeout=240, cwd=REPO)

@@ -99,6 +99,7 @@ def _page_data(page: str) -> dict[str, Any]:
     return json.loads(match.group(1))
 
 
+@pytest.mark.slow
 def test_the_replay_page_carries_its_scripts_and_data_inline() -> None:
     folder = replay_run().output
     page = (folder / replay_report.REPORT_HTML).read_text(encoding='utf-8')
@@ -155,6 +156,7 @@ def _check_report(browser: HeadlessChromium, page: Path, tmp_path: Path, name: s
     assert stats['height'] > 1000 and stats['non_white'] > 0.03 and stats['colours'] > 50, stats
 
 
+@pytest.mark.slow
 def test_the_certification_report_opens_cleanly(tmp_path: Path) -> None:
     page = certify_run().output / 'certificate_report.html'
     with chromium() as browser:
@@ -162,18 +164,21 @@ def test_the_certification_report_opens_cleanly(tmp_path: Path) -> None:
 
 
 @pytest.mark.ros
+@pytest.mark.slow
 def test_the_demo_report_opens_cleanly(tmp_path: Path) -> None:
     page = demo_run().output / 'demo_report.html'
     with chromium() as browser:
         _check_report(browser, page, tmp_path, 'demo_report', min_images=6)
 
 
+@pytest.mark.slow
 def test_the_stress_report_opens_cleanly(tmp_path: Path) -> None:
     page = stress_run().output / 'stress_report.html'
     with chromium() as browser:
         _check_report(browser, page, tmp_path, 'stress_report', min_images=4)
 
 
+@pytest.mark.slow
 def test_the_replay_report_and_its_index_open_cleanly(tmp_path: Path) -> None:
     folder = replay_run().output
     with chromium() as browser:
@@ -205,6 +210,7 @@ def _assert_charts_follow(browser: HeadlessChromium, view: dict[str, float]) -> 
     assert [float(x) for x in section] == pytest.approx([view['min'], view['max']], abs=1e-9)
 
 
+@pytest.mark.slow
 def test_zooming_the_replay_plots_to_50_ms_around_the_largest_intervention(
         tmp_path: Path) -> None:
     folder = replay_run().output
@@ -239,6 +245,7 @@ def test_zooming_the_replay_plots_to_50_ms_around_the_largest_intervention(
         browser.full_page_screenshot(tmp_path / 'replay_zoomed_page.png')
 
 
+@pytest.mark.slow
 def test_an_address_with_a_time_window_opens_the_plots_on_it() -> None:
     folder = replay_run().output
     with chromium() as browser:
@@ -252,6 +259,7 @@ def test_an_address_with_a_time_window_opens_the_plots_on_it() -> None:
         assert _view(browser) == pytest.approx({'min': 0.0, 'max': 0.1}, abs=1e-9)
 
 
+@pytest.mark.slow
 def test_the_replay_plots_answer_the_mouse(tmp_path: Path) -> None:
     folder = replay_run().output
     with chromium(height=1100) as browser:
@@ -309,6 +317,7 @@ def test_the_replay_plots_answer_the_mouse(tmp_path: Path) -> None:
         assert view['min'] <= moment <= view['max']
 
 
+@pytest.mark.slow
 def test_without_scripts_and_in_print_the_static_plots_show(tmp_path: Path) -> None:
     folder = replay_run().output
     page = folder / replay_report.REPORT_HTML

@@ -27,6 +27,7 @@ def model(request):
     return load_demo_arm(request.param)
 
 
+@pytest.mark.slow
 def test_pinocchio_simulator_matches_the_numpy_reference(model) -> None:
     # The simulator's forward dynamics go through Pinocchio's ABA when it is installed; the
     # numpy recursion (checked against closed forms and Pinocchio in test_dynamics) is the

@@ -305,6 +305,7 @@ def _run_cli(argv: list[str], capsys) -> tuple[int, str, str]:  # noqa: ANN001
     return code, captured.out, captured.err
 
 
+@pytest.mark.slow
 def test_cli_end_to_end_on_planar2(tmp_path, capsys, planar2, demo_certificate_files) -> None:
     model, certificate = planar2
     path = demo_certificate_files.path('planar2')
@@ -344,6 +345,7 @@ def test_cli_failed_verdict_exits_5(tmp_path, capsys, monkeypatch,
     assert stdout.splitlines()[0].startswith('verdict: FAIL (36 of 36 runs')
 
 
+@pytest.mark.slow
 def test_cli_demo_arm_without_certificate_certifies_then_reuses(tmp_path, capsys) -> None:
     out = tmp_path / 'stress'
     argv = ['stress', '--demo', 'planar2', '--duration', '0.05', '--plants', '0', '--jobs',
