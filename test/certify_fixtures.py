@@ -41,11 +41,18 @@ CERTIFIED_ARMS = ('planar2', 'bench6')
 DEFAULT_RATE_HZ = CertifySettings().control_rate_hz
 
 
-@functools.lru_cache(maxsize=None)
 def certified_demo_arm(name: str, control_rate_hz: float = DEFAULT_RATE_HZ
                        ) -> tuple[RobotModel, CertificationOutcome]:
     """A demo arm and the outcome of certifying it with the default settings at
     ``control_rate_hz`` (cached: once per arm and rate per session)."""
+    # One cache key however the rate is given (an lru_cache keys on the arguments as passed:
+    # f('planar2') and f('planar2', 1000.0) would be two entries, two certifications).
+    return _certify_demo_arm(name, float(control_rate_hz))
+
+
+@functools.lru_cache(maxsize=None)
+def _certify_demo_arm(name: str, control_rate_hz: float
+                      ) -> tuple[RobotModel, CertificationOutcome]:
     model = load_demo_arm(name)
     settings = CertifySettings(control_rate_hz=control_rate_hz)
     return model, certify_with_evidence(model, settings)
