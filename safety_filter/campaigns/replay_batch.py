@@ -14,6 +14,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
+from safety_filter.campaigns.defaults import DEFAULT_REPLAY_JOBS
 from safety_filter.campaigns.replay_job import (
     CertificateChoice,
     ReplayOptions,
@@ -25,9 +26,6 @@ from safety_filter.campaigns.worker_processes import portable_model, worker_cont
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import InvalidValue, ShapeMismatch
 from safety_filter.recordings.event_log import EventLog
-
-DEFAULT_JOBS = 2
-
 
 _WORKER: dict[str, Any] = {}
 # Imported once in the forkserver, so that each worker starts with them.
@@ -49,7 +47,7 @@ def _work(bag: str, name: str) -> dict[str, Any]:
 def replay_bags(bags: Sequence[str | Path], model: RobotModel,
                 certificates: Sequence[CertificateChoice], options: ReplayOptions,
                 out_dir: str | Path, *, names: Sequence[str] | None = None,
-                jobs: int = DEFAULT_JOBS, events: EventLog | None = None,
+                jobs: int = DEFAULT_REPLAY_JOBS, events: EventLog | None = None,
                 progress: bool = True, cluster: str | None = None) -> list[dict[str, Any]]:
     """Replay every bag (see :func:`replay_bag`), ``jobs`` at a time in worker processes.
 

@@ -33,7 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from safety_filter.campaigns.stress_defaults import DEFAULT_DURATION_S, DEFAULT_PLANTS
+from safety_filter.campaigns.defaults import DEFAULT_DURATION_S, DEFAULT_PLANTS
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.model_uncertainty import (
     Plant,

@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 
-from safety_filter.campaigns.stress_defaults import DEFAULT_JOBS
+from safety_filter.campaigns.defaults import DEFAULT_JOBS
 from safety_filter.campaigns.stress_matrix import (
     RunSpec,
     StressSettings,

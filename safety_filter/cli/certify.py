@@ -135,8 +135,7 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
     from safety_filter.core.class_k import ALPHA1_KINDS, ALPHA2_KINDS
 
     certify = commands.add_parser(
-        'certify', help='certify barrier gains for a robot; write the parameter file and a '
-        'report', description='Certify per-joint barrier gains for which the safety QP is '
+        'certify', description='Certify per-joint barrier gains for which the safety QP is '
         'feasible everywhere in the safe set, write them as a ROS 2 parameter file and write '
         'a report for the engineer. The file is replaced atomically, and only by a certified '
         'result: a failed attempt is written to <output stem>.failed.yaml (certified: false '

@@ -11,7 +11,7 @@ import math
 
 from safety_filter.cli.robot_options import add_chain_arguments, deprecated, load_robot
 from safety_filter.errors import InvalidValue
-from safety_filter.replay.gravity_check import (
+from safety_filter.replay.gravity_check_defaults import (
     DEFAULT_DURATION_S,
     DEFAULT_MIN_SAMPLES,
     DEFAULT_REST_VELOCITY,
@@ -40,8 +40,7 @@ _DESCRIPTION = (
 def add_check_gravity_parser(commands: argparse._SubParsersAction) -> None:
     """Add ``safety-filter check-gravity``."""
     parser = commands.add_parser(
-        'check-gravity', help="check the driver's gravity convention from joint efforts at "
-        'rest (a bag or a live topic)', description=_DESCRIPTION)
+        'check-gravity', description=_DESCRIPTION)
     parser.add_argument('bag', nargs='?', default=None, metavar='BAG',
                         help='a rosbag2 bag (folder, or its .mcap/.db3 file) of the arm at '
                         'rest; without it, listen live on --joint-states-topic for --duration '

@@ -66,8 +66,7 @@ def _command_demo(args: argparse.Namespace) -> int:
 def add_demo_parser(commands: argparse._SubParsersAction) -> None:
     """Add ``safety-filter demo``."""
     demo = commands.add_parser(
-        'demo', help='the one-command demo: a careless operator on a simulated arm, without '
-        'and with the filter, recorded and reported',
+        'demo',
         description='Certify a demo arm (or reuse its certificate in the output folder), run '
         'a simulated arm driven by a careless operator twice (unfiltered, possible only in '
         'simulation, then through the safety filter), record both runs to rosbag2 bags and '
@@ -238,7 +237,7 @@ def graph_exit_code(result: Any) -> int:
 def add_run_graph_parser(commands: argparse._SubParsersAction) -> None:
     """Add ``safety-filter run-graph``."""
     run = commands.add_parser(
-        'run-graph', help='start the node graph of a launch file without ros2 launch',
+        'run-graph',
         description='Start the nodes of launch/sim_demo.launch.py (--graph sim: simulated '
         'arm, careless operator, filter) or launch/hardware.launch.py (--graph hardware: '
         'the filter alone) with the same parameter files and remappings, configure and '

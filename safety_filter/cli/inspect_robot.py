@@ -15,7 +15,7 @@ from safety_filter.errors import ExitCode
 def add_inspect_parser(commands: argparse._SubParsersAction) -> None:
     """Add ``safety-filter inspect``."""
     inspect = commands.add_parser(
-        'inspect', help='load a robot and print its chain, limits and dynamics at a few states',
+        'inspect',
         description='Load a robot (a demo arm, or a URDF with its limits file), check it, and '
         'print its chain, limits, model hash, and the mass matrix, bias and gravity torques at '
         'the middle of the joint ranges and at a few random states. Exit code 0: the robot '

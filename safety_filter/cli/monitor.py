@@ -91,7 +91,7 @@ def command_monitor(args: argparse.Namespace) -> int:
 def add_monitor_parser(commands: argparse._SubParsersAction) -> None:
     """Add ``safety-filter monitor`` to the subcommands of ``safety-filter``."""
     parser = commands.add_parser(
-        'monitor', help='watch a running filter live in the terminal; log its events',
+        'monitor',
         description="Subscribe to a running safety_filter node's /diagnostics and ~/status "
         'over DDS and show, a few times a second, its state and mode, each joint against its '
         'limits with the barrier margin, interventions, solve times, fallback and recovery '

@@ -104,8 +104,7 @@ def _run_node(filter_node: ModuleType, args: argparse.Namespace, ros_args: list[
 def add_node_parser(commands: argparse._SubParsersAction) -> None:
     """Add ``safety-filter node``."""
     node = commands.add_parser(
-        'node', help='run the safety filter ROS 2 node (configured, inactive until '
-        'activated)',
+        'node',
         description='Run the safety_filter lifecycle node in this process, with the '
         'certificate parameter file, the URDF and the limits file, and the operational '
         'parameters of config/filter.yaml (one filter step per joint state). It configures '

@@ -41,10 +41,10 @@ _DESCRIPTION = (
 
 def add_replay_parser(commands: argparse._SubParsersAction) -> None:
     """Add the ``replay`` subcommand to ``safety-filter``'s subparsers."""
-    from safety_filter.campaigns.replay_batch import DEFAULT_JOBS
+    from safety_filter.campaigns.defaults import DEFAULT_REPLAY_JOBS
 
     replay = commands.add_parser(
-        'replay', help='replay recorded bags through the filter; reports, comparisons',
+        'replay',
         description=_DESCRIPTION)
     replay.add_argument('bags', metavar='BAG_OR_FOLDER',
                         help='a bag (rosbag2 folder, .mcap or .db3 file) or a folder of bags')
@@ -91,7 +91,7 @@ def add_replay_parser(commands: argparse._SubParsersAction) -> None:
                                                         '--bag-storage'))
     output.add_argument('--jobs', type=int, default=None, metavar='N',
                         help='bags replayed in parallel on this machine (processes; default: '
-                        f'{DEFAULT_JOBS}; not with --cluster)')
+                        f'{DEFAULT_REPLAY_JOBS}; not with --cluster)')
     output.add_argument('--cluster', metavar='ADDRESS',
                         help='replay on the workers of a running Dask cluster instead: the '
                         "scheduler's address, tcp://HOST:PORT; the bags and --output-dir "
@@ -115,7 +115,8 @@ def _check_positive(value: float, option: str) -> None:
 
 def command_replay(args: argparse.Namespace) -> int:
     """Run ``safety-filter replay`` (see the parser's description for the exit codes)."""
-    from safety_filter.campaigns.replay_batch import DEFAULT_JOBS, replay_bags
+    from safety_filter.campaigns.defaults import DEFAULT_REPLAY_JOBS
+    from safety_filter.campaigns.replay_batch import replay_bags
     from safety_filter.campaigns.replay_job import CertificateChoice, ReplayOptions, bag_names
     from safety_filter.core.certificate import Certificate
     from safety_filter.online.barrier_filter import SafetyFilter
@@ -127,7 +128,7 @@ def command_replay(args: argparse.Namespace) -> int:
     if args.cluster is not None and args.jobs is not None:
         raise InvalidValue('--jobs', args.jobs, detail='--jobs and --cluster exclude each '
                            'other: on a cluster, its workers replay the bags')
-    jobs = DEFAULT_JOBS if args.jobs is None else args.jobs
+    jobs = DEFAULT_REPLAY_JOBS if args.jobs is None else args.jobs
     if jobs < 1:
         raise InvalidValue('--jobs', jobs, '>= 1')
     if args.cluster is not None:

@@ -12,7 +12,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from safety_filter.campaigns.stress_defaults import (
+from safety_filter.campaigns.defaults import (
     DEFAULT_DURATION_S,
     DEFAULT_JOBS,
     DEFAULT_PLANTS,
@@ -39,7 +39,7 @@ def add_stress_parser(commands: argparse._SubParsersAction) -> None:
     from safety_filter.cli.robot_options import add_robot_arguments
 
     stress = commands.add_parser(
-        'stress', help='closed-loop stress test against plants from the uncertainty set',
+        'stress',
         description=_DESCRIPTION)
     add_robot_arguments(stress)
     filt = stress.add_argument_group('filter')

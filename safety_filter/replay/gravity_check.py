@@ -76,13 +76,14 @@ from safety_filter.errors import BagError, ExitCode, InvalidValue, ShapeMismatch
 if TYPE_CHECKING:
     from safety_filter.core.robot_model import RobotModel
 
-DEFAULT_REST_VELOCITY = 0.02  # [rad/s or m/s]
-MIN_REST_S = 0.2  # [s] shortest run of still samples that counts as rest
+from safety_filter.replay.gravity_check_defaults import (
+    DEFAULT_MIN_SAMPLES,
+    DEFAULT_REST_VELOCITY,
+    MIN_REST_S,
+)
+
 VELOCITY_WINDOW_S = 0.05  # [s] position difference window when velocities are not reported
-DEFAULT_MIN_SAMPLES = 20
 MIN_TOLERANCE = 0.15
-DEFAULT_TOPIC = 'joint_states'
-DEFAULT_DURATION_S = 5.0
 
 FULL = 'full'
 NO_GRAVITY = 'the efforts do not carry gravity'
