@@ -304,9 +304,45 @@ def test_help_loads_no_numeric_or_ros_library() -> None:
               'loaded = {m.split(".")[0] for m in sys.modules}\n'
               f'print(sorted(loaded & set({HEAVY_LIBRARIES!r})))\n'
               'print(sorted(m for m in sys.modules if m.startswith("safety_filter.online.")\n'
-              '             and m != "safety_filter.online.status_layout"))\n')
+              '             and m not in ("safety_filter.online.status_layout",\n'
+              '                           "safety_filter.online.mode_codes")))\n')
     result = subprocess.run([sys.executable, '-c', script], capture_output=True, text=True,
                             check=True, cwd=REPO)
     libraries, filter_modules = result.stdout.splitlines()
     assert libraries == '[]', libraries
     assert filter_modules == '[]', filter_modules
+
+
+def test_the_top_level_help_loads_no_command_module_and_no_numpy() -> None:
+    # `safety-filter --help` needs the command names and their one-line help only.
+    import subprocess
+    import sys
+
+    script = ('import sys\n'
+              'from safety_filter.cli.main import main\n'
+              'code = main(["--help"])\n'
+              'print(code)\n'
+              'print(sorted(m for m in sys.modules if m.startswith("safety_filter.cli.")\n'
+              '             and m != "safety_filter.cli.main"))\n'
+              'print("numpy" in sys.modules)\n')
+    result = subprocess.run([sys.executable, '-c', script], capture_output=True, text=True,
+                            check=True, cwd=REPO)
+    *_, code, command_modules, numpy_loaded = result.stdout.splitlines()
+    assert code == '0'
+    assert command_modules == '[]', command_modules
+    assert numpy_loaded == 'False'
+    assert 'check-gravity' in result.stdout and 'certify barrier gains' in result.stdout
+
+
+def test_a_command_named_builds_its_own_options_only() -> None:
+    from safety_filter.cli.main import COMMANDS, build_parser
+
+    parser = build_parser('certify')
+    args = parser.parse_args(['certify', '--demo', 'planar2', '--control-rate', '500'])
+    assert args.control_rate == 500.0
+    with pytest.raises(SystemExit):  # the other commands are names only here
+        parser.parse_args(['replay', 'some_bag', '--jobs', '2'])
+    for name in COMMANDS:  # each command's options build on their own
+        with pytest.raises(SystemExit) as stop:
+            build_parser(name).parse_args([name, '--help'])
+        assert stop.value.code == 0, name

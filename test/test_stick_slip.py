@@ -38,7 +38,7 @@ from scipy.optimize import minimize
 from safety_filter.core.friction import rest_accelerations
 from safety_filter.core.model_uncertainty import model_with_inertials
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import SafetyFilterError
+from safety_filter.errors import InvalidValue, SafetyFilterError
 from safety_filter.simulation.demo_arms import load_demo_arm
 from safety_filter.simulation.plant import ArmSimulator
 from safety_filter.simulation.sim_driver import SimulatedDriver
@@ -161,7 +161,7 @@ def test_arms_without_coulomb_friction_integrate_alike_under_both_laws() -> None
 
 def test_unknown_coulomb_law_is_refused() -> None:
     model = load_demo_arm('planar2')
-    with pytest.raises(ValueError, match='coulomb_law'):
+    with pytest.raises(InvalidValue, match='coulomb_law'):
         ArmSimulator(model, coulomb_law='smooth')
     with pytest.raises(SafetyFilterError, match='coulomb_law'):
         SimulatedDriver(model, 1000.0, coulomb_law='smooth')
