@@ -1,6 +1,6 @@
 """The option blocks that several ``safety-filter`` commands share, one definition each.
 
-Every subcommand names a concept the same way (``test/test_cli_options.py`` walks the
+Every subcommand names a concept the same way (``test/cli/test_cli_options.py`` walks the
 parser and checks it):
 
 * the robot: ``--demo NAME`` (a built-in demo arm) or ``--urdf FILE`` with ``--limits FILE``

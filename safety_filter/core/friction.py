@@ -15,7 +15,7 @@ joints at rest together by :func:`rest_accelerations`.
 
 The filter's compiled kernel (``safety_filter.online.kernels.add_friction``) keeps an inline
 copy of :func:`friction_torque` (numba compiles it into the control step without a call into
-Python); ``test/test_dynamics.py`` checks the two agree.
+Python); ``test/core/test_dynamics.py`` checks the two agree.
 """
 
 from __future__ import annotations

@@ -9,7 +9,7 @@ Every kernel is a plain Python function under ``njit``: with ``NUMBA_DISABLE_JIT
 as Python, which is how a reader can step through them. They write into arrays the caller
 preallocated and never raise on bad numbers (``error_model='numpy'``: a division by zero
 gives inf or NaN, which the checks downstream reject). The tests compare each kernel with
-the numpy formulas it replaces (test/test_kernels.py). Compiled code is cached on disk
+the numpy formulas it replaces (test/online/test_kernels.py). Compiled code is cached on disk
 (``cache=True``), so only the first process after an install pays the compile time (a few
 seconds).
 

@@ -46,7 +46,7 @@ from safety_filter.replay.replay_bag import status_field_names
 from safety_filter.simulation.command_sources import PDBeyondLimits
 
 pytestmark = pytest.mark.slow
-REPO = Path(__file__).resolve().parent.parent
+REPO = Path(__file__).resolve().parents[2]
 KEY_PREFIX = 'safety-filter-replay-'  # the cluster tasks' keys (replay_cluster)
 
 

@@ -14,7 +14,7 @@ from safety_filter._version import __version__
 from safety_filter.cli.main import main
 from safety_filter.errors import ExitCode
 
-PACKAGE_XML = Path(__file__).resolve().parents[1] / 'package.xml'
+PACKAGE_XML = Path(__file__).resolve().parents[2] / 'package.xml'
 
 
 def test_version_prints_the_package_version(capsys) -> None:

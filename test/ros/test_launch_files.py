@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-REPO = Path(__file__).resolve().parent.parent
+REPO = Path(__file__).resolve().parents[2]
 LAUNCH_FILES = sorted((REPO / 'launch').glob('*.launch.py'))
 PACKAGE = 'safety_filter'
 

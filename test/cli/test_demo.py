@@ -178,7 +178,7 @@ def test_unfiltered_graph_exists_only_around_the_simulated_arm(tmp_path: Path) -
     assert [s.executable for s in specs] == ['careless_operator', 'sim_arm']
     assert specs[-1].remappings == [('sim_effort_command', 'nominal_torque')]
     # The filter node has no option to pass the nominal through.
-    ros_folder = Path(__file__).resolve().parent.parent / 'safety_filter' / 'ros'
+    ros_folder = Path(__file__).resolve().parents[2] / 'safety_filter' / 'ros'
     source = ''.join((ros_folder / name).read_text(encoding='utf-8') for name in (
         'filter_node.py', 'filter_node_lifecycle.py', 'filter_node_parameters.py'))
     for word in ('bypass', 'passthrough', 'pass_through'):

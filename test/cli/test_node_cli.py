@@ -35,7 +35,7 @@ from ros_fixtures import (
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
 
-REPO = Path(__file__).resolve().parent.parent
+REPO = Path(__file__).resolve().parents[2]
 START_TIMEOUT_S = 120.0  # imports take a while on a loaded machine
 
 

@@ -22,7 +22,7 @@ from safety_filter.online.status_layout import THIN_MARGIN
 from safety_filter.recordings.bags import STORAGES
 from safety_filter.ros.names import EXECUTORS
 
-REPO = Path(__file__).resolve().parent.parent
+REPO = Path(__file__).resolve().parents[2]
 
 # concept -> its one spelling
 CONCEPTS = {

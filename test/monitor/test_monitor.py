@@ -161,7 +161,7 @@ def test_limits_from_a_certificate_file(tmp_path: Path) -> None:
 def test_the_state_is_kept_apart_from_drawing() -> None:
     import ast
 
-    package = Path(__file__).resolve().parents[1] / 'safety_filter'
+    package = Path(__file__).resolve().parents[2] / 'safety_filter'
 
     def imported(name: str) -> set[str]:
         tree = ast.parse((package / f'{name}.py').read_text(encoding='utf-8'))

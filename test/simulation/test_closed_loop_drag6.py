@@ -48,7 +48,7 @@ from safety_filter.simulation.command_sources import (
 )
 from safety_filter.simulation.plant import limit_violations, run_closed_loop
 
-TEST_URDF = Path(__file__).resolve().parent / 'urdf'
+TEST_URDF = Path(__file__).resolve().parents[1] / 'urdf'
 CONTROL_RATE_HZ = 1000.0
 PLANT_RATE_HZ = 10_000.0
 DURATION_S = 1.0

@@ -53,7 +53,7 @@ from safety_filter.reports.replay_report import (
 )
 from safety_filter.simulation.command_sources import PDBeyondLimits
 
-REPO = Path(__file__).resolve().parent.parent
+REPO = Path(__file__).resolve().parents[2]
 STORAGES = ('sqlite3', 'mcap')
 SIM_RATE_HZ = 2000.0  # RK4 rate of the simulated arm: enough for planar2, and fast
 
