@@ -22,10 +22,10 @@ The tree::
     |       +-- BagError             a bag that cannot be read or written as asked
     |       +-- StatusLayoutError    status records that do not fit their field names
     |       +-- EventLogError        an event log that cannot be read or written
+    |   +-- ClusterError             a Dask cluster that cannot be used (address, workers)
     +-- SolverError                  the QP solver cannot be set up: exit 1
     +-- RunFailed                    a run that could not do its job: exit 1
         +-- GraphError               a ROS graph that could not start or ran into trouble
-        +-- ClusterError             a Dask cluster that cannot be used
 """
 
 from __future__ import annotations
@@ -209,6 +209,13 @@ class EventLogError(FileFormatError):
     """An event log that cannot be read or written."""
 
 
+class ClusterError(InputError):
+    """The cluster cannot be used: no scheduler at the address, no workers, workers that run
+    other versions or do not see the bags or the output folder, Dask not installed. Raised
+    before any bag is replayed, so it is the user's setup to fix (exit 2); a worker lost
+    half-way is reported on the bags it had, not raised."""
+
+
 # ----------------------------------------------------------------------------- runs
 class SolverError(SafetyFilterError):
     """The QP solver cannot be set up or answers in a way the filter cannot use."""
@@ -220,11 +227,6 @@ class RunFailed(SafetyFilterError):
 
 class GraphError(RunFailed):
     """A ROS graph that could not be started or ran into trouble."""
-
-
-class ClusterError(RunFailed):
-    """The cluster cannot be used: no scheduler at the address, no workers, workers that run
-    other versions or do not see the bags or the output folder, Dask not installed."""
 
 
 def _as_shape(shape: Sequence[int] | int) -> tuple[int, ...]:

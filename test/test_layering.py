@@ -20,7 +20,7 @@ PACKAGE = Path(__file__).resolve().parent.parent / 'safety_filter'
 
 # Lowest first. A subpackage may import from itself and from any layer before it.
 LAYERS = (
-    ('errors', '_version'),
+    ('errors', '_version', 'safety_notice'),
     ('core',),
     ('online',),
     ('certification',),

@@ -22,7 +22,7 @@ from safety_filter.campaigns.replay_job import (
     failed_entry,
     replay_bag,
 )
-from safety_filter.campaigns.worker_processes import portable_model, worker_context
+from safety_filter.campaigns.worker_processes import worker_context
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import InvalidValue, ShapeMismatch
 from safety_filter.recordings.event_log import EventLog
@@ -94,7 +94,7 @@ def replay_bags(bags: Sequence[str | Path], model: RobotModel,
             with ProcessPoolExecutor(
                     max_workers=min(jobs, len(bags)), mp_context=worker_context(_PRELOAD),
                     initializer=_init_worker,
-                    initargs=(portable_model(model), list(certificates), options,
+                    initargs=(model, list(certificates), options,
                               str(out_dir), events)) as pool:
                 futures = {pool.submit(_work, bag, name): k
                            for k, (bag, name) in enumerate(zip(bags, names))}

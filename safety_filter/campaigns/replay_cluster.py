@@ -45,9 +45,8 @@ from safety_filter.campaigns.replay_job import (
     failed_entry,
     replay_bag,
 )
-from safety_filter.campaigns.worker_processes import portable_model
 from safety_filter.core.robot_model import RobotModel
-from safety_filter.errors import ClusterError, ExitCode, ShapeMismatch
+from safety_filter.errors import ClusterError, ShapeMismatch
 from safety_filter.recordings.event_log import EventLog
 
 # How long to wait for the scheduler to answer, and for a first worker [s].
@@ -60,23 +59,11 @@ INSTALL_HINT = ("python3 -m pip install 'distributed>=2024.1.1' (or the package'
 _MISSING_SHOWN = 3  # paths named in an error about missing bags (then a count)
 
 
-def _refused(message: str) -> ClusterError:
-    """The :class:`ClusterError` of a cluster refused before any bag is replayed.
-
-    Such a refusal ends ``safety-filter replay --cluster`` with exit code 2 (bad input:
-    the address, the cluster or the shared folders the user gave), as docs/replay.md says,
-    not with the 1 of a run that failed half-way.
-    """
-    error = ClusterError(message)
-    error.exit_code = ExitCode.BAD_INPUT
-    return error
-
-
 def _import_distributed() -> Any:
     try:
         import distributed
     except ImportError as err:
-        raise _refused(f'replaying on a cluster needs Dask distributed, which is not '
+        raise ClusterError(f'replaying on a cluster needs Dask distributed, which is not '
                            f'installed ({err}): {INSTALL_HINT}') from err
     return distributed
 
@@ -92,12 +79,12 @@ def parse_address(address: str) -> tuple[str, str, int]:
     if not sep:
         scheme, rest = 'tcp', text
     if scheme != 'tcp':
-        raise _refused(f'cluster address {address!r}: only tcp://HOST:PORT addresses of a '
+        raise ClusterError(f'cluster address {address!r}: only tcp://HOST:PORT addresses of a '
                            'Dask scheduler are supported')
     host, sep, port = rest.rpartition(':')
     host = host.strip('[]')  # an IPv6 literal: [::1]:8786
     if not sep or not host or not port.isdigit() or not 0 < int(port) < 65536:
-        raise _refused(f'cluster address {address!r} is not tcp://HOST:PORT (e.g. '
+        raise ClusterError(f'cluster address {address!r} is not tcp://HOST:PORT (e.g. '
                            'tcp://10.0.0.5:8786, the address the scheduler prints)')
     return f'tcp://{rest}', host, int(port)
 
@@ -136,20 +123,20 @@ def _check_scheduler(address: str, host: str, port: int, timeout_s: float) -> No
             pass
     except OSError as err:
         reason = 'timed out' if isinstance(err, TimeoutError) else (err.strerror or str(err))
-        raise _refused(f'cannot reach the cluster scheduler at {address}: {reason}') \
+        raise ClusterError(f'cannot reach the cluster scheduler at {address}: {reason}') \
             from err
     try:
         identity = _identify(address, timeout_s)
     except (TimeoutError, asyncio.TimeoutError) as err:
-        raise _refused(f'no Dask scheduler answered at {address} within {timeout_s:g} s '
+        raise ClusterError(f'no Dask scheduler answered at {address} within {timeout_s:g} s '
                            '(is it the address the scheduler printed?)') from err
     except Exception as err:
-        raise _refused(f'no Dask scheduler answered at {address}: '
+        raise ClusterError(f'no Dask scheduler answered at {address}: '
                            f'{type(err).__name__}: {err}') from err
     kind = identity.get('type') if isinstance(identity, dict) else None
     if kind != 'Scheduler':
         what = f'a Dask {kind.lower()}' if isinstance(kind, str) else 'not a Dask scheduler'
-        raise _refused(f'{address} is {what}; give the address of the scheduler')
+        raise ClusterError(f'{address} is {what}; give the address of the scheduler')
 
 
 def environment() -> dict[str, str | None]:
@@ -206,7 +193,7 @@ def _check_workers(client: Any, out_dir: Path, bags: Sequence[str], timeout_s: f
     try:
         client.wait_for_workers(1, timeout=timeout_s)
     except Exception as err:
-        raise _refused(f'the cluster at {address} has no workers (waited '
+        raise ClusterError(f'the cluster at {address} has no workers (waited '
                            f'{timeout_s:g} s)') from err
     marker = f'.safety_filter_cluster_check_{uuid.uuid4().hex}'
     token = uuid.uuid4().hex
@@ -214,11 +201,11 @@ def _check_workers(client: Any, out_dir: Path, bags: Sequence[str], timeout_s: f
     try:
         marker_path.write_text(token, encoding='utf-8')
     except OSError as err:
-        raise _refused(f'cannot write into the output folder {out_dir}: {err}') from err
+        raise ClusterError(f'cannot write into the output folder {out_dir}: {err}') from err
     try:
         reports = client.run(inspect_worker, str(out_dir), marker, token, list(bags))
     except Exception as err:  # e.g. a worker without this package cannot unpickle the call
-        raise _refused(f'the workers of {address} cannot run the replay: '
+        raise ClusterError(f'the workers of {address} cannot run the replay: '
                            f'{type(err).__name__}: {err} (install this package, the same '
                            'version, on every worker)') from err
     finally:
@@ -249,7 +236,7 @@ def _check_workers(client: Any, out_dir: Path, bags: Sequence[str], timeout_s: f
                             f'({shown}{more}); the bags must be at the same paths on every '
                             'worker')
     if problems:
-        raise _refused(f'the cluster at {address} cannot replay these bags as this '
+        raise ClusterError(f'the cluster at {address} cannot replay these bags as this '
                            'machine would:\n  ' + '\n  '.join(problems))
     return len(reports)
 
@@ -339,7 +326,7 @@ def replay_on_cluster(address: str, bags: Sequence[str | Path], model: RobotMode
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
     except OSError as err:
-        raise _refused(f'cannot create the output folder {out_dir}: {err}') from err
+        raise ClusterError(f'cannot create the output folder {out_dir}: {err}') from err
     real_out = os.path.abspath(out_dir)
     real_bags = [os.path.abspath(bag) for bag in bags]
     _check_scheduler(address, host, port, connect_timeout_s)
@@ -347,14 +334,14 @@ def replay_on_cluster(address: str, bags: Sequence[str | Path], model: RobotMode
         client = distributed.Client(address, timeout=connect_timeout_s,
                                     set_as_default=False)
     except Exception as err:
-        raise _refused(f'cannot connect to the cluster scheduler at {address}: '
+        raise ClusterError(f'cannot connect to the cluster scheduler at {address}: '
                            f'{type(err).__name__}: {err}') from err
     entries: list[dict[str, Any] | None] = [None] * len(bags)
     pending: dict[str, tuple[int, Any]] = {}
     bar = None
     try:
         _check_workers(client, Path(real_out), real_bags, connect_timeout_s, address)
-        context = pickle.dumps((portable_model(model), list(certificates), options, events))
+        context = pickle.dumps((model, list(certificates), options, events))
         digest = hashlib.sha256(context).hexdigest()
         run = uuid.uuid4().hex[:12]
         bar = tqdm(total=len(bags), unit='bag', file=sys.stderr,

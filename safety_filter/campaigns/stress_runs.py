@@ -38,7 +38,7 @@ from safety_filter.campaigns.stress_verdict import (
     severity,
     summarize_run,
 )
-from safety_filter.campaigns.worker_processes import portable_model, worker_context
+from safety_filter.campaigns.worker_processes import worker_context
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.core.uncertainty_set import UncertaintySet
@@ -173,7 +173,7 @@ def run_stress(model: RobotModel, certificate: Certificate, uncertainty: Uncerta
 
         with ProcessPoolExecutor(max_workers=min(jobs, total), mp_context=worker_context(),
                                  initializer=_init_worker,
-                                 initargs=(portable_model(model), certificate, uncertainty,
+                                 initargs=(model, certificate, uncertainty,
                                            settings)) as pool:
             futures = {pool.submit(_work, spec.index): spec.index for spec in context.specs}
             done = 0

@@ -17,12 +17,7 @@ from collections.abc import Sequence
 
 from safety_filter._version import __version__
 from safety_filter.errors import ExitCode, SafetyFilterError
-
-SAFETY_NOTICE = (
-    'CAUTION: safety_filter is not a certified safety function. It does not replace '
-    'hardware emergency stops, safety-rated monitoring or a risk assessment; local '
-    'regulations and qualified safety engineers have the last word.')
-
+from safety_filter.safety_notice import SAFETY_NOTICE
 
 # name: (module under safety_filter.cli, function adding its parser, one-line help)
 COMMANDS: dict[str, tuple[str, str, str]] = {

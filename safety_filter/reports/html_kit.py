@@ -27,12 +27,7 @@ from typing import Any
 
 import numpy as np
 
-# The same words as safety_filter.cli.main.SAFETY_NOTICE (a test keeps them equal); repeated
-# here so that the reports do not import the command line.
-SAFETY_NOTICE = (
-    'CAUTION: safety_filter is not a certified safety function. It does not replace '
-    'hardware emergency stops, safety-rated monitoring or a risk assessment; local '
-    'regulations and qualified safety engineers have the last word.')
+from safety_filter.safety_notice import SAFETY_NOTICE  # noqa: F401 (the reports' caution)
 
 
 def json_ready(value: Any) -> Any:
