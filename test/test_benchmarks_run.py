@@ -89,3 +89,19 @@ def test_bench_permissiveness_quick_prints_three_controllers_and_the_filter_keep
     start = lines.index('limits broken by the braking clamp or the certified filter (any run):')
     listed = lines[start + 1:lines.index('', start)]
     assert listed and not any('certified filter' in line for line in listed), result.stdout
+
+
+def test_bench_import_prints_both_trees_side_by_side() -> None:
+    """The start-up benchmark runs against a baseline tree checked out from git (HEAD here,
+    which every checkout has) and prints one row per command with both medians and a ratio."""
+    if not (REPO / '.git').exists():
+        pytest.skip('not a git checkout: the benchmark checks its baseline out with git')
+    result = subprocess.run(
+        [sys.executable, str(REPO / 'benchmarks' / 'bench_import.py'), '--baseline', 'HEAD',
+         '--repeats', '2'], capture_output=True, text=True, timeout=300, cwd=REPO)
+    assert result.returncode == 0, result.stderr
+    rows = {line.split('  ')[0]: line.split() for line in result.stdout.splitlines()
+            if line.endswith('x') and ' ms ' in line}
+    assert set(rows) == {'python -c pass', 'import safety_filter', 'safety-filter --help'}, rows
+    for cells in rows.values():
+        assert float(cells[-1].rstrip('x')) > 0.0
