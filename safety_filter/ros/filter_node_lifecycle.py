@@ -88,7 +88,10 @@ class SafetyFilterNode(LifecycleNode):
     def __init__(self, node_name: str = FILTER_NODE_NAME, **kwargs: Any) -> None:
         super().__init__(node_name, **kwargs)
         # rclpy's change_state service raises (and so ends the executor's spin) when asked for
-        # a transition the current state does not have; answer success=False instead.
+        # a transition the current state does not have; answer success=False instead. rclpy
+        # (Jazzy) has no public hook on that service, so this reads its one private attribute;
+        # where a release lacks it, rclpy's own behaviour stands (test_filter_node.py asks an
+        # unconfigured node to activate and checks the node answers and keeps spinning).
         service = getattr(self, '_service_change_state', None)
         if service is not None:
             service.callback = self._guard_change_state(service.callback)
