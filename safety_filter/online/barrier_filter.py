@@ -5,39 +5,32 @@ call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dy
 ``disturbance_observer``, ``input_checks``, ``constructive``, ``hold_command``,
 ``filter_options``, ``filter_output``. One :meth:`SafetyFilter.step` (docs/method.md):
 
-1. **Validate** ``q``, ``v``, ``u_nom`` (shape ``(n,)``, finite) and reject positions more than
-   ``rejection_distance`` beyond a limit (by default half the smallest joint range: no arm
-   gets there, so it is a sensor fault), and, while the observer runs, a position that jumped
-   farther since the last valid sample than ten periods at speed allow (until it stays for
-   three samples). Only such inputs, which cannot be a physical state, are refused; a
-   position beyond a limit but within that distance is recovered from (step 4). Rejected
-   steps send the *hold* command: gravity compensation at the measured (or last valid)
-   position plus damping toward rest, ``g(q) - hold_damping * v`` (no damping when the
-   velocity is not valid), clipped to the torque box.
-1b. **Model error feedback** (``docs/method.md``, "Model error"): a disturbance observer
-   estimates the torque that the arm needs beyond the filter's model (payload, inertia and
-   friction errors, the driver's torque error) from the measured velocity change over the last
-   period, low-pass filtered with ``observer_time_constant_s``; the estimate is taken out of
-   the bias ``h`` of every later step, so the bounds hold for the arm, not only the model.
+1. **Validate** ``q``, ``v``, ``u_nom`` (shape ``(n,)``, finite); reject positions more than
+   ``rejection_distance`` beyond a limit (default half the smallest joint range: a sensor
+   fault) and, while the observer runs, a position that jumped farther than ten periods at
+   speed allow (until it stays for three samples). Rejected steps send the *hold* command
+   ``clip(g(q) - hold_damping * v)`` at the measured (or last valid) position; a position
+   beyond a limit but within that distance is recovered from (step 4).
+1b. **Model error feedback** (docs/method.md, "Model error"): a disturbance observer
+   estimates the torque the arm needs beyond the model from the measured velocity change,
+   low-pass filtered with ``observer_time_constant_s``, and takes it out of the bias ``h``.
 2. **Convert** the nominal to full torque: with ``gravity_convention='driver_compensated'``
    the driver adds ``g(q)`` itself, so ``u_full = u_nom + g(q)`` here and the output is
    ``u* - g(q)``. The torque box ``|u| <= umax`` always applies to the full torque.
 3. **Barriers** at ``(q, v)`` with the certificate's gains give the acceleration bounds
    ``An <= a <= Ap`` (tightened by the certificate's sampling margin).
 4. **Outside the safe set S** (some barrier negative) the same bounds ask for a return to S at
-   the barrier rate (``db/dt >= -beta alpha2(b) > 0``). The QP meets them with any torque in
-   the box; where it cannot, the constructive recovery
-   ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))`` pushes back toward S within the
-   usable authority ``e = authority - sampling_margin``; mode ``'recovering'``. The nominal
-   is used only when it meets those bounds itself.
+   the barrier rate. The QP meets them with any torque in the box; where it cannot, the
+   constructive recovery ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))`` pushes
+   back within the usable authority ``e``; mode ``'recovering'``.
 5. **Inside S** the QP (:mod:`safety_filter.online.qp_solver`) is solved; its answer is used
-   only if OSQP says solved and the answer passes an explicit constraint check. Otherwise the same
+   only if OSQP says solved and it passes an explicit constraint check, else the same
    constructive formula (feasible by construction under the acceleration-authority
-   certificate, docs/method.md) is used; mode ``'fallback'`` with the reason. (Under a
-   torque-coupling certificate the formula has no such guarantee: its torque is still
-   clipped to the box, but the acceleration bounds may then be missed.) When the nominal
-   already meets every constraint it is the QP's minimiser and is sent unchanged, without
-   a solve (solver status ``'nominal feasible'``).
+   certificate) is used; mode ``'fallback'``. A nominal that meets every constraint is the
+   QP's minimiser and is sent unchanged (solver status ``'nominal feasible'``).
+5b. **Joints at rest** under Coulomb friction (:mod:`safety_filter.online.resting_joints`):
+   the nominal's acceleration is the stick-slip answer, and a planned acceleration that
+   starts a resting joint gets the torque that breaks it away (docs/method.md).
 6. The torque is clipped to the box (in full-torque terms) and converted to the driver's
    convention.
 
@@ -65,6 +58,7 @@ from safety_filter.online.hold_command import hold_command, rejected_output
 from safety_filter.online.input_checks import PositionJumpCheck, valid_position
 from safety_filter.online.mode_codes import FilterMode
 from safety_filter.online.qp_solver import DEFAULT_EPS, DEFAULT_MAX_ITER, AccelerationQP
+from safety_filter.online.resting_joints import RestingJoints
 from safety_filter.online.step_dynamics import StepDynamics, kernel_input
 
 GRAVITY_CONVENTIONS = _options.GRAVITY_CONVENTIONS
@@ -179,6 +173,7 @@ class SafetyFilter:
             float(uncertainty.position_noise) if uncertainty else 0.0,
             certificate.control_period_s)
         self._steps_since_valid = 0
+        self._resting = RestingJoints(model.coulomb_friction, self._accel_tol)
 
         acceleration_weights = (None if torque_weights is not None
                                 else 1.0 / np.maximum(usable, 1e-9) ** 2)
@@ -331,6 +326,7 @@ class SafetyFilter:
 
         mass, bias = self._mass, self._bias
         self._dyn.mass_and_bias(q, v, mass, bias)
+        self._resting.observe(v)
         if self._observing:
             self._observer.observe(q, v, mass, bias, period_s)
         gravity = self._no_gravity
@@ -397,6 +393,8 @@ class SafetyFilter:
         if not have_torque:
             _kernels.torque_and_check(mass, bias, acceleration, accel_lower, accel_upper,
                                       self._k_torque_bound, self._k_accel_tol, torque)
+        if status != 'nominal feasible':
+            self._resting.add_breakaway(torque, acceleration)
             if not math.isfinite(torque @ torque):  # only with a broken model: never send NaN
                 return self._reject(q, v, 'the dynamics gave non-finite numbers',
                                     'non-finite dynamics', position=q,
@@ -405,7 +403,7 @@ class SafetyFilter:
                                        self._k_torque_limit, self._k_accel_tol,
                                        self._k_saturation, gravity, self._driver, out_flags)
         if self._observing:
-            self._observer.sent(torque + gravity)
+            self._observer.sent(torque - self._resting.breakaway + gravity)
         self.steps += 1
         self.mode_counts[mode] += 1
         if key:
@@ -432,6 +430,7 @@ class SafetyFilter:
                 self._a_nom = self._dyn.nominal_acceleration(
                     inputs[0], inputs[1], u_full, self._mass, self._bias,
                     self._observer.disturbance if self._observing else None)
+                self._a_nom = self._resting.predicted(self._mass, self._a_nom)
             except np.linalg.LinAlgError:
                 self._a_nom = np.zeros(self.n)
         return self._a_nom
