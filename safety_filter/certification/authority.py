@@ -97,14 +97,12 @@ def model_error_bound(model: RobotModel, bounds: DynamicsBounds, velocity_box: n
                       settings: CertifySettings) -> DisturbanceBound:
     """The declared uncertainty set's torque bound at a velocity box (see
     :func:`safety_filter.core.model_uncertainty.disturbance_bound`)."""
-    def coriolis(christoffel: np.ndarray) -> np.ndarray:
-        return np.einsum('ijk,j,k->i', christoffel, velocity_box, velocity_box)
-
     return disturbance_bound(
         model, model.uncertainty, gravity_max=bounds.gravity_max,
-        coriolis_max=coriolis(bounds.christoffel_max), mass_max=bounds.mass_max,
+        coriolis_max=bounds.coriolis_max(velocity_box), mass_max=bounds.mass_max,
         payload_gravity_max=bounds.payload_gravity_max,
-        payload_coriolis_max=coriolis(bounds.payload_christoffel_max),
+        payload_coriolis_max=np.einsum('ijk,j,k->i', bounds.payload_christoffel_max,
+                                       velocity_box, velocity_box),
         payload_mass_max=bounds.payload_mass_max, velocity_box=velocity_box,
         observer_time_constant_s=observer_time_constants(model, bounds, settings))
 

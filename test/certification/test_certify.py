@@ -434,6 +434,66 @@ def test_planar2_bounds_against_closed_form_grids() -> None:
                                                                    gravity_max)
 
 
+def test_planar2_coriolis_bound_against_its_closed_form() -> None:
+    """Two-link planar arm, elbow angle q2 (textbook, e.g. Spong, Hutchinson and Vidyasagar,
+    Robot Modeling and Control, ch. 7; from memory): (C v)_1 = -h sin(q2) (2 v1 v2 + v2^2),
+    (C v)_2 = h sin(q2) v1^2 with h = m2 l1 lc2 (the payload adds to it). Over |v_j| <= vb_j
+    the largest values are |h| max|sin q2| (2 vb1 vb2 + vb2^2) and |h| max|sin q2| vb1^2:
+    the configuration-wise bound is that, inflated, where the sum of separate maxima is the
+    same here (one configuration holds every entry's maximum)."""
+    model = load_demo_arm('planar2')
+    settings = BoundSettings(coriolis_by_configuration=True)
+    bounds = estimate_bounds(model, settings)
+    box = np.array([1.2, 2.0])
+    elbow = np.linspace(model.position_lower[1], model.position_upper[1], 100_001)
+    exact = np.zeros(2)
+    for payload in (model.payload.mass_min, model.payload.mass_max):
+        arm = PlanarTwoLink(payload)
+        h = arm.m2 * arm.l1 * arm.lc2
+        sin_max = np.abs(np.sin(elbow)).max()
+        exact = np.maximum(exact, abs(h) * sin_max * np.array(
+            [2 * box[0] * box[1] + box[1] ** 2, box[0] ** 2]))
+    bound = bounds.coriolis_max(box)
+    separate = np.einsum('ijk,j,k->i', bounds.christoffel_max, box, box)
+    assert np.all(bound >= exact), (bound, exact)
+    assert np.all(bound <= separate * (1 + 1e-12))
+    assert np.all(bound <= settings.inflation * 1.05 * exact), (bound, exact)
+
+
+def test_bench6_coriolis_bound_holds_against_pinocchio_and_beats_the_separate_sum() -> None:
+    """|(C(q, v) v)_i| from Pinocchio (``computeCoriolisMatrix``, package ``pin``) at random
+    configurations and at the velocity box's corners and random points inside it stays
+    under the bound; the bound is well under the sum of the entries' separate maxima."""
+    pin = pytest.importorskip('pinocchio')
+    model = load_demo_arm('bench6')
+    bounds = estimate_bounds(model, BoundSettings(coriolis_by_configuration=True))
+    assert estimate_bounds(model).christoffel_samples is None  # off by default
+    box = 0.6 * np.array(model.velocity_limit)
+    full = pin.buildModelFromUrdf(str(demo_arm_files('bench6')[0]))
+    # the fingers locked where the model locks them
+    reference = pin.neutral(full)
+    locked = []
+    for name, position in model.locked_positions.items():
+        joint = full.getJointId(name)
+        reference[full.joints[joint].idx_q] = position
+        locked.append(joint)
+    robot = pin.buildReducedModel(full, locked, reference)
+    data = robot.createData()
+    rng = np.random.default_rng(7)
+    n = model.n_joints
+    corners = np.array(list(itertools.product((-1.0, 1.0), repeat=n))) * box
+    worst = np.zeros(n)
+    for q in rng.uniform(model.position_lower, model.position_upper, (300, n)):
+        velocities = np.concatenate([corners, rng.uniform(-box, box, (64, n))])
+        for v in velocities:
+            coriolis = pin.computeCoriolisMatrix(robot, data, q, v) @ v
+            worst = np.maximum(worst, np.abs(coriolis))
+    bound = bounds.coriolis_max(box)
+    separate = np.einsum('ijk,j,k->i', bounds.christoffel_max, box, box)
+    assert np.all(bound >= worst), (bound, worst)
+    assert np.all(bound <= 0.8 * separate), (bound, separate)
+
+
 # ---------------------------------------------------------------------- files
 def test_certificate_save_load_round_trip(planar2_certified, tmp_path) -> None:  # noqa: ANN001, F811
     model, outcome = planar2_certified
