@@ -25,14 +25,14 @@ call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dy
    back within the usable authority ``e``; mode ``'recovering'``.
 5. **Inside S** the QP (:mod:`safety_filter.online.qp_solver`) is solved; its answer is used
    only if OSQP says solved and it passes an explicit constraint check, else the same
-   constructive formula (feasible by construction under the acceleration-authority
-   certificate) is used; mode ``'fallback'``. A nominal that meets every constraint is the
-   QP's minimiser and is sent unchanged (solver status ``'nominal feasible'``).
+   constructive formula is used (feasible by construction under the acceleration-authority
+   certificate; under a torque-coupling one it is only clipped to the box and may miss the
+   bounds); mode ``'fallback'``. A nominal that meets every constraint is the QP's
+   minimiser and is sent unchanged (solver status ``'nominal feasible'``).
 5b. **Joints at rest** under Coulomb friction (:mod:`safety_filter.online.resting_joints`):
    the nominal's acceleration is the stick-slip answer, and a planned acceleration that
    starts a resting joint gets the torque that breaks it away (docs/method.md).
-6. The torque is clipped to the box (in full-torque terms) and converted to the driver's
-   convention.
+6. The torque is clipped to the box (full-torque terms), converted to the driver's convention.
 
 Units: [rad], [rad/s], [rad/s^2], [N m] (prismatic joints: [m], [m/s], [m/s^2], [N]).
 """
