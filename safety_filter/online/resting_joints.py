@@ -38,7 +38,8 @@ class RestingJoints:
     def __init__(self, coulomb: np.ndarray, deadband: np.ndarray) -> None:
         self.coulomb = np.array(coulomb, dtype=float)
         self.deadband = np.array(deadband, dtype=float)
-        self.active = bool(np.any(self.coulomb > 0.0))
+        self._has_coulomb = self.coulomb > 0.0
+        self.active = bool(self._has_coulomb.any())
         self._resting = np.zeros(len(self.coulomb), dtype=bool)
         self._any = False
         self.breakaway = np.zeros(len(self.coulomb))
@@ -49,7 +50,7 @@ class RestingJoints:
         if not self.active:
             return False
         np.equal(v, 0.0, out=self._resting)
-        self._resting &= self.coulomb > 0.0
+        self._resting &= self._has_coulomb
         self._any = bool(self._resting.any())
         return self._any
 
