@@ -9,6 +9,8 @@ disturbance observer's time constants, and the authority beyond which a joint ga
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy.optimize import linprog
 
@@ -19,7 +21,8 @@ from safety_filter.core.robot_model import RobotModel
 
 
 def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.ndarray,
-                       weights: np.ndarray, cap: np.ndarray | None = None
+                       weights: np.ndarray, cap: np.ndarray | None = None,
+                       samples: tuple[np.ndarray, np.ndarray] | None = None
                        ) -> np.ndarray | None:
     """Acceleration authority from the row-sum condition (docs/method.md), or None.
 
@@ -29,9 +32,54 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
     With a ``cap``, a joint whose share ``t w_i`` would exceed its cap is held at the cap
     and the others share again (authority a joint has no use for goes to the others); the
     second phase keeps every ``e_i`` at most its cap.
+
+    With ``samples = (mass (S, n, n), bias (S, n))`` the rows are those of each sampled
+    configuration, ``mass_s e + bias_s <= umax`` for every ``s``, instead of the one row of
+    maxima (:meth:`DynamicsBounds.row_samples`); the linear program then takes them in as
+    cuts: the rows that bind the answer so far, until every sample's rows hold.
     """
-    n = len(effort)
-    room = effort - bias_max
+    if samples is None:
+        return _row_sum_lp(mass_max, effort - bias_max, weights, cap)
+    mass, bias = samples
+    count, n = bias.shape
+    room = effort - bias  # (S, n)
+    if np.any(room <= 0.0):
+        return None
+    rows = mass.reshape(count * n, n).astype(float)
+    bounds = room.reshape(-1)
+    # Start from each row's most loaded samples (largest bias, largest inertia at the
+    # weights), then add the rows the answer breaks until none is broken.
+    load = (mass.astype(float) @ weights).reshape(count, n)
+    picked = set()
+    for i in range(n):
+        for column in (bias[:, i], load[:, i]):
+            picked.update(int(s) * n + i for s in np.argsort(column)[-4:])
+    authority = None
+    for _ in range(100):
+        active = np.array(sorted(picked))
+        authority = _row_sum_lp(rows[active], bounds[active], weights, cap)
+        if authority is None:
+            return None
+        excess = rows @ authority - bounds
+        broken = excess > 1e-9 * np.repeat(effort[None, :], count, axis=0).reshape(-1)
+        if not broken.any():
+            break
+        # the most broken samples of each joint's row
+        per_joint = excess.reshape(count, n)
+        for i in range(n):
+            worst = np.argsort(per_joint[:, i])[-4:]
+            picked.update(int(s) * n + i for s in worst if per_joint[s, i] > 0.0)
+    # Guard against LP round-off and an unfinished loop: scale down until every row holds.
+    usage = rows @ authority
+    scale = min(1.0, float(np.min(bounds / np.maximum(usage, 1e-300))))
+    return authority * scale
+
+
+def _row_sum_lp(rows: np.ndarray, room: np.ndarray, weights: np.ndarray,
+                cap: np.ndarray | None) -> np.ndarray | None:
+    """The two-phase linear program of :func:`authority_row_sums` for ``rows e <= room``
+    (any number of rows)."""
+    n = rows.shape[1]
     if np.any(room <= 0.0):
         return None
     held = np.zeros(n, dtype=bool)  # joints held at their cap
@@ -39,7 +87,7 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
     for _ in range(n + 1):
         # Variables (e_1..e_n, t). Phase 1: maximise t.
         share = np.where(held, 0.0, weights)
-        a_ub = np.vstack([np.hstack([mass_max, np.zeros((n, 1))]),
+        a_ub = np.vstack([np.hstack([rows, np.zeros((len(rows), 1))]),
                           np.hstack([-np.eye(n), share[:, None]])])
         b_ub = np.concatenate([room, np.where(held, -cap, 0.0)])
         c = np.zeros(n + 1)
@@ -55,12 +103,12 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
         held |= over
     floor = np.where(held, cap, t_best * weights)
     # Phase 2: keep every e_i >= its phase-1 share, maximise the weighted sum.
-    second = linprog(-1.0 / weights, A_ub=mass_max, b_ub=room,
+    second = linprog(-1.0 / weights, A_ub=rows, b_ub=room,
                      bounds=[(lo, None if not np.isfinite(hi) else max(hi, lo))
                              for lo, hi in zip(floor, cap)], method='highs')
     authority = second.x if second.status == 0 else first.x[:n]
     # Guard against LP round-off: scale down until the inequality holds exactly.
-    usage = mass_max @ authority
+    usage = rows @ authority
     scale = min(1.0, float(np.min(room / np.maximum(usage, 1e-300))))
     return authority * scale
 
@@ -73,11 +121,22 @@ def authority_torque_coupling(inverse_mass_max: np.ndarray, coupling_min: np.nda
     return authority if np.all(authority > 0.0) else None
 
 
+@dataclass
+class RowSumProblem:
+    """The row-sum condition's data at a velocity box: ``mass @ e + bias <= umax`` with the
+    separate maxima, and per sampled configuration (``samples``: ``(S, n, n)`` and
+    ``(S, n)`` arrays, or None) when the bounds keep them; ``disturbance`` is the
+    declared model error's bound, already added to both."""
+
+    mass: np.ndarray
+    bias: np.ndarray
+    disturbance: DisturbanceBound
+    samples: tuple[np.ndarray, np.ndarray] | None
+
+
 def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
-                      velocity_box: np.ndarray, exact_model: bool = False
-                      ) -> tuple[np.ndarray, np.ndarray, DisturbanceBound]:
-    """The row-sum condition's data ``(mass bound, bias bound, model-error bound)`` at a
-    velocity box: ``mass @ e + bias <= umax`` (``docs/method.md``).
+                      velocity_box: np.ndarray, exact_model: bool = False) -> RowSumProblem:
+    """The row-sum condition's data at a velocity box (``docs/method.md``).
 
     The filter's QP uses ``h - d_hat`` with ``d_hat`` inside the range of the plants' model
     error at the state, so its bias is some plant's bias: the payload is already inside the
@@ -87,10 +146,14 @@ def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: Certi
     disturbance = (DisturbanceBound({}, {}) if exact_model
                    else model_error_bound(model, bounds, velocity_box, settings))
     outside = disturbance.without('payload', static_only=True)
-    bias = bounds.bias_max(velocity_box, np.array(model.viscous_friction),
-                           np.array(model.coulomb_friction)) + outside.static_total
+    viscous, coulomb = np.array(model.viscous_friction), np.array(model.coulomb_friction)
+    bias = bounds.bias_max(velocity_box, viscous, coulomb) + outside.static_total
     mass = bounds.mass_max + outside.inertial_total
-    return mass, bias, disturbance
+    samples = bounds.row_samples(velocity_box, viscous, coulomb)
+    if samples is not None:
+        samples = (samples[0] + np.asarray(outside.inertial_total, dtype=samples[0].dtype),
+                   samples[1] + outside.static_total)
+    return RowSumProblem(mass, bias, disturbance, samples)
 
 
 def model_error_bound(model: RobotModel, bounds: DynamicsBounds, velocity_box: np.ndarray,

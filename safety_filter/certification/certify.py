@@ -362,6 +362,17 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
         top = start.fractions
         design, margin, last_design = settle(top)
         if design is None:
+            # The margin hardly depends on the box, but the authority does (the Coriolis
+            # bound is quadratic in it): search the box again with the margin just found
+            # reserved, so that each joint gives up only the speed its own margin costs,
+            # instead of shrinking every box by one common factor.
+            again, _ = search_velocity_box(model, bounds, settings, kind, margin=margin)
+            if again is not None:
+                redone, redone_margin, redone_last = settle(again.fractions)
+                if redone is not None:
+                    top, design, margin, last_design = (again.fractions, redone,
+                                                        redone_margin, redone_last)
+        if design is None:
             floor = 1.0 / settings.velocity_scales
             low_factor = float(np.max(floor / top))
             low_design, low_margin, low_last = settle(top * low_factor)
@@ -431,10 +442,12 @@ def _model_error_record(model: RobotModel, bounds: DynamicsBounds, settings: Cer
     if design is None or design.disturbance is None:
         return {}
     by_kind = design.disturbance.by_kind(design.authority)
-    bias = bounds.bias_max(design.velocity_box, np.array(model.viscous_friction),
-                           np.array(model.coulomb_friction))
+    viscous, coulomb = np.array(model.viscous_friction), np.array(model.coulomb_friction)
+    bias = bounds.bias_max(design.velocity_box, viscous, coulomb)
     umax = np.array(model.effort_limit)
-    exact = authority_row_sums(bounds.mass_max, bias, umax, umax / np.diag(bounds.mass_max))
+    exact = authority_row_sums(bounds.mass_max, bias, umax, umax / np.diag(bounds.mass_max),
+                               samples=bounds.row_samples(design.velocity_box, viscous,
+                                                          coulomb))
     uncertainty = model.uncertainty
     record: dict[str, Any] = {
         'disturbance_constant': _plain(design.disturbance.constant_part(design.authority)),

@@ -49,11 +49,11 @@ class BoundSettings:
         relevance: bounds whose contribution is below this fraction of the largest in their
             row are not refined (they still get sampled and inflated).
         seed: seed of the scrambled Sobol sequence and the search.
-        coriolis_by_configuration: bound the Coriolis torque configuration by configuration
-            (:meth:`DynamicsBounds.coriolis_max`) instead of by the entries' separate
-            maxima. Off by default: it enlarges the heavy joints' velocity boxes, and the
-            light joints' boxes then reach their rated speeds, which model error lets the
-            arm pass (docs/method.md, Certification).
+        configuration_wise: keep the sampled configurations' values too, so that the
+            Coriolis bound (:meth:`DynamicsBounds.coriolis_max`) and the torque rows of the
+            authority condition (:meth:`DynamicsBounds.row_samples`) are taken
+            configuration by configuration instead of as sums of maxima reached at
+            different configurations (docs/method.md, Certification).
     """
 
     samples: int = 4096
@@ -62,7 +62,7 @@ class BoundSettings:
     inflation: float = 1.1
     relevance: float = 0.02
     seed: int = 0
-    coriolis_by_configuration: bool = False
+    configuration_wise: bool = True
 
     def __post_init__(self) -> None:
         for what, value, least in (('samples', self.samples, 16),
@@ -88,9 +88,11 @@ class DynamicsBounds:
         payload_mass_max, payload_gravity_max, payload_christoffel_max: what one kilogram of
             payload adds to ``|M_ij|``, ``|g_i|``, ``|Gamma_ijk|`` at most (sampled, not
             refined; zero without a payload range).
-        christoffel_samples: ``|Gamma_ijk(q)|`` at each sampled configuration (and payload
-            end), scaled by the inflation and by what refinement found beyond sampling:
-            :meth:`coriolis_max` takes the largest Coriolis torque configuration by
+        christoffel_samples, mass_samples, gravity_samples: ``|Gamma_ijk(q)|``,
+            ``|M_ij(q)|`` and ``|g_i(q)|`` at each sampled configuration (and payload end),
+            scaled by the inflation and by what refinement found beyond sampling, and never
+            above the separate maxima (None unless ``configuration_wise``):
+            :meth:`coriolis_max` and :meth:`row_samples` take the bounds configuration by
             configuration instead of adding maxima found at different ones.
         settings: how they were estimated; evaluations: configurations evaluated;
         refinement_gain: largest relative increase that refinement gave over sampling,
@@ -109,6 +111,8 @@ class DynamicsBounds:
     evaluations: int = 0
     refinement_gain: dict[str, float] = field(default_factory=dict)
     christoffel_samples: np.ndarray | None = None
+    mass_samples: np.ndarray | None = None
+    gravity_samples: np.ndarray | None = None
 
     def coriolis_max(self, velocity_box: np.ndarray) -> np.ndarray:
         """A bound of ``|(C(q, v) v)_i|`` over the joint box and ``|v_j| <= vb_j``:
@@ -120,9 +124,29 @@ class DynamicsBounds:
         separate = np.einsum('ijk,j,k->i', self.christoffel_max, velocity_box, velocity_box)
         if self.christoffel_samples is None:
             return separate
-        pairs = np.multiply.outer(velocity_box, velocity_box)
-        joint = np.einsum('sijk,jk->si', self.christoffel_samples, pairs).max(axis=0)
-        return np.minimum(joint, separate)
+        return np.minimum(self._coriolis_samples(velocity_box).max(axis=0), separate)
+
+    def _coriolis_samples(self, velocity_box: np.ndarray) -> np.ndarray:
+        """``sum_jk |Gamma_ijk(q_s)| vb_j vb_k`` per sample, shape (S, n)."""
+        samples = self.christoffel_samples
+        count, n = samples.shape[:2]
+        pairs = np.multiply.outer(velocity_box, velocity_box).astype(samples.dtype)
+        flat = samples.reshape(count * n, n * n) @ pairs.reshape(-1)
+        return flat.reshape(count, n).astype(float)
+
+    def row_samples(self, velocity_box: np.ndarray, viscous: np.ndarray, coulomb: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray] | None:
+        """The torque rows of the authority condition at each sampled configuration:
+        ``(|M(q_s)|, |g(q_s)| + sum_jk |Gamma_ijk(q_s)| vb_j vb_k + d vb + fc)``, shapes
+        (S, n, n) and (S, n); ``|M(q_s)| e + bias_s <= umax`` for every sample bounds the
+        torque of every ``|a_i| <= e_i`` at that configuration and every velocity in the
+        box. None unless the bounds were estimated ``configuration_wise``."""
+        if self.mass_samples is None or self.gravity_samples is None \
+                or self.christoffel_samples is None:
+            return None
+        bias = (self.gravity_samples + self._coriolis_samples(velocity_box)
+                + viscous * velocity_box + coulomb)
+        return self.mass_samples, bias
 
     def bias_max(self, velocity_box: np.ndarray, viscous: np.ndarray, coulomb: np.ndarray
                  ) -> np.ndarray:
@@ -222,7 +246,9 @@ def estimate_bounds(
     m_abs = np.zeros((n, n))
     g_abs = np.zeros(n)
     c_abs = np.zeros((n, n, n))
-    c_samples = []
+    c_samples: list[np.ndarray] = []
+    m_samples: list[np.ndarray] = []
+    g_samples: list[np.ndarray] = []
     w_abs = np.zeros((n, n))
     rho = np.full(n, np.inf)
     # Keep the arg-max configuration of every entry, as search starts.
@@ -264,8 +290,10 @@ def estimate_bounds(
         m_abs = np.maximum(m_abs, keep('M', np.abs(values_m), q, mass).reshape(n, n))
         g_abs = np.maximum(g_abs, keep('g', np.abs(values_g), q, mass))
         c_abs = np.maximum(c_abs, keep('C', np.abs(values_c), q, mass).reshape(n, n, n))
-        if settings.coriolis_by_configuration:
+        if settings.configuration_wise:
             c_samples.append(np.abs(values_c).reshape(len(q), n, n, n).astype(np.float32))
+            m_samples.append(np.abs(values_m).reshape(len(q), n, n).astype(np.float32))
+            g_samples.append(np.abs(values_g).reshape(len(q), n).astype(np.float32))
         if paired:
             unit_m = np.maximum(unit_m, unit_part(values_m))
             unit_g = np.maximum(unit_g, unit_part(values_g))
@@ -333,6 +361,16 @@ def estimate_bounds(
 
     # ---- 3. inflation
     k = settings.inflation
+
+    def per_sample(parts: list[np.ndarray], kind: str, separate: np.ndarray
+                   ) -> np.ndarray | None:
+        # Refinement raised some entry beyond what sampling saw by gain[kind]: every sample
+        # takes that factor too, capped by the entry's separate maximum.
+        if not parts:
+            return None
+        scaled = np.concatenate(parts) * np.float32(k * (1.0 + max(gain[kind], 0.0)))
+        return np.minimum(scaled, (k * separate).astype(np.float32))
+
     return DynamicsBounds(
         mass_max=k * m_abs,
         inverse_mass_max=k * w_abs,
@@ -345,11 +383,9 @@ def estimate_bounds(
         settings=settings,
         evaluations=evaluator.count,
         refinement_gain=gain,
-        # Refinement raises entries beyond what sampling saw by up to gain['C']: the
-        # configuration-wise values take that factor too.
-        christoffel_samples=((k * (1.0 + max(gain['C'], 0.0))
-                              * np.concatenate(c_samples)).astype(float)
-                             if c_samples else None),
+        christoffel_samples=per_sample(c_samples, 'C', c_abs),
+        mass_samples=per_sample(m_samples, 'M', m_abs),
+        gravity_samples=per_sample(g_samples, 'g', g_abs),
     )
 
 

@@ -57,8 +57,9 @@ def explain_model_error_shortfall(model: RobotModel, bounds: DynamicsBounds,
     names = list(model.joint_names)
     umax = np.array(model.effort_limit)
     box = np.array(model.velocity_limit) / settings.velocity_scales
-    _, bias, disturbance = authority_problem(model, bounds, settings, box)
-    exact_bias = authority_problem(model, bounds, settings, box, exact_model=True)[1]
+    problem = authority_problem(model, bounds, settings, box)
+    bias, disturbance = problem.bias, problem.disturbance
+    exact_bias = authority_problem(model, bounds, settings, box, exact_model=True).bias
     reasons = []
     for i in np.flatnonzero(bias >= umax):
         if exact_bias[i] >= umax[i]:

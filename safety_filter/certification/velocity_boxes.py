@@ -37,14 +37,15 @@ def design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifyS
     rows = rows and settings.velocity_barrier
     fractions = np.broadcast_to(np.asarray(fractions, dtype=float), (model.n_joints,))
     velocity_box = fractions * np.array(model.velocity_limit)
-    mass, bias, disturbance = authority_problem(model, bounds, settings, velocity_box,
-                                                exact_model)
+    problem = authority_problem(model, bounds, settings, velocity_box, exact_model)
+    mass, bias, disturbance = problem.mass, problem.bias, problem.disturbance
     umax = np.array(model.effort_limit)
     weights = umax / np.diag(bounds.mass_max)
     candidates: dict[str, np.ndarray | None] = {}
     if settings.condition in ('auto', 'acceleration_authority'):
         candidates['acceleration_authority'] = authority_row_sums(
-            mass, bias, umax, weights, useful_authority(model, settings) if rows else None)
+            mass, bias, umax, weights, useful_authority(model, settings) if rows else None,
+            samples=problem.samples)
     if settings.condition in ('auto', 'torque_coupling'):
         coupled = authority_torque_coupling(bounds.inverse_mass_max, bounds.coupling_min, bias)
         if coupled is not None and rows:
@@ -126,9 +127,10 @@ def envelope_fraction(model: RobotModel, design: Design) -> np.ndarray:
 
 
 def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
-                        kind: str, exact_model: bool = False
-                        ) -> tuple[Design | None, dict]:
-    """The most permissive velocity box for family ``kind`` before the sampled-data margin.
+                        kind: str, exact_model: bool = False,
+                        margin: np.ndarray | None = None) -> tuple[Design | None, dict]:
+    """The most permissive velocity box for family ``kind`` with ``margin`` reserved from
+    the authority (default none: before the sampled-data margin is known).
 
     A common fraction of the rated speeds first (the grid of ``velocity_scales``), then,
     when ``per_joint_envelopes``, a coordinate search on each joint's fraction: the Coriolis
@@ -137,9 +139,9 @@ def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
     the slowest box tried (a fixed reference for the whole search), as a geometric mean.
     """
     n = model.n_joints
-    zero = np.zeros(n)
+    reserved = np.zeros(n) if margin is None else np.asarray(margin, dtype=float)
     floor = 1.0 / settings.velocity_scales
-    slow, _ = design_for_scale(model, bounds, settings, floor, zero, exact_model, kind)
+    slow, _ = design_for_scale(model, bounds, settings, floor, reserved, exact_model, kind)
     if slow is None:
         return None, {}
     reference = slow.usable
@@ -153,7 +155,7 @@ def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
     best, best_found, best_value = slow, {}, -np.inf
     best_fractions = np.full(n, floor)
     for scale in np.linspace(1.0, floor, settings.velocity_scales):
-        design, found = design_for_scale(model, bounds, settings, scale, zero, exact_model,
+        design, found = design_for_scale(model, bounds, settings, scale, reserved, exact_model,
                                           kind)
         value = score(design)
         if value > best_value + 1e-12:
@@ -169,7 +171,7 @@ def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
                     trial[i] = float(np.clip(trial[i] * (1.0 + sign * step), floor, 1.0))
                     if trial[i] == best_fractions[i]:
                         continue
-                    design, found = design_for_box(model, bounds, settings, trial, zero,
+                    design, found = design_for_box(model, bounds, settings, trial, reserved,
                                                     kind, exact_model)
                     value = score(design)
                     if value > best_value + 1e-9:

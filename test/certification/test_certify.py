@@ -140,30 +140,39 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
     assert c.condition == 'acceleration_authority'
     # The row-sum data with the declared model error (docs/method.md); the weights stay
     # those of the model's own mass bound.
-    mbar, hbar, _ = authority_problem(model, outcome.bounds, CertifySettings(),
-                                      np.array(c.velocity_bound))
+    problem = authority_problem(model, outcome.bounds, CertifySettings(),
+                                np.array(c.velocity_bound))
+    assert problem.samples is not None  # configuration-wise rows by default
     umax = np.array(model.effort_limit)
     weights = umax / np.diag(outcome.bounds.mass_max)
     # Designs with velocity barriers do not spend authority beyond what enlarges S.
     cap = useful_authority(model, CertifySettings()) if c.has_velocity_barriers else None
-    authority = authority_row_sums(mbar, hbar, umax, weights, cap)
+    authority = authority_row_sums(problem.mass, problem.bias, umax, weights, cap,
+                                   samples=problem.samples)
     assert authority is not None
     np.testing.assert_allclose(authority, c.authority, rtol=1e-9)
     assert np.all(authority > 0.0)
-    assert np.all(mbar @ authority + hbar <= umax * (1 + 1e-12))
-    held = np.zeros(len(umax), dtype=bool)
+    # Every sampled configuration's rows hold, as one linear program with all of them.
+    n = len(umax)
+    rows = problem.samples[0].reshape(-1, n).astype(float)
+    room = (umax - problem.samples[1]).reshape(-1)
+    assert np.all(rows @ authority <= room + 1e-12 * np.max(umax))
+    # ... and no row is above the row of separate maxima (it only removes conservatism).
+    assert np.all(problem.samples[0] <= problem.mass + 1e-6 * np.abs(problem.mass))
+    assert np.all(problem.samples[1] <= problem.bias * (1 + 1e-6))
+    held = np.zeros(n, dtype=bool)
     if cap is not None:
         assert np.all(authority <= cap * (1 + 1e-9))
         held = authority >= cap * (1 - 1e-9)
-    # Phase 1 solved independently: max t s.t. Mbar e <= umax - hbar, e >= t w on the joints
-    # not held at their cap, e >= cap on the others, e >= 0.
-    n = len(umax)
+    # Phase 1 solved independently on every sample's rows at once (the certification adds
+    # them as cuts): max t s.t. rows e <= room, e >= t w on the joints not held at their
+    # cap, e >= cap on the others, e >= 0.
     share = np.where(held, 0.0, weights)
     floor = np.where(held, -np.asarray(cap if cap is not None else np.zeros(n)), 0.0)
     reference = linprog(
         np.r_[np.zeros(n), -1.0],
-        A_ub=np.block([[mbar, np.zeros((n, 1))], [-np.eye(n), share[:, None]]]),
-        b_ub=np.r_[umax - hbar, floor], bounds=[(0, None)] * (n + 1), method='highs')
+        A_ub=np.block([[rows, np.zeros((len(rows), 1))], [-np.eye(n), share[:, None]]]),
+        b_ub=np.r_[room, floor], bounds=[(0, None)] * (n + 1), method='highs')
     assert reference.status == 0, reference.message
     t_star = reference.x[-1]
     assert float(np.min((authority / weights)[~held])) == pytest.approx(t_star, rel=1e-6)
@@ -442,7 +451,7 @@ def test_planar2_coriolis_bound_against_its_closed_form() -> None:
     the configuration-wise bound is that, inflated, where the sum of separate maxima is the
     same here (one configuration holds every entry's maximum)."""
     model = load_demo_arm('planar2')
-    settings = BoundSettings(coriolis_by_configuration=True)
+    settings = BoundSettings(configuration_wise=True)
     bounds = estimate_bounds(model, settings)
     box = np.array([1.2, 2.0])
     elbow = np.linspace(model.position_lower[1], model.position_upper[1], 100_001)
@@ -466,8 +475,9 @@ def test_bench6_coriolis_bound_holds_against_pinocchio_and_beats_the_separate_su
     under the bound; the bound is well under the sum of the entries' separate maxima."""
     pin = pytest.importorskip('pinocchio')
     model = load_demo_arm('bench6')
-    bounds = estimate_bounds(model, BoundSettings(coriolis_by_configuration=True))
-    assert estimate_bounds(model).christoffel_samples is None  # off by default
+    bounds = estimate_bounds(model)  # configuration-wise by default
+    assert estimate_bounds(model, BoundSettings(configuration_wise=False)
+                           ).christoffel_samples is None
     box = 0.6 * np.array(model.velocity_limit)
     full = pin.buildModelFromUrdf(str(demo_arm_files('bench6')[0]))
     # the fingers locked where the model locks them
@@ -492,6 +502,46 @@ def test_bench6_coriolis_bound_holds_against_pinocchio_and_beats_the_separate_su
     separate = np.einsum('ijk,j,k->i', bounds.christoffel_max, box, box)
     assert np.all(bound >= worst), (bound, worst)
     assert np.all(bound <= 0.8 * separate), (bound, separate)
+
+
+def test_bench6_torque_rows_hold_against_pinocchio_and_beat_the_separate_maxima() -> None:
+    """The configuration-wise rows of the authority condition bound the torque: Pinocchio's
+    inverse dynamics (``rnea``, package ``pin``; gravity, Coriolis and inertia together) at
+    random configurations, velocities at the box's corners and accelerations at the
+    corners of ``|a_i| <= e_i`` never exceed the largest sampled row; that row is well under
+    the row of separate maxima for the shoulder, whose gravity, inertia and Coriolis peak at
+    different configurations."""
+    pin = pytest.importorskip('pinocchio')
+    model = load_demo_arm('bench6')
+    assert model.payload.mass_min == 0.0  # the URDF's arm, without payload, is in the range
+    bounds = estimate_bounds(model)
+    box = 0.6 * np.array(model.velocity_limit)
+    authority = np.array([0.5, 0.5, 1.0, 6.0, 6.0, 40.0])
+    viscous, coulomb = np.array(model.viscous_friction), np.array(model.coulomb_friction)
+    mass, bias = bounds.row_samples(box, viscous, coulomb)
+    rows = (mass.astype(float) @ authority + bias).max(axis=0)
+    separate = bounds.mass_max @ authority + bounds.bias_max(box, viscous, coulomb)
+    assert np.all(rows <= separate * (1 + 1e-6))
+    assert rows[1] <= 0.95 * separate[1], (rows, separate)
+    full = pin.buildModelFromUrdf(str(demo_arm_files('bench6')[0]))
+    reference = pin.neutral(full)
+    locked = []
+    for name, position in model.locked_positions.items():
+        joint = full.getJointId(name)
+        reference[full.joints[joint].idx_q] = position
+        locked.append(joint)
+    robot = pin.buildReducedModel(full, locked, reference)
+    data = robot.createData()
+    rng = np.random.default_rng(3)
+    n = model.n_joints
+    signs = np.array(list(itertools.product((-1.0, 1.0), repeat=n)))
+    worst = np.zeros(n)
+    for q in rng.uniform(model.position_lower, model.position_upper, (400, n)):
+        for v in signs[rng.integers(0, len(signs), 8)] * box:
+            for a in signs[rng.integers(0, len(signs), 8)] * authority:
+                torque = pin.rnea(robot, data, q, v, a) + viscous * v + coulomb * np.sign(v)
+                worst = np.maximum(worst, np.abs(torque))
+    assert np.all(rows >= worst), (rows, worst)
 
 
 # ---------------------------------------------------------------------- files
