@@ -22,8 +22,8 @@ from safety_filter.core.robot_model import RobotModel
 
 def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.ndarray,
                        weights: np.ndarray, cap: np.ndarray | None = None,
-                       samples: tuple[np.ndarray, np.ndarray] | None = None
-                       ) -> np.ndarray | None:
+                       samples: tuple[np.ndarray, np.ndarray] | None = None,
+                       start_rows: set[int] | None = None) -> np.ndarray | None:
     """Acceleration authority from the row-sum condition (docs/method.md), or None.
 
     Solves ``max t`` s.t. ``Mbar e + hbar <= umax``, ``e >= t w``, then, with ``t`` fixed at
@@ -37,6 +37,8 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
     configuration, ``mass_s e + bias_s <= umax`` for every ``s``, instead of the one row of
     maxima (:meth:`DynamicsBounds.row_samples`); the linear program then takes them in as
     cuts: the rows that bind the answer so far, until every sample's rows hold.
+    ``start_rows`` (flat indices ``s * n + i``) seeds them and receives the rows used: a
+    search over nearby velocity boxes binds on nearly the same configurations.
     """
     if samples is None:
         return _row_sum_lp(mass_max, effort - bias_max, weights, cap)
@@ -50,7 +52,7 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
     # Start from each row's most loaded samples (largest bias, largest inertia at the
     # weights), then add the rows the answer breaks until none is broken.
     load = (mass.astype(float) @ weights).reshape(count, n)
-    picked = set()
+    picked = set() if start_rows is None else start_rows
     for i in range(n):
         for column in (bias[:, i], load[:, i]):
             picked.update(int(s) * n + i for s in np.argsort(column)[-4:])

@@ -59,6 +59,9 @@ class CertifySettings:
             periods (so the limits also hold at a rate this many times slower).
         margin_samples, margin_inflation: rollouts and inflation of the sampled-data margin.
         velocity_scales: how many common velocity scales to try in (0, 1].
+        velocity_headroom: every velocity box stays this share of the rated speed below
+            it: model error that the disturbance observer has not yet removed can carry a
+            joint past its box for a few periods (docs/method.md, Certification).
         min_velocity_fraction: certification fails when the certified velocity bound of a
             joint is below this fraction of its rated limit.
         condition: 'auto', 'acceleration_authority' or 'torque_coupling'.
@@ -97,6 +100,7 @@ class CertifySettings:
     margin_samples: int = 1000
     margin_inflation: float = 1.5
     velocity_scales: int = 40
+    velocity_headroom: float = 0.05
     min_velocity_fraction: float = 0.05
     condition: str = 'auto'
     falsifier_states: int = 100_000
@@ -120,6 +124,9 @@ class CertifySettings:
             raise InvalidValue('braking_slope_share', self.braking_slope_share, 'in (0, 1]')
         if self.alpha2.kind not in ALPHA2_KINDS:
             raise InvalidValue('alpha2', self.alpha2.kind, f'one of {kinds2}')
+        if not 0.0 <= self.velocity_headroom <= 1.0 - 1.0 / self.velocity_scales:
+            raise InvalidValue('velocity_headroom', self.velocity_headroom,
+                               'in [0, 1 - 1 / velocity_scales]')
         if not 0.0 < self.gamma_margin < 1.0:
             raise InvalidValue('gamma_margin', self.gamma_margin, 'in (0, 1)')
         if not self.beta_margin > 1.0:
@@ -144,6 +151,11 @@ class CertifySettings:
         or ``mean_over_hold`` off)."""
         damped = bool(np.any(np.array(model.viscous_friction) > 0.0))
         return 1.0 / self.control_rate_hz if self.mean_over_hold is True and damped else 0.0
+
+    @property
+    def top_velocity_fraction(self) -> float:
+        """The largest share of its rated speed a joint's velocity box may reach."""
+        return 1.0 - self.velocity_headroom
 
     @property
     def hold_period_s(self) -> float:

@@ -113,6 +113,9 @@ class DynamicsBounds:
     christoffel_samples: np.ndarray | None = None
     mass_samples: np.ndarray | None = None
     gravity_samples: np.ndarray | None = None
+    # Sample rows that bound the authority LP so far (flat ``s * n + i``): the cuts a
+    # search over velocity boxes starts from (authority.authority_row_sums).
+    binding_rows: set[int] = field(default_factory=set, repr=False, compare=False)
 
     def coriolis_max(self, velocity_box: np.ndarray) -> np.ndarray:
         """A bound of ``|(C(q, v) v)_i|`` over the joint box and ``|v_j| <= vb_j``:

@@ -34,12 +34,12 @@ def what_limits_the_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
             limits.append('')
             continue
         trial = start.fractions.copy()
-        trial[i] = 1.0
+        trial[i] = settings.top_velocity_fraction
         faster, _ = design_for_box(model, bounds, settings, trial, np.zeros(len(margin)),
                                     kind)
         if faster is None:
-            text = ('torque: at its rated speed the Coriolis and gravity bounds leave some '
-                    'joint no authority')
+            text = (f'torque: at {100 * settings.top_velocity_fraction:.0f} % of its rated '
+                    'speed the Coriolis and gravity bounds leave some joint no authority')
         else:
             text = ('coupling: a faster box for this joint takes more safe set from the '
                     'others than it adds')

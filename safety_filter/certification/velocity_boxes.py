@@ -45,7 +45,7 @@ def design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifyS
     if settings.condition in ('auto', 'acceleration_authority'):
         candidates['acceleration_authority'] = authority_row_sums(
             mass, bias, umax, weights, useful_authority(model, settings) if rows else None,
-            samples=problem.samples)
+            samples=problem.samples, start_rows=bounds.binding_rows)
     if settings.condition in ('auto', 'torque_coupling'):
         coupled = authority_torque_coupling(bounds.inverse_mass_max, bounds.coupling_min, bias)
         if coupled is not None and rows:
@@ -154,7 +154,8 @@ def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
 
     best, best_found, best_value = slow, {}, -np.inf
     best_fractions = np.full(n, floor)
-    for scale in np.linspace(1.0, floor, settings.velocity_scales):
+    top = settings.top_velocity_fraction
+    for scale in np.linspace(top, floor, settings.velocity_scales):
         design, found = design_for_scale(model, bounds, settings, scale, reserved, exact_model,
                                           kind)
         value = score(design)
@@ -168,7 +169,7 @@ def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
             for i in range(n):
                 for sign in (1.0, -1.0):
                     trial = best_fractions.copy()
-                    trial[i] = float(np.clip(trial[i] * (1.0 + sign * step), floor, 1.0))
+                    trial[i] = float(np.clip(trial[i] * (1.0 + sign * step), floor, top))
                     if trial[i] == best_fractions[i]:
                         continue
                     design, found = design_for_box(model, bounds, settings, trial, reserved,
