@@ -12,7 +12,7 @@ from safety_filter.certification.certify_settings import CertifySettings
 from safety_filter.certification.design_formulas import Design
 from safety_filter.certification.dynamics_bounds import DynamicsBounds
 from safety_filter.certification.sampled_data_margin import sampled_inverse_mass
-from safety_filter.certification.velocity_boxes import design_for_box
+from safety_filter.certification.velocity_boxes import design_for_box, safe_set_areas
 from safety_filter.core.robot_model import RobotModel
 
 ENVELOPE_REPORTED_BELOW = 0.8  # box fractions below this get a reason in the certificate
@@ -22,30 +22,48 @@ def what_limits_the_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
                          kind: str, start: Design, design: Design, margin: np.ndarray
                          ) -> list[str]:
     """Per joint, why its velocity box is below ``ENVELOPE_REPORTED_BELOW`` of its rated
-    speed ('' where it is not): the torque limits (at the rated speed the dynamics bounds
-    leave some joint no authority), the coupling (a faster box for it costs the others more
-    safe set than it adds), or the sampled-data margin (which shrank the box the search
-    chose)."""
+    speed ('' where it is not): the torque limits (at the top of the box the dynamics
+    bounds leave some joint no authority, or the joint's own authority falls so far that its
+    safe set would not grow), the coupling (a faster box for it shrinks
+    another joint's safe set; the text names the joint that loses most, and by how much),
+    or the sampled-data margin (which cost the box the search chose a share of it)."""
     limits = []
-    shrunk = float(np.max(design.fractions / start.fractions))
+    names = list(model.joint_names)
+    top = settings.top_velocity_fraction
+    before = safe_set_areas(model, start)
     for i in range(model.n_joints):
         fraction = float(design.fractions[i])
         if fraction >= ENVELOPE_REPORTED_BELOW:
             limits.append('')
             continue
         trial = start.fractions.copy()
-        trial[i] = settings.top_velocity_fraction
+        trial[i] = top
         faster, _ = design_for_box(model, bounds, settings, trial, np.zeros(len(margin)),
                                     kind)
         if faster is None:
-            text = (f'torque: at {100 * settings.top_velocity_fraction:.0f} % of its rated '
-                    'speed the Coriolis and gravity bounds leave some joint no authority')
+            text = (f'torque: at {100 * top:.0f} % of its rated speed the Coriolis and gravity '
+                    'bounds leave some joint no authority')
         else:
-            text = ('coupling: a faster box for this joint takes more safe set from the '
-                    'others than it adds')
-        if shrunk < 0.999:
-            text += (f'; then sampling: the sampled-data margin shrank the box the search '
-                     f'chose ({100 * start.fractions[i]:.0f} %) by {100 * (1 - shrunk):.0f} %')
+            change = safe_set_areas(model, faster) / np.maximum(before, 1e-300) - 1.0
+            others = [j for j in range(model.n_joints) if j != i]
+            loser = others[int(np.argmin(change[others]))] if others else i
+            if change[i] <= 0.005:
+                text = (f'torque: at {100 * top:.0f} % of its rated speed its own safe set '
+                        f'would change by {100 * change[i]:+.0f} %: the Coriolis torque of a '
+                        'faster box takes the authority that braking needs')
+            elif loser != i and change[loser] < 0.0:
+                text = (f'coupling: at {100 * top:.0f} % of its rated speed its safe set would '
+                        f'grow by {100 * change[i]:.0f} % and that of {names[loser]!r} shrink '
+                        f'by {-100 * change[loser]:.0f} % (their torques share the limits '
+                        'through the Coriolis and inertia bounds)')
+            else:
+                text = (f'search: at {100 * top:.0f} % of its rated speed its safe set would '
+                        f'grow by {100 * change[i]:.0f} % and no other would shrink, but the '
+                        'coordinate search stopped below it')
+        kept = fraction / float(start.fractions[i])
+        if kept < 0.999:
+            text += (f'; then sampling: the sampled-data margin cost the box the search chose '
+                     f'({100 * start.fractions[i]:.0f} %) {100 * (1 - kept):.0f} % of it')
         limits.append(text)
     return limits
 
