@@ -22,7 +22,7 @@ from safety_filter.core.robot_model import RobotModel
 
 def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.ndarray,
                        weights: np.ndarray, cap: np.ndarray | None = None,
-                       samples: tuple[np.ndarray, np.ndarray] | None = None,
+                       samples: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
                        start_rows: set[int] | None = None) -> np.ndarray | None:
     """Acceleration authority from the row-sum condition (docs/method.md), or None.
 
@@ -33,47 +33,58 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
     and the others share again (authority a joint has no use for goes to the others); the
     second phase keeps every ``e_i`` at most its cap.
 
-    With ``samples = (mass (S, n, n), bias (S, n))`` the rows are those of each sampled
-    configuration, ``mass_s e + bias_s <= umax`` for every ``s``, instead of the one row of
-    maxima (:meth:`DynamicsBounds.row_samples`); the linear program then takes them in as
-    cuts: the rows that bind the answer so far, until every sample's rows hold.
-    ``start_rows`` (flat indices ``s * n + i``) seeds them and receives the rows used: a
-    search over nearby velocity boxes binds on nearly the same configurations.
+    With ``samples = (mass (S, n, n), extra (n, n), bias (S, n))`` the rows are those of
+    each sampled configuration, ``(mass_s + extra) e + bias_s <= umax`` for every ``s``,
+    instead of the one row of maxima (:meth:`DynamicsBounds.row_samples`; ``extra`` is
+    what the declared model error adds to every configuration's inertia); the linear
+    program then takes them in as cuts: the rows that bind the answer so far, until every
+    sample's rows hold. ``start_rows`` (flat indices ``s * n + i``) seeds them and receives
+    the rows that bind the answer: a search over nearby velocity boxes binds on nearly the
+    same configurations.
     """
     if samples is None:
         return _row_sum_lp(mass_max, effort - bias_max, weights, cap)
-    mass, bias = samples
+    mass, extra, bias = samples
     count, n = bias.shape
-    room = effort - bias  # (S, n)
+    room = (effort - bias).reshape(-1)  # (S n,)
     if np.any(room <= 0.0):
         return None
-    rows = mass.reshape(count * n, n).astype(float)
-    bounds = room.reshape(-1)
-    # Start from each row's most loaded samples (largest bias, largest inertia at the
-    # weights), then add the rows the answer breaks until none is broken.
-    load = (mass.astype(float) @ weights).reshape(count, n)
-    picked = set() if start_rows is None else start_rows
-    for i in range(n):
-        for column in (bias[:, i], load[:, i]):
-            picked.update(int(s) * n + i for s in np.argsort(column)[-4:])
+    rows = mass.reshape(count * n, n)
+    extra_rows = np.tile(extra, (count, 1))  # row s n + i is extra[i]
+
+    def usage(authority: np.ndarray) -> np.ndarray:
+        return rows @ authority + np.tile(extra @ authority, count)
+
+    picked = set() if start_rows is None else set(start_rows)
+    if not picked:
+        # each row's most loaded samples: largest bias, largest inertia at the weights
+        load = (mass @ weights).T  # (n, S)
+        for i in range(n):
+            for column in (bias[:, i], load[i]):
+                picked.update(int(s) * n + i for s in np.argpartition(column, -4)[-4:])
+    tolerance = 1e-9 * np.tile(effort, count)
     authority = None
     for _ in range(100):
-        active = np.array(sorted(picked))
-        authority = _row_sum_lp(rows[active], bounds[active], weights, cap)
+        active = np.fromiter(picked, dtype=int)
+        authority = _row_sum_lp(rows[active] + extra_rows[active], room[active], weights, cap)
         if authority is None:
             return None
-        excess = rows @ authority - bounds
-        broken = excess > 1e-9 * np.repeat(effort[None, :], count, axis=0).reshape(-1)
+        excess = usage(authority) - room
+        broken = excess > tolerance
         if not broken.any():
             break
         # the most broken samples of each joint's row
-        per_joint = excess.reshape(count, n)
+        per_joint = excess.reshape(count, n).T
         for i in range(n):
-            worst = np.argsort(per_joint[:, i])[-4:]
-            picked.update(int(s) * n + i for s in worst if per_joint[s, i] > 0.0)
+            worst = np.argpartition(per_joint[i], -4)[-4:]
+            picked.update(int(s) * n + i for s in worst if per_joint[i, s] > 0.0)
     # Guard against LP round-off and an unfinished loop: scale down until every row holds.
-    usage = rows @ authority
-    scale = min(1.0, float(np.min(bounds / np.maximum(usage, 1e-300))))
+    used = usage(authority)
+    scale = min(1.0, float(np.min(room / np.maximum(used, 1e-300))))
+    if start_rows is not None:  # keep the rows that bind this answer for the next box
+        start_rows.clear()
+        start_rows.update(np.flatnonzero(room - used * scale <= 1e-6 * np.tile(effort, count)
+                                         ).tolist())
     return authority * scale
 
 
@@ -126,14 +137,15 @@ def authority_torque_coupling(inverse_mass_max: np.ndarray, coupling_min: np.nda
 @dataclass
 class RowSumProblem:
     """The row-sum condition's data at a velocity box: ``mass @ e + bias <= umax`` with the
-    separate maxima, and per sampled configuration (``samples``: ``(S, n, n)`` and
-    ``(S, n)`` arrays, or None) when the bounds keep them; ``disturbance`` is the
-    declared model error's bound, already added to both."""
+    separate maxima, and per sampled configuration (``samples``: the inertia per sample
+    ``(S, n, n)``, what model error adds to each ``(n, n)``, the bias per sample ``(S, n)``;
+    or None) when the bounds keep them; ``disturbance`` is the declared model error's
+    bound, already added to both."""
 
     mass: np.ndarray
     bias: np.ndarray
     disturbance: DisturbanceBound
-    samples: tuple[np.ndarray, np.ndarray] | None
+    samples: tuple[np.ndarray, np.ndarray, np.ndarray] | None
 
 
 def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
@@ -151,10 +163,10 @@ def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: Certi
     viscous, coulomb = np.array(model.viscous_friction), np.array(model.coulomb_friction)
     bias = bounds.bias_max(velocity_box, viscous, coulomb) + outside.static_total
     mass = bounds.mass_max + outside.inertial_total
-    samples = bounds.row_samples(velocity_box, viscous, coulomb)
-    if samples is not None:
-        samples = (samples[0] + np.asarray(outside.inertial_total, dtype=samples[0].dtype),
-                   samples[1] + outside.static_total)
+    rows = bounds.row_samples(velocity_box, viscous, coulomb)
+    samples = None if rows is None else (
+        rows[0], np.broadcast_to(np.asarray(outside.inertial_total, dtype=float), mass.shape),
+        rows[1] + outside.static_total)
     return RowSumProblem(mass, bias, disturbance, samples)
 
 

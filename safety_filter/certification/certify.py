@@ -366,12 +366,32 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
             # bound is quadratic in it): search the box again with the margin just found
             # reserved, so that each joint gives up only the speed its own margin costs,
             # instead of shrinking every box by one common factor.
-            again, _ = search_velocity_box(model, bounds, settings, kind, margin=margin)
-            if again is not None:
-                redone, redone_margin, redone_last = settle(again.fractions)
-                if redone is not None:
-                    top, design, margin, last_design = (again.fractions, redone,
-                                                        redone_margin, redone_last)
+            # Each failed attempt leaves a larger margin estimate: search again with it. The
+            # margin found at the first, fastest box overstates that of a slower one, so
+            # once a box settles, search again with its own margin while that enlarges S.
+            reserved = margin
+            for _ in range(3):
+                again, _ = search_velocity_box(model, bounds, settings, kind, margin=reserved)
+                if again is None or (design is not None and np.allclose(
+                        again.fractions, design.fractions, rtol=0.02)):
+                    break
+                fractions = again.fractions
+                redone, redone_margin, redone_last = settle(fractions)
+                if redone is None and design is not None:
+                    # halfway between the box that settled and the faster one
+                    fractions = np.sqrt(fractions * design.fractions)
+                    redone, redone_margin, redone_last = settle(fractions)
+                    if redone is None:
+                        break
+                if redone is None:
+                    reserved = np.maximum(reserved, redone_margin)
+                    continue
+                if design is not None and (design_score(model, redone)
+                                           <= design_score(model, design)):
+                    break
+                top, design, margin, last_design = (fractions, redone, redone_margin,
+                                                    redone_last)
+                reserved = redone_margin
         if design is None:
             floor = 1.0 / settings.velocity_scales
             low_factor = float(np.max(floor / top))
@@ -445,9 +465,10 @@ def _model_error_record(model: RobotModel, bounds: DynamicsBounds, settings: Cer
     viscous, coulomb = np.array(model.viscous_friction), np.array(model.coulomb_friction)
     bias = bounds.bias_max(design.velocity_box, viscous, coulomb)
     umax = np.array(model.effort_limit)
+    rows = bounds.row_samples(design.velocity_box, viscous, coulomb)
     exact = authority_row_sums(bounds.mass_max, bias, umax, umax / np.diag(bounds.mass_max),
-                               samples=bounds.row_samples(design.velocity_box, viscous,
-                                                          coulomb))
+                               samples=None if rows is None else (
+                                   rows[0], np.zeros_like(bounds.mass_max), rows[1]))
     uncertainty = model.uncertainty
     record: dict[str, Any] = {
         'disturbance_constant': _plain(design.disturbance.constant_part(design.authority)),

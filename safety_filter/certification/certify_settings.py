@@ -54,6 +54,9 @@ class CertifySettings:
         gamma_margin: ``gamma <= gamma_margin * gamma*`` (< 1).
         beta_margin: ``beta >= beta_margin * beta*`` (> 1).
         beta_sampling_limit: cap ``beta * max(alpha2(b)/b) * T_hold <= beta_sampling_limit``.
+        beta_cap_share: ``beta`` is at least this share of that cap (1: at the cap, the most
+            permissive; 0: the least ``beta`` that certifies, which slows the arm long
+            before it nears a limit; docs/method.md).
         control_rate_hz: the filter's control rate [Hz].
         sampling_factor: the sampled-data margin covers hold periods of this many control
             periods (so the limits also hold at a rate this many times slower).
@@ -95,12 +98,13 @@ class CertifySettings:
     gamma_margin: float = 0.9
     beta_margin: float = 1.2
     beta_sampling_limit: float = 0.1
+    beta_cap_share: float = 0.05
     control_rate_hz: float = 1000.0
     sampling_factor: float = 1.0
     margin_samples: int = 1000
     margin_inflation: float = 1.5
     velocity_scales: int = 40
-    velocity_headroom: float = 0.05
+    velocity_headroom: float = 0.1
     min_velocity_fraction: float = 0.05
     condition: str = 'auto'
     falsifier_states: int = 100_000
@@ -127,6 +131,8 @@ class CertifySettings:
         if not 0.0 <= self.velocity_headroom <= 1.0 - 1.0 / self.velocity_scales:
             raise InvalidValue('velocity_headroom', self.velocity_headroom,
                                'in [0, 1 - 1 / velocity_scales]')
+        if not 0.0 <= self.beta_cap_share <= 1.0:
+            raise InvalidValue('beta_cap_share', self.beta_cap_share, 'in [0, 1]')
         if not 0.0 < self.gamma_margin < 1.0:
             raise InvalidValue('gamma_margin', self.gamma_margin, 'in (0, 1)')
         if not self.beta_margin > 1.0:

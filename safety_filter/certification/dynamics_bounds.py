@@ -387,7 +387,8 @@ def estimate_bounds(
         evaluations=evaluator.count,
         refinement_gain=gain,
         christoffel_samples=per_sample(c_samples, 'C', c_abs),
-        mass_samples=per_sample(m_samples, 'M', m_abs),
+        mass_samples=(None if not m_samples else  # float64: the LP's rows, every call
+                      per_sample(m_samples, 'M', m_abs).astype(float)),
         gravity_samples=per_sample(g_samples, 'g', g_abs),
     )
 

@@ -27,8 +27,10 @@ class DisturbanceObserver:
 
     Args:
         time_constants: the low-pass time constant per joint [s] (> 0).
-        delay_periods: the torque that acted over the last period was sent this many
-            periods before the last one (the certificate's declared delay).
+        delay_periods: the declared delay between a step and its torque acting, in control
+            periods of the certificate (``control_period_s``). It is kept as a time: at
+            another loop period the torque that acted over the last period is the
+            time-weighted mix of the two sent around that delay.
         torque_limit: the torque box [N m]; the estimate stays inside it.
         dynamics: the filter's step dynamics (friction and gravity for the bound).
         heavier: the same model one kilogram heavier (the payload's share of the bound), or
@@ -54,9 +56,16 @@ class DisturbanceObserver:
         self._heavier = heavier
         self._parameters = disturbance_parameters
         self.disturbance = np.zeros(n)  # estimated torque beyond the model [N m]
-        self._sent = np.zeros((self.delay_periods + 1, n))  # full torques sent, oldest first
+        self.delay_s = self.delay_periods * self.control_period_s
+        # full torques sent, oldest first; two more than the delay at the certified period
+        self._sent = np.zeros((self.delay_periods + 2, n))
+        self._acted = np.empty(n)
         self._count = 0  # torques recorded since the last restart
         self._v = np.zeros(n)  # velocity at the last step
+        # M and h at the last step: the period just ended started there, and the plan for it
+        # was made with them (the residual over the period is measured against that plan).
+        self._mass = np.zeros((n, n))
+        self._bias = np.zeros(n)
         self._valid = False  # _v belongs to the step before this one
         self._step = np.empty(n)
 
@@ -79,14 +88,26 @@ class DisturbanceObserver:
         last step (None: the control period).
         """
         period = self.control_period_s if period_s is None else float(period_s)
-        full = self._count > self.delay_periods
-        if self._valid and full and math.isfinite(period) and period > 0.0:
+        usable = self._valid and math.isfinite(period) and period > 0.0
+        if usable:
+            # Over the period just ended, the torque sent ``whole`` steps before the last one
+            # acted for the last ``1 - part`` of it and the one before for the first ``part``.
+            whole, part = divmod(self.delay_s / period, 1.0)
+            whole = int(whole)
+            if whole + 2 > len(self._sent):  # a loop faster than certified: the oldest kept
+                whole, part = len(self._sent) - 2, 1.0
+            usable = self._count > whole + (part > 0.0)
+        if usable:
+            acted = self._acted
+            np.multiply(self._sent[-1 - whole], 1.0 - part, out=acted)
+            if part > 0.0:
+                acted += part * self._sent[-2 - whole]
             step = self._step
             np.subtract(v, self._v, out=step)
             step /= period
-            measured = mass @ step
-            measured += bias
-            measured -= self._sent[0]  # what acted: sent delay + 1 steps ago
+            measured = self._mass @ step
+            measured += self._bias
+            measured -= acted
             # A torque beyond twice the box cannot act on the arm: the two samples are not
             # one period apart (a gap, a reset, a replayed jump); skip them.
             if _kernels.within_box(measured, self._plausible):
@@ -100,6 +121,8 @@ class DisturbanceObserver:
         limit = self.limit(q, v, bias)
         np.clip(self.disturbance, -limit, limit, out=self.disturbance)
         self._v[:] = v
+        self._mass[:] = mass
+        self._bias[:] = bias
         bias -= self.disturbance
 
     def limit(self, q: np.ndarray, v: np.ndarray, bias: np.ndarray) -> np.ndarray:

@@ -154,12 +154,13 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
     assert np.all(authority > 0.0)
     # Every sampled configuration's rows hold, as one linear program with all of them.
     n = len(umax)
-    rows = problem.samples[0].reshape(-1, n).astype(float)
-    room = (umax - problem.samples[1]).reshape(-1)
+    mass, extra, bias = problem.samples
+    rows = (mass + extra).reshape(-1, n)
+    room = (umax - bias).reshape(-1)
     assert np.all(rows @ authority <= room + 1e-12 * np.max(umax))
     # ... and no row is above the row of separate maxima (it only removes conservatism).
-    assert np.all(problem.samples[0] <= problem.mass + 1e-6 * np.abs(problem.mass))
-    assert np.all(problem.samples[1] <= problem.bias * (1 + 1e-6))
+    assert np.all(mass + extra <= problem.mass + 1e-6 * np.abs(problem.mass))
+    assert np.all(bias <= problem.bias * (1 + 1e-6))
     held = np.zeros(n, dtype=bool)
     if cap is not None:
         assert np.all(authority <= cap * (1 + 1e-9))

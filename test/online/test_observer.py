@@ -18,6 +18,7 @@ from filter_fixtures import demo_arm_and_certificate
 from safety_filter import SafetyFilter
 from safety_filter.core.dynamics import Dynamics
 from safety_filter.core.model_uncertainty import model_with_inertials
+from safety_filter.online.disturbance_observer import DisturbanceObserver
 from safety_filter.simulation.command_sources import BangBang, PDBeyondLimits
 from safety_filter.simulation.demo_arms import demo_arm_files
 from safety_filter.simulation.plant import ArmSimulator, limit_violations
@@ -319,3 +320,69 @@ def test_a_position_jump_is_refused_until_it_stays() -> None:
     plain = SafetyFilter(model, certificate, observer_time_constant_s=0.0)
     plain.step(q, v, hold)
     assert str(plain.step(glitch, v, hold).mode) != 'rejected'
+
+
+def _observer(delay_periods: int, period_s: float, n: int = 2,
+              time_constant_s: float = 1e-9) -> DisturbanceObserver:
+    """An observer with the torque box only (no certificate range) and so short a time
+    constant that each estimate is the last period's residual (gain 1/3 at most)."""
+    return DisturbanceObserver(np.full(n, time_constant_s), delay_periods, np.full(n, 100.0),
+                               None, None, None, period_s)
+
+
+@pytest.mark.parametrize('loop_period_s, expected_mix', [(1e-3, (1.0, 0.0)),
+                                                         (2e-3, (0.5, 0.5)),
+                                                         (4e-3, (0.25, 0.75))])
+def test_observer_keeps_the_declared_delay_as_a_time(loop_period_s: float,
+                                                     expected_mix: tuple[float, float]) -> None:
+    """A 1 ms delay declared at 1 kHz: at a loop period T the torque sent at the last step
+    acts for the last T - 1 ms of the period and the one before for the first 1 ms. With a
+    unit mass and no bias the measured motion is that mix exactly, so the estimate stays
+    zero; taking the torque of one step before (the delay counted in the loop's periods)
+    would read the change of command as a disturbance."""
+    observer = _observer(1, 1e-3)
+    rng = np.random.default_rng(4)
+    sent = [np.zeros(2), np.zeros(2)]
+    v = np.zeros(2)
+    mass, zero = np.eye(2), np.zeros(2)
+    for step in range(40):
+        observer.observe(zero, v, mass, zero.copy(), loop_period_s)
+        assert np.all(np.abs(observer.disturbance) < 1e-9), (step, observer.disturbance)
+        command = rng.uniform(-5.0, 5.0, 2)
+        observer.sent(command)
+        sent.append(command)
+        acted = expected_mix[0] * sent[-2] + expected_mix[1] * sent[-1]
+        v = v + loop_period_s * acted  # what the unit mass does over the next period
+
+
+def test_observer_measures_against_the_plan_made_at_the_start_of_the_period() -> None:
+    """On the exact model (RK4 at 10 kHz as the plant) with the arm moving, the acceleration
+    over a period drifts from the one planned at its start, as the state moves. The observer
+    compares the motion with the plan made at the start (M and h there), so its estimate is
+    the drift of the last period, and the next plan with it predicts the next period's mean
+    acceleration several times better than the plan without it. Measured with M and h at the
+    end of the period instead, the estimate has the wrong sign and makes the plan worse."""
+    model, certificate = demo_arm_and_certificate('planar2')
+    payload = 0.5 * (model.payload.mass_min + model.payload.mass_max)
+    dynamics = Dynamics(model, payload)
+    plant = ArmSimulator(model, payload, PLANT_RATE_HZ)
+    period = 1.0 / CONTROL_RATE_HZ
+    observer = _observer(0, period, time_constant_s=1e-9)
+    q = 0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
+    plant.reset(q, np.array([2.0, -2.5]))
+    with_estimate, without = [], []
+    for step in range(60):
+        mass, bias = dynamics.mass_and_bias(plant.q, plant.v)
+        plain = bias.copy()
+        observer.observe(plant.q, plant.v, mass, bias, period)  # bias is now h - d
+        torque = bias + mass @ np.array([1.0, -2.0])  # plan: a = (1, -2) with the estimate
+        v_before = plant.v.copy()
+        observer.sent(torque)
+        plant.advance(torque, period)
+        mean = (plant.v - v_before) / period
+        if step >= 5:
+            with_estimate.append(np.abs(np.linalg.solve(mass, torque - bias) - mean))
+            without.append(np.abs(np.linalg.solve(mass, torque - plain) - mean))
+    with_estimate, without = np.max(with_estimate, axis=0), np.max(without, axis=0)
+    assert np.all(without > 1e-3), without  # the drift is there to be seen
+    assert np.all(with_estimate < 0.25 * without), (with_estimate, without)
