@@ -61,6 +61,7 @@ from safety_filter.certification.velocity_boxes import (
     envelope_fraction,
     safe_set_areas,
     search_velocity_box,
+    search_with_margin,
 )
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.class_k import ClassK
@@ -362,36 +363,9 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
         top = start.fractions
         design, margin, last_design = settle(top)
         if design is None:
-            # The margin hardly depends on the box, but the authority does (the Coriolis
-            # bound is quadratic in it): search the box again with the margin just found
-            # reserved, so that each joint gives up only the speed its own margin costs,
-            # instead of shrinking every box by one common factor.
-            # Each failed attempt leaves a larger margin estimate: search again with it. The
-            # margin found at the first, fastest box overstates that of a slower one, so
-            # once a box settles, search again with its own margin while that enlarges S.
-            reserved = margin
-            for _ in range(3):
-                again, _ = search_velocity_box(model, bounds, settings, kind, margin=reserved)
-                if again is None or (design is not None and np.allclose(
-                        again.fractions, design.fractions, rtol=0.02)):
-                    break
-                fractions = again.fractions
-                redone, redone_margin, redone_last = settle(fractions)
-                if redone is None and design is not None:
-                    # halfway between the box that settled and the faster one
-                    fractions = np.sqrt(fractions * design.fractions)
-                    redone, redone_margin, redone_last = settle(fractions)
-                    if redone is None:
-                        break
-                if redone is None:
-                    reserved = np.maximum(reserved, redone_margin)
-                    continue
-                if design is not None and (design_score(model, redone)
-                                           <= design_score(model, design)):
-                    break
-                top, design, margin, last_design = (fractions, redone, redone_margin,
-                                                    redone_last)
-                reserved = redone_margin
+            found = search_with_margin(model, bounds, settings, kind, settle, margin)
+            if found is not None:
+                top, design, margin, last_design = found
         if design is None:
             floor = 1.0 / settings.velocity_scales
             low_factor = float(np.max(floor / top))

@@ -116,6 +116,9 @@ class DynamicsBounds:
     # Sample rows that bound the authority LP so far (flat ``s * n + i``): the cuts a
     # search over velocity boxes starts from (authority.authority_row_sums).
     binding_rows: set[int] = field(default_factory=set, repr=False, compare=False)
+    # (velocity box, settings) -> (model-error bound, authority per condition): see
+    # velocity_boxes._authority_candidates.
+    authority_cache: dict = field(default_factory=dict, repr=False, compare=False)
 
     def coriolis_max(self, velocity_box: np.ndarray) -> np.ndarray:
         """A bound of ``|(C(q, v) v)_i|`` over the joint box and ``|v_j| <= vb_j``:

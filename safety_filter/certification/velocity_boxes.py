@@ -8,6 +8,8 @@ the search compares are here too.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 
 from safety_filter.certification.authority import (
@@ -25,6 +27,7 @@ from safety_filter.certification.design_formulas import (
 )
 from safety_filter.certification.dynamics_bounds import DynamicsBounds
 from safety_filter.core.barriers import braking_set_area, safe_set_area
+from safety_filter.core.model_uncertainty import DisturbanceBound
 from safety_filter.core.robot_model import RobotModel
 
 
@@ -37,24 +40,8 @@ def design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifyS
     rows = rows and settings.velocity_barrier
     fractions = np.broadcast_to(np.asarray(fractions, dtype=float), (model.n_joints,))
     velocity_box = fractions * np.array(model.velocity_limit)
-    problem = authority_problem(model, bounds, settings, velocity_box, exact_model)
-    mass, bias, disturbance = problem.mass, problem.bias, problem.disturbance
-    umax = np.array(model.effort_limit)
-    weights = umax / np.diag(bounds.mass_max)
-    candidates: dict[str, np.ndarray | None] = {}
-    if settings.condition in ('auto', 'acceleration_authority'):
-        candidates['acceleration_authority'] = authority_row_sums(
-            mass, bias, umax, weights, useful_authority(model, settings) if rows else None,
-            samples=problem.samples, start_rows=bounds.binding_rows)
-    if settings.condition in ('auto', 'torque_coupling'):
-        coupled = authority_torque_coupling(bounds.inverse_mass_max, bounds.coupling_min, bias)
-        if coupled is not None and rows:
-            coupled = np.minimum(coupled, np.maximum(useful_authority(model, settings),
-                                                     1e-9 * coupled))
-        if coupled is not None:  # one step of e = rho - nu - Winv I e (conservative)
-            coupled = coupled - bounds.inverse_mass_max @ disturbance.inertial_total @ coupled
-            coupled = coupled if np.all(coupled > 0.0) else None
-        candidates['torque_coupling'] = coupled
+    disturbance, candidates = _authority_candidates(model, bounds, settings, velocity_box,
+                                                    exact_model, rows)
     best: Design | None = None
     r = np.array(model.position_range)
     for condition, authority in candidates.items():
@@ -80,6 +67,38 @@ def design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifyS
         if best is None or design_score(model, design) > design_score(model, best):
             best = design
     return best, candidates
+
+
+def _authority_candidates(model: RobotModel, bounds: DynamicsBounds,
+                          settings: CertifySettings, velocity_box: np.ndarray,
+                          exact_model: bool, rows: bool
+                          ) -> tuple[DisturbanceBound, dict[str, np.ndarray | None]]:
+    """The model-error bound and the authority of each sufficient condition at a velocity
+    box. They do not depend on the class-K family, and the families' searches visit the
+    same boxes: the bounds keep them (``DynamicsBounds.authority_cache``)."""
+    key = (velocity_box.tobytes(), exact_model, rows, repr(settings))
+    if key in bounds.authority_cache:
+        return bounds.authority_cache[key]
+    problem = authority_problem(model, bounds, settings, velocity_box, exact_model)
+    mass, bias, disturbance = problem.mass, problem.bias, problem.disturbance
+    umax = np.array(model.effort_limit)
+    weights = umax / np.diag(bounds.mass_max)
+    candidates: dict[str, np.ndarray | None] = {}
+    if settings.condition in ('auto', 'acceleration_authority'):
+        candidates['acceleration_authority'] = authority_row_sums(
+            mass, bias, umax, weights, useful_authority(model, settings) if rows else None,
+            samples=problem.samples, start_rows=bounds.binding_rows)
+    if settings.condition in ('auto', 'torque_coupling'):
+        coupled = authority_torque_coupling(bounds.inverse_mass_max, bounds.coupling_min, bias)
+        if coupled is not None and rows:
+            coupled = np.minimum(coupled, np.maximum(useful_authority(model, settings),
+                                                     1e-9 * coupled))
+        if coupled is not None:  # one step of e = rho - nu - Winv I e (conservative)
+            coupled = coupled - bounds.inverse_mass_max @ disturbance.inertial_total @ coupled
+            coupled = coupled if np.all(coupled > 0.0) else None
+        candidates['torque_coupling'] = coupled
+    bounds.authority_cache[key] = (disturbance, candidates)
+    return disturbance, candidates
 
 
 def design_for_scale(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
@@ -188,3 +207,45 @@ def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
                 step *= 0.5
     best.fractions = best_fractions
     return best, best_found
+
+
+Settle = Callable[[np.ndarray], tuple[Design | None, np.ndarray, Design | None]]
+
+
+def search_with_margin(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                       kind: str, settle: Settle, margin: np.ndarray
+                       ) -> tuple[np.ndarray, Design, np.ndarray, Design | None] | None:
+    """The box the search chose did not settle with its sampled-data margin ``margin``:
+    search again with that margin reserved, and settle there. Returns ``(fractions, design,
+    margin, last design)`` of the best box that settles, or None.
+
+    The margin hardly depends on the box but the authority does (the Coriolis bound is
+    quadratic in it), so each joint then gives up only the speed its own margin costs,
+    instead of every box shrinking by one common factor. A failed attempt leaves a larger
+    margin estimate, which the next search reserves; the margin found at a faster box
+    overstates that of a slower one, so once a box settles the search runs again with its
+    own margin while that enlarges S, trying halfway when the faster box does not settle.
+    ``settle(fractions)`` returns ``(design or None, margin, last design)``.
+    """
+    best: tuple[np.ndarray, Design, np.ndarray, Design | None] | None = None
+    reserved = margin
+    for _ in range(3):
+        again, _ = search_velocity_box(model, bounds, settings, kind, margin=reserved)
+        if again is None or (best is not None and np.allclose(again.fractions,
+                                                              best[0], rtol=0.02)):
+            break
+        fractions = again.fractions
+        design, found_margin, last = settle(fractions)
+        if design is None and best is not None:
+            fractions = np.sqrt(fractions * best[0])  # halfway to the box that settled
+            design, found_margin, last = settle(fractions)
+            if design is None:
+                break
+        if design is None:
+            reserved = np.maximum(reserved, found_margin)
+            continue
+        if best is not None and design_score(model, design) <= design_score(model, best[1]):
+            break
+        best = (fractions, design, found_margin, last)
+        reserved = found_margin
+    return best
