@@ -38,6 +38,10 @@ def certify_settings(args: argparse.Namespace) -> CertifySettings:
         extra['gamma_margin'] = args.gamma_margin
     if args.beta_margin is not None:
         extra['beta_margin'] = args.beta_margin
+    if args.beta_cap_share is not None:
+        extra['beta_cap_share'] = args.beta_cap_share
+    if args.velocity_headroom is not None:
+        extra['velocity_headroom'] = args.velocity_headroom
     return CertifySettings(
         alpha1=None if args.alpha1 == 'auto' else ClassK(args.alpha1, args.alpha1_scale),
         alpha2=ClassK(args.alpha2, args.alpha2_scale),
@@ -183,6 +187,14 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         help='gamma <= this * gamma*, in (0, 1) (default: 0.9)')
     method.add_argument('--beta-margin', type=float, default=None,
                         help='beta >= this * beta*, > 1 (default: 1.2)')
+    method.add_argument('--beta-cap-share', type=float, default=None,
+                        help='beta >= this share of its sampled-data cap, in [0, 1]: larger '
+                        'lets a joint run closer to the boundary of S before it is slowed '
+                        '(default: 0.05; docs/method.md)')
+    method.add_argument('--velocity-headroom', type=float, default=None,
+                        help='velocity boxes stay this share of the rated speed below it, '
+                        'for model error the disturbance observer has not yet removed '
+                        '(default: 0.1; docs/method.md)')
     method.add_argument('--samples', type=int, default=4096,
                         help='quasi-random samples of the joint box for the dynamics bounds '
                         '(default: 4096)')

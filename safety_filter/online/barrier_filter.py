@@ -157,7 +157,7 @@ class SafetyFilter:
                                                         certificate.control_rate_hz))
         self.observer_time_constant_s = frozen(time_constants)
         self._observing = bool(np.all(time_constants > 0.0))
-        # The torque that acted over the last period was sent delay + 1 steps ago.
+        # The declared delay, in certified periods: the observer keeps it as a time.
         uncertainty = certificate.uncertainty
         self.observer_delay_periods = int(uncertainty.delay_periods) if uncertainty else 0
         # The range the estimate is kept in: where the certificate's authority accounts for

@@ -169,6 +169,8 @@ def test_malformed_limits_file_exits_2(tmp_path, capsys) -> None:
     ['--falsifier-states', '-5'],
     ['--sampling-factor', '0.5'],   # settings: a hold shorter than one period
     ['--acceleration-form', 'end'],  # argparse: not a form
+    ['--beta-cap-share', '1.5'],    # settings: a share of the cap is at most 1
+    ['--velocity-headroom', '-0.1'],  # settings: no box above the rated speed
 ])
 def test_bad_options_exit_2(tmp_path, capsys, options) -> None:
     code = main(['certify', '--demo', 'planar2', *options, '--output', str(tmp_path / 'x.yaml')])
@@ -180,6 +182,20 @@ def test_bad_options_exit_2(tmp_path, capsys, options) -> None:
 def test_inspect_still_works(capsys) -> None:
     assert main(['inspect', '--demo', 'planar2', '--states', '0']) == ExitCode.OK
     assert 'model hash' in capsys.readouterr().out
+
+
+def test_permissiveness_options_reach_the_settings() -> None:
+    from safety_filter.cli.certify import certify_settings
+    from safety_filter.cli.main import build_parser
+
+    parser = build_parser()
+    args = parser.parse_args(['certify', '--demo', 'planar2', '--beta-cap-share', '0.2',
+                              '--velocity-headroom', '0.15'])
+    settings = certify_settings(args)
+    assert settings.beta_cap_share == 0.2
+    assert settings.top_velocity_fraction == pytest.approx(0.85)
+    default = certify_settings(parser.parse_args(['certify', '--demo', 'planar2']))
+    assert (default.beta_cap_share, default.velocity_headroom) == (0.05, 0.1)
 
 
 def test_sampling_factor_reaches_the_settings(capsys) -> None:
