@@ -90,26 +90,31 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
 
 def _row_sum_lp(rows: np.ndarray, room: np.ndarray, weights: np.ndarray,
                 cap: np.ndarray | None) -> np.ndarray | None:
-    """The two-phase linear program of :func:`authority_row_sums` for ``rows e <= room``
-    (any number of rows)."""
+    """The two-phase program of :func:`authority_row_sums` for ``rows e <= room`` (any
+    number of rows, all entries non-negative: bounds of absolute values).
+
+    Phase 1 needs no solver: with non-negative rows the largest ``t`` is reached at
+    ``e = t w`` (a larger ``e`` only uses more of each row), so ``t`` is the smallest
+    ``(room - rows e_held) / (rows w_free)``. Phase 2 is a linear program (HiGHS).
+    """
     n = rows.shape[1]
     if np.any(room <= 0.0):
         return None
     held = np.zeros(n, dtype=bool)  # joints held at their cap
     cap = np.full(n, np.inf) if cap is None else np.asarray(cap, dtype=float)
+    t_best = 0.0
     for _ in range(n + 1):
-        # Variables (e_1..e_n, t). Phase 1: maximise t.
-        share = np.where(held, 0.0, weights)
-        a_ub = np.vstack([np.hstack([rows, np.zeros((len(rows), 1))]),
-                          np.hstack([-np.eye(n), share[:, None]])])
-        b_ub = np.concatenate([room, np.where(held, -cap, 0.0)])
-        c = np.zeros(n + 1)
-        c[-1] = -1.0
-        first = linprog(c, A_ub=a_ub, b_ub=b_ub, bounds=[(0, None)] * (n + 1),
-                        method='highs')
-        if first.status != 0 or first.x[-1] <= 0.0:
+        fixed = rows @ np.where(held, cap, 0.0)
+        slope = rows @ np.where(held, 0.0, weights)
+        left = room - fixed
+        if np.any(left < 0.0):
             return None
-        t_best = first.x[-1] * (1.0 - 1e-9)
+        loaded = slope > 0.0
+        if not loaded.any():
+            return None  # nothing bounds t: no row uses the authority
+        t_best = float(np.min(left[loaded] / slope[loaded])) * (1.0 - 1e-9)
+        if t_best <= 0.0:
+            return None
         over = ~held & (t_best * weights > cap)
         if not over.any():
             break
@@ -119,7 +124,7 @@ def _row_sum_lp(rows: np.ndarray, room: np.ndarray, weights: np.ndarray,
     second = linprog(-1.0 / weights, A_ub=rows, b_ub=room,
                      bounds=[(lo, None if not np.isfinite(hi) else max(hi, lo))
                              for lo, hi in zip(floor, cap)], method='highs')
-    authority = second.x if second.status == 0 else first.x[:n]
+    authority = second.x if second.status == 0 else floor
     # Guard against LP round-off: scale down until the inequality holds exactly.
     usage = rows @ authority
     scale = min(1.0, float(np.min(room / np.maximum(usage, 1e-300))))
