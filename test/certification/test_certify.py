@@ -470,6 +470,20 @@ def test_planar2_coriolis_bound_against_its_closed_form() -> None:
     assert np.all(bound <= settings.inflation * 1.05 * exact), (bound, exact)
 
 
+def _pinocchio_bench6(pin, model: RobotModel) -> tuple[object, object]:  # noqa: ANN001
+    """bench6 in Pinocchio (package ``pin``) from its URDF, the fingers locked where the
+    model locks them: ``(model, data)``."""
+    full = pin.buildModelFromUrdf(str(demo_arm_files('bench6')[0]))
+    reference = pin.neutral(full)
+    locked = []
+    for name, position in model.locked_positions.items():
+        joint = full.getJointId(name)
+        reference[full.joints[joint].idx_q] = position
+        locked.append(joint)
+    robot = pin.buildReducedModel(full, locked, reference)
+    return robot, robot.createData()
+
+
 def test_bench6_coriolis_bound_holds_against_pinocchio_and_beats_the_separate_sum() -> None:
     """|(C(q, v) v)_i| from Pinocchio (``computeCoriolisMatrix``, package ``pin``) at random
     configurations and at the velocity box's corners and random points inside it stays
@@ -480,16 +494,7 @@ def test_bench6_coriolis_bound_holds_against_pinocchio_and_beats_the_separate_su
     assert estimate_bounds(model, BoundSettings(configuration_wise=False)
                            ).christoffel_samples is None
     box = 0.6 * np.array(model.velocity_limit)
-    full = pin.buildModelFromUrdf(str(demo_arm_files('bench6')[0]))
-    # the fingers locked where the model locks them
-    reference = pin.neutral(full)
-    locked = []
-    for name, position in model.locked_positions.items():
-        joint = full.getJointId(name)
-        reference[full.joints[joint].idx_q] = position
-        locked.append(joint)
-    robot = pin.buildReducedModel(full, locked, reference)
-    data = robot.createData()
+    robot, data = _pinocchio_bench6(pin, model)
     rng = np.random.default_rng(7)
     n = model.n_joints
     corners = np.array(list(itertools.product((-1.0, 1.0), repeat=n))) * box
@@ -524,15 +529,7 @@ def test_bench6_torque_rows_hold_against_pinocchio_and_beat_the_separate_maxima(
     separate = bounds.mass_max @ authority + bounds.bias_max(box, viscous, coulomb)
     assert np.all(rows <= separate * (1 + 1e-6))
     assert rows[1] <= 0.95 * separate[1], (rows, separate)
-    full = pin.buildModelFromUrdf(str(demo_arm_files('bench6')[0]))
-    reference = pin.neutral(full)
-    locked = []
-    for name, position in model.locked_positions.items():
-        joint = full.getJointId(name)
-        reference[full.joints[joint].idx_q] = position
-        locked.append(joint)
-    robot = pin.buildReducedModel(full, locked, reference)
-    data = robot.createData()
+    robot, data = _pinocchio_bench6(pin, model)
     rng = np.random.default_rng(3)
     n = model.n_joints
     signs = np.array(list(itertools.product((-1.0, 1.0), repeat=n)))
