@@ -49,8 +49,7 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
     room = (effort - bias).reshape(-1)  # (S n,)
     if np.any(room <= 0.0):
         return None
-    rows = mass.reshape(count * n, n)
-    extra_rows = np.tile(extra, (count, 1))  # row s n + i is extra[i]
+    rows = mass.reshape(count * n, n)  # row s n + i: joint i at sample s (plus extra[i])
 
     def usage(authority: np.ndarray) -> np.ndarray:
         return rows @ authority + np.tile(extra @ authority, count)
@@ -66,7 +65,7 @@ def authority_row_sums(mass_max: np.ndarray, bias_max: np.ndarray, effort: np.nd
     authority = None
     for _ in range(100):
         active = np.fromiter(picked, dtype=int)
-        authority = _row_sum_lp(rows[active] + extra_rows[active], room[active], weights, cap)
+        authority = _row_sum_lp(rows[active] + extra[active % n], room[active], weights, cap)
         if authority is None:
             return None
         excess = usage(authority) - room
