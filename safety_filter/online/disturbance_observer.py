@@ -32,7 +32,8 @@ class DisturbanceObserver:
             another loop period the torque that acted over the last period is the
             time-weighted mix of the two sent around that delay.
         torque_limit: the torque box [N m]; the estimate stays inside it.
-        dynamics: the filter's step dynamics (friction and gravity for the bound).
+        dynamics: the filter's step dynamics (friction and gravity for the bound, its
+            Coulomb friction for the residual), or None (no model friction, no bound).
         heavier: the same model one kilogram heavier (the payload's share of the bound), or
             None when ``disturbance_parameters`` is None.
         disturbance_parameters: ``(constant, link_error, payload_error)`` of the certificate
@@ -42,7 +43,7 @@ class DisturbanceObserver:
     """
 
     def __init__(self, time_constants: np.ndarray, delay_periods: int,
-                 torque_limit: np.ndarray, dynamics: StepDynamics,
+                 torque_limit: np.ndarray, dynamics: StepDynamics | None,
                  heavier: StepDynamics | None,
                  disturbance_parameters: tuple[np.ndarray, np.ndarray, np.ndarray] | None,
                  control_period_s: float) -> None:
@@ -66,6 +67,8 @@ class DisturbanceObserver:
         # was made with them (the residual over the period is measured against that plan).
         self._mass = np.zeros((n, n))
         self._bias = np.zeros(n)
+        coulomb = None if dynamics is None else dynamics.coulomb
+        self._coulomb = coulomb if coulomb is not None and np.any(coulomb != 0.0) else None
         self._valid = False  # _v belongs to the step before this one
         self._step = np.empty(n)
 
@@ -108,6 +111,12 @@ class DisturbanceObserver:
             measured = self._mass @ step
             measured += self._bias
             measured -= acted
+            if self._coulomb is not None:
+                # Coulomb friction as the next plan will count it, at the new velocity's
+                # direction: where a joint reversed or stuck within the period, the start's
+                # direction would put twice its friction into the estimate, which the next
+                # plan (already counting the new direction) would then apply wrongly.
+                measured += self._coulomb * (np.sign(v) - np.sign(self._v))
             # A torque beyond twice the box cannot act on the arm: the two samples are not
             # one period apart (a gap, a reset, a replayed jump); skip them.
             if _kernels.within_box(measured, self._plausible):

@@ -83,6 +83,11 @@ class StepDynamics:
             return self.dynamics.gravity_torque(q) + self.dynamics.coriolis_torque(q, v)
         return np.array(self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v))
 
+    @property
+    def coulomb(self) -> np.ndarray:
+        """The model's Coulomb friction per joint [N m]."""
+        return self._coulomb
+
     def friction(self, v: np.ndarray) -> np.ndarray:
         """The model's friction torque at ``v``."""
         return friction_torque(v, self._viscous, self._coulomb)

@@ -386,3 +386,32 @@ def test_observer_measures_against_the_plan_made_at_the_start_of_the_period() ->
     with_estimate, without = np.max(with_estimate, axis=0), np.max(without, axis=0)
     assert np.all(without > 1e-3), without  # the drift is there to be seen
     assert np.all(with_estimate < 0.25 * without), (with_estimate, without)
+
+
+class _CoulombOnly:
+    """The one thing the observer takes from the step dynamics without a certificate range:
+    the model's Coulomb friction."""
+
+    coulomb = np.array([1.0])
+
+
+def test_a_reversal_does_not_read_as_twice_the_friction() -> None:
+    """A joint with 1 N m of Coulomb friction in the model reverses within a period, moving
+    as the model says with the friction of its new direction (unit mass, no delay): the
+    residual counts the friction as the next plan will (the new direction), so the estimate
+    stays zero through the reversal; counted in the old direction it would read 2 N m."""
+    period = 1e-3
+    observer = DisturbanceObserver(np.full(1, 1e-9), 0, np.full(1, 100.0), _CoulombOnly(),
+                                   None, None, period)
+    mass = np.eye(1)
+    v = np.array([0.001])
+    for target in (0.001, -0.001, -0.003, -0.005):
+        observer.observe(np.zeros(1), v, mass, np.sign(v) * 1.0, period)
+        assert abs(observer.disturbance[0]) < 1e-9, (v, observer.disturbance)
+        # the torque that moves the unit mass to ``target`` within the period, with the
+        # friction of the direction it ends in
+        torque = (target - v) / period + np.sign(target) * 1.0
+        observer.sent(torque)
+        v = np.array([target])
+    observer.observe(np.zeros(1), v, mass, np.sign(v) * 1.0, period)
+    assert abs(observer.disturbance[0]) < 1e-9, observer.disturbance
