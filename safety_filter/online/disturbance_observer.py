@@ -67,8 +67,8 @@ class DisturbanceObserver:
         # was made with them (the residual over the period is measured against that plan).
         self._mass = np.zeros((n, n))
         self._bias = np.zeros(n)
-        coulomb = None if dynamics is None else dynamics.coulomb
-        self._coulomb = coulomb if coulomb is not None and np.any(coulomb != 0.0) else None
+        self._friction = (dynamics.friction if dynamics is not None and dynamics.has_friction
+                          else None)
         self._valid = False  # _v belongs to the step before this one
         self._step = np.empty(n)
 
@@ -111,12 +111,15 @@ class DisturbanceObserver:
             measured = self._mass @ step
             measured += self._bias
             measured -= acted
-            if self._coulomb is not None:
-                # Coulomb friction as the next plan will count it, at the new velocity's
-                # direction: where a joint reversed or stuck within the period, the start's
-                # direction would put twice its friction into the estimate, which the next
-                # plan (already counting the new direction) would then apply wrongly.
-                measured += self._coulomb * (np.sign(v) - np.sign(self._v))
+            if self._friction is not None:
+                # Friction as the next plan will count it, at the new velocity: where a
+                # joint reversed or stuck within the period, the start's direction would put
+                # twice its Coulomb friction into the estimate, which the next plan (already
+                # counting the new direction) would then apply wrongly; and with a delay the
+                # next command acts from a later velocity still, which a damped joint's
+                # viscous torque follows within the period.
+                measured += self._friction(v)
+                measured -= self._friction(self._v)
             # A torque beyond twice the box cannot act on the arm: the two samples are not
             # one period apart (a gap, a reset, a replayed jump); skip them.
             if _kernels.within_box(measured, self._plausible):

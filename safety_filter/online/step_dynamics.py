@@ -84,9 +84,9 @@ class StepDynamics:
         return np.array(self._pin.nonLinearEffects(self._pin_model, self._pin_data, q, v))
 
     @property
-    def coulomb(self) -> np.ndarray:
-        """The model's Coulomb friction per joint [N m]."""
-        return self._coulomb
+    def has_friction(self) -> bool:
+        """Whether the model has any viscous or Coulomb friction."""
+        return self._has_friction
 
     def friction(self, v: np.ndarray) -> np.ndarray:
         """The model's friction torque at ``v``."""

@@ -389,10 +389,14 @@ def test_observer_measures_against_the_plan_made_at_the_start_of_the_period() ->
 
 
 class _CoulombOnly:
-    """The one thing the observer takes from the step dynamics without a certificate range:
-    the model's Coulomb friction."""
+    """What the observer takes from the step dynamics without a certificate range: the
+    model's friction (here 1 N m of Coulomb friction only)."""
 
-    coulomb = np.array([1.0])
+    has_friction = True
+
+    @staticmethod
+    def friction(v: np.ndarray) -> np.ndarray:
+        return np.sign(v) * 1.0
 
 
 def test_a_reversal_does_not_read_as_twice_the_friction() -> None:
