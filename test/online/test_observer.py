@@ -19,6 +19,7 @@ from safety_filter import SafetyFilter
 from safety_filter.core.dynamics import Dynamics
 from safety_filter.core.model_uncertainty import model_with_inertials
 from safety_filter.online.disturbance_observer import DisturbanceObserver
+from safety_filter.online.step_dynamics import StepDynamics
 from safety_filter.simulation.command_sources import BangBang, PDBeyondLimits
 from safety_filter.simulation.demo_arms import demo_arm_files
 from safety_filter.simulation.plant import ArmSimulator, limit_violations
@@ -323,11 +324,12 @@ def test_a_position_jump_is_refused_until_it_stays() -> None:
 
 
 def _observer(delay_periods: int, period_s: float, n: int = 2,
-              time_constant_s: float = 1e-9) -> DisturbanceObserver:
+              time_constant_s: float = 1e-9, dynamics: StepDynamics | None = None
+              ) -> DisturbanceObserver:
     """An observer with the torque box only (no certificate range) and so short a time
     constant that each estimate is the last period's residual (gain 1/3 at most)."""
     return DisturbanceObserver(np.full(n, time_constant_s), delay_periods, np.full(n, 100.0),
-                               None, None, None, period_s)
+                               dynamics, None, None, period_s)
 
 
 @pytest.mark.parametrize('loop_period_s, expected_mix', [(1e-3, (1.0, 0.0)),
@@ -358,16 +360,18 @@ def test_observer_keeps_the_declared_delay_as_a_time(loop_period_s: float,
 def test_observer_measures_against_the_plan_made_at_the_start_of_the_period() -> None:
     """On the exact model (RK4 at 10 kHz as the plant) with the arm moving, the acceleration
     over a period drifts from the one planned at its start, as the state moves. The observer
-    compares the motion with the plan made at the start (M and h there), so its estimate is
-    the drift of the last period, and the next plan with it predicts the next period's mean
-    acceleration several times better than the plan without it. Measured with M and h at the
-    end of the period instead, the estimate has the wrong sign and makes the plan worse."""
+    compares the motion with the plan made at the start (M and the rigid bias there, the
+    model's friction at the new velocity, as the filter's step dynamics give it), so its
+    estimate is the drift of the last period, and the next plan with it predicts the next
+    period's mean acceleration at least three times better than the plan without it. With
+    M and h at the end of the period instead, the estimate has the wrong sign and makes the
+    plan worse."""
     model, certificate = demo_arm_and_certificate('planar2')
     payload = 0.5 * (model.payload.mass_min + model.payload.mass_max)
     dynamics = Dynamics(model, payload)
     plant = ArmSimulator(model, payload, PLANT_RATE_HZ)
     period = 1.0 / CONTROL_RATE_HZ
-    observer = _observer(0, period, time_constant_s=1e-9)
+    observer = _observer(0, period, time_constant_s=1e-9, dynamics=StepDynamics(dynamics))
     q = 0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
     plant.reset(q, np.array([2.0, -2.5]))
     with_estimate, without = [], []
@@ -385,7 +389,7 @@ def test_observer_measures_against_the_plan_made_at_the_start_of_the_period() ->
             without.append(np.abs(np.linalg.solve(mass, torque - plain) - mean))
     with_estimate, without = np.max(with_estimate, axis=0), np.max(without, axis=0)
     assert np.all(without > 1e-3), without  # the drift is there to be seen
-    assert np.all(with_estimate < 0.25 * without), (with_estimate, without)
+    assert np.all(with_estimate < without / 3.0), (with_estimate, without)
 
 
 class _CoulombOnly:
