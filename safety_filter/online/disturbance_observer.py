@@ -2,7 +2,9 @@
 
 The arm obeys ``M a + h = u + d`` in the filter's model, with ``d`` the torque that the model
 misses (payload, inertia and friction errors, the driver's torque error). Over the last
-period the measured velocity change gives ``d ~ M (v - v_prev) / T + h - u_prev``; a
+period the measured velocity change gives ``d ~ M (v - v_prev) / T + h - u_prev``, with
+``M`` and the rigid-body part of ``h`` taken where the period began (where its torque was
+planned) and the friction at the new velocity (as the next plan counts it); a
 first-order low-pass with the observer's time constant smooths it (its noise is
 ``M * velocity noise / time constant``, as for a momentum observer). The filter takes the
 estimate out of ``h``, so ``u = M a + h - d`` gives the arm the acceleration ``a`` the
@@ -33,7 +35,7 @@ class DisturbanceObserver:
             time-weighted mix of the two sent around that delay.
         torque_limit: the torque box [N m]; the estimate stays inside it.
         dynamics: the filter's step dynamics (friction and gravity for the bound, its
-            Coulomb friction for the residual), or None (no model friction, no bound).
+            friction for the residual), or None (no model friction, no bound).
         heavier: the same model one kilogram heavier (the payload's share of the bound), or
             None when ``disturbance_parameters`` is None.
         disturbance_parameters: ``(constant, link_error, payload_error)`` of the certificate
