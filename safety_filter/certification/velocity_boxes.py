@@ -183,7 +183,6 @@ def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
             best_fractions = np.full(n, scale)
     if settings.per_joint_envelopes and split_family(kind)[1] and settings.velocity_barrier:
         step = 0.2
-        tried: dict[tuple[float, ...], tuple[Design | None, dict]] = {}
         while step > 0.01:
             improved = False
             for i in range(n):
@@ -192,11 +191,8 @@ def search_velocity_box(model: RobotModel, bounds: DynamicsBounds, settings: Cer
                     trial[i] = float(np.clip(trial[i] * (1.0 + sign * step), floor, top))
                     if trial[i] == best_fractions[i]:
                         continue
-                    key = tuple(np.round(trial, 12))
-                    if key not in tried:
-                        tried[key] = design_for_box(model, bounds, settings, trial, reserved,
+                    design, found = design_for_box(model, bounds, settings, trial, reserved,
                                                     kind, exact_model)
-                    design, found = tried[key]
                     value = score(design)
                     if value > best_value + 1e-9:
                         best, best_found, best_value = design, found, value
