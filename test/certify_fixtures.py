@@ -41,21 +41,39 @@ CERTIFIED_ARMS = ('planar2', 'bench6')
 DEFAULT_RATE_HZ = CertifySettings().control_rate_hz
 
 
-def certified_demo_arm(name: str, control_rate_hz: float = DEFAULT_RATE_HZ
-                       ) -> tuple[RobotModel, CertificationOutcome]:
+def certified_demo_arm(name: str, control_rate_hz: float = DEFAULT_RATE_HZ,
+                       delay_predicted: bool = True) -> tuple[RobotModel, CertificationOutcome]:
     """A demo arm and the outcome of certifying it with the default settings at
-    ``control_rate_hz`` (cached: once per arm and rate per session)."""
+    ``control_rate_hz`` (and ``delay_predicted``; cached: once per arm and settings per
+    session)."""
     # One cache key however the rate is given (an lru_cache keys on the arguments as passed:
     # f('planar2') and f('planar2', 1000.0) would be two entries, two certifications).
-    return _certify_demo_arm(name, float(control_rate_hz))
+    return _certify_demo_arm(name, float(control_rate_hz), bool(delay_predicted))
 
 
 @functools.lru_cache(maxsize=None)
-def _certify_demo_arm(name: str, control_rate_hz: float
+def _certify_demo_arm(name: str, control_rate_hz: float, delay_predicted: bool
                       ) -> tuple[RobotModel, CertificationOutcome]:
     model = load_demo_arm(name)
-    settings = CertifySettings(control_rate_hz=control_rate_hz)
+    settings = CertifySettings(control_rate_hz=control_rate_hz,
+                               delay_predicted=delay_predicted)
     return model, certify_with_evidence(model, settings)
+
+
+def covered_loop(certificate: Certificate, slowest: bool = False) -> tuple[float, int]:
+    """A control rate [Hz] and a plant delay [control periods of that rate] the certificate
+    covers. With the delay predicted (``prediction_s``) the declared delay at the certified
+    rate (``sampling_factor`` 1). Else, with the delay as an upper bound, the certified rate
+    with the declared delay or, for ``slowest``, no delay and one period as long as the
+    hold the margin covers (``sampling_factor`` periods plus the declared delay)."""
+    declared = int(certificate.settings['certify']['delay_periods'])
+    rate = float(certificate.control_rate_hz)
+    if certificate.prediction_s:
+        assert certificate.sampling_factor == 1.0, 'a slower predicted loop is not simulated'
+        return rate, declared
+    if slowest:
+        return rate / (certificate.sampling_factor + declared), 0
+    return rate, declared
 
 
 def demo_certificate(name: str, control_rate_hz: float = DEFAULT_RATE_HZ

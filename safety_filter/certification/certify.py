@@ -105,6 +105,9 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     settings = settings or CertifySettings()
     if settings.delay_periods is None:
         settings = replace(settings, delay_periods=int(model.uncertainty.delay_periods))
+    if settings.delay_predicted is None:
+        settings = replace(settings, delay_predicted=not any(
+            f > 0.0 for f in model.coulomb_friction))
     report = progress or (lambda _stage, _fraction: None)
     n = model.n_joints
     names = list(model.joint_names)
@@ -213,6 +216,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         velocity_beta=speed_beta,
         acceleration_bound=accel_bound,
         acceleration_hold_s=settings.acceleration_hold_s(model) or None,
+        prediction_s=settings.prediction_s or None,
         gamma=gamma,
         gamma_star=g_star,
         beta=beta,
@@ -345,7 +349,8 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
                 model, gains, settings.hold_period_s, settings.margin_samples,
                 inflation=settings.margin_inflation, current_margin=margin,
                 seed=settings.seed,  # same draws each round: the margin settles monotonically
-                plants=plants, acceleration_hold_s=settings.acceleration_hold_s(model))
+                plants=plants, acceleration_hold_s=settings.acceleration_hold_s(model),
+                prediction_s=settings.prediction_s)
             rounds['count'] += 1
             report('sampling margin', 0.2 + 0.7 * min(1.0, rounds['count'] / 12))
             if np.all(new_margin <= margin * (1.0 + 1e-9)):
@@ -478,7 +483,7 @@ def _dissipation_record(model: RobotModel, chosen: _Attempt, settings: CertifySe
                   design.velocity_box, design.speed_beta, design.accel_bound)
     common = dict(samples=settings.margin_samples, inflation=settings.margin_inflation,
                   current_margin=margin, seed=settings.seed,
-                  plants=margin_plants(model, settings))
+                  plants=margin_plants(model, settings), prediction_s=settings.prediction_s)
     record: dict[str, Any] = {}
     hold = settings.acceleration_hold_s(model)
     if coulomb:

@@ -56,7 +56,8 @@ class CertifySettings:
         beta_sampling_limit: cap ``beta * max(alpha2(b)/b) * T_hold <= beta_sampling_limit``.
         beta_cap_share: ``beta`` is at least this share of that cap (1: at the cap, the most
             permissive; 0: the least ``beta`` that certifies, which slows the arm long
-            before it nears a limit; docs/method.md).
+            before it nears a limit; docs/method.md). None (default): 0.2 with the delay
+            predicted, 0.05 with the delay as an upper bound (``cap_share``).
         control_rate_hz: the filter's control rate [Hz].
         sampling_factor: the sampled-data margin covers hold periods of this many control
             periods (so the limits also hold at a rate this many times slower).
@@ -80,6 +81,13 @@ class CertifySettings:
         delay_periods: control periods between measurement and torque that the sampled-data
             margin covers on top of ``sampling_factor`` (None: the model's declared
             uncertainty, ``delay_periods``).
+        delay_predicted: True: the declared delay is the driver's fixed delay; the filter
+            plans each torque for the state it predicts at the end of the delay (certificate
+            entry ``prediction_s``) and the margin covers one hold from there. False: the
+            delay may be anything up to the declared one; the filter plans at the measured
+            state and the margin covers the delay as a longer hold. None (default): True
+            unless the model has Coulomb friction, whose sticking and slipping within the
+            delay the prediction cannot know (docs/method.md, "Delay").
         mean_over_hold: on an arm with viscous damping, True: the filter bounds the mean
             acceleration over a control period (the exact zero-order-hold response of the
             damped joints, ``hold_mass_matrix``); False: the acceleration at the start of
@@ -98,7 +106,7 @@ class CertifySettings:
     gamma_margin: float = 0.9
     beta_margin: float = 1.2
     beta_sampling_limit: float = 0.1
-    beta_cap_share: float = 0.05
+    beta_cap_share: float | None = None
     control_rate_hz: float = 1000.0
     sampling_factor: float = 1.0
     margin_samples: int = 1000
@@ -113,6 +121,7 @@ class CertifySettings:
     observer_periods: float = DEFAULT_OBSERVER_PERIODS
     observer_noise_share: float = 0.01
     delay_periods: int | None = None
+    delay_predicted: bool | None = None
     margin_plants: int = 3
     mean_over_hold: bool | None = None
 
@@ -131,7 +140,7 @@ class CertifySettings:
         if not 0.0 <= self.velocity_headroom <= 1.0 - 1.0 / self.velocity_scales:
             raise InvalidValue('velocity_headroom', self.velocity_headroom,
                                'in [0, 1 - 1 / velocity_scales]')
-        if not 0.0 <= self.beta_cap_share <= 1.0:
+        if self.beta_cap_share is not None and not 0.0 <= self.beta_cap_share <= 1.0:
             raise InvalidValue('beta_cap_share', self.beta_cap_share, 'in [0, 1]')
         if not 0.0 < self.gamma_margin < 1.0:
             raise InvalidValue('gamma_margin', self.gamma_margin, 'in (0, 1)')
@@ -166,8 +175,24 @@ class CertifySettings:
     @property
     def hold_period_s(self) -> float:
         """Longest hold period the margin covers [s]: ``sampling_factor`` control periods
-        plus the declared delay between measurement and torque."""
-        return (self.sampling_factor + (self.delay_periods or 0)) / self.control_rate_hz
+        (plus the declared delay between measurement and torque when it is not predicted)."""
+        delay = 0 if self.delay_predicted is not False else (self.delay_periods or 0)
+        return (self.sampling_factor + delay) / self.control_rate_hz
+
+    @property
+    def cap_share(self) -> float:
+        """``beta_cap_share``, or its default: 0.2 with the delay predicted; 0.05 with the
+        delay as an upper bound, where the observer's declared delay may differ from the
+        loop's and a larger ``beta`` let exact-model loops leave S (docs/method.md)."""
+        if self.beta_cap_share is not None:
+            return self.beta_cap_share
+        return 0.2 if self.delay_predicted is not False else 0.05
+
+    @property
+    def prediction_s(self) -> float:
+        """The delay the filter predicts over [s] (0: none)."""
+        return ((self.delay_periods or 0) / self.control_rate_hz
+                if self.delay_predicted is not False else 0.0)
 
     def record(self) -> dict[str, Any]:
         """Plain form for the certificate's provenance."""

@@ -169,7 +169,7 @@ def choose_beta(design: Design, margin: np.ndarray, r: np.ndarray, settings: Cer
     The floor is the beta at which the bound at rest mid-range equals the authority (below
     it the filter brakes needlessly early; ``beta = 0`` would freeze the arm); the cap keeps
     ``beta * max(alpha2(b)/b) * T_hold`` at ``beta_sampling_limit``. ``beta`` is the largest
-    of ``beta_margin * beta*``, the floor and ``beta_cap_share`` of the cap, never above the
+    of ``beta_margin * beta*``, the floor and ``cap_share`` of the cap, never above the
     cap: a larger ``beta`` lets ``b`` fall faster inside S, so the bounds bind only near its
     boundary (docs/method.md).
     """
@@ -193,5 +193,5 @@ def choose_beta(design: Design, margin: np.ndarray, r: np.ndarray, settings: Cer
                         + design.velocity_box[i])
         b_cap[i] = settings.beta_sampling_limit / (hold * alpha2.max_ratio_to_identity(b_max))
     least = np.maximum(settings.beta_margin * b_star, b_floor)
-    beta = np.minimum(np.maximum(least, settings.beta_cap_share * b_cap), b_cap)
+    beta = np.minimum(np.maximum(least, settings.cap_share * b_cap), b_cap)
     return b_star, b_floor, b_cap, beta

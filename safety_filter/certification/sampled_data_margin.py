@@ -37,6 +37,7 @@ from safety_filter.core.dynamics import hold_mass_matrix, mass_matrix_batch, rne
 from safety_filter.core.friction import friction_torque
 from safety_filter.core.payload_affine import payload_affine_batch
 from safety_filter.core.robot_model import RobotModel
+from safety_filter.online.delay_prediction import stop_at_rest
 
 
 @dataclass(frozen=True)
@@ -196,6 +197,7 @@ def estimate_sampling_margin(
     plants: Sequence[tuple[RobotModel, float]] = (),
     acceleration_hold_s: float = 0.0,
     coulomb_held: bool = True,
+    prediction_s: float = 0.0,
 ) -> np.ndarray:
     """Acceleration margin ``delta`` [rad/s^2] per joint covering one hold period.
 
@@ -228,6 +230,11 @@ def estimate_sampling_margin(
             (physical, see below); False re-evaluates ``sign(v)`` within the hold, as if
             friction could push a joint on through zero velocity (only to report what the
             one-sided treatment gives back).
+        prediction_s: when positive, the declared delay that the filter predicts over: the
+            sampled command acts for this long, then a command planned at the state the
+            filter predicts (from the sample, with ``M`` and ``h`` frozen there) acts on the
+            arm's actual state for ``hold_period_s``; both are checked, with the shortfall
+            as a rate from the sample's time.
     """
     rng = np.random.default_rng(seed)
     n = model.n_joints
@@ -242,41 +249,11 @@ def estimate_sampling_margin(
     plant = _GroupedPlant([BatchPlant(model, payload[group == 0])]
                           + [BatchPlant(other, np.full(int(np.sum(group == k + 1)), mass))
                              for k, (other, mass) in enumerate(plants)], group)
-    start = gains.barriers(model, q, v, margin)
     if acceleration_envelope is None:
         acceleration_envelope = gains.accel_bound
-    mass = plant.mass_matrix(q)
-    bias = plant.bias(q, v)
-    # Accelerations the filter may command: inside the bounds, torque inside the box. Draw
-    # from the bounds' corners and interior, then pull the torque into the box.
-    lo = np.minimum(start.accel_lower, start.accel_upper)
-    hi = np.maximum(start.accel_lower, start.accel_upper)
-    if acceleration_envelope is not None:
-        lo = np.clip(lo, -acceleration_envelope, acceleration_envelope)
-        hi = np.clip(hi, -acceleration_envelope, acceleration_envelope)
-    pick = rng.random((samples, n))
-    corner = rng.random((samples, n)) < 0.5
-    pick = np.where(corner, np.round(pick), pick)
-    accel = lo + pick * (hi - lo)
-    mean_over_hold = acceleration_hold_s > 0.0
-    commanding = (hold_mass_matrix(mass, model.viscous_friction, acceleration_hold_s)
-                  if mean_over_hold else mass)
-    torque = np.einsum('nij,nj->ni', commanding, accel) + bias
-    torque = np.clip(torque, -umax, umax)
-    commanded = np.linalg.solve(commanding, (torque - bias)[..., None])[..., 0]
-    accel0 = (np.linalg.solve(mass, (torque - bias)[..., None])[..., 0] if mean_over_hold
-              else commanded)
-    # Coulomb friction is held at its direction at the sample for the whole hold (the
-    # torque compensates it exactly, as at the sample): friction only ever opposes the
-    # motion, and where a joint's velocity reaches zero within the hold, friction that
-    # sticks it or reverses would slow it further than the held friction does
-    # (docs/method.md, dissipation); ``sign(v)`` re-evaluated would flip it at zero velocity,
-    # which no physical friction does.
-    if coulomb_held:
-        plant.hold_coulomb_direction(v)
-    # A sample whose clipped torque leaves the bounds is not a command the filter sends.
-    tolerance = 1e-9 * (1.0 + np.abs(hi) + np.abs(lo))
-    sendable = np.all((commanded >= lo - tolerance) & (commanded <= hi + tolerance), axis=1)
+    commands = _Commands(model, gains, plant, umax, margin, acceleration_envelope,
+                         acceleration_hold_s, rng)
+    torque, commanded, accel0, sendable = commands.draw(q, v)
     # What is checked (docs/method.md, sampled data): that the state stays in S for the
     # whole hold. S is invariant under the sampled filter when every state of S, under every
     # command the filter may send there, stays in S until the next step (where the QP is
@@ -288,38 +265,136 @@ def estimate_sampling_margin(
     # max |M^-1| D (row sums): take enough substeps for it.
     rate = max([_damping_rate(model), *(_damping_rate(other) for other, _ in plants)])
     substeps = max(substeps, int(math.ceil(hold_period_s * rate / 2.0)))
-    # With mean accelerations over a control period the velocity barriers are checked where
-    # the filter acts again, at the ends of the periods within the hold (between them the
-    # damped response is front-loaded: the plan holds at the period's end, not within it);
-    # the positions at every substep.
-    periods = max(1, round(hold_period_s / acceleration_hold_s)) if mean_over_hold else 0
-    if periods:
-        substeps = periods * int(math.ceil(substeps / periods))
-    dt = hold_period_s / substeps
-    qk, vk = q, v
-    k1v = accel0
-    for step in range(1, substeps + 1):
-        k1q = vk
-        k2v = plant.acceleration(qk + 0.5 * dt * k1q, vk + 0.5 * dt * k1v, torque)
-        k2q = vk + 0.5 * dt * k1v
-        k3v = plant.acceleration(qk + 0.5 * dt * k2q, vk + 0.5 * dt * k2v, torque)
-        k3q = vk + 0.5 * dt * k2v
-        k4v = plant.acceleration(qk + dt * k3q, vk + dt * k3v, torque)
-        k4q = vk + dt * k3v
-        qk = qk + dt / 6.0 * (k1q + 2 * k2q + 2 * k3q + k4q)
-        vk = vk + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v)
-        k1v = plant.acceleration(qk, vk, torque)  # the acceleration now; next step's k1
-        now = gains.barriers(model, qk, vk, 0.0)
-        if not sendable.any():
-            continue
-        if not periods or step % (substeps // periods) == 0:
-            lowest = np.minimum(np.minimum(now.barrier_upper, now.barrier_lower),
-                                np.minimum(now.speed_upper, now.speed_lower))
-            shortfall = np.maximum(shortfall,
-                                   np.max(-lowest[sendable], axis=0) / (step * dt))
-        if periods:
-            # a position short by x at time t lacked 2 x / t^2 of acceleration
-            position = np.minimum(now.margin_upper, now.margin_lower)
-            shortfall = np.maximum(shortfall, 2.0 * np.max(-position[sendable], axis=0)
-                                   / (step * dt) ** 2)
+    rollout = _Rollout(model, gains, plant, hold_period_s / substeps, acceleration_hold_s,
+                       coulomb_held, shortfall)
+    if prediction_s > 0.0:
+        # The command planned at the sample acts over the delay; the filter predicts the
+        # state at its end (M and h frozen at the sample, as the filter step does: with the
+        # observer caught up, the commanded acceleration is its prediction) and plans the
+        # next command there, which then acts on the arm's actual state for one hold.
+        q1, v1 = rollout.run(q, v, torque, accel0, prediction_s, 0.0, sendable)
+        q_plan = q + prediction_s * v + (0.5 * prediction_s ** 2) * commanded
+        v_plan = v + prediction_s * commanded
+        stop_at_rest(q, v, q_plan, v_plan, np.array(model.coulomb_friction) > 0.0,
+                     prediction_s)
+        # Coulomb friction as the filter plans it there, at the predicted direction, and held
+        # so over the hold (where the arm's velocity has the other sign it is within the
+        # prediction's error of zero, and real friction there only slows the joint).
+        if coulomb_held:
+            plant.hold_coulomb_direction(v_plan)
+        torque, _, _, planned = commands.draw(q_plan, v_plan)
+        sendable = sendable & planned
+        rollout.run(q1, v1, torque, plant.acceleration(q1, v1, torque), hold_period_s,
+                    prediction_s, sendable, coulomb_velocity=v_plan)
+    else:
+        rollout.run(q, v, torque, accel0, hold_period_s, 0.0, sendable)
     return margin + inflation * shortfall
+
+
+class _Commands:
+    """Commands the filter may send at a state: accelerations inside its bounds (tightened
+    by the margin; the bounds' corners and interior), the torque pulled into the box."""
+
+    def __init__(self, model: RobotModel, gains: Gains, plant: _GroupedPlant, umax: np.ndarray,
+                 margin: np.ndarray, envelope: np.ndarray | None, acceleration_hold_s: float,
+                 rng: np.random.Generator) -> None:
+        self.model, self.gains, self.plant, self.umax = model, gains, plant, umax
+        self.margin, self.envelope, self.rng = margin, envelope, rng
+        self.acceleration_hold_s = acceleration_hold_s
+
+    def draw(self, q: np.ndarray, v: np.ndarray
+             ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """``(torque, commanded, initial acceleration, sendable)`` per sample: the commanded
+        acceleration is the mean over the hold in the mean form; a sample whose clipped
+        torque leaves the bounds is not a command the filter sends."""
+        samples, n = q.shape
+        bounds = self.gains.barriers(self.model, q, v, self.margin)
+        lo = np.minimum(bounds.accel_lower, bounds.accel_upper)
+        hi = np.maximum(bounds.accel_lower, bounds.accel_upper)
+        if self.envelope is not None:
+            lo = np.clip(lo, -self.envelope, self.envelope)
+            hi = np.clip(hi, -self.envelope, self.envelope)
+        pick = self.rng.random((samples, n))
+        corner = self.rng.random((samples, n)) < 0.5
+        pick = np.where(corner, np.round(pick), pick)
+        accel = lo + pick * (hi - lo)
+        mass = self.plant.mass_matrix(q)
+        bias = self.plant.bias(q, v)
+        mean_over_hold = self.acceleration_hold_s > 0.0
+        commanding = (hold_mass_matrix(mass, self.model.viscous_friction,
+                                       self.acceleration_hold_s) if mean_over_hold else mass)
+        torque = np.einsum('nij,nj->ni', commanding, accel) + bias
+        torque = np.clip(torque, -self.umax, self.umax)
+        commanded = np.linalg.solve(commanding, (torque - bias)[..., None])[..., 0]
+        accel0 = (np.linalg.solve(mass, (torque - bias)[..., None])[..., 0] if mean_over_hold
+                  else commanded)
+        tolerance = 1e-9 * (1.0 + np.abs(hi) + np.abs(lo))
+        sendable = np.all((commanded >= lo - tolerance) & (commanded <= hi + tolerance), axis=1)
+        return torque, commanded, accel0, sendable
+
+
+class _Rollout:
+    """Held torques integrated with RK4; each velocity barrier's shortfall, as a rate from
+    the sample's time, raised into ``shortfall`` (shape (n,), in place)."""
+
+    def __init__(self, model: RobotModel, gains: Gains, plant: _GroupedPlant, step_s: float,
+                 acceleration_hold_s: float, coulomb_held: bool, shortfall: np.ndarray) -> None:
+        self.model, self.gains, self.plant = model, gains, plant
+        self.step_s = step_s
+        self.acceleration_hold_s = acceleration_hold_s
+        self.coulomb_held = coulomb_held
+        self.shortfall = shortfall
+
+    def run(self, q: np.ndarray, v: np.ndarray, torque: np.ndarray, accel0: np.ndarray,
+            duration: float, elapsed: float, sendable: np.ndarray,
+            coulomb_velocity: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Hold ``torque`` for ``duration`` from ``(q, v)``, ``elapsed`` after the sample, with
+        Coulomb friction held at the direction of ``coulomb_velocity`` (default ``v``);
+        returns the state at the end."""
+        plant = self.plant
+        # Coulomb friction is held at its direction at the start for the whole hold (the
+        # torque compensates it exactly, as where it was planned): friction only ever
+        # opposes the motion, and where a joint's velocity reaches zero within the hold,
+        # friction that sticks it or reverses would slow it further than the held friction
+        # does (docs/method.md, dissipation); ``sign(v)`` re-evaluated would flip it at zero
+        # velocity, which no physical friction does.
+        if self.coulomb_held:
+            plant.hold_coulomb_direction(v if coulomb_velocity is None else coulomb_velocity)
+        substeps = max(1, int(math.ceil(duration / self.step_s - 1e-9)))
+        # With mean accelerations over a control period the velocity barriers are checked
+        # where the filter acts again, at the ends of the periods within the hold (between
+        # them the damped response is front-loaded: the plan holds at the period's end, not
+        # within it); the positions at every substep.
+        periods = (max(1, round(duration / self.acceleration_hold_s))
+                   if self.acceleration_hold_s > 0.0 else 0)
+        if periods:
+            substeps = periods * int(math.ceil(substeps / periods))
+        dt = duration / substeps
+        qk, vk = q, v
+        k1v = accel0
+        for step in range(1, substeps + 1):
+            k1q = vk
+            k2v = plant.acceleration(qk + 0.5 * dt * k1q, vk + 0.5 * dt * k1v, torque)
+            k2q = vk + 0.5 * dt * k1v
+            k3v = plant.acceleration(qk + 0.5 * dt * k2q, vk + 0.5 * dt * k2v, torque)
+            k3q = vk + 0.5 * dt * k2v
+            k4v = plant.acceleration(qk + dt * k3q, vk + dt * k3v, torque)
+            k4q = vk + dt * k3v
+            qk = qk + dt / 6.0 * (k1q + 2 * k2q + 2 * k3q + k4q)
+            vk = vk + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v)
+            k1v = plant.acceleration(qk, vk, torque)  # the acceleration now; next step's k1
+            if not sendable.any():
+                continue
+            now = self.gains.barriers(self.model, qk, vk, 0.0)
+            time = elapsed + step * dt
+            if not periods or step % (substeps // periods) == 0:
+                lowest = np.minimum(np.minimum(now.barrier_upper, now.barrier_lower),
+                                    np.minimum(now.speed_upper, now.speed_lower))
+                np.maximum(self.shortfall, np.max(-lowest[sendable], axis=0) / time,
+                           out=self.shortfall)
+            if periods:
+                # a position short by x at time t lacked 2 x / t^2 of acceleration
+                position = np.minimum(now.margin_upper, now.margin_lower)
+                np.maximum(self.shortfall, 2.0 * np.max(-position[sendable], axis=0)
+                           / time ** 2, out=self.shortfall)
+        return qk, vk

@@ -103,8 +103,10 @@ def margin_shortfall_reason(model: RobotModel, settings: CertifySettings, i: int
     below 10 kHz would)."""
     names = list(model.joint_names)
     hold_ms = 1000 * settings.hold_period_s
-    text = (f'joint {names[i]!r}: within one hold of {hold_ms:.3g} ms (one control period '
-            f'and the declared delay) the state leaves S unless {margin:.4g} rad/s^2 is '
+    what = ('after the declared delay, which the filter predicts over' if settings.prediction_s
+            else 'with the declared delay as part of it')
+    text = (f'joint {names[i]!r}: within one hold of {hold_ms:.3g} ms ({what}) the state '
+            f'leaves S unless {margin:.4g} rad/s^2 is '
             f'reserved, more than its authority {authority:.4g} rad/s^2')
     viscous = np.array(model.viscous_friction)
     inverse = sampled_inverse_mass(model)

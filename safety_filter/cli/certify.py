@@ -51,6 +51,7 @@ def certify_settings(args: argparse.Namespace) -> CertifySettings:
         bounds=bounds,
         seed=args.seed,
         mean_over_hold={'auto': None, 'start': False, 'mean': True}[args.acceleration_form],
+        delay_predicted={'auto': None, 'fixed': True, 'up-to': False}[args.delay],
         **extra)
 
 
@@ -173,6 +174,13 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         'over the period, the exact response of the damped joints (mean), or '
                         'whichever certifies the larger safe set (default: auto; see '
                         'docs/method.md)')
+    method.add_argument('--delay', choices=('auto', 'fixed', 'up-to'), default='auto',
+                        help="how the limits file's declared delay (uncertainty: "
+                        "delay_periods) is read: fixed, the driver's own delay, which the "
+                        'filter predicts over, planning each torque for the state where it '
+                        'will act (a smaller margin); up-to, any delay up to it, covered as a '
+                        'longer hold; auto, fixed unless the model has Coulomb friction '
+                        '(default: auto; docs/method.md)')
     method.add_argument('--alpha1', choices=('auto',) + ALPHA1_KINDS, default='auto',
                         help='class-K family of the velocity barrier (default: auto, the '
                         'design with the largest safe set that certifies; see '
@@ -190,7 +198,7 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
     method.add_argument('--beta-cap-share', type=float, default=None,
                         help='beta >= this share of its sampled-data cap, in [0, 1]: larger '
                         'lets a joint run closer to the boundary of S before it is slowed '
-                        '(default: 0.05; docs/method.md)')
+                        '(default: 0.2, or 0.05 with the delay as an upper bound; docs/method.md)')
     method.add_argument('--velocity-headroom', type=float, default=None,
                         help='velocity boxes stay this share of the rated speed below it, '
                         'for model error the disturbance observer has not yet removed '

@@ -15,6 +15,9 @@ The certificate is tied to one robot model by :meth:`RobotModel.content_hash`; l
 for a model with another hash raises :class:`CertificateMismatch`, which names the likely
 cause from the model details the certificate records (joints, limits, friction, payload,
 declared uncertainty).
+
+Kept in one module: the fields, their checks and the parameter file's round trip change
+together (a new field touches all three).
 """
 
 from __future__ import annotations
@@ -83,6 +86,11 @@ class Certificate:
         acceleration_hold_s: when set, the accelerations the filter bounds are means over a
             hold of this length [s] (``u = M_hold a + h``,
             ``dynamics.hold_mass_matrix``): the exact response of the damped joints.
+        prediction_s: when set, the declared delay between measurement and torque [s]: the
+            filter plans each torque for the state it predicts at the end of it (from the
+            torques already sent), and the sampling margin covers one hold from there.
+            Unset (older certificates, or a delay declared as an upper bound): the filter
+            plans at the measured state and the margin covers the delay as a longer hold.
     """
 
     joint_names: list[str]
@@ -118,6 +126,7 @@ class Certificate:
     velocity_beta: np.ndarray | None = None
     acceleration_bound: np.ndarray | None = None
     acceleration_hold_s: float | None = None
+    prediction_s: float | None = None
 
     def __post_init__(self) -> None:
         # The one place that sets fields: the constructor's checks and read-only copies.
@@ -140,6 +149,11 @@ class Certificate:
             if not (math.isfinite(hold) and hold > 0.0):
                 raise CertificateError(f'acceleration_hold_s must be positive, got {hold}')
             store('acceleration_hold_s', hold)
+        if self.prediction_s is not None:
+            ahead = float(self.prediction_s)
+            if not (math.isfinite(ahead) and ahead > 0.0):
+                raise CertificateError(f'prediction_s must be positive, got {ahead}')
+            store('prediction_s', ahead)
         speed_beta = np.zeros(n) if self.velocity_beta is None else np.array(
             self.velocity_beta, dtype=float).reshape(-1)
         if speed_beta.shape != (n,) or not np.all(np.isfinite(speed_beta)) \
@@ -364,6 +378,8 @@ class Certificate:
                 continue
             if item.name == 'acceleration_hold_s' and self.acceleration_hold_s is None:
                 continue
+            if item.name == 'prediction_s' and self.prediction_s is None:
+                continue
             value = getattr(self, item.name)
             if isinstance(value, np.ndarray):
                 value = [float(x) for x in value]
@@ -398,6 +414,8 @@ class Certificate:
             params['acceleration_bound'] = plain['acceleration_bound']
         if self.acceleration_hold_s is not None:
             params['acceleration_hold_s'] = plain['acceleration_hold_s']
+        if self.prediction_s is not None:
+            params['prediction_s'] = plain['prediction_s']
         params['certificate_id'] = self.certificate_id
         return params
 
@@ -430,6 +448,8 @@ class Certificate:
                 kwargs['acceleration_bound'] = [float(x) for x in params['acceleration_bound']]
             if params.get('acceleration_hold_s') is not None:
                 kwargs['acceleration_hold_s'] = float(params['acceleration_hold_s'])
+            if params.get('prediction_s') is not None:
+                kwargs['prediction_s'] = float(params['prediction_s'])
         except KeyError as err:
             raise CertificateError(f'the certificate lacks the entry {err.args[0]!r}') from err
         except (TypeError, ValueError) as err:

@@ -14,6 +14,8 @@ call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dy
 1b. **Model error feedback** (docs/method.md, "Model error"): a disturbance observer
    estimates the torque the arm needs beyond the model from the measured velocity change,
    low-pass filtered with ``observer_time_constant_s``, and takes it out of the bias ``h``.
+1c. **Delay** (certificates with ``prediction_s``): the rest of the step works at the state
+   predicted for the end of the declared delay, where the torque will start to act.
 2. **Convert** the nominal to full torque: with ``gravity_convention='driver_compensated'``
    the driver adds ``g(q)`` itself, so ``u_full = u_nom + g(q)`` here and the output is
    ``u* - g(q)``. The torque box ``|u| <= umax`` always applies to the full torque.
@@ -35,6 +37,9 @@ call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dy
 6. The torque is clipped to the box (full-torque terms), converted to the driver's convention.
 
 Units: [rad], [rad/s], [rad/s^2], [N m] (prismatic joints: [m], [m/s], [m/s^2], [N]).
+
+Kept in one module: every stage of the step reads and writes the filter's preallocated
+buffers; its parts that keep no buffers live in the modules named above.
 """
 
 from __future__ import annotations
@@ -52,6 +57,7 @@ from safety_filter.core.robot_model import RobotModel
 from safety_filter.online import filter_options as _options
 from safety_filter.online import kernels as _kernels
 from safety_filter.online.constructive import push_back_harder
+from safety_filter.online.delay_prediction import DelayPrediction
 from safety_filter.online.disturbance_observer import DisturbanceObserver
 from safety_filter.online.filter_output import FilterOutput
 from safety_filter.online.hold_command import hold_command, rejected_output
@@ -191,9 +197,15 @@ class SafetyFilter:
         self._k_accel_tol = np.array(self._accel_tol)
         self._k_saturation = np.array(self._torque_saturation)
         self._k_authority = np.array(usable)
+        # With a declared delay the certificate's margin covers (prediction_s), each torque
+        # is planned for the state at the end of the delay (online/delay_prediction.py).
+        self._ahead = (DelayPrediction(certificate.prediction_s, self._dyn, self._k_barrier,
+                                       np.array(model.coulomb_friction))
+                       if certificate.prediction_s else None)
 
         # Preallocated per-step buffers.
         self._inputs = np.empty((3, n))
+        self._planned = np.full((2, n), np.nan)  # the state the last step planned for
         # Barrier rows [hp; hn; bp; bn; Ap; An; sp; sn] (docs/method.md), written by
         # _kernels.barrier_rows.
         self._rows = np.empty((8, n))
@@ -213,8 +225,8 @@ class SafetyFilter:
         self.reset()
 
     def _warm_up(self, q_mid: np.ndarray) -> None:
-        """Run every branch of the step once, so that the compiled kernels are loaded (or
-        compiled, on a cold cache) now and not at the first control step."""
+        """Run every branch of the step once (the compiled kernels load now, not at the
+        first control step)."""
         zeros = np.zeros(self.n)
         self.step(q_mid, zeros, zeros)  # nominal checked, passed or filtered
         self.step(q_mid, zeros, 10.0 * self.torque_limit)  # outside the box: the QP
@@ -256,6 +268,13 @@ class SafetyFilter:
         """Fill ``_rows = [hp; hn; bp; bn; Ap; An; sp; sn]`` (shape (8, n)) at one state (the
         step does the same inside its first kernel; the tests use this one)."""
         _kernels.barrier_rows(q, v, *self._k_barrier, self._rows, np.empty(self.n))
+
+    @property
+    def planned_state(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(q, v)`` the last step that reached the dynamics planned for: the measured state,
+        or its prediction at the end of the declared delay (certificates with
+        ``prediction_s``); NaN before the first such step."""
+        return self._planned[0].copy(), self._planned[1].copy()
 
     @property
     def disturbance_estimate(self) -> np.ndarray:
@@ -326,9 +345,17 @@ class SafetyFilter:
 
         mass, bias = self._mass, self._bias
         self._dyn.mass_and_bias(q, v, mass, bias)
-        self._resting.observe(v)
         if self._observing:
             self._observer.observe(q, v, mass, bias, period_s)
+        smallest = barrier_margin  # each joint's smallest barrier where the torque is planned
+        if self._ahead is not None:
+            ahead = self._ahead.plan(q, v, mass, bias, self._observer, period_s, self._rows)
+            if ahead is not None:  # plan (and convert gravity) at the predicted state
+                worst, smallest = ahead, self._ahead.smallest
+                q[:] = self._ahead.state[0]
+                v[:] = self._ahead.state[1]
+        self._planned[0], self._planned[1] = q, v
+        self._resting.observe(v)  # joints at rest where the torque is planned
         gravity = self._no_gravity
         if self._driver:
             gravity = self._dyn.gravity(q)
@@ -350,8 +377,7 @@ class SafetyFilter:
             # with any torque in the box, and the constructive push-back (within the
             # certified authority) is the fallback.
             mode = FilterMode.RECOVERING
-            outside = [self.model.joint_names[i] for i in range(self.n)
-                       if barrier_margin[i] < 0.0]
+            outside = [self.model.joint_names[i] for i in range(self.n) if smallest[i] < 0.0]
             reason = f'state outside the safe set at {", ".join(outside)}'
             key = 'outside the safe set'
         if self._nominal_feasible(u_full):
@@ -402,8 +428,7 @@ class SafetyFilter:
         intervention = _kernels.finish(torque, u_full, acceleration, accel_lower, accel_upper,
                                        self._k_torque_limit, self._k_accel_tol,
                                        self._k_saturation, gravity, self._driver, out_flags)
-        if self._observing:
-            self._observer.sent(torque - self._resting.breakaway + gravity)
+        self._observer.sent(torque + gravity, self._resting.breakaway)
         self.steps += 1
         self.mode_counts[mode] += 1
         if key:

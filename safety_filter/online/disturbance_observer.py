@@ -62,6 +62,7 @@ class DisturbanceObserver:
         self.delay_s = self.delay_periods * self.control_period_s
         # full torques sent, oldest first; two more than the delay at the certified period
         self._sent = np.zeros((self.delay_periods + 2, n))
+        self._applied = np.zeros_like(self._sent)  # the same with the breakaway torques
         self._acted = np.empty(n)
         self._count = 0  # torques recorded since the last restart
         self._v = np.zeros(n)  # velocity at the last step
@@ -150,11 +151,40 @@ class DisturbanceObserver:
                                         self._dyn.gravity(q), rigid, payload)
         return np.minimum(limit, self._torque_limit)
 
-    def sent(self, torque_full: np.ndarray) -> None:
-        """Record the full torque sent at this step (it acts over the next period)."""
-        sent = self._sent
-        if len(sent) > 1:
-            sent[:-1] = sent[1:]
-        sent[-1] = torque_full
+    def acting_ahead(self, horizon_s: float, period_s: float | None
+                     ) -> list[tuple[float, np.ndarray]] | None:
+        """The torques that act from now over the next ``horizon_s`` (the declared delay):
+        ``(duration [s], full torque)`` pieces in time order, with the loop period
+        ``period_s`` (None: the control period) assumed to last. The torque sent ``m`` steps
+        ago acts from ``horizon - m P`` to ``horizon - (m - 1) P`` after now. None when one of
+        them was sent before the last restart (or never); views into the history."""
+        period = self.control_period_s if period_s is None else float(period_s)
+        if not (math.isfinite(period) and period > 0.0):
+            return None
+        pieces = []
+        kept = len(self._sent)
+        for ago in range(1, kept + 1):
+            if ago > self._count:
+                return None
+            end = horizon_s - (ago - 1) * period
+            # a loop faster than certified: the oldest torque kept stands for older ones
+            start = max(0.0, horizon_s - ago * period) if ago < kept else 0.0
+            pieces.append((end - start, self._applied[-ago]))
+            if start <= 0.0:
+                break
+        pieces.reverse()
+        return pieces
+
+    def sent(self, torque_full: np.ndarray, breakaway: np.ndarray | None = None) -> None:
+        """Record the full torque sent at this step (it acts over the next period), without
+        the share ``breakaway`` that starts resting joints (which their static friction
+        takes: the residual counts the friction at the new velocity); the prediction over
+        the delay gets all of it."""
+        for history, torque in ((self._sent, torque_full), (self._applied, torque_full)):
+            if len(history) > 1:
+                history[:-1] = history[1:]
+            history[-1] = torque
+        if breakaway is not None:
+            self._sent[-1] -= breakaway
         self._count += 1
         self._valid = True

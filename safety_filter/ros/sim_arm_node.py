@@ -57,7 +57,8 @@ Parameters (read at start): ``urdf_path``, ``limits_path`` (the robot), ``payloa
 inertia as in the URDF; the demo uses 1.1 so that the arm is not the filter's model),
 ``control_rate_hz`` (1000), ``internal_rate_hz`` (0: ten times the control rate),
 ``initial_positions`` (empty: the middle of each range), ``position_noise_std`` [rad],
-``velocity_noise_std`` [rad/s], ``noise_seed``, ``latency_s``, ``command_timeout_s`` (0.1 s),
+``velocity_noise_std`` [rad/s], ``noise_seed``, ``latency_s``, ``command_delay_ticks`` (-1:
+the limits file's declared delay), ``command_timeout_s`` (0.1 s),
 ``gravity_convention`` (``'full'``, or ``'driver_compensated'``: the driver adds ``g(q)`` to
 each command), ``lockstep`` (false), ``lockstep_timeout_s`` (0.1 s), ``publish_clock``
 (false), ``duration_s`` (0: run until stopped), ``report_path`` ('': no report file).
@@ -125,6 +126,9 @@ class SimArmNode(Node):
         declare('velocity_noise_std', 0.0, describe('velocity noise (std) [rad/s or m/s]'))
         declare('noise_seed', 0, describe('seed of the noise'))
         declare('latency_s', 0.0, describe('age of the published state [s]'))
+        declare('command_delay_ticks', -1, describe(
+            "ticks between a command's arrival and the tick it acts in; -1: the limits file's "
+            'declared delay (uncertainty: delay_periods)'))
         declare('command_timeout_s', 0.1, describe(
             'command timeout: older commands give zero torque [s of simulated time]'))
         declare('gravity_convention', 'full', describe(
@@ -167,7 +171,10 @@ class SimArmNode(Node):
             position_noise_std=float(value('position_noise_std')),
             velocity_noise_std=float(value('velocity_noise_std')),
             noise_seed=int(value('noise_seed')), latency_s=float(value('latency_s')),
-            command_timeout_s=float(value('command_timeout_s')), gravity_convention=convention)
+            command_timeout_s=float(value('command_timeout_s')), gravity_convention=convention,
+            command_delay_ticks=(int(value('command_delay_ticks'))
+                                 if int(value('command_delay_ticks')) >= 0
+                                 else int(model.uncertainty.delay_periods)))
         self.model = model
         self._lockstep = bool(value('lockstep'))
         self._lockstep_timeout = float(value('lockstep_timeout_s'))

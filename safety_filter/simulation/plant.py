@@ -29,7 +29,7 @@ limit.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -293,10 +293,12 @@ def run_closed_loop(
     payload_mass: float = 0.0,
     internal_rate_hz: float = 10_000.0,
     coulomb_law: str = 'stick_slip',
+    delay_periods: int = 0,
 ) -> ClosedLoopLog:
     """Run nominal -> filter step -> simulated arm at ``control_rate_hz``: the plant loop of
-    :func:`run_plant_loop` with ``model`` itself as the plant (no noise, delay or torque
-    error). The applied torque is the step's output saturated by the simulator.
+    :func:`run_plant_loop` with ``model`` itself as the plant (no noise or torque error; the
+    command acts ``delay_periods`` control periods after its step). The applied torque is the
+    step's output saturated by the simulator.
 
     Args:
         step: a filter step ``step(q, v, u_nom)`` returning an object with ``torque``, ``mode``
@@ -312,7 +314,7 @@ def run_closed_loop(
         margins.append(np.array(out.barrier_margin))  # type: ignore[attr-defined]
         return out
 
-    plant = nominal_plant(model, payload_mass)
+    plant = replace(nominal_plant(model, payload_mass), delay_periods=int(delay_periods))
     log = run_plant_loop(plant, None if step is None else recorded, nominal, duration_s,
                          control_rate_hz, q0, v0, internal_rate_hz=internal_rate_hz,
                          coulomb_law=coulomb_law)

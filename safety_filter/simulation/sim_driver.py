@@ -16,6 +16,9 @@ what a torque driver adds around the arm, one control period per :meth:`Simulate
 * **Friction.** Coulomb friction acts as the physical stick-slip law by default (a joint
   that comes to rest sticks while its friction can hold it; ``coulomb_law``, see
   :class:`safety_filter.simulation.plant.ArmSimulator`).
+* **Pipeline delay.** A command acts ``command_delay_ticks`` ticks after the tick it arrived
+  for (a driver's bus pipeline: the limits file's declared ``delay_periods``); until that
+  many have passed, the first command acts.
 * **Measurement.** The published state can carry Gaussian noise (seeded) and a latency: the
   state measured ``latency_s`` ago is published, with its own time stamp.
 
@@ -77,6 +80,7 @@ class SimulatedDriver:
         backend: dynamics backend (see :class:`safety_filter.core.dynamics.Dynamics`).
         coulomb_law: ``'stick_slip'`` (default) or ``'sign'``: how the simulation treats
             Coulomb friction (:class:`safety_filter.simulation.plant.ArmSimulator`).
+        command_delay_ticks: ticks between a command's arrival and the tick it acts in.
 
     Raises:
         SafetyFilterError: an invalid option.
@@ -88,7 +92,8 @@ class SimulatedDriver:
                  position_noise_std: float = 0.0, velocity_noise_std: float = 0.0,
                  noise_seed: int = 0, latency_s: float = 0.0, command_timeout_s: float = 0.1,
                  gravity_convention: str = 'full', start_time_s: float = 0.0,
-                 backend: str = 'auto', coulomb_law: str = 'stick_slip') -> None:
+                 backend: str = 'auto', coulomb_law: str = 'stick_slip',
+                 command_delay_ticks: int = 0) -> None:
         def check(name: str, value: float, positive: bool = False) -> float:
             value = float(value)
             if not math.isfinite(value) or value < 0.0 or (positive and value == 0.0):
@@ -116,6 +121,11 @@ class SimulatedDriver:
         self.latency_s = check('latency_s', latency_s)
         self.command_timeout_s = check('command_timeout_s', command_timeout_s, positive=True)
         self.gravity_convention = gravity_convention
+        if int(command_delay_ticks) != command_delay_ticks or command_delay_ticks < 0:
+            raise InvalidValue('command_delay_ticks', command_delay_ticks, 'a whole number >= 0')
+        self.command_delay_ticks = int(command_delay_ticks)
+        # the latest command at each of the last command_delay_ticks + 1 ticks, oldest first
+        self._pipeline: deque[np.ndarray] = deque(maxlen=self.command_delay_ticks + 1)
         if coulomb_law not in COULOMB_LAWS:
             raise InvalidValue('coulomb_law', coulomb_law, f'one of {", ".join(COULOMB_LAWS)}')
         self.simulator = ArmSimulator(model, self.payload_mass, internal_rate_hz, backend,
@@ -174,7 +184,8 @@ class SimulatedDriver:
         if self._command is None or self.command_age_s() > self.command_timeout_s + 1e-12:
             self.stale_ticks += self._command is not None
             return np.zeros(self.n)
-        u = self._command
+        self._pipeline.append(self._command)
+        u = self._pipeline[0]  # the first command stands in until the pipeline has filled
         if self.gravity_convention == 'driver_compensated':
             u = u + self.simulator.dynamics.gravity_torque(self.simulator.q)
         return np.clip(u, -self.effort_limit, self.effort_limit)

@@ -611,14 +611,14 @@ def test_declared_uncertainty_that_uses_up_a_joint_is_named_with_its_kinds() -> 
 
 def test_boxes_keep_their_headroom_and_beta_sits_above_its_floor(certified_arm) -> None:  # noqa: ANN001, F811
     """The velocity boxes stay ``velocity_headroom`` below the rated speeds, and beta is at
-    least ``beta_cap_share`` of its sampled-data cap (docs/method.md), never above the cap."""
+    least ``cap_share`` of its sampled-data cap (docs/method.md), never above the cap."""
     model, outcome = certified_arm
     c = outcome.certificate
     settings = CertifySettings()
     top = settings.top_velocity_fraction * np.array(model.velocity_limit)
     assert np.all(np.array(c.velocity_bound) <= top * (1 + 1e-12))
     cap = np.array(c.beta_cap)
-    assert np.all(np.array(c.beta) >= settings.beta_cap_share * cap * (1 - 1e-12))
+    assert np.all(np.array(c.beta) >= settings.cap_share * cap * (1 - 1e-12))
     assert np.all(np.array(c.beta) <= cap * (1 + 1e-12))
     # the share is what lifted beta: above the least value that certifies
     assert np.any(np.array(c.beta) > np.maximum(settings.beta_margin * np.array(c.beta_star),

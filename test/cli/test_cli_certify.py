@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
 import pytest
@@ -189,13 +190,36 @@ def test_permissiveness_options_reach_the_settings() -> None:
     from safety_filter.cli.main import build_parser
 
     parser = build_parser()
-    args = parser.parse_args(['certify', '--demo', 'planar2', '--beta-cap-share', '0.2',
+    args = parser.parse_args(['certify', '--demo', 'planar2', '--beta-cap-share', '0.3',
                               '--velocity-headroom', '0.15'])
     settings = certify_settings(args)
-    assert settings.beta_cap_share == 0.2
+    assert settings.beta_cap_share == 0.3
     assert settings.top_velocity_fraction == pytest.approx(0.85)
     default = certify_settings(parser.parse_args(['certify', '--demo', 'planar2']))
-    assert (default.beta_cap_share, default.velocity_headroom) == (0.05, 0.1)
+    assert (default.cap_share, default.velocity_headroom) == (0.2, 0.1)
+    assert replace(default, delay_predicted=False).cap_share == 0.05
+
+
+def test_the_delay_option_says_whether_the_filter_predicts_over_it() -> None:
+    """--delay fixed: the filter predicts over the declared delay and the margin covers one
+    hold; --delay up-to: no prediction, the hold covers the delay too; auto (default):
+    decided by the model at certification."""
+    from safety_filter.cli.certify import certify_settings
+    from safety_filter.cli.main import build_parser
+
+    parser = build_parser()
+    assert certify_settings(parser.parse_args(['certify'])).delay_predicted is None
+    fixed = replace(certify_settings(parser.parse_args(['certify', '--delay', 'fixed'])),
+                    delay_periods=1)
+    up_to = replace(certify_settings(parser.parse_args(
+        ['certify', '--demo', 'planar2', '--delay', 'up-to'])), delay_periods=1)
+    period = 1.0 / fixed.control_rate_hz
+    assert (fixed.delay_predicted, up_to.delay_predicted) == (True, False)
+    assert (fixed.prediction_s, fixed.hold_period_s) == (pytest.approx(period),
+                                                         pytest.approx(period))
+    assert (up_to.prediction_s, up_to.hold_period_s) == (0.0, pytest.approx(2 * period))
+    with pytest.raises(SystemExit):
+        parser.parse_args(['certify', '--demo', 'planar2', '--delay', 'sometimes'])
 
 
 def test_sampling_factor_reaches_the_settings(capsys) -> None:

@@ -25,6 +25,7 @@ pytest.importorskip('rclpy', reason='rclpy is missing: install the ROS 2 wheels 
 
 from ros_fixtures import certified_arm, isolate_ros_domain  # noqa: E402
 
+from safety_filter.certification.certify_settings import CertifySettings  # noqa: E402
 from safety_filter.recordings import bags  # noqa: E402
 from safety_filter.reports.demo_report import (  # noqa: E402
     PLOTS,
@@ -72,11 +73,16 @@ def test_unfiltered_run_breaks_a_limit_and_filtered_run_keeps_all(demo) -> None:
     assert result.unfiltered_broke_some, result.summary
     assert result.filtered_kept_all, result.summary
     filtered = result.runs['filtered']
-    # The filter kept the state in the safe set too: every barrier value non-negative.
+    # The simulated arm is not the filter's model (links 10 % heavier, a payload it is not
+    # told): what the disturbance observer has not yet removed may carry the state past the
+    # boundary of S for a few periods (docs/method.md, "What the certificate covers"), by
+    # less than the velocity headroom that the velocity boxes keep below the rated speeds.
     margins = np.column_stack([filtered.status[f'margin.{joint}']
                                for joint in ('shoulder', 'elbow')])
-    assert np.nanmin(margins) >= -1e-9
-    assert set(np.unique(filtered.status['mode'])) <= {0.0, 1.0}  # filtered or fallback
+    headroom = CertifySettings().velocity_headroom * np.min(load_demo_arm(ARM).velocity_limit)
+    assert np.nanmin(margins) >= -headroom
+    # filtered, fallback or (in those periods) recovering; no input rejected, none stale
+    assert set(np.unique(filtered.status['mode'])) <= {0.0, 1.0, 2.0}
 
 
 def _released_states(run) -> int:

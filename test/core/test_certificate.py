@@ -156,3 +156,25 @@ def test_the_hold_of_mean_accelerations_is_kept_and_covered_by_the_id(
     for bad in (0.0, -1.0, float('nan')):
         with pytest.raises(CertificateError, match='acceleration_hold_s'):
             dataclasses.replace(certificate, acceleration_hold_s=bad)
+
+
+def test_the_predicted_delay_is_kept_and_covered_by_the_id(
+        planar2: tuple, tmp_path: Path) -> None:
+    """prediction_s survives the parameter file and is part of the id (a certificate made
+    with the delay as an upper bound has none); an invalid value is refused."""
+    import dataclasses
+
+    from safety_filter.core.certificate import CertificateError
+
+    model, plain, _, _ = planar2
+    assert plain.prediction_s is None
+    certificate = dataclasses.replace(plain, prediction_s=1e-3)
+    assert 'prediction_s' not in plain.to_parameters()
+    assert plain.certificate_id != certificate.certificate_id
+    loaded = Certificate.load(certificate.save(tmp_path / 'ahead.yaml'), model)
+    assert loaded.prediction_s == certificate.prediction_s
+    assert loaded.certificate_id == certificate.certificate_id
+    assert Certificate.load(plain.save(tmp_path / 'plain.yaml'), model).prediction_s is None
+    for bad in (0.0, -1e-3, float('inf')):
+        with pytest.raises(CertificateError, match='prediction_s'):
+            dataclasses.replace(certificate, prediction_s=bad)

@@ -7,8 +7,8 @@ What is asked of the certificate, as of the demo arms' in ``test_closed_loop.py`
 certifies at 1 kHz with the default settings, and the filter keeps every position and
 velocity limit and the state in S against the adversarial nominals (bang-bang, PD beyond the
 limits with gravity feedforward, large sinusoid, zero torque) and a benign tracking nominal,
-at 1 kHz and at the slowest rate the certificate covers (its sampled-data margin covers
-``sampling_factor + delay_periods`` control periods; the simulated plant has no delay).
+in the loops the certificate covers (``covered_loop``: with the default certificate, which
+predicts over the declared delay, 1 kHz with the plant's torque acting one period late).
 
 Setup of every run: the certificate from the default certification, the filter told the
 mounted payload (the heaviest at 1 kHz, the lightest at the slow rate), the plant carrying the
@@ -38,6 +38,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from certify_fixtures import covered_loop
 
 from safety_filter.certification.certify import CertificationOutcome, certify_with_evidence
 from safety_filter.core.dynamics import Dynamics
@@ -155,8 +156,7 @@ def test_filter_keeps_drag6_in_its_limits(rate_kind: str, nominal_kind: str) -> 
     model, outcome = _require_certified()
     certificate = outcome.certificate
     assert certificate.control_rate_hz == CONTROL_RATE_HZ
-    covered = certificate.sampling_factor + certificate.settings['certify']['delay_periods']
-    rate = CONTROL_RATE_HZ if rate_kind == 'configured' else CONTROL_RATE_HZ / covered
+    rate, plant_delay = covered_loop(certificate, slowest=rate_kind != 'configured')
     payload = model.payload.mass_max if rate_kind == 'configured' else model.payload.mass_min
     safety = SafetyFilter(model, certificate, payload_mass=payload)
     q0, v0 = _start_on_boundary(certificate)
@@ -164,10 +164,11 @@ def test_filter_keeps_drag6_in_its_limits(rate_kind: str, nominal_kind: str) -> 
     step = functools.partial(safety.step, period_s=1.0 / rate)
     log = run_closed_loop(model, step, _nominal(nominal_kind, model, payload), DURATION_S, rate,
                           q0, v0, payload_mass=payload, internal_rate_hz=PLANT_RATE_HZ,
-                          coulomb_law='stick_slip')
+                          coulomb_law='stick_slip', delay_periods=plant_delay)
     violations = limit_violations(model, log.q, log.v, log.torque)
     modes = safety.statistics()['modes']
-    print(f'\ndrag6 {rate:.0f} Hz payload {payload:g} kg {nominal_kind}: position '
+    print(f'\ndrag6 {rate:.0f} Hz, plant delay {plant_delay}, payload {payload:g} kg '
+          f'{nominal_kind}: position '
           f'{violations["position"].max():.3g}, velocity {violations["velocity"].max():.3g}, '
           f'torque {violations["torque"].max():.3g}; smallest barrier value '
           f'{np.nanmin(log.margin):.3g}; modes {modes}')

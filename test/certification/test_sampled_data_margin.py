@@ -1,0 +1,36 @@
+"""The sampled-data margin with the delay predicted (docs/method.md, "Delay").
+
+Rollouts of bench6 with its session certificate's gains: the filter's command acts over the
+declared one-period delay, then the command it plans at the predicted state acts on the
+arm's actual state. What that needs is at least what one held period needs (the first
+segment is that hold, with the same draws) and well under what a hold of the period and
+the delay together needs (the margin of a certificate with the delay as an upper bound).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from certify_fixtures import demo_certificate
+
+from safety_filter.certification.certify import margin_plants
+from safety_filter.certification.certify_settings import CertifySettings
+from safety_filter.certification.sampled_data_margin import Gains, estimate_sampling_margin
+
+
+@pytest.mark.slow
+def test_predicting_the_delay_leaves_a_hold_of_one_period_to_cover() -> None:
+    model, certificate = demo_certificate('bench6')
+    c = certificate
+    gains = Gains(c.gamma, c.beta, c.alpha1, c.alpha2, c.velocity_bound, c.velocity_beta,
+                  c.acceleration_bound)
+    period = 1.0 / c.control_rate_hz
+    common = dict(samples=1000, current_margin=np.zeros(model.n_joints), seed=0,
+                  plants=margin_plants(model, CertifySettings(delay_periods=1)))
+    one_hold = estimate_sampling_margin(model, gains, period, **common)
+    predicted = estimate_sampling_margin(model, gains, period, prediction_s=period, **common)
+    longer_hold = estimate_sampling_margin(model, gains, 2 * period, **common)
+    print(f'\none period {np.round(one_hold, 3)}\npredicted  {np.round(predicted, 3)}\n'
+          f'two periods {np.round(longer_hold, 3)}')
+    assert np.all(predicted >= one_hold)
+    assert np.all(predicted <= 0.75 * longer_hold)
