@@ -51,7 +51,8 @@ class CertifySettings:
         acceleration_bound_factor: the filter keeps each joint's acceleration within this
             many times its authority (0: no bound); the sampled-data margin then covers
             only accelerations within it.
-        gamma_margin: ``gamma <= gamma_margin * gamma*`` (< 1).
+        gamma_margin: ``gamma <= gamma_margin * gamma*`` (< 1). None (default): 0.95 with
+            the delay predicted, 0.9 with the delay as an upper bound (``gamma_share``).
         beta_margin: ``beta >= beta_margin * beta*`` (> 1).
         beta_sampling_limit: cap ``beta * max(alpha2(b)/b) * T_hold <= beta_sampling_limit``.
         beta_cap_share: ``beta`` is at least this share of that cap (1: at the cap, the most
@@ -103,7 +104,7 @@ class CertifySettings:
     braking_slope_share: float = 0.1
     braking_distance_share: float = 0.02
     acceleration_bound_factor: float = 1.5
-    gamma_margin: float = 0.9
+    gamma_margin: float | None = None
     beta_margin: float = 1.2
     beta_sampling_limit: float = 0.1
     beta_cap_share: float | None = None
@@ -142,7 +143,7 @@ class CertifySettings:
                                'in [0, 1 - 1 / velocity_scales]')
         if self.beta_cap_share is not None and not 0.0 <= self.beta_cap_share <= 1.0:
             raise InvalidValue('beta_cap_share', self.beta_cap_share, 'in [0, 1]')
-        if not 0.0 < self.gamma_margin < 1.0:
+        if self.gamma_margin is not None and not 0.0 < self.gamma_margin < 1.0:
             raise InvalidValue('gamma_margin', self.gamma_margin, 'in (0, 1)')
         if not self.beta_margin > 1.0:
             raise InvalidValue('beta_margin', self.beta_margin, '> 1')
@@ -178,6 +179,16 @@ class CertifySettings:
         (plus the declared delay between measurement and torque when it is not predicted)."""
         delay = 0 if self.delay_predicted is not False else (self.delay_periods or 0)
         return (self.sampling_factor + delay) / self.control_rate_hz
+
+    @property
+    def gamma_share(self) -> float:
+        """``gamma_margin``, or its default: 0.95 with the delay predicted (S reaches 95 % of
+        the braking speed); 0.9 with the delay as an upper bound, where the observer's
+        declared delay may differ from the loop's and exact-model loops left S at 0.95
+        (docs/method.md)."""
+        if self.gamma_margin is not None:
+            return self.gamma_margin
+        return 0.95 if self.delay_predicted is not False else 0.9
 
     @property
     def cap_share(self) -> float:

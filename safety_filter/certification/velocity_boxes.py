@@ -52,7 +52,7 @@ def design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifyS
             continue
         alpha1 = class_k_for_family(settings, kind, usable, r)
         g_star = gamma_star(usable, r, alpha1)
-        gamma = settings.gamma_margin * g_star
+        gamma = settings.gamma_share * g_star
         speed_beta = np.zeros(model.n_joints)
         if rows:
             speed_beta = velocity_barrier_rate(usable + margin, margin, velocity_box,

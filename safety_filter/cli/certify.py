@@ -192,7 +192,8 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
     method.add_argument('--alpha2-scale', type=float, default=1.0,
                         help='bend of atan/tanh alpha2 [rad/s or m/s] (default: 1)')
     method.add_argument('--gamma-margin', type=float, default=None,
-                        help='gamma <= this * gamma*, in (0, 1) (default: 0.9)')
+                        help='gamma <= this * gamma*, in (0, 1) (default: 0.95, or 0.9 '
+                        'with the delay as an upper bound)')
     method.add_argument('--beta-margin', type=float, default=None,
                         help='beta >= this * beta*, > 1 (default: 1.2)')
     method.add_argument('--beta-cap-share', type=float, default=None,

@@ -80,7 +80,7 @@ def test_demo_arm_certifies_with_default_settings(certified_arm) -> None:  # noq
         assert np.all(np.isfinite(values)) and np.all(values > 0.0), (name, values)
     assert np.all(c.authority > c.sampling_margin)  # usable authority left
     assert np.all(c.gamma <= c.gamma_star)
-    assert np.all(c.gamma <= CertifySettings().gamma_margin * c.gamma_star * (1 + 1e-12))
+    assert np.all(c.gamma <= CertifySettings().gamma_share * c.gamma_star * (1 + 1e-12))
     assert np.all(c.beta >= c.beta_star)
     assert np.all(c.beta <= c.beta_cap * (1 + 1e-12))
     if c.has_velocity_barriers:
