@@ -26,8 +26,9 @@ helps less than on a real trajectory: these are pessimistic figures. Timings dep
 machine and its load (printed, with a yardstick: the time of one small numpy call); there
 are no timed assertions. The per-step budget: 7-joint step p99 <= 200 us. A second table
 times the step along a closed-loop run toward the limits, where the warm start helps, with
-the disturbance observer off and on (its per-state range included: the hand-built
-certificates carry one), in interleaved rounds, and prints the ratio.
+the disturbance observer off, on (its per-state range included: the hand-built
+certificates carry one), and on with a one-period delay predicted, in interleaved rounds,
+and prints the ratios.
 """
 
 from __future__ import annotations
@@ -38,6 +39,7 @@ import os
 import sys
 import time
 import warnings
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -167,11 +169,16 @@ def bench_arm(name: str, steps: int, cvxpy_steps: int, seed: int) -> dict[str, A
     return result
 
 
-def bench_closed_loop(name: str, steps: int, observer: bool = True) -> dict[str, Any]:
+def bench_closed_loop(name: str, steps: int, observer: bool = True,
+                      predict: bool = False) -> dict[str, Any]:
     """Step times along a closed-loop run (consecutive states, so the warm start helps):
     the model integrated with the held torque, started next to the limits and heading for
-    them, with a nominal pushing outward at 3x the torque limit (as in test_filter)."""
+    them, with a nominal pushing outward at 3x the torque limit (as in test_filter).
+    ``predict``: the certificate declares a one-period delay to predict over (``prediction_s``;
+    the step then also evaluates the dynamics at the predicted state)."""
     model, certificate = demo_arm_and_certificate(name)
+    if predict:
+        certificate = replace(certificate, prediction_s=1.0 / certificate.control_rate_hz)
     filt = SafetyFilter(model, certificate,
                         observer_time_constant_s=None if observer else 0.0)
     plant = filt.dynamics
@@ -236,22 +243,25 @@ def main(argv: list[str] | None = None) -> int:
     loop_steps = 300 if args.quick else 2000
     print(f'\nclosed loop, {loop_steps} steps per arm: the model driven by the filtered torque '
           'toward the limits (consecutive states: the warm start helps)')
+    print('observer: off, on, or on with a one-period delay predicted (+delay)')
     print(f'{"arm":<8} {"n":>2} {"observer":>8} {"median":>8} {"p99":>8} {"max":>8}  modes')
+    variants = {'off': (False, False), 'on': (True, False), '+delay': (True, True)}
     for name in args.arms:
-        rounds: dict[bool, list[dict[str, Any]]] = {False: [], True: []}
-        for _ in range(3):  # interleaved, so that load changes hit both alike
-            for observer in (False, True):
-                rounds[observer].append(bench_closed_loop(name, loop_steps // 3, observer))
+        rounds: dict[str, list[dict[str, Any]]] = {key: [] for key in variants}
+        for _ in range(3):  # interleaved, so that load changes hit all alike
+            for key, (observer, predict) in variants.items():
+                rounds[key].append(bench_closed_loop(name, loop_steps // 3, observer, predict))
         medians = {}
-        for observer, runs in rounds.items():
-            medians[observer] = float(np.median([r['median'] for r in runs]))
+        for key, runs in rounds.items():
+            medians[key] = float(np.median([r['median'] for r in runs]))
             p99 = float(np.median([r['p99'] for r in runs]))
             worst = max(r['max'] for r in runs)
             modes = ' '.join(f'{k}={v}' for k, v in runs[-1]['modes'].items())
-            print(f'{name:<8} {runs[0]["n"]:>2} {"on" if observer else "off":>8} '
-                  f'{medians[observer]:8.0f} {p99:8.0f} {worst:8.0f}  {modes}')
-        print(f'{"":<12}observer cost: median step {medians[True] / medians[False]:.2f}x '
-              'the step without it')
+            print(f'{name:<8} {runs[0]["n"]:>2} {key:>8} '
+                  f'{medians[key]:8.0f} {p99:8.0f} {worst:8.0f}  {modes}')
+        print(f'{"":<12}observer cost: median step {medians["on"] / medians["off"]:.2f}x '
+              'the step without it; predicting the delay: '
+              f'{medians["+delay"] / medians["on"]:.2f}x the step with the observer alone')
     return 0
 
 

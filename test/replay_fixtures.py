@@ -61,7 +61,9 @@ def record_filtered_run(model: RobotModel, certificate: Certificate,
                         q0: np.ndarray | None = None, payload_mass: float | None = None,
                         internal_rate_hz: float = 10_000.0, start_ns: int = START_NS
                         ) -> RecordedRun:
-    """Run nominal -> filter -> simulated arm and keep the recorder's view of it."""
+    """Run nominal -> filter -> simulated arm and keep the recorder's view of it. The arm
+    applies each torque the certificate's predicted delay late (``prediction_s``, in whole
+    periods), the one before until then, as a driver with that delay would."""
     filt = SafetyFilter(model, certificate, payload_mass=payload_mass)
     simulator = ArmSimulator(model, filt.payload_mass, internal_rate_hz)
     if q0 is None:
@@ -73,13 +75,16 @@ def record_filtered_run(model: RobotModel, certificate: Certificate,
     run = RecordedRun(list(model.joint_names), start_ns + period_ns * np.arange(steps),
                       np.zeros((steps, n)), np.zeros((steps, n)), np.zeros((steps, n)),
                       np.zeros((steps, n)), [])
+    delay = int(round((certificate.prediction_s or 0.0) * rate_hz))
+    sent: list[np.ndarray] = []
     for k in range(steps):
         q, v = simulator.q.copy(), simulator.v.copy()
         u_nom = np.asarray(policy(k * period_ns * 1e-9, q, v), dtype=float)
         out = filt.step(q, v, u_nom)
         run.q[k], run.v[k], run.nominal[k], run.torque[k] = q, v, u_nom, out.torque
         run.modes.append(str(out.mode))
-        simulator.advance(out.torque, period_ns * 1e-9)
+        sent.append(np.array(out.torque))
+        simulator.advance(sent[max(0, k - delay)], period_ns * 1e-9)
     return run
 
 

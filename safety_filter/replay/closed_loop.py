@@ -10,6 +10,7 @@ nominal falls silent, the node's input policy
 
 from __future__ import annotations
 
+from collections import deque
 from dataclasses import dataclass
 from typing import Any
 
@@ -49,7 +50,9 @@ def resimulate(
     """Start the simulated arm at the recorded initial state and drive it with the recorded
     nominal commands through ``certificate``'s filter, one step per recorded nominal.
 
-    The driver holds each torque until the next step. Where the nominal topic falls silent
+    The driver holds each torque until the next step; with a certificate that predicts over
+    the declared delay (``prediction_s``) each torque acts from that long after its step,
+    as the filter planned it (until then the one before). Where the nominal topic falls silent
     for longer than a control period, the node's watchdog keeps stepping at the control rate
     (the last nominal while it is fresh, the hold command after ``nominal_timeout_s``); the
     re-simulation does the same, so those steps appear in the result too. With
@@ -75,6 +78,10 @@ def resimulate(
     u_log: list[np.ndarray] = []
     modes: list[str] = []
 
+    delay = float(certificate.prediction_s or 0.0)
+    pending: deque[tuple[float, np.ndarray]] = deque()  # (time it acts from, torque)
+    acting: list[np.ndarray] = []  # the torque the driver applies now
+
     def step(t: float, nominal: np.ndarray, hold: float) -> None:
         q, v = simulator.q, simulator.v
         out = filt.step(q, v, nominal)
@@ -85,7 +92,17 @@ def resimulate(
         v_log.append(v)
         u_log.append(np.array(applied))
         modes.append(str(out.mode))
-        simulator.advance(applied, max(hold, 1e-6))
+        pending.append((t + delay, np.array(applied)))
+        if not acting:
+            acting.append(pending[0][1])  # the first torque stands in before it acts
+        now, end = t, t + max(hold, 1e-6)
+        while pending and pending[0][0] < end - 1e-12:
+            start, torque = pending.popleft()
+            if start > now:
+                simulator.advance(acting[0], start - now)
+                now = start
+            acting[0] = torque
+        simulator.advance(acting[0], end - now)
 
     for k in range(count):
         t = float(nominal_times[k])
