@@ -42,7 +42,7 @@ DEFAULT_RATE_HZ = CertifySettings().control_rate_hz
 
 
 def certified_demo_arm(name: str, control_rate_hz: float = DEFAULT_RATE_HZ,
-                       delay_predicted: bool = True) -> tuple[RobotModel, CertificationOutcome]:
+                       delay_predicted: bool = False) -> tuple[RobotModel, CertificationOutcome]:
     """A demo arm and the outcome of certifying it with the default settings at
     ``control_rate_hz`` (and ``delay_predicted``; cached: once per arm and settings per
     session)."""

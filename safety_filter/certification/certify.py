@@ -105,9 +105,6 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     settings = settings or CertifySettings()
     if settings.delay_periods is None:
         settings = replace(settings, delay_periods=int(model.uncertainty.delay_periods))
-    if settings.delay_predicted is None:
-        settings = replace(settings, delay_predicted=not any(
-            f > 0.0 for f in model.coulomb_friction))
     report = progress or (lambda _stage, _fraction: None)
     n = model.n_joints
     names = list(model.joint_names)

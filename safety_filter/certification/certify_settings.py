@@ -82,13 +82,12 @@ class CertifySettings:
         delay_periods: control periods between measurement and torque that the sampled-data
             margin covers on top of ``sampling_factor`` (None: the model's declared
             uncertainty, ``delay_periods``).
-        delay_predicted: True: the declared delay is the driver's fixed delay; the filter
+        delay_predicted: False (default): the delay may be anything up to the declared
+            one; the filter plans at the measured state and the margin covers the delay as a
+            longer hold. True: the declared delay is the driver's fixed delay; the filter
             plans each torque for the state it predicts at the end of the delay (certificate
-            entry ``prediction_s``) and the margin covers one hold from there. False: the
-            delay may be anything up to the declared one; the filter plans at the measured
-            state and the margin covers the delay as a longer hold. None (default): True
-            unless the model has Coulomb friction, whose sticking and slipping within the
-            delay the prediction cannot know (docs/method.md, "Delay").
+            entry ``prediction_s``) and the margin covers one hold from there: a larger
+            safe set, less robust to measurement noise (docs/method.md, "Delay").
         mean_over_hold: on an arm with viscous damping, True: the filter bounds the mean
             acceleration over a control period (the exact zero-order-hold response of the
             damped joints, ``hold_mass_matrix``); False: the acceleration at the start of
@@ -122,7 +121,7 @@ class CertifySettings:
     observer_periods: float = DEFAULT_OBSERVER_PERIODS
     observer_noise_share: float = 0.01
     delay_periods: int | None = None
-    delay_predicted: bool | None = None
+    delay_predicted: bool = False
     margin_plants: int = 3
     mean_over_hold: bool | None = None
 
@@ -177,7 +176,7 @@ class CertifySettings:
     def hold_period_s(self) -> float:
         """Longest hold period the margin covers [s]: ``sampling_factor`` control periods
         (plus the declared delay between measurement and torque when it is not predicted)."""
-        delay = 0 if self.delay_predicted is not False else (self.delay_periods or 0)
+        delay = 0 if self.delay_predicted else (self.delay_periods or 0)
         return (self.sampling_factor + delay) / self.control_rate_hz
 
     @property
@@ -188,7 +187,7 @@ class CertifySettings:
         (docs/method.md)."""
         if self.gamma_margin is not None:
             return self.gamma_margin
-        return 0.95 if self.delay_predicted is not False else 0.9
+        return 0.95 if self.delay_predicted else 0.9
 
     @property
     def cap_share(self) -> float:
@@ -197,13 +196,21 @@ class CertifySettings:
         loop's and a larger ``beta`` let exact-model loops leave S (docs/method.md)."""
         if self.beta_cap_share is not None:
             return self.beta_cap_share
-        return 0.2 if self.delay_predicted is not False else 0.05
+        return 0.2 if self.delay_predicted else 0.05
+
+    @property
+    def gain_hold_s(self) -> float:
+        """The time from a measurement to the end of the hold of the torque computed from it
+        [s]: ``sampling_factor`` control periods plus the declared delay, predicted or not.
+        The rates of the barriers (``beta``'s cap, ``beta_v``, the ``sqrt`` family's
+        ``eps``) are set for it: the prediction is exact only for the model, and what the
+        measurement misses (its noise) acts on the arm that long (docs/method.md, "Delay")."""
+        return (self.sampling_factor + (self.delay_periods or 0)) / self.control_rate_hz
 
     @property
     def prediction_s(self) -> float:
         """The delay the filter predicts over [s] (0: none)."""
-        return ((self.delay_periods or 0) / self.control_rate_hz
-                if self.delay_predicted is not False else 0.0)
+        return (self.delay_periods or 0) / self.control_rate_hz if self.delay_predicted else 0.0
 
     def record(self) -> dict[str, Any]:
         """Plain form for the certificate's provenance."""

@@ -140,7 +140,7 @@ def class_k_for_family(settings: CertifySettings, kind: str, usable: np.ndarray,
         return settings.alpha1
     if kind != 'sqrt':
         return ClassK(kind)
-    hold = settings.hold_period_s
+    hold = settings.gain_hold_s
     eps = float(np.max(0.5 * (np.sqrt(np.maximum(usable, 0.0)) * hold
                               / settings.braking_slope_share) ** 2))
     return ClassK('sqrt', float(np.clip(eps, 1e-6, 0.1 * float(np.min(position_range)))))
@@ -157,7 +157,7 @@ def velocity_barrier_rate(authority: np.ndarray, margin: np.ndarray, velocity_bo
     velocity barriers stay invariant under a held acceleration for ``beta_v T <= 1``
     (``docs/method.md``); beyond, ``beta*`` says the box is too slow for the authority.
     """
-    hold = settings.hold_period_s
+    hold = settings.gain_hold_s
     wanted = (authority + 2.0 * margin) / np.maximum(velocity_box, 1e-300)
     return np.clip(wanted, settings.beta_sampling_limit / hold, 0.5 / hold)
 
@@ -176,7 +176,7 @@ def choose_beta(design: Design, margin: np.ndarray, r: np.ndarray, settings: Cer
     n = len(r)
     alpha1, alpha2 = design.alpha1, settings.alpha2
     usable = design.authority - margin
-    hold = settings.hold_period_s
+    hold = settings.gain_hold_s
     b_star = np.zeros(n)
     b_cap = np.zeros(n)
     mid = alpha2.value(design.gamma * alpha1.value(0.5 * r))

@@ -51,7 +51,7 @@ def certify_settings(args: argparse.Namespace) -> CertifySettings:
         bounds=bounds,
         seed=args.seed,
         mean_over_hold={'auto': None, 'start': False, 'mean': True}[args.acceleration_form],
-        delay_predicted={'auto': None, 'fixed': True, 'up-to': False}[args.delay],
+        delay_predicted=args.delay == 'fixed',
         **extra)
 
 
@@ -174,13 +174,14 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         'over the period, the exact response of the damped joints (mean), or '
                         'whichever certifies the larger safe set (default: auto; see '
                         'docs/method.md)')
-    method.add_argument('--delay', choices=('auto', 'fixed', 'up-to'), default='auto',
+    method.add_argument('--delay', choices=('up-to', 'fixed'), default='up-to',
                         help="how the limits file's declared delay (uncertainty: "
-                        "delay_periods) is read: fixed, the driver's own delay, which the "
-                        'filter predicts over, planning each torque for the state where it '
-                        'will act (a smaller margin); up-to, any delay up to it, covered as a '
-                        'longer hold; auto, fixed unless the model has Coulomb friction '
-                        '(default: auto; docs/method.md)')
+                        'delay_periods) is read: up-to, any delay up to it, covered as a '
+                        "longer hold; fixed, the driver's own delay, which the filter "
+                        'predicts over, planning each torque for the state where it will act: '
+                        'a larger safe set, less robust to measurement noise (run '
+                        '`safety-filter stress` before hardware) (default: up-to; '
+                        'docs/method.md)')
     method.add_argument('--alpha1', choices=('auto',) + ALPHA1_KINDS, default='auto',
                         help='class-K family of the velocity barrier (default: auto, the '
                         'design with the largest safe set that certifies; see '
@@ -192,14 +193,14 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
     method.add_argument('--alpha2-scale', type=float, default=1.0,
                         help='bend of atan/tanh alpha2 [rad/s or m/s] (default: 1)')
     method.add_argument('--gamma-margin', type=float, default=None,
-                        help='gamma <= this * gamma*, in (0, 1) (default: 0.95, or 0.9 '
-                        'with the delay as an upper bound)')
+                        help='gamma <= this * gamma*, in (0, 1) (default: 0.9, or 0.95 '
+                        'with --delay fixed)')
     method.add_argument('--beta-margin', type=float, default=None,
                         help='beta >= this * beta*, > 1 (default: 1.2)')
     method.add_argument('--beta-cap-share', type=float, default=None,
                         help='beta >= this share of its sampled-data cap, in [0, 1]: larger '
                         'lets a joint run closer to the boundary of S before it is slowed '
-                        '(default: 0.2, or 0.05 with the delay as an upper bound; docs/method.md)')
+                        '(default: 0.05, or 0.2 with --delay fixed; docs/method.md)')
     method.add_argument('--velocity-headroom', type=float, default=None,
                         help='velocity boxes stay this share of the rated speed below it, '
                         'for model error the disturbance observer has not yet removed '

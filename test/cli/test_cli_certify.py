@@ -196,19 +196,19 @@ def test_permissiveness_options_reach_the_settings() -> None:
     assert settings.beta_cap_share == 0.3
     assert settings.top_velocity_fraction == pytest.approx(0.85)
     default = certify_settings(parser.parse_args(['certify', '--demo', 'planar2']))
-    assert (default.cap_share, default.velocity_headroom) == (0.2, 0.1)
-    assert replace(default, delay_predicted=False).cap_share == 0.05
+    assert (default.cap_share, default.gamma_share, default.velocity_headroom) == (0.05, 0.9, 0.1)
+    predicted = replace(default, delay_predicted=True)
+    assert (predicted.cap_share, predicted.gamma_share) == (0.2, 0.95)
 
 
 def test_the_delay_option_says_whether_the_filter_predicts_over_it() -> None:
-    """--delay fixed: the filter predicts over the declared delay and the margin covers one
-    hold; --delay up-to: no prediction, the hold covers the delay too; auto (default):
-    decided by the model at certification."""
+    """--delay up-to (default): no prediction, the hold covers the delay too; --delay fixed:
+    the filter predicts over the declared delay and the margin covers one hold."""
     from safety_filter.cli.certify import certify_settings
     from safety_filter.cli.main import build_parser
 
     parser = build_parser()
-    assert certify_settings(parser.parse_args(['certify'])).delay_predicted is None
+    assert certify_settings(parser.parse_args(['certify'])).delay_predicted is False
     fixed = replace(certify_settings(parser.parse_args(['certify', '--delay', 'fixed'])),
                     delay_periods=1)
     up_to = replace(certify_settings(parser.parse_args(

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from certify_fixtures import PlanarTwoLink, demo_certificate
+from certify_fixtures import PlanarTwoLink, certified_demo_arm, demo_certificate
 from scipy.integrate import solve_ivp
 
 from safety_filter.online.barrier_filter import SafetyFilter
@@ -72,7 +72,8 @@ def test_the_step_plans_at_the_state_the_plant_reaches_after_the_delay() -> None
     delay) on the closed-form plant: the state the filter plans for at each step is the
     plant's state one period later to within 1e-4 rad/s and 1e-7 rad (measured: 4e-5 and
     1.4e-8), a hundred times closer in velocity than the measured state it started from."""
-    model, certificate = demo_certificate('planar2')
+    model, outcome = certified_demo_arm('planar2', delay_predicted=True)
+    certificate = outcome.certificate
     assert certificate.prediction_s == pytest.approx(1.0 / certificate.control_rate_hz)
     payload = model.payload.mass_max
     plant = PlanarTwoLink(payload)
@@ -109,9 +110,10 @@ def test_the_step_plans_at_the_state_the_plant_reaches_after_the_delay() -> None
 
 def test_a_certificate_without_prediction_plans_at_the_measured_state() -> None:
     """The planned state is the measured one when the certificate predicts nothing (the
-    delay covered as a longer hold), and on a predicting filter's first step (no torque of
-    its own acts yet)."""
-    model, certificate = demo_certificate('planar2')
+    delay covered as a longer hold, the default), and on a predicting filter's first step
+    (no torque of its own acts yet)."""
+    model, outcome = certified_demo_arm('planar2', delay_predicted=True)
+    certificate = outcome.certificate
     q = 0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
     v = np.array([0.3, -0.2])
     safety = SafetyFilter(model, certificate)
@@ -119,8 +121,8 @@ def test_a_certificate_without_prediction_plans_at_the_measured_state() -> None:
     np.testing.assert_array_equal(np.concatenate(safety.planned_state), np.r_[q, v])
     safety.step(q + 1e-3 * v, v, np.zeros(2))
     assert not np.array_equal(safety.planned_state[1], v)
-    from dataclasses import replace
-    plain = SafetyFilter(model, replace(certificate, prediction_s=None))
+    plain = SafetyFilter(model, demo_certificate('planar2')[1])
+    assert plain.certificate.prediction_s is None
     for _ in range(3):
         plain.step(q, v, np.zeros(2))
         np.testing.assert_array_equal(np.concatenate(plain.planned_state), np.r_[q, v])

@@ -75,7 +75,7 @@ def files(arm: Any, tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]
 
 
 def _smaller_beta(certificate: Any) -> Any:
-    beta = np.maximum(certificate.beta_star * 1.05, 0.1 * certificate.beta)
+    beta = np.maximum(certificate.beta_star * 1.05, 0.4 * certificate.beta)
     assert np.all(beta < certificate.beta) and np.all(beta >= certificate.beta_star)
     return replace(certificate, beta=beta)
 

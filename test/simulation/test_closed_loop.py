@@ -1,9 +1,10 @@
 """Closed loop: the certified filter keeps the demo arms inside their limits against
 adversarial nominals, in the loops their certificates cover (``covered_loop``): the default
-certificate (the declared delay of one period predicted, docs/method.md) at its 1 kHz with
-the plant's torque acting one period late; planar2's certificate with the delay as an upper
-bound (``--delay up-to``) also at 1 kHz with that delay, and at the slowest rate it covers
-without delay (its margin covers a hold of one period plus the delay: 500 Hz).
+certificate (the declared delay of one period as an upper bound, ``--delay up-to``) at its
+1 kHz with the plant's torque acting one period late, and at the slowest rate it covers
+without delay (its margin covers a hold of one period plus the delay: 500 Hz); planar2's
+certificate with the delay predicted (``--delay fixed``, docs/method.md) at 1 kHz with the
+plant's torque acting one period late.
 
 Setup of every run: the arm's certificate from the default certification
 (``certify_fixtures``), the :class:`SafetyFilter` told the mounted payload, the simulator
@@ -17,9 +18,9 @@ the position, velocity and torque limits over the run (samples at the control st
 independent-plant test below also looks inside the hold periods), and whether the state
 stayed in S at every control step.
 
-Which runs: each of those four loops (planar2 three, bench6 the default one) with each payload
-end (lightest, heaviest) and nominal (bang-bang, PD beyond limits with gravity feedforward,
-large sinusoid, zero torque): 32 runs of 2 s.
+Which runs: each of those five loops (planar2 three, bench6 the default two) with each
+payload end (lightest, heaviest) and nominal (bang-bang, PD beyond limits with gravity
+feedforward, large sinusoid, zero torque): 40 runs of 2 s.
 
 The unfiltered baseline (same start, same nominal, no filter) must break a limit, or these
 tests would prove nothing.
@@ -81,8 +82,8 @@ def _report(label: str, violations: dict[str, np.ndarray], extra: str = '') -> N
           f'{violations["velocity"].max():.3g}, torque {violations["torque"].max():.3g}{extra}')
 
 
-LOOPS = (('planar2', 'predicted', False), ('planar2', 'up-to', False),
-         ('planar2', 'up-to', True), ('bench6', 'predicted', False))  # arm, delay, slowest
+LOOPS = (('planar2', 'up-to', False), ('planar2', 'up-to', True), ('planar2', 'predicted', False),
+         ('bench6', 'up-to', False), ('bench6', 'up-to', True))  # arm, delay, slowest
 ENDS = ('lightest', 'heaviest')
 CASES = [(*loop, end, nominal) for loop in LOOPS for end in ENDS for nominal in NOMINALS]
 
@@ -129,7 +130,7 @@ def test_filter_keeps_limits(arm: str, delay: str, slowest: bool, end: str,
 
 @pytest.mark.slow
 def test_filter_keeps_limits_with_an_independent_plant() -> None:
-    """planar2 at 500 Hz without delay (its up-to-delay certificate), heaviest payload, PD
+    """planar2 at 500 Hz without delay (its default certificate), heaviest payload, PD
     beyond limits: the plant is the textbook closed form (``PlanarTwoLink``) integrated by
     SciPy's solve_ivp (DOP853, rtol 1e-10) over each hold period, and the limits are checked
     inside the periods too."""
