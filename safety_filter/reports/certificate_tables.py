@@ -181,6 +181,21 @@ def dissipation_line(cert: Any) -> str:
             'the certified one [rad/s^2]; the margin the design would need ' + '; '.join(parts))
 
 
+def delay_line(cert: Any) -> str:
+    """How the certificate covers the driver's delay (docs/method.md, "Delay")."""
+    if cert.prediction_s:
+        return (f'delay: {1000 * cert.prediction_s:g} ms, predicted (--delay fixed): the filter '
+                'plans each torque for the state at the end of the declared delay and the '
+                'margin covers one hold from there; it asks that delay of the driver and is '
+                'less robust to velocity noise than a delay covered as an upper bound: check '
+                'it with `safety-filter stress` before hardware')
+    periods = dict(cert.settings.get('certify') or {}).get('delay_periods')
+    if not periods:
+        return 'delay: none declared'
+    return (f'delay: up to {1000 * periods / cert.control_rate_hz:g} ms, covered as part of '
+            'the hold (the filter plans at the measured state)')
+
+
 def verdict_text(outcome: CertificationOutcome) -> str:
     """The verdict in words."""
     return 'CERTIFIED' if outcome.certified else 'NOT CERTIFIED'
@@ -276,6 +291,7 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
                  f'{cert.alpha2.kind} (scale {cert.alpha2.scale:g}), control rate '
                  f'{cert.control_rate_hz:g} Hz')
     lines.append(scale_line(outcome))
+    lines += textwrap.wrap(delay_line(cert), TABLE_WIDTH, subsequent_indent='  ')
     lines += textwrap.wrap(falsifier_line(outcome), TABLE_WIDTH,
                            subsequent_indent='  ')
     lines += textwrap.wrap(recovery_line(cert), TABLE_WIDTH, subsequent_indent='  ')

@@ -45,6 +45,20 @@ def test_certify_planar2_writes_a_loadable_certificate_and_report(tmp_path, caps
         assert name in captured.out
     assert str(output.resolve()) in captured.out
     assert 'not a certified safety function' in captured.err
+    assert 'delay: up to 1 ms, covered as part of the hold' in captured.out
+    assert certificate.prediction_s is None
+
+
+def test_certify_with_the_delay_predicted_says_so_and_how_to_check_it(tmp_path,
+                                                                        capsys) -> None:
+    output = tmp_path / 'planar2.yaml'
+    code = main(['certify', '--demo', 'planar2', *FAST, '--no-report', '--delay', 'fixed',
+                 '--output', str(output)])
+    printed = ' '.join(capsys.readouterr().out.split())
+    assert code == ExitCode.OK, printed
+    assert Certificate.load(output).prediction_s == pytest.approx(1e-3)
+    assert 'delay: 1 ms, predicted (--delay fixed)' in printed
+    assert 'safety-filter stress' in printed
 
 
 def test_torque_below_gravity_load_exits_3_and_says_why(tmp_path, capsys, weak_limits) -> None:
