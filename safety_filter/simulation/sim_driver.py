@@ -121,7 +121,7 @@ class SimulatedDriver:
         self.latency_s = check('latency_s', latency_s)
         self.command_timeout_s = check('command_timeout_s', command_timeout_s, positive=True)
         self.gravity_convention = gravity_convention
-        if int(command_delay_ticks) != command_delay_ticks or command_delay_ticks < 0:
+        if not (float(command_delay_ticks).is_integer() and command_delay_ticks >= 0):
             raise InvalidValue('command_delay_ticks', command_delay_ticks, 'a whole number >= 0')
         self.command_delay_ticks = int(command_delay_ticks)
         # the latest command at each of the last command_delay_ticks + 1 ticks, oldest first
@@ -183,6 +183,7 @@ class SimulatedDriver:
     def _torque_to_apply(self) -> np.ndarray:
         if self._command is None or self.command_age_s() > self.command_timeout_s + 1e-12:
             self.stale_ticks += self._command is not None
+            self._pipeline.clear()  # commands resume afresh, not with ones from before
             return np.zeros(self.n)
         self._pipeline.append(self._command)
         u = self._pipeline[0]  # the first command stands in until the pipeline has filled

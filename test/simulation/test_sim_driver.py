@@ -94,6 +94,24 @@ def test_stale_command_gives_zero_torque(model) -> None:
     assert np.any(driver.tick().effort != 0.0)
 
 
+def test_a_pipeline_delay_applies_each_command_that_many_ticks_late(model) -> None:
+    """With a delay of two ticks the command of tick k acts in tick k + 2 (the first one
+    until then); after a command timeout the commands resume afresh."""
+    driver = SimulatedDriver(model, RATE, command_delay_ticks=2, command_timeout_s=0.0025)
+    n = model.n_joints
+    commands = [np.full(n, 0.01 * (k + 1)) for k in range(5)]
+    applied = []
+    for command in commands:
+        driver.command(command)
+        applied.append(driver.tick().effort)
+    expected = [commands[0], commands[0], commands[0], commands[1], commands[2]]
+    np.testing.assert_allclose(applied, expected)
+    for _ in range(4):
+        driver.tick()  # the last command grows stale: zero torque
+    driver.command(commands[4])
+    np.testing.assert_allclose(driver.tick().effort, commands[4])
+
+
 def test_invalid_commands_are_ignored(model) -> None:
     driver = SimulatedDriver(model, RATE)
     assert not driver.command(np.zeros(model.n_joints + 1))
@@ -148,7 +166,9 @@ def test_noise_is_seeded_and_has_the_asked_spread(model) -> None:
 @pytest.mark.parametrize('options', [
     {'control_rate_hz': 0.0}, {'internal_rate_hz': 10.0}, {'latency_s': -1.0},
     {'command_timeout_s': 0.0}, {'gravity_convention': 'none'},
-    {'initial_positions': [0.0]}, {'position_noise_std': float('nan')}])
+    {'initial_positions': [0.0]}, {'position_noise_std': float('nan')},
+    {'command_delay_ticks': -1}, {'command_delay_ticks': 1.5},
+    {'command_delay_ticks': float('nan')}])
 def test_bad_options_are_refused(options) -> None:
     model = load_demo_arm('planar2')
     kwargs = {'control_rate_hz': RATE, **options}
