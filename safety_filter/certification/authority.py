@@ -166,11 +166,14 @@ def authority_problem(model: RobotModel, bounds: DynamicsBounds, settings: Certi
     outside = disturbance.without('payload', static_only=True)
     viscous, coulomb = np.array(model.viscous_friction), np.array(model.coulomb_friction)
     bias = bounds.bias_max(velocity_box, viscous, coulomb) + outside.static_total
-    mass = bounds.mass_max + outside.inertial_total
+    # With a lookahead c the filter's torque for a is M a + h + c J a (lookahead_position):
+    # J's bound adds to the inertial rows.
+    inertial = np.asarray(outside.inertial_total, dtype=float) + (
+        settings.lookahead_s * bounds.coriolis_jacobian_max(velocity_box))
+    mass = bounds.mass_max + inertial
     rows = bounds.row_samples(velocity_box, viscous, coulomb)
     samples = None if rows is None else (
-        rows[0], np.broadcast_to(np.asarray(outside.inertial_total, dtype=float), mass.shape),
-        rows[1] + outside.static_total)
+        rows[0], np.broadcast_to(inertial, mass.shape), rows[1] + outside.static_total)
     return RowSumProblem(mass, bias, disturbance, samples)
 
 

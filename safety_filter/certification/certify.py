@@ -123,31 +123,40 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
     damped = bool(np.any(np.array(model.viscous_friction) > 0.0))
     forms = [settings.mean_over_hold] if settings.mean_over_hold is not None or not damped \
         else [False, True]
+    # With the lookahead unless it is set off; then, when it is left to certification, the
+    # chosen family and form without it (docs/method.md, "Lookahead").
+    combinations = [(mean, settings.lookahead is not False) for mean in forms]
     attempts: list[_Attempt] = []
     all_bounds: dict[bool, DynamicsBounds] = {}
     for stage in ('bounds', 'authority', 'sampling margin', 'gains'):
         seconds[stage] = 0.0
     chosen: _Attempt | None = None
-    for mean in forms:
-        form = replace(settings, mean_over_hold=bool(mean))
-        clock = time.perf_counter()
-        bounds = all_bounds[bool(mean)] = estimate_bounds(
-            model, settings.bounds, progress=lambda s, f: report('bounds: ' + s, f),
-            hold_s=form.acceleration_hold_s(model))
-        seconds['bounds'] += time.perf_counter() - clock
+    for index_combination, (mean, ahead) in enumerate(combinations):
+        form = replace(settings, mean_over_hold=bool(mean), lookahead=ahead)
+        if bool(mean) not in all_bounds:
+            clock = time.perf_counter()
+            all_bounds[bool(mean)] = estimate_bounds(
+                model, settings.bounds, progress=lambda s, f: report('bounds: ' + s, f),
+                hold_s=form.acceleration_hold_s(model))
+            seconds['bounds'] += time.perf_counter() - clock
+        bounds = all_bounds[bool(mean)]
         kinds_now = kinds if chosen is None else (chosen.kind,)
         for index, kind in enumerate(kinds_now):
             attempt = _attempt_family(
                 model, bounds, form, kind,
                 lambda stage, f, k=index: report(stage, (k + f) / len(kinds_now)), seconds)
             attempt.mean_over_hold = bool(mean)
+            attempt.lookahead = ahead
             attempts.append(attempt)
         certifiable = [a for a in attempts if a.design is not None and not a.reasons]
         chosen = (max(certifiable, key=lambda a: design_score(model, a.design))
                   if certifiable else None)
+        if settings.lookahead is None and index_combination == len(forms) - 1:
+            combinations.append((chosen.mean_over_hold if chosen else forms[-1], False))
     certifiable = [a for a in attempts if a.design is not None and not a.reasons]
     chosen = chosen or attempts[0]
-    settings = replace(settings, mean_over_hold=chosen.mean_over_hold)
+    settings = replace(settings, mean_over_hold=chosen.mean_over_hold,
+                       lookahead=chosen.lookahead)
     bounds = all_bounds[chosen.mean_over_hold]
     tried = []
     for attempt in attempts:
@@ -214,6 +223,7 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         acceleration_bound=accel_bound,
         acceleration_hold_s=settings.acceleration_hold_s(model) or None,
         prediction_s=settings.prediction_s or None,
+        lookahead_s=settings.lookahead_s or None,
         gamma=gamma,
         gamma_star=g_star,
         beta=beta,
@@ -276,6 +286,7 @@ class _Attempt:
     design: Design | None = None
     last_design: Design | None = None
     mean_over_hold: bool = False
+    lookahead: bool = False
     margin: np.ndarray | None = None
     candidates: dict = field(default_factory=dict)
     betas: tuple = ()
@@ -286,7 +297,8 @@ class _Attempt:
     def record(self, model: RobotModel) -> dict[str, Any]:
         """Plain summary for the certificate (the report's table of designs tried)."""
         shown = self.design or self.last_design
-        entry: dict[str, Any] = {'alpha1': self.kind, 'mean_over_hold': self.mean_over_hold}
+        entry: dict[str, Any] = {'alpha1': self.kind, 'mean_over_hold': self.mean_over_hold,
+                                 'lookahead': self.lookahead}
         if shown is not None:
             entry['alpha1_scale'] = float(shown.alpha1.scale)
             entry['envelope_fraction'] = _plain(envelope_fraction(model, shown))
@@ -347,7 +359,8 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
                 inflation=settings.margin_inflation, current_margin=margin,
                 seed=settings.seed,  # same draws each round: the margin settles monotonically
                 plants=plants, acceleration_hold_s=settings.acceleration_hold_s(model),
-                prediction_s=settings.prediction_s)
+                prediction_s=settings.prediction_s, lookahead_s=settings.lookahead_s,
+                delay_s=settings.delay_bound_s)
             rounds['count'] += 1
             report('sampling margin', 0.2 + 0.7 * min(1.0, rounds['count'] / 12))
             if np.all(new_margin <= margin * (1.0 + 1e-9)):
@@ -480,7 +493,8 @@ def _dissipation_record(model: RobotModel, chosen: _Attempt, settings: CertifySe
                   design.velocity_box, design.speed_beta, design.accel_bound)
     common = dict(samples=settings.margin_samples, inflation=settings.margin_inflation,
                   current_margin=margin, seed=settings.seed,
-                  plants=margin_plants(model, settings), prediction_s=settings.prediction_s)
+                  plants=margin_plants(model, settings), prediction_s=settings.prediction_s,
+                  lookahead_s=settings.lookahead_s, delay_s=settings.delay_bound_s)
     record: dict[str, Any] = {}
     hold = settings.acceleration_hold_s(model)
     if coulomb:

@@ -93,6 +93,12 @@ class CertifySettings:
             damped joints, ``hold_mass_matrix``); False: the acceleration at the start of
             the hold; None (default): certification tries both and keeps the larger safe
             set.
+        lookahead: True: the filter plans each torque for the state half the hold the
+            margin covers ahead (``M`` and ``h`` there, the velocity's share to first order;
+            certificate entry ``lookahead_s``), so the drift of the dynamics along the
+            motion within the hold is planned for and the margin covers only what is left of
+            it; False: at the planned state; None (default): certification tries both and
+            keeps the larger safe set (docs/method.md, "Lookahead").
     """
 
     alpha1: ClassK | None = None
@@ -124,6 +130,7 @@ class CertifySettings:
     delay_predicted: bool = False
     margin_plants: int = 3
     mean_over_hold: bool | None = None
+    lookahead: bool | None = None
 
     def __post_init__(self) -> None:
         kinds1, kinds2 = ', '.join(ALPHA1_KINDS), ', '.join(ALPHA2_KINDS)
@@ -206,6 +213,20 @@ class CertifySettings:
         ``eps``) are set for it: the prediction is exact only for the model, and what the
         measurement misses (its noise) acts on the arm that long (docs/method.md, "Delay")."""
         return (self.sampling_factor + (self.delay_periods or 0)) / self.control_rate_hz
+
+    @property
+    def lookahead_s(self) -> float:
+        """How far ahead the filter plans each torque [s]: the middle of the hold the
+        margin covers, ``sampling_factor`` control periods plus the delay when it is read as
+        an upper bound (0: none; ``lookahead`` None counts as on, certification settles
+        it)."""
+        return 0.5 * self.hold_period_s if self.lookahead is not False else 0.0
+
+    @property
+    def delay_bound_s(self) -> float:
+        """The declared delay when it is read as an upper bound [s] (0: none, or
+        predicted)."""
+        return 0.0 if self.delay_predicted else (self.delay_periods or 0) / self.control_rate_hz
 
     @property
     def prediction_s(self) -> float:

@@ -132,6 +132,11 @@ class DynamicsBounds:
             return separate
         return np.minimum(self._coriolis_samples(velocity_box).max(axis=0), separate)
 
+    def coriolis_jacobian_max(self, velocity_box: np.ndarray) -> np.ndarray:
+        """A bound of ``|d(C(q, v) v)/dv|_ij = |2 sum_k Gamma_ijk(q) v_k|`` over the joint
+        box and ``|v_k| <= vb_k``: ``2 sum_k Gbar_ijk vb_k``, shape (n, n)."""
+        return 2.0 * np.einsum('ijk,k->ij', self.christoffel_max, velocity_box)
+
     def _coriolis_samples(self, velocity_box: np.ndarray) -> np.ndarray:
         """``sum_jk |Gamma_ijk(q_s)| vb_j vb_k`` per sample, shape (S, n)."""
         samples = self.christoffel_samples

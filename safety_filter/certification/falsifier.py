@@ -24,7 +24,12 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import linprog
 
-from safety_filter.certification.sampled_data_margin import BatchPlant, Gains, sample_safe_states
+from safety_filter.certification.sampled_data_margin import (
+    BatchPlant,
+    Gains,
+    lookahead_position,
+    sample_safe_states,
+)
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.dynamics import hold_mass_matrix
 from safety_filter.core.friction import friction_torque
@@ -149,6 +154,20 @@ def falsify(
             return mass
         return hold_mass_matrix(mass, model.viscous_friction, certificate.acceleration_hold_s)
 
+    def planned(plant: BatchPlant, position: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """The matrix that maps the filter's accelerations to torque: the hold's, plus the
+        lookahead's velocity term (``lookahead_position``)."""
+        mass = held(plant.mass_matrix(position))
+        if certificate.lookahead_s is not None:
+            mass = mass + certificate.lookahead_s * plant.coriolis_jacobian(position, v)
+        return mass
+
+    def evaluated(q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """Where the filter evaluates M and h (ahead along v with a lookahead)."""
+        if certificate.lookahead_s is None:
+            return q
+        return lookahead_position(model, q, v, certificate.lookahead_s)
+
     while done < states:
         count = min(chunk, states - done)
         q, v = sample_safe_states(model, gains, count, rng, boundary_fraction=0.4)
@@ -159,9 +178,10 @@ def falsify(
         else:
             payload = np.full(count, 0.5 * (lo_m + hi_m))
         plant = BatchPlant(model, payload)
-        mass = held(plant.mass_matrix(q))
-        bias = plant.bias(q, v)
-        estimate = _disturbance_estimates(model, plant, payload, q, v, bias, parameters,
+        position = evaluated(q, v)
+        mass = planned(plant, position, v)
+        bias = plant.bias(position, v)
+        estimate = _disturbance_estimates(model, plant, payload, position, v, bias, parameters,
                                           umax, rng)
         bias = bias - estimate  # what the filter's QP uses (docs/method.md, model error)
         barrier = gains.barriers(model, q, v, delta)
@@ -189,8 +209,9 @@ def falsify(
     results = []
     for index, (q, v, m, estimate) in enumerate(items):
         plant = BatchPlant(model, np.array([m]))
-        mass = held(plant.mass_matrix(q[None]))[0]
-        bias = plant.bias(q[None], v[None])[0] - estimate
+        position = evaluated(q, v)
+        mass = planned(plant, position[None], v[None])[0]
+        bias = plant.bias(position[None], v[None])[0] - estimate
         barrier = gains.barriers(model, q, v, delta)
         slack = _lp_slack(mass, bias, barrier.accel_lower, barrier.accel_upper, umax)
         results.append((slack, q, v, m))

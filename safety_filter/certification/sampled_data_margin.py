@@ -33,7 +33,12 @@ import numpy as np
 
 from safety_filter.core.barriers import BarrierState, evaluate_barriers, safe_velocity_interval
 from safety_filter.core.class_k import ClassK
-from safety_filter.core.dynamics import hold_mass_matrix, mass_matrix_batch, rnea_batch
+from safety_filter.core.dynamics import (
+    christoffel_batch,
+    hold_mass_matrix,
+    mass_matrix_batch,
+    rnea_batch,
+)
 from safety_filter.core.friction import friction_torque
 from safety_filter.core.payload_affine import payload_affine_batch
 from safety_filter.core.robot_model import RobotModel
@@ -104,6 +109,10 @@ class BatchPlant:
         """``M^-1 (u - h)`` per sample."""
         return np.linalg.solve(self.mass_matrix(q), (u - self.bias(q, v))[..., None])[..., 0]
 
+    def coriolis_jacobian(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """``d(C(q, v) v)/dv = 2 Gamma(q) v`` per sample, shape (N, n, n)."""
+        return 2.0 * np.einsum('nijk,nk->nij', self._evaluate(christoffel_batch, q), v)
+
 
 def sampled_inverse_mass(model: RobotModel, samples: int = 64) -> np.ndarray:
     """``M^-1`` at configurations sampled in the joint box (seeded), with the lightest
@@ -156,6 +165,9 @@ class _GroupedPlant:
     def acceleration(self, q: np.ndarray, v: np.ndarray, u: np.ndarray) -> np.ndarray:
         return self._combine('acceleration', q, v, u)
 
+    def coriolis_jacobian(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        return self._combine('coriolis_jacobian', q, v)
+
 
 def sample_safe_states(
     model: RobotModel, gains: Gains, count: int, rng: np.random.Generator,
@@ -198,6 +210,8 @@ def estimate_sampling_margin(
     acceleration_hold_s: float = 0.0,
     coulomb_held: bool = True,
     prediction_s: float = 0.0,
+    lookahead_s: float = 0.0,
+    delay_s: float = 0.0,
 ) -> np.ndarray:
     """Acceleration margin ``delta`` [rad/s^2] per joint covering one hold period.
 
@@ -235,6 +249,13 @@ def estimate_sampling_margin(
             filter predicts (from the sample, with ``M`` and ``h`` frozen there) acts on the
             arm's actual state for ``hold_period_s``; both are checked, with the shortfall
             as a rate from the sample's time.
+        delay_s: when positive (and nothing is predicted), the declared delay as an upper
+            bound, part of ``hold_period_s``: besides the command held for the whole hold
+            from the sample, the command acting only after ``delay_s``, while one drawn at
+            the sample as the earlier command acts before it, is rolled out too.
+        lookahead_s: when positive, each command is the torque for its acceleration at the
+            state this much later (``lookahead_position``), as the filter computes it with
+            a certificate's ``lookahead_s``.
     """
     rng = np.random.default_rng(seed)
     n = model.n_joints
@@ -252,7 +273,7 @@ def estimate_sampling_margin(
     if acceleration_envelope is None:
         acceleration_envelope = gains.accel_bound
     commands = _Commands(model, gains, plant, umax, margin, acceleration_envelope,
-                         acceleration_hold_s, rng)
+                         acceleration_hold_s, lookahead_s, rng)
     torque, commanded, accel0, sendable = commands.draw(q, v)
     # What is checked (docs/method.md, sampled data): that the state stays in S for the
     # whole hold. S is invariant under the sampled filter when every state of S, under every
@@ -288,7 +309,27 @@ def estimate_sampling_margin(
                     prediction_s, sendable, coulomb_velocity=v_plan)
     else:
         rollout.run(q, v, torque, accel0, hold_period_s, 0.0, sendable)
+        if 0.0 < delay_s < hold_period_s:
+            # A delay up to delay_s: the command may also start only after it, while the one
+            # sent a step earlier (any the filter could send at the sample) still acts; it
+            # then acts, planned at the sample, on the state that one brought about.
+            earlier, _, earlier_accel0, earlier_sendable = commands.draw(q, v)
+            q1, v1 = rollout.run(q, v, earlier, earlier_accel0, delay_s, 0.0,
+                                 earlier_sendable)
+            rollout.run(q1, v1, torque, plant.acceleration(q1, v1, torque),
+                        hold_period_s - delay_s, delay_s, sendable & earlier_sendable)
     return margin + inflation * shortfall
+
+
+def lookahead_position(model: RobotModel, q: np.ndarray, v: np.ndarray, lookahead_s: float
+                       ) -> np.ndarray:
+    """Where the filter evaluates ``M`` and ``h`` for ``(q, v)`` with a certificate's
+    ``lookahead_s`` ``c`` (``StepDynamics.evaluation_position``): ``q + c v`` within the
+    position limits; batches of shape (..., n). The torque for an acceleration ``a`` is then
+    ``u = M(q_c) a + h(q_c, v) + c J a``, ``J = d(C v)/dv`` at ``(q_c, v)``: to first order in
+    ``c`` the torque that gives ``a`` at ``(q + c v, v + c a)``, the middle of the hold
+    (docs/method.md, "Lookahead")."""
+    return np.clip(q + lookahead_s * v, model.position_lower, model.position_upper)
 
 
 class _Commands:
@@ -297,10 +338,11 @@ class _Commands:
 
     def __init__(self, model: RobotModel, gains: Gains, plant: _GroupedPlant, umax: np.ndarray,
                  margin: np.ndarray, envelope: np.ndarray | None, acceleration_hold_s: float,
-                 rng: np.random.Generator) -> None:
+                 lookahead_s: float, rng: np.random.Generator) -> None:
         self.model, self.gains, self.plant, self.umax = model, gains, plant, umax
         self.margin, self.envelope, self.rng = margin, envelope, rng
         self.acceleration_hold_s = acceleration_hold_s
+        self.lookahead_s = lookahead_s
 
     def draw(self, q: np.ndarray, v: np.ndarray
              ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -320,14 +362,26 @@ class _Commands:
         accel = lo + pick * (hi - lo)
         mass = self.plant.mass_matrix(q)
         bias = self.plant.bias(q, v)
+        ahead = self.lookahead_s > 0.0
+        # the filter's M and h: at the position ahead along the velocity, with a lookahead
+        planned_mass, planned_bias = mass, bias
+        position = q
+        if ahead:
+            position = lookahead_position(self.model, q, v, self.lookahead_s)
+            planned_mass = self.plant.mass_matrix(position)
+            planned_bias = self.plant.bias(position, v)
         mean_over_hold = self.acceleration_hold_s > 0.0
-        commanding = (hold_mass_matrix(mass, self.model.viscous_friction,
-                                       self.acceleration_hold_s) if mean_over_hold else mass)
-        torque = np.einsum('nij,nj->ni', commanding, accel) + bias
+        commanding = (hold_mass_matrix(planned_mass, self.model.viscous_friction,
+                                       self.acceleration_hold_s) if mean_over_hold
+                      else planned_mass)
+        if ahead:  # and the velocity ahead: h(q_ahead, v + lookahead a) to first order
+            commanding = commanding + self.lookahead_s * self.plant.coriolis_jacobian(
+                position, v)
+        torque = np.einsum('nij,nj->ni', commanding, accel) + planned_bias
         torque = np.clip(torque, -self.umax, self.umax)
-        commanded = np.linalg.solve(commanding, (torque - bias)[..., None])[..., 0]
-        accel0 = (np.linalg.solve(mass, (torque - bias)[..., None])[..., 0] if mean_over_hold
-                  else commanded)
+        commanded = np.linalg.solve(commanding, (torque - planned_bias)[..., None])[..., 0]
+        accel0 = (np.linalg.solve(mass, (torque - bias)[..., None])[..., 0]
+                  if mean_over_hold or ahead else commanded)
         tolerance = 1e-9 * (1.0 + np.abs(hi) + np.abs(lo))
         sendable = np.all((commanded >= lo - tolerance) & (commanded <= hi + tolerance), axis=1)
         return torque, commanded, accel0, sendable

@@ -94,7 +94,8 @@ def _authority_candidates(model: RobotModel, bounds: DynamicsBounds,
             coupled = np.minimum(coupled, np.maximum(useful_authority(model, settings),
                                                      1e-9 * coupled))
         if coupled is not None:  # one step of e = rho - nu - Winv I e (conservative)
-            coupled = coupled - bounds.inverse_mass_max @ disturbance.inertial_total @ coupled
+            inertial = mass - bounds.mass_max  # model error's and the lookahead's
+            coupled = coupled - bounds.inverse_mass_max @ inertial @ coupled
             coupled = coupled if np.all(coupled > 0.0) else None
         candidates['torque_coupling'] = coupled
     bounds.authority_cache[key] = (disturbance, candidates)

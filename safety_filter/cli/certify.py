@@ -51,6 +51,7 @@ def certify_settings(args: argparse.Namespace) -> CertifySettings:
         bounds=bounds,
         seed=args.seed,
         mean_over_hold={'auto': None, 'start': False, 'mean': True}[args.acceleration_form],
+        lookahead={'auto': None, 'on': True, 'off': False}[args.lookahead],
         delay_predicted=args.delay == 'fixed',
         **extra)
 
@@ -174,6 +175,13 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         'over the period, the exact response of the damped joints (mean), or '
                         'whichever certifies the larger safe set (default: auto; see '
                         'docs/method.md)')
+    method.add_argument('--lookahead', choices=('auto', 'on', 'off'), default='auto',
+                        help='on: the filter plans each torque for the state in the middle '
+                        'of the hold the sampled-data margin covers (the dynamics there, to '
+                        'first order), so the margin need not cover their drift along the '
+                        'motion; off: for the measured (or predicted) state; auto: whichever '
+                        'certifies the larger safe set (default: auto; docs/method.md, '
+                        '"Lookahead")')
     method.add_argument('--delay', choices=('up-to', 'fixed'), default='up-to',
                         help="how the limits file's declared delay (uncertainty: "
                         'delay_periods) is read: up-to, any delay up to it, covered as a '

@@ -91,6 +91,12 @@ class Certificate:
             torques already sent), and the sampling margin covers one hold from there.
             Unset (older certificates, or a delay declared as an upper bound): the filter
             plans at the measured state and the margin covers the delay as a longer hold.
+        lookahead_s: when set, the filter plans each torque for the state this long after
+            the planned one, the middle of the control period: ``M`` and ``h`` at the
+            position reached at the current velocity (within the position limits), plus the
+            velocity's share to first order (``lookahead_position``). The drift of the
+            dynamics along the motion within the hold is then planned for, not reserved
+            (docs/method.md, "Lookahead"). Unset (older certificates): at the state itself.
     """
 
     joint_names: list[str]
@@ -127,6 +133,7 @@ class Certificate:
     acceleration_bound: np.ndarray | None = None
     acceleration_hold_s: float | None = None
     prediction_s: float | None = None
+    lookahead_s: float | None = None
 
     def __post_init__(self) -> None:
         # The one place that sets fields: the constructor's checks and read-only copies.
@@ -154,6 +161,11 @@ class Certificate:
             if not (math.isfinite(ahead) and ahead > 0.0):
                 raise CertificateError(f'prediction_s must be positive, got {ahead}')
             store('prediction_s', ahead)
+        if self.lookahead_s is not None:
+            lookahead = float(self.lookahead_s)
+            if not (math.isfinite(lookahead) and lookahead > 0.0):
+                raise CertificateError(f'lookahead_s must be positive, got {lookahead}')
+            store('lookahead_s', lookahead)
         speed_beta = np.zeros(n) if self.velocity_beta is None else np.array(
             self.velocity_beta, dtype=float).reshape(-1)
         if speed_beta.shape != (n,) or not np.all(np.isfinite(speed_beta)) \
@@ -380,6 +392,8 @@ class Certificate:
                 continue
             if item.name == 'prediction_s' and self.prediction_s is None:
                 continue
+            if item.name == 'lookahead_s' and self.lookahead_s is None:
+                continue
             value = getattr(self, item.name)
             if isinstance(value, np.ndarray):
                 value = [float(x) for x in value]
@@ -416,6 +430,8 @@ class Certificate:
             params['acceleration_hold_s'] = plain['acceleration_hold_s']
         if self.prediction_s is not None:
             params['prediction_s'] = plain['prediction_s']
+        if self.lookahead_s is not None:
+            params['lookahead_s'] = plain['lookahead_s']
         params['certificate_id'] = self.certificate_id
         return params
 
@@ -450,6 +466,8 @@ class Certificate:
                 kwargs['acceleration_hold_s'] = float(params['acceleration_hold_s'])
             if params.get('prediction_s') is not None:
                 kwargs['prediction_s'] = float(params['prediction_s'])
+            if params.get('lookahead_s') is not None:
+                kwargs['lookahead_s'] = float(params['lookahead_s'])
         except KeyError as err:
             raise CertificateError(f'the certificate lacks the entry {err.args[0]!r}') from err
         except (TypeError, ValueError) as err:

@@ -16,6 +16,10 @@ call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dy
    low-pass filtered with ``observer_time_constant_s``, and takes it out of the bias ``h``.
 1c. **Delay** (certificates with ``prediction_s``): the rest of the step works at the state
    predicted for the end of the declared delay, where the torque will start to act.
+1d. **Lookahead** (certificates with ``lookahead_s``): each torque is planned for the state
+   that much later, the middle of the control period: ``M`` and ``h`` at the position
+   reached at the current velocity, plus the velocity's share to first order
+   (docs/method.md, "Lookahead").
 2. **Convert** the nominal to full torque: with ``gravity_convention='driver_compensated'``
    the driver adds ``g(q)`` itself, so ``u_full = u_nom + g(q)`` here and the output is
    ``u* - g(q)``. The torque box ``|u| <= umax`` always applies to the full torque.
@@ -141,7 +145,9 @@ class SafetyFilter:
         self.payload_mass = float(payload_mass)
         self.rejection_distance = float(rejection_distance)
         self.dynamics = Dynamics(model, self.payload_mass, backend=backend)
-        self._dyn = StepDynamics(self.dynamics, certificate.acceleration_hold_s)
+        self._dyn = StepDynamics(
+            self.dynamics, certificate.acceleration_hold_s, certificate.lookahead_s,
+            (np.array(certificate.position_lower), np.array(certificate.position_upper)))
         self._driver = gravity_convention == 'driver_compensated'
 
         def frozen(values: Any) -> np.ndarray:
@@ -346,7 +352,8 @@ class SafetyFilter:
         mass, bias = self._mass, self._bias
         self._dyn.mass_and_bias(q, v, mass, bias)
         if self._observing:
-            self._observer.observe(q, v, mass, bias, period_s)
+            # (its range at the position where M and h were evaluated)
+            self._observer.observe(self._dyn.evaluated, v, mass, bias, period_s)
         smallest = barrier_margin  # each joint's smallest barrier where the torque is planned
         if self._ahead is not None:
             ahead = self._ahead.plan(q, v, mass, bias, self._observer, period_s, self._rows)

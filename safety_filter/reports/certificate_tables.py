@@ -228,6 +228,8 @@ def design_lines(certificate: Any, model: RobotModel) -> list[str]:
             family += f' (eps {entry["alpha1_scale"]:.3g})'
         if entry.get('mean_over_hold'):
             family += ', mean acceleration over the hold'
+        if entry.get('lookahead'):
+            family += ', planned half the hold ahead'
         envelope = entry.get('envelope_fraction') or []
         speeds = ', '.join(f'{100 * x:.0f}' for x in envelope)
         lines.append(f'{family}: {entry.get("outcome", "?")}'

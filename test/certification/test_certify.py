@@ -53,7 +53,7 @@ from safety_filter.core.certificate import (
     CertificateMismatch,
 )
 from safety_filter.core.class_k import ClassK
-from safety_filter.core.dynamics import mass_matrix_batch, rnea_batch
+from safety_filter.core.dynamics import christoffel_batch, mass_matrix_batch, rnea_batch
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.simulation.demo_arms import demo_arm_files, load_demo_arm
 
@@ -140,8 +140,9 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
     assert c.condition == 'acceleration_authority'
     # The row-sum data with the declared model error (docs/method.md); the weights stay
     # those of the model's own mass bound.
-    problem = authority_problem(model, outcome.bounds, CertifySettings(),
-                                np.array(c.velocity_bound))
+    # (the certificate's delay sets the lookahead, whose velocity term the rows count)
+    settings = CertifySettings(delay_periods=int(c.settings['certify']['delay_periods']))
+    problem = authority_problem(model, outcome.bounds, settings, np.array(c.velocity_bound))
     assert problem.samples is not None  # configuration-wise rows by default
     umax = np.array(model.effort_limit)
     weights = umax / np.diag(outcome.bounds.mass_max)
@@ -183,7 +184,9 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
 
 @pytest.mark.slow
 def test_authority_holds_for_the_true_dynamics(certified_arm) -> None:  # noqa: ANN001, F811
-    """Every |a_i| <= e_i (all 2^n vertices) maps to a torque in the box at sampled states."""
+    """Every |a_i| <= e_i (all 2^n vertices) maps to a torque in the box at sampled states,
+    as the filter maps it: ``(M + c dC v/dv) a + h`` with the certificate's lookahead ``c``
+    (the states stand for the positions ahead, which stay in the joint box)."""
     model, outcome = certified_arm
     c = outcome.certificate
     n = model.n_joints
@@ -204,6 +207,9 @@ def test_authority_holds_for_the_true_dynamics(certified_arm) -> None:  # noqa: 
     for payload in (model.payload.mass_min, model.payload.mass_max,
                     0.5 * (model.payload.mass_min + model.payload.mass_max)):
         mass = mass_matrix_batch(model, q, payload_mass=payload, backend='numpy')
+        if c.lookahead_s:
+            mass = mass + c.lookahead_s * 2.0 * np.einsum('nijk,nk->nij', christoffel_batch(
+                model, q, payload_mass=payload, backend='numpy'), v)
         bias = rnea_batch(model, q, v, payload_mass=payload, backend='numpy') \
             + np.array(model.viscous_friction) * v + np.array(model.coulomb_friction) * np.sign(v)
         torque = mass @ vertices + bias[:, :, None]  # (count, n, 2^n)
@@ -508,6 +514,26 @@ def test_bench6_coriolis_bound_holds_against_pinocchio_and_beats_the_separate_su
     separate = np.einsum('ijk,j,k->i', bounds.christoffel_max, box, box)
     assert np.all(bound >= worst), (bound, worst)
     assert np.all(bound <= 0.8 * separate), (bound, separate)
+
+
+def test_bench6_velocity_term_bound_holds_against_pinocchio() -> None:
+    """|d(C(q, v) v)/dv|, the lookahead's velocity term, from Pinocchio
+    (``computeRNEADerivatives``, package ``pin``) at random configurations and velocities in
+    the box stays under ``2 sum_k Gbar_ijk vb_k``."""
+    pin = pytest.importorskip('pinocchio')
+    model = load_demo_arm('bench6')
+    bounds = estimate_bounds(model)
+    box = 0.6 * np.array(model.velocity_limit)
+    robot, data = _pinocchio_bench6(pin, model)
+    rng = np.random.default_rng(8)
+    n = model.n_joints
+    worst = np.zeros((n, n))
+    for q in rng.uniform(model.position_lower, model.position_upper, (300, n)):
+        for v in rng.uniform(-box, box, (16, n)):
+            pin.computeRNEADerivatives(robot, data, q, v, np.zeros(n))
+            worst = np.maximum(worst, np.abs(data.dtau_dv))
+    bound = bounds.coriolis_jacobian_max(box)
+    assert np.all(bound >= worst), (bound - worst).min()
 
 
 def test_bench6_torque_rows_hold_against_pinocchio_and_beat_the_separate_maxima() -> None:

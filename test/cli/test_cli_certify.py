@@ -184,6 +184,7 @@ def test_malformed_limits_file_exits_2(tmp_path, capsys) -> None:
     ['--falsifier-states', '-5'],
     ['--sampling-factor', '0.5'],   # settings: a hold shorter than one period
     ['--acceleration-form', 'end'],  # argparse: not a form
+    ['--lookahead', 'yes'],         # argparse: not a choice
     ['--beta-cap-share', '1.5'],    # settings: a share of the cap is at most 1
     ['--velocity-headroom', '-0.1'],  # settings: no box above the rated speed
 ])
@@ -260,3 +261,12 @@ def test_acceleration_form_reaches_the_settings(form: str, expected: bool | None
                                       '--acceleration-form', form])
     settings = certify_settings(args)
     assert settings.mean_over_hold is expected
+
+
+@pytest.mark.parametrize('choice, expected', [('auto', None), ('on', True), ('off', False)])
+def test_lookahead_reaches_the_settings(choice: str, expected: bool | None) -> None:
+    from safety_filter.cli.certify import certify_settings
+    from safety_filter.cli.main import build_parser
+
+    args = build_parser().parse_args(['certify', '--demo', 'planar2', '--lookahead', choice])
+    assert certify_settings(args).lookahead is expected

@@ -178,3 +178,24 @@ def test_the_predicted_delay_is_kept_and_covered_by_the_id(
     for bad in (0.0, -1e-3, float('inf')):
         with pytest.raises(CertificateError, match='prediction_s'):
             dataclasses.replace(certificate, prediction_s=bad)
+
+
+def test_the_lookahead_is_kept_and_covered_by_the_id(planar2: tuple, tmp_path: Path) -> None:
+    """lookahead_s survives the parameter file and is part of the id; without it (older
+    certificates) the entry is absent; an invalid value is refused."""
+    import dataclasses
+
+    from safety_filter.core.certificate import CertificateError
+
+    model, plain, _, _ = planar2
+    assert plain.lookahead_s is None
+    certificate = dataclasses.replace(plain, lookahead_s=5e-4)
+    assert 'lookahead_s' not in plain.to_parameters()
+    assert plain.certificate_id != certificate.certificate_id
+    loaded = Certificate.load(certificate.save(tmp_path / 'ahead.yaml'), model)
+    assert loaded.lookahead_s == certificate.lookahead_s
+    assert loaded.certificate_id == certificate.certificate_id
+    assert Certificate.load(plain.save(tmp_path / 'plain.yaml'), model).lookahead_s is None
+    for bad in (0.0, -1e-3, float('nan')):
+        with pytest.raises(CertificateError, match='lookahead_s'):
+            dataclasses.replace(certificate, lookahead_s=bad)

@@ -183,14 +183,23 @@ def test_report_of_a_failed_certification_says_why(weak, tmp_path) -> None:
 def test_report_lists_the_designs_tried(planar2) -> None:
     """Every family certification tried is listed with its outcome, one of them chosen; the
     certificate's own alpha1 is the chosen family's. On the damped demo arm the chosen
-    family is also tried with mean accelerations over the hold, and says so."""
+    family is also tried with mean accelerations over the hold, and then without the
+    lookahead, and each line says so; the certificate's lookahead is the chosen one's."""
     outcome, model = planar2
     cert = outcome.certificate
     lines = design_lines(cert, model)
     tried = cert.settings['designs_tried']
-    assert len(tried) == len(FAST.families) + 1 and len(lines) >= len(tried)
-    assert [entry['mean_over_hold'] for entry in tried] == [False] * len(FAST.families) + [True]
-    assert sum('mean acceleration over the hold' in line for line in lines) == 1
+    families = len(FAST.families)
+    assert len(tried) == families + 2 and len(lines) >= len(tried)
+    assert [entry['mean_over_hold'] for entry in tried][:families + 1] == \
+        [False] * families + [True]
+    assert [entry['lookahead'] for entry in tried] == [True] * (families + 1) + [False]
+    assert sum('mean acceleration over the hold' in line for line in lines) == \
+        1 + tried[-1]['mean_over_hold']
+    assert sum('planned half the hold ahead' in line for line in lines[:len(tried)]) == \
+        families + 1
+    chosen_entry = next(entry for entry in tried if entry['outcome'] == 'chosen')
+    assert (cert.lookahead_s is not None) == chosen_entry['lookahead']
     chosen = [line for line in lines if ': chosen' in line]
     assert len(chosen) == 1 and chosen[0].startswith(cert.alpha1.kind)
     table = format_joint_table(outcome, model)
