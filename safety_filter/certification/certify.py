@@ -25,6 +25,10 @@ This module runs the steps; the formulas are in :mod:`~safety_filter.certificati
 :mod:`~safety_filter.certification.design_formulas` (steps 3 and 5) and
 :mod:`~safety_filter.certification.shortfall_reasons` (the reasons); the settings in
 :mod:`~safety_filter.certification.certify_settings`.
+
+Kept in one module: the loop over designs (family, acceleration form, lookahead) and what
+it records of each attempt share the stages' state (bounds per form, the attempts, the
+stage timings), which split modules would have to pass back and forth.
 """
 
 from __future__ import annotations

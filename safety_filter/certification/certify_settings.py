@@ -224,9 +224,14 @@ class CertifySettings:
 
     @property
     def delay_bound_s(self) -> float:
-        """The declared delay when it is read as an upper bound [s] (0: none, or
-        predicted)."""
-        return 0.0 if self.delay_predicted else (self.delay_periods or 0) / self.control_rate_hz
+        """The declared delay read as an upper bound that the rollouts cover as a separate
+        start of the command [s]: with the lookahead, whose plan is for the middle of the
+        hold, it matters whether the command acts over the hold's first part or only its
+        second (docs/method.md, "Lookahead"). 0: predicted, none, or without the
+        lookahead."""
+        if self.delay_predicted or self.lookahead_s == 0.0:
+            return 0.0
+        return (self.delay_periods or 0) / self.control_rate_hz
 
     @property
     def prediction_s(self) -> float:
