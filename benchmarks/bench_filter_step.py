@@ -27,8 +27,8 @@ machine and its load (printed, with a yardstick: the time of one small numpy cal
 are no timed assertions. The per-step budget: 7-joint step p99 <= 200 us. A second table
 times the step along a closed-loop run toward the limits, where the warm start helps, with
 the disturbance observer off, on (its per-state range included: the hand-built
-certificates carry one), and on with a one-period delay predicted, in interleaved rounds,
-and prints the ratios.
+certificates carry one), on with a one-period delay predicted, and on with a lookahead of a
+period, in interleaved rounds, and prints the ratios.
 """
 
 from __future__ import annotations
@@ -170,15 +170,19 @@ def bench_arm(name: str, steps: int, cvxpy_steps: int, seed: int) -> dict[str, A
 
 
 def bench_closed_loop(name: str, steps: int, observer: bool = True,
-                      predict: bool = False) -> dict[str, Any]:
+                      predict: bool = False, lookahead: bool = False) -> dict[str, Any]:
     """Step times along a closed-loop run (consecutive states, so the warm start helps):
     the model integrated with the held torque, started next to the limits and heading for
     them, with a nominal pushing outward at 3x the torque limit (as in test_filter).
     ``predict``: the certificate declares a one-period delay to predict over (``prediction_s``;
-    the step then also evaluates the dynamics at the predicted state)."""
+    the step then also evaluates the dynamics at the predicted state). ``lookahead``: the
+    certificate plans a period ahead (``lookahead_s``; the step also evaluates the velocity
+    term ``dC v/dv``)."""
     model, certificate = demo_arm_and_certificate(name)
     if predict:
         certificate = replace(certificate, prediction_s=1.0 / certificate.control_rate_hz)
+    if lookahead:
+        certificate = replace(certificate, lookahead_s=1.0 / certificate.control_rate_hz)
     filt = SafetyFilter(model, certificate,
                         observer_time_constant_s=None if observer else 0.0)
     plant = filt.dynamics
@@ -243,14 +247,17 @@ def main(argv: list[str] | None = None) -> int:
     loop_steps = 300 if args.quick else 2000
     print(f'\nclosed loop, {loop_steps} steps per arm: the model driven by the filtered torque '
           'toward the limits (consecutive states: the warm start helps)')
-    print('observer: off, on, or on with a one-period delay predicted (+delay)')
+    print('observer: off, on, on with a one-period delay predicted (+delay), or on with a '
+          'lookahead of a period (+ahead)')
     print(f'{"arm":<8} {"n":>2} {"observer":>8} {"median":>8} {"p99":>8} {"max":>8}  modes')
-    variants = {'off': (False, False), 'on': (True, False), '+delay': (True, True)}
+    variants = {'off': (False, False, False), 'on': (True, False, False),
+                '+delay': (True, True, False), '+ahead': (True, False, True)}
     for name in args.arms:
         rounds: dict[str, list[dict[str, Any]]] = {key: [] for key in variants}
         for _ in range(3):  # interleaved, so that load changes hit all alike
-            for key, (observer, predict) in variants.items():
-                rounds[key].append(bench_closed_loop(name, loop_steps // 3, observer, predict))
+            for key, (observer, predict, ahead) in variants.items():
+                rounds[key].append(bench_closed_loop(name, loop_steps // 3, observer, predict,
+                                                     ahead))
         medians = {}
         for key, runs in rounds.items():
             medians[key] = float(np.median([r['median'] for r in runs]))
@@ -261,7 +268,8 @@ def main(argv: list[str] | None = None) -> int:
                   f'{medians[key]:8.0f} {p99:8.0f} {worst:8.0f}  {modes}')
         print(f'{"":<12}observer cost: median step {medians["on"] / medians["off"]:.2f}x '
               'the step without it; predicting the delay: '
-              f'{medians["+delay"] / medians["on"]:.2f}x the step with the observer alone')
+              f'{medians["+delay"] / medians["on"]:.2f}x the step with the observer alone; '
+              f'the lookahead: {medians["+ahead"] / medians["on"]:.2f}x')
     return 0
 
 

@@ -211,9 +211,7 @@ def disturbance_bound(model: RobotModel, uncertainty: UncertaintySet, *,
     ``com_error`` under gravity: ``m |g x axis| com_error``, where only the first joint's
     axis is fixed; and the same lever on the inertia), ``friction`` (the declared spreads at
     the velocity box), ``driver`` (relative error at the torque limit plus the offset) and
-    ``observer noise`` (``sqrt(Mbar^2 @ (velocity_noise / time constants)^2)``: each
-    joint's estimate is filtered as an acceleration, and the joints' noises are
-    independent).
+    ``observer noise`` (``M * velocity_noise / time constant``).
     """
     n = model.n_joints
     umax = np.array(model.effort_limit)
@@ -236,12 +234,7 @@ def disturbance_bound(model: RobotModel, uncertainty: UncertaintySet, *,
                 + np.maximum(c_hi - c_nom, c_nom - c_lo))
     driver = (uncertainty.torque_error_relative + uncertainty.torque_error_absolute) * umax
     tau = np.broadcast_to(np.asarray(observer_time_constant_s, dtype=float), (n,))
-    # Each joint's estimate is filtered as an acceleration with its own time constant (noise
-    # of about v_noise / tau, two standard deviations); M turns them into torques. The
-    # joints' measurement noises are independent, so their shares add as squares. (The
-    # filter clips its estimate to the range this widens: the QP's feasibility never rests
-    # on the noise staying inside it.)
-    noise = (np.sqrt((np.asarray(mass_max) ** 2) @ (uncertainty.velocity_noise / tau) ** 2)
+    noise = (np.asarray(mass_max) @ np.full(n, uncertainty.velocity_noise) / tau
              if np.all(tau > 0.0) else np.zeros(n))
     static = {
         'payload': mass_error * (np.asarray(payload_gravity_max)

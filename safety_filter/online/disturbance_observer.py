@@ -59,12 +59,6 @@ class DisturbanceObserver:
         self._heavier = heavier
         self._parameters = disturbance_parameters
         self.disturbance = np.zeros(n)  # estimated torque beyond the model [N m]
-        # The estimate as an acceleration, M^-1 d, which each joint's low-pass filters: the
-        # joints have their own time constants, and filtered as torques the coupling terms
-        # of M would mix a heavy joint's slow noise and a light one's fast noise into an
-        # acceleration noise on the light joint far above its own (docs/method.md).
-        self._accel = np.zeros(n)
-        self._accel_sample = np.empty(n)
         self.delay_s = self.delay_periods * self.control_period_s
         # full torques sent, oldest first; two more than the delay at the certified period
         self._sent = np.zeros((self.delay_periods + 2, n))
@@ -84,7 +78,6 @@ class DisturbanceObserver:
     def reset(self) -> None:
         """Forget the estimate and the history."""
         self.disturbance[:] = 0.0
-        self._accel[:] = 0.0
         self.restart()
 
     def restart(self) -> None:
@@ -137,19 +130,11 @@ class DisturbanceObserver:
                 # a delay one period longer or shorter than declared cannot make the
                 # estimate oscillate (the loop's poles stay inside the unit circle).
                 gain = np.minimum(period / (period + self.time_constants), MAX_OBSERVER_GAIN)
-                # the residual as an acceleration against the plan made at the period's start
-                sample = self._accel_sample
-                sample[:] = np.linalg.solve(self._mass, measured)
-                sample -= self._accel
-                sample *= gain
-                self._accel += sample
-        # As a torque at this state; never beyond what a plant of the declared set can need
-        # here (so the certified authority holds), and never beyond the torque box.
-        np.matmul(mass, self._accel, out=self.disturbance)
+                self.disturbance += gain * (measured - self.disturbance)
+        # Never beyond what a plant of the declared set can need at this state (so the
+        # certified authority holds), and never beyond the torque box.
         limit = self.limit(q, v, bias)
-        if not _kernels.within_box(self.disturbance, limit):
-            np.clip(self.disturbance, -limit, limit, out=self.disturbance)
-            self._accel[:] = np.linalg.solve(mass, self.disturbance)
+        np.clip(self.disturbance, -limit, limit, out=self.disturbance)
         self._v[:] = v
         self._mass[:] = mass
         self._bias[:] = bias

@@ -424,30 +424,3 @@ def test_a_reversal_does_not_read_as_twice_the_friction() -> None:
     observer.observe(np.zeros(1), v, mass, np.sign(v) * 1.0, period)
     assert abs(observer.disturbance[0]) < 1e-9, observer.disturbance
 
-
-def test_each_joint_sees_only_its_own_velocity_noise() -> None:
-    """A heavy joint (20 ms time constant) coupled to a light one (3 ms) through ``M``, at
-    rest, with uniform velocity noise on both. The estimate, as the acceleration it puts into
-    the plan (``M^-1 d_hat``), has on each joint the noise of that joint's own low-pass of its
-    own differenced noise: for ``d = g (1 - z^-1) / (1 - (1 - g) z^-1)`` applied to white noise
-    of standard deviation ``s / T``, the sum of the squared impulse response gives the
-    variance ``(s / T)^2 2 g^2 / (2 - g)`` (Parseval's theorem, textbook discrete-time signal
-    analysis; derived here, not looked up). Filtered as torques instead (the observer's
-    earlier form), the heavy joint's noise reached the light one through the coupling
-    ``M_12`` at the light joint's fast time constant: measured 128 rad/s^2 against 1.5 here."""
-    period, bound = 1e-3, 0.01
-    taus = np.array([0.02, 0.003])
-    mass = np.array([[2.0, 0.08], [0.08, 0.004]])
-    observer = DisturbanceObserver(taus, 0, np.full(2, 1e3), None, None, None, period)
-    rng = np.random.default_rng(11)
-    zero = np.zeros(2)
-    estimates = []
-    for step in range(40_000):
-        bias = zero.copy()
-        observer.observe(zero, rng.uniform(-bound, bound, 2), mass, bias, period)
-        observer.sent(zero)
-        if step >= 1000:
-            estimates.append(np.linalg.solve(mass, observer.disturbance))
-    gain = period / (period + taus)
-    expected = bound / np.sqrt(3.0) / period * np.sqrt(2.0 * gain ** 2 / (2.0 - gain))
-    np.testing.assert_allclose(np.std(estimates, axis=0), expected, rtol=0.05)
