@@ -18,13 +18,17 @@ from safety_filter.certification.certify_settings import CertifySettings
 from safety_filter.certification.sampled_data_margin import Gains, estimate_sampling_margin
 
 
-@pytest.mark.slow
-def test_predicting_the_delay_leaves_a_hold_of_one_period_to_cover() -> None:
-    model, certificate = demo_certificate('bench6')
-    c = certificate
+def _bench6_gains():  # noqa: ANN202
+    """bench6, its session certificate, the certificate's gains and its control period."""
+    model, c = demo_certificate('bench6')
     gains = Gains(c.gamma, c.beta, c.alpha1, c.alpha2, c.velocity_bound, c.velocity_beta,
                   c.acceleration_bound)
-    period = 1.0 / c.control_rate_hz
+    return model, c, gains, 1.0 / c.control_rate_hz
+
+
+@pytest.mark.slow
+def test_predicting_the_delay_leaves_a_hold_of_one_period_to_cover() -> None:
+    model, c, gains, period = _bench6_gains()
     common = dict(samples=1000, current_margin=np.zeros(model.n_joints), seed=0,
                   plants=margin_plants(model, CertifySettings(delay_periods=1)))
     one_hold = estimate_sampling_margin(model, gains, period, **common)
@@ -43,11 +47,7 @@ def test_the_lookahead_takes_the_drift_of_the_heavy_joints_out_of_the_margin() -
     at the state, and with the lookahead of half that hold: the shoulder's and the elbow's
     margins, mostly the drift of their dynamics along the motion, drop by at least 40 %
     (docs/method.md, "Lookahead", which also says what it costs the base)."""
-    model, certificate = demo_certificate('bench6')
-    c = certificate
-    gains = Gains(c.gamma, c.beta, c.alpha1, c.alpha2, c.velocity_bound, c.velocity_beta,
-                  c.acceleration_bound)
-    period = 1.0 / c.control_rate_hz
+    model, c, gains, period = _bench6_gains()
     common = dict(samples=1000, current_margin=np.zeros(model.n_joints), seed=0,
                   plants=margin_plants(model, CertifySettings(delay_periods=1)),
                   acceleration_hold_s=c.acceleration_hold_s or 0.0, delay_s=period)

@@ -158,44 +158,30 @@ def test_the_hold_of_mean_accelerations_is_kept_and_covered_by_the_id(
             dataclasses.replace(certificate, acceleration_hold_s=bad)
 
 
-def test_the_predicted_delay_is_kept_and_covered_by_the_id(
-        planar2: tuple, tmp_path: Path) -> None:
-    """prediction_s survives the parameter file and is part of the id (a certificate made
-    with the delay as an upper bound has none); an invalid value is refused."""
+@pytest.mark.parametrize('entry, value, bad_values', [
+    ('prediction_s', 1e-3, (0.0, -1e-3, float('inf'))),
+    ('lookahead_s', 5e-4, (0.0, -1e-3, float('nan'))),
+])
+def test_optional_timing_entries_are_kept_and_covered_by_the_id(
+        planar2: tuple, tmp_path: Path, entry: str, value: float,
+        bad_values: tuple[float, ...]) -> None:
+    """prediction_s (the delay predicted) and lookahead_s (the plan ahead) survive the
+    parameter file and are part of the id; a certificate without them (the delay as an
+    upper bound, no lookahead, older certificates) has no such entry; an invalid value is
+    refused."""
     import dataclasses
 
     from safety_filter.core.certificate import CertificateError
 
     model, plain, _, _ = planar2
-    assert plain.prediction_s is None
-    certificate = dataclasses.replace(plain, prediction_s=1e-3)
-    assert 'prediction_s' not in plain.to_parameters()
+    assert getattr(plain, entry) is None
+    certificate = dataclasses.replace(plain, **{entry: value})
+    assert entry not in plain.to_parameters()
     assert plain.certificate_id != certificate.certificate_id
     loaded = Certificate.load(certificate.save(tmp_path / 'ahead.yaml'), model)
-    assert loaded.prediction_s == certificate.prediction_s
+    assert getattr(loaded, entry) == value
     assert loaded.certificate_id == certificate.certificate_id
-    assert Certificate.load(plain.save(tmp_path / 'plain.yaml'), model).prediction_s is None
-    for bad in (0.0, -1e-3, float('inf')):
-        with pytest.raises(CertificateError, match='prediction_s'):
-            dataclasses.replace(certificate, prediction_s=bad)
-
-
-def test_the_lookahead_is_kept_and_covered_by_the_id(planar2: tuple, tmp_path: Path) -> None:
-    """lookahead_s survives the parameter file and is part of the id; without it (older
-    certificates) the entry is absent; an invalid value is refused."""
-    import dataclasses
-
-    from safety_filter.core.certificate import CertificateError
-
-    model, plain, _, _ = planar2
-    assert plain.lookahead_s is None
-    certificate = dataclasses.replace(plain, lookahead_s=5e-4)
-    assert 'lookahead_s' not in plain.to_parameters()
-    assert plain.certificate_id != certificate.certificate_id
-    loaded = Certificate.load(certificate.save(tmp_path / 'ahead.yaml'), model)
-    assert loaded.lookahead_s == certificate.lookahead_s
-    assert loaded.certificate_id == certificate.certificate_id
-    assert Certificate.load(plain.save(tmp_path / 'plain.yaml'), model).lookahead_s is None
-    for bad in (0.0, -1e-3, float('nan')):
-        with pytest.raises(CertificateError, match='lookahead_s'):
-            dataclasses.replace(certificate, lookahead_s=bad)
+    assert getattr(Certificate.load(plain.save(tmp_path / 'plain.yaml'), model), entry) is None
+    for bad in bad_values:
+        with pytest.raises(CertificateError, match=entry):
+            dataclasses.replace(certificate, **{entry: bad})
