@@ -270,3 +270,5 @@ def test_lookahead_reaches_the_settings(choice: str, expected: bool | None) -> N
 
     args = build_parser().parse_args(['certify', '--demo', 'planar2', '--lookahead', choice])
     assert certify_settings(args).lookahead is expected
+    default = build_parser().parse_args(['certify', '--demo', 'planar2'])
+    assert certify_settings(default).lookahead is False

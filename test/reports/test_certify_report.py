@@ -183,26 +183,39 @@ def test_report_of_a_failed_certification_says_why(weak, tmp_path) -> None:
 def test_report_lists_the_designs_tried(planar2) -> None:
     """Every family certification tried is listed with its outcome, one of them chosen; the
     certificate's own alpha1 is the chosen family's. On the damped demo arm the chosen
-    family is also tried with mean accelerations over the hold, and then without the
-    lookahead, and each line says so; the certificate's lookahead is the chosen one's."""
+    family is also tried with mean accelerations over the hold, and says so; without the
+    lookahead (the default) no line says it plans ahead."""
     outcome, model = planar2
     cert = outcome.certificate
     lines = design_lines(cert, model)
     tried = cert.settings['designs_tried']
-    families = len(FAST.families)
-    assert len(tried) == families + 2 and len(lines) >= len(tried)
-    assert [entry['mean_over_hold'] for entry in tried][:families + 1] == \
-        [False] * families + [True]
-    assert [entry['lookahead'] for entry in tried] == [True] * (families + 1) + [False]
-    assert sum('mean acceleration over the hold' in line for line in lines) == \
-        1 + tried[-1]['mean_over_hold']
-    assert sum('planned half the hold ahead' in line for line in lines[:len(tried)]) == \
-        families + 1
-    chosen_entry = next(entry for entry in tried if entry['outcome'] == 'chosen')
-    assert (cert.lookahead_s is not None) == chosen_entry['lookahead']
+    assert len(tried) == len(FAST.families) + 1 and len(lines) >= len(tried)
+    assert [entry['mean_over_hold'] for entry in tried] == [False] * len(FAST.families) + [True]
+    assert sum('mean acceleration over the hold' in line for line in lines) == 1
+    assert not any(entry['lookahead'] for entry in tried) and cert.lookahead_s is None
+    assert not any('planned half the hold ahead' in line for line in lines)
     chosen = [line for line in lines if ': chosen' in line]
     assert len(chosen) == 1 and chosen[0].startswith(cert.alpha1.kind)
     table = format_joint_table(outcome, model)
     assert 'designs tried' in table
     for entry in tried:
         assert any(line.startswith(entry['alpha1']) for line in lines)
+
+
+def test_the_lookahead_left_to_certification_is_tried_both_ways() -> None:
+    """With ``lookahead=None`` the families and forms are taken through with the lookahead,
+    then the chosen family and form without it; the report lists each, and the certificate
+    plans ahead exactly when the chosen design does."""
+    from dataclasses import replace
+
+    model = load_demo_arm('planar2')
+    outcome = certify_with_evidence(model, replace(FAST, lookahead=None))
+    cert = outcome.certificate
+    tried = cert.settings['designs_tried']
+    families = len(FAST.families)
+    assert [entry['lookahead'] for entry in tried] == [True] * (families + 1) + [False]
+    lines = design_lines(cert, model)
+    assert sum('planned half the hold ahead' in line for line in lines[:len(tried)]) == \
+        families + 1
+    chosen = next(entry for entry in tried if entry['outcome'] == 'chosen')
+    assert (cert.lookahead_s is not None) == chosen['lookahead']
