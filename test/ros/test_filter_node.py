@@ -174,9 +174,9 @@ def test_node_declares_every_certificate_entry(planar2: CertifiedArm) -> None:
     import dataclasses
 
     # every optional entry set (the demo arm's certificate bounds start-of-hold accelerations
-    # and plans at the measured state)
+    # and plans at the measured state, without a lookahead)
     complete = dataclasses.replace(planar2.certificate, acceleration_hold_s=0.001,
-                                   prediction_s=0.001)
+                                   prediction_s=0.001, lookahead_s=0.001)
     assert set(CERTIFICATE_PARAMETERS) == set(complete.to_parameters())
     assert len(CERTIFICATE_PARAMETERS) == len(set(CERTIFICATE_PARAMETERS))
 
