@@ -17,7 +17,7 @@ call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dy
 1c. **Delay** (certificates with ``prediction_s``): the rest of the step works at the state
    predicted for the end of the declared delay, where the torque will start to act.
 1d. **Lookahead** (certificates with ``lookahead_s``): each torque is planned for the state
-   that much later, the middle of the control period: ``M`` and ``h`` at the position
+   that much later, the middle of the hold the margin covers: ``M`` and ``h`` at the position
    reached at the current velocity, plus the velocity's share to first order
    (docs/method.md, "Lookahead").
 2. **Convert** the nominal to full torque: with ``gravity_convention='driver_compensated'``

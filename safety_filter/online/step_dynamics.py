@@ -105,6 +105,7 @@ class StepDynamics:
             return 2.0 * self.dynamics.coriolis_matrix(q, v)
         self._pin.computeRNEADerivatives(self._pin_model, self._pin_data, q, v, self._zero)
         return self._pin_data.dtau_dv
+
     def nominal_acceleration(self, q: np.ndarray, v: np.ndarray, torque: np.ndarray,
                              mass: np.ndarray, bias: np.ndarray,
                              disturbance: np.ndarray | None = None) -> np.ndarray:
