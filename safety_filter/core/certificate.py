@@ -92,7 +92,7 @@ class Certificate:
             Unset (older certificates, or a delay declared as an upper bound): the filter
             plans at the measured state and the margin covers the delay as a longer hold.
         lookahead_s: when set, the filter plans each torque for the state this long after
-            the planned one, the middle of the control period: ``M`` and ``h`` at the
+            the planned one, the middle of the hold the margin covers: ``M`` and ``h`` at the
             position reached at the current velocity (within the position limits), plus the
             velocity's share to first order (``lookahead_position``). The drift of the
             dynamics along the motion within the hold is then planned for, not reserved
