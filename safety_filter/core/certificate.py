@@ -151,21 +151,12 @@ class Certificate:
             raise CertificateError(f'acceleration_bound must have {n} positive entries')
         bound.flags.writeable = False
         store('acceleration_bound', bound)
-        if self.acceleration_hold_s is not None:
-            hold = float(self.acceleration_hold_s)
-            if not (math.isfinite(hold) and hold > 0.0):
-                raise CertificateError(f'acceleration_hold_s must be positive, got {hold}')
-            store('acceleration_hold_s', hold)
-        if self.prediction_s is not None:
-            ahead = float(self.prediction_s)
-            if not (math.isfinite(ahead) and ahead > 0.0):
-                raise CertificateError(f'prediction_s must be positive, got {ahead}')
-            store('prediction_s', ahead)
-        if self.lookahead_s is not None:
-            lookahead = float(self.lookahead_s)
-            if not (math.isfinite(lookahead) and lookahead > 0.0):
-                raise CertificateError(f'lookahead_s must be positive, got {lookahead}')
-            store('lookahead_s', lookahead)
+        for name in ('acceleration_hold_s', 'prediction_s', 'lookahead_s'):  # optional times
+            if getattr(self, name) is not None:
+                seconds = float(getattr(self, name))
+                if not (math.isfinite(seconds) and seconds > 0.0):
+                    raise CertificateError(f'{name} must be positive, got {seconds}')
+                store(name, seconds)
         speed_beta = np.zeros(n) if self.velocity_beta is None else np.array(
             self.velocity_beta, dtype=float).reshape(-1)
         if speed_beta.shape != (n,) or not np.all(np.isfinite(speed_beta)) \
