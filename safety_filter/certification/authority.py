@@ -187,7 +187,9 @@ def model_error_bound(model: RobotModel, bounds: DynamicsBounds, velocity_box: n
         payload_gravity_max=bounds.payload_gravity_max,
         payload_coriolis_max=np.einsum('ijk,j,k->i', bounds.payload_christoffel_max,
                                        velocity_box, velocity_box),
-        payload_mass_max=bounds.payload_mass_max, velocity_box=velocity_box,
+        payload_mass_max=bounds.payload_mass_max,
+        velocity_box=(velocity_box if settings.friction_error_box is None
+                      else np.maximum(velocity_box, settings.friction_error_box)),
         observer_time_constant_s=observer_time_constants(model, bounds, settings))
 
 

@@ -103,10 +103,73 @@ def certify(model: RobotModel, settings: CertifySettings | None = None,
 
 def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = None,
                           progress: ProgressCallback | None = None) -> CertificationOutcome:
-    """Run every certification stage and keep the evidence (see the module docstring)."""
+    """Run every certification stage and keep the evidence (see the module docstring).
+
+    With ``settings.slow_box`` the main design is certified first, then the slow design for
+    its family, acceleration form and lookahead (:func:`_add_slow_design`).
+    """
+    settings = settings or CertifySettings()
+    if settings.slow_box <= 0.0:
+        return _certify_design(model, settings, progress)
+    report = progress or (lambda _stage, _fraction: None)
+    main = _certify_design(model, replace(settings, slow_box=0.0),
+                           lambda stage, f: report(stage, 0.7 * f))
+    if not main.certified:
+        return main
+    return _add_slow_design(model, settings, main,
+                            lambda stage, f: report('slow design: ' + stage, 0.7 + 0.3 * f))
+
+
+def _add_slow_design(model: RobotModel, settings: CertifySettings, main: CertificationOutcome,
+                     progress: ProgressCallback) -> CertificationOutcome:
+    """Certify the slow design beside the certified ``main`` and attach it when it holds.
+
+    The slow design keeps the main design's family, acceleration form and lookahead, with
+    velocity boxes of at most ``slow_box`` of the rated speeds. One disturbance observer
+    serves both designs and keeps its estimate in the main design's range; the slow design
+    counts the friction spreads at the main design's box, so with its larger authority its
+    own range contains the main one (checked). A slow design that does not certify, gives
+    no joint more authority, or whose range does not contain the main one is left out, and
+    the main certificate's notes say why.
+    """
+    first = main.certificate
+    family = first.alpha1.kind + ('' if first.has_velocity_barriers else LEMMA_SUFFIX)
+    form = replace(settings, slow_box=0.0, alpha1=None, families=(family,),
+                   mean_over_hold=first.acceleration_hold_s is not None,
+                   lookahead=first.lookahead_s is not None,
+                   velocity_headroom=1.0 - settings.slow_box,
+                   friction_error_box=tuple(float(x) for x in first.velocity_bound))
+    slow = _certify_design(model, form, progress, model_error_records=False)
+    seconds = {stage: main.stage_seconds.get(stage, 0.0) + slow.stage_seconds.get(stage, 0.0)
+               for stage in {*main.stage_seconds, *slow.stage_seconds}}
+    second = slow.certificate
+    why = ''
+    if not second.certified:
+        why = 'it does not certify: ' + '; '.join(second.reasons)
+    elif not np.any(second.usable_authority > first.usable_authority * (1.0 + 1e-6)):
+        why = 'it gives no joint more usable authority than the main design'
+    ranges = [c.settings.get('disturbance_constant') for c in (first, second)]
+    if not why and None not in ranges and \
+            np.any(np.array(ranges[1]) < np.array(ranges[0]) * (1.0 - 1e-9)):
+        why = ("its range of the disturbance estimate does not contain the main design's "
+               '(the filter keeps the estimate in the main one)')
+    if why:
+        notes = list(first.settings.get('notes', [])) + [f'slow design left out: {why}']
+        certificate = replace(first, settings={**first.settings, 'notes': notes})
+    else:
+        certificate = replace(first, slow_design=second)
+    certificate = replace(certificate, settings={
+        **certificate.settings, 'stage_seconds': {k: round(v, 3) for k, v in seconds.items()}})
+    return CertificationOutcome(certificate, main.bounds, main.velocity_scale,
+                                main.authority_by_condition, seconds, main.falsifier)
+
+
+def _certify_design(model: RobotModel, settings: CertifySettings,
+                    progress: ProgressCallback | None = None,
+                    model_error_records: bool = True) -> CertificationOutcome:
+    """Certify one design (every stage but the slow design)."""
     from safety_filter.certification.falsifier import falsify
 
-    settings = settings or CertifySettings()
     if settings.delay_periods is None:
         settings = replace(settings, delay_periods=int(model.uncertainty.delay_periods))
     report = progress or (lambda _stage, _fraction: None)
@@ -213,7 +276,8 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
         'notes': notes,
         'uncertainty': model.uncertainty.record(),
         'observer_time_constants_s': _plain(observer_time_constants(model, bounds, settings)),
-        **_model_error_record(model, bounds, settings, design or last_design),
+        **_model_error_record(model, bounds, settings, design or last_design,
+                              model_error_records),
         **dissipation,
     }
     certificate = Certificate(
@@ -448,10 +512,11 @@ def _attempt_family(model: RobotModel, bounds: DynamicsBounds, settings: Certify
 
 
 def _model_error_record(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
-                        design: Design | None) -> dict[str, Any]:
+                        design: Design | None, envelopes: bool = True) -> dict[str, Any]:
     """What the declared uncertainty costs, for the certificate and its report: the torque
     bound per joint (the filter clips its disturbance estimate to it), its share per kind,
-    and the authority and velocity envelope the same scale would give without it."""
+    and the authority and velocity envelope the same scale would give without it (the
+    envelopes only with ``envelopes``: two more box searches)."""
     if design is None or design.disturbance is None:
         return {}
     by_kind = design.disturbance.by_kind(design.authority)
@@ -474,7 +539,7 @@ def _model_error_record(model: RobotModel, bounds: DynamicsBounds, settings: Cer
     }
     # The certified velocity fractions (before the sampled-data margin) with and without
     # the uncertainty, each at its own best velocity box, for the chosen family.
-    for label, exact_model in (('with', False), ('without', True)):
+    for label, exact_model in ((('with', False), ('without', True)) if envelopes else ()):
         kind = design.alpha1.kind + ('' if design.has_speed_rows else LEMMA_SUFFIX)
         best, _ = search_velocity_box(model, bounds, settings, kind, exact_model)
         record[f'velocity_fraction_{label}_uncertainty'] = (

@@ -100,6 +100,15 @@ class CertifySettings:
             it; False (default): at the planned state; None: certification tries both and
             keeps the larger safe set (docs/method.md, "Lookahead": on planar2's exact model
             a lookahead design left S by 5e-5 with the disturbance observer on).
+        slow_box: when above 0, certification adds a slow design: a second design for the
+            same arm whose velocity box is at most this share of the rated speeds, so that
+            with the Coriolis torque of the smaller box freed it brakes harder; the filter's
+            safe set is the union of the two (docs/method.md, "The slow set"). 0: none.
+            Not with ``delay_predicted``.
+        friction_error_box: the velocity box at which the model-error bound counts the
+            friction spreads [rad/s or m/s per joint]; None (default): the design's own box.
+            The slow design takes the main design's, so that its range of the disturbance
+            estimate contains the main design's (one observer serves both).
     """
 
     alpha1: ClassK | None = None
@@ -132,6 +141,8 @@ class CertifySettings:
     margin_plants: int = 3
     mean_over_hold: bool | None = None
     lookahead: bool | None = False
+    slow_box: float = 0.0
+    friction_error_box: tuple[float, ...] | None = None
 
     def __post_init__(self) -> None:
         kinds1, kinds2 = ', '.join(ALPHA1_KINDS), ', '.join(ALPHA2_KINDS)
@@ -161,6 +172,13 @@ class CertifySettings:
         if self.condition not in ('auto', *CONDITIONS):
             raise InvalidValue('condition', self.condition,
                                'one of auto, ' + ', '.join(CONDITIONS))
+        if not 0.0 <= self.slow_box <= self.top_velocity_fraction:
+            raise InvalidValue('slow_box', self.slow_box,
+                               'in [0, 1 - velocity_headroom] (0: no slow design)')
+        if self.slow_box > 0.0 and self.delay_predicted:
+            raise InvalidValue('slow_box', self.slow_box,
+                               '0 with delay_predicted (the filter predicts over the delay '
+                               'with one design only)')
         if not (np.isfinite(self.observer_periods) and self.observer_periods >= 2.0):
             raise InvalidValue('observer_periods', self.observer_periods, 'finite and >= 2')
         if not (np.isfinite(self.observer_noise_share) and self.observer_noise_share > 0.0):

@@ -97,6 +97,11 @@ class Certificate:
             velocity's share to first order (``lookahead_position``). The drift of the
             dynamics along the motion within the hold is then planned for, not reserved
             (docs/method.md, "Lookahead"). Unset (older certificates): at the state itself.
+        slow_design: when set, a second certified design for the same model with a smaller
+            velocity box and more braking authority (a certificate of its own, without a
+            slow design). The filter's safe set is then the union of the two: at each step
+            it keeps the state in a design's set that contains it, whichever changes the
+            nominal least (docs/method.md, "The slow set").
     """
 
     joint_names: list[str]
@@ -134,6 +139,7 @@ class Certificate:
     acceleration_hold_s: float | None = None
     prediction_s: float | None = None
     lookahead_s: float | None = None
+    slow_design: Certificate | None = None
 
     def __post_init__(self) -> None:
         # The one place that sets fields: the constructor's checks and read-only copies.
@@ -184,6 +190,8 @@ class Certificate:
             raise CertificateError(f'alpha2 must be one of {ALPHA2_KINDS}')
         if not (math.isfinite(self.control_rate_hz) and self.control_rate_hz > 0):
             raise CertificateError(f'control_rate_hz must be positive, got {self.control_rate_hz}')
+        if self.slow_design is not None:
+            self._check_slow_design(self.slow_design)
         if self.certified:
             bad = [self.joint_names[i] for i in range(n)
                    if not (self.gamma[i] > 0 and self.beta[i] > 0 and self.authority[i] > 0
@@ -191,6 +199,31 @@ class Certificate:
             if bad:
                 raise CertificateError(f'a certified certificate needs positive finite gains '
                                        f'and authority; not so for joints {bad}')
+
+    def _check_slow_design(self, slow: Certificate) -> None:
+        """The slow design must be a plain certified design for the same model, limits and
+        timing (the filter evaluates both with one model and one step)."""
+        if not isinstance(slow, Certificate):
+            raise CertificateError('slow_design must be a certificate')
+        if slow.slow_design is not None:
+            raise CertificateError('a slow design cannot have a slow design of its own')
+        if not slow.certified:
+            raise CertificateError('the slow design is not certified')
+        same = (slow.joint_names == self.joint_names and slow.model_hash == self.model_hash
+                and slow.alpha1.kind == self.alpha1.kind and slow.alpha2 == self.alpha2
+                and slow.control_rate_hz == self.control_rate_hz
+                and slow.acceleration_hold_s == self.acceleration_hold_s
+                and slow.prediction_s == self.prediction_s
+                and slow.lookahead_s == self.lookahead_s
+                and all(np.array_equal(getattr(slow, name), getattr(self, name))
+                        for name in ('position_lower', 'position_upper', 'velocity_limit',
+                                     'effort_limit')))
+        if not same:
+            raise CertificateError('the slow design belongs to another model, limits, '
+                                   'class-K family or timing than its certificate')
+        if self.prediction_s is not None:
+            raise CertificateError('a slow design needs the delay as an upper bound (the '
+                                   'filter does not predict over it with two designs)')
 
     # ------------------------------------------------------------------ identity
     @property
@@ -385,6 +418,10 @@ class Certificate:
                 continue
             if item.name == 'lookahead_s' and self.lookahead_s is None:
                 continue
+            if item.name == 'slow_design':
+                if self.slow_design is not None:  # the id covers the slow design too
+                    plain[item.name] = self.slow_design.to_parameters()
+                continue
             value = getattr(self, item.name)
             if isinstance(value, np.ndarray):
                 value = [float(x) for x in value]
@@ -423,6 +460,8 @@ class Certificate:
             params['prediction_s'] = plain['prediction_s']
         if self.lookahead_s is not None:
             params['lookahead_s'] = plain['lookahead_s']
+        if self.slow_design is not None:
+            params['slow_design_json'] = json.dumps(plain['slow_design'], sort_keys=True)
         params['certificate_id'] = self.certificate_id
         return params
 
@@ -459,6 +498,11 @@ class Certificate:
                 kwargs['prediction_s'] = float(params['prediction_s'])
             if params.get('lookahead_s') is not None:
                 kwargs['lookahead_s'] = float(params['lookahead_s'])
+            if params.get('slow_design_json'):
+                slow = json.loads(params['slow_design_json'])
+                if not isinstance(slow, dict):
+                    raise CertificateError('slow_design_json is not a parameter mapping')
+                kwargs['slow_design'] = cls.from_parameters(slow)
         except KeyError as err:
             raise CertificateError(f'the certificate lacks the entry {err.args[0]!r}') from err
         except (TypeError, ValueError) as err:

@@ -203,6 +203,16 @@ class SafetyFilter:
         self._k_accel_tol = np.array(self._accel_tol)
         self._k_saturation = np.array(self._torque_saturation)
         self._k_authority = np.array(usable)
+        self._k_authority_main = self._k_authority
+        # A slow design (docs/method.md, "The slow set"): its own barrier constants, rows and
+        # authority; each step keeps the state in a design's set that contains it.
+        slow = certificate.slow_design
+        self._k_barrier_slow = None if slow is None else _kernels.barrier_arguments(slow)
+        self._k_authority_slow = None if slow is None else np.array(slow.usable_authority)
+        self._rows_slow = np.empty((8, n))
+        self._smallest_slow = np.empty(n)
+        self._slow_now = False  # the slow design's rows are in _rows this step
+        self._both_sets = False  # the state is in both designs' sets this step
         # With a declared delay the certificate's margin covers (prediction_s), each torque
         # is planned for the state at the end of the delay (online/delay_prediction.py).
         self._ahead = (DelayPrediction(certificate.prediction_s, self._dyn, self._k_barrier,
@@ -253,10 +263,11 @@ class SafetyFilter:
         self.mode_counts = {mode: 0 for mode in FilterMode}
         self.reason_counts = Counter()
         self.steps = 0
+        self.slow_steps = 0  # steps that kept the state in the slow design's set
 
     def statistics(self) -> dict[str, Any]:
         """Counts of steps per mode and of the reasons for non-filtered steps."""
-        return {'steps': self.steps,
+        return {'steps': self.steps, 'slow_steps': self.slow_steps,
                 'modes': {mode.value: count for mode, count in self.mode_counts.items()},
                 'reasons': dict(self.reason_counts)}
 
@@ -372,6 +383,23 @@ class SafetyFilter:
         accel_upper = self._accel_upper
         accel_lower = self._accel_lower
         self._a_nom = None
+        self._slow_now = self._both_sets = False
+        self._k_authority = self._k_authority_main
+        if self._k_barrier_slow is not None:
+            worst_slow, _ = _kernels.barrier_rows(q, v, *self._k_barrier_slow, self._rows_slow,
+                                                  self._smallest_slow)
+            if worst_slow >= 0.0 and worst >= 0.0:
+                # In both sets: the main design unless it changes the nominal and the slow
+                # one does not (or changes it less: both QPs are solved below).
+                self._both_sets = True
+                if not self._nominal_feasible(u_full) and self._slow_passes(u_full):
+                    self._use_slow()
+            elif worst_slow >= 0.0 or worst_slow > worst:
+                self._use_slow()  # only in the slow set, or outside both but nearer it
+            if self._slow_now:
+                worst = worst_slow
+                barrier_margin[:] = self._smallest_slow
+                smallest = barrier_margin
 
         solve_time = 0.0
         status = 'not run'
@@ -396,6 +424,10 @@ class SafetyFilter:
         else:
             # (the nominal's acceleration, when the pass-through check computed it)
             result = self._qp.solve(mass, bias, u_full, accel_lower, accel_upper, self._a_nom)
+            if self._both_sets and not self._slow_now:
+                result = self._less_change_of_two(result, mass, bias, u_full)
+                if self._slow_now:
+                    barrier_margin[:] = self._smallest_slow
             solve_time = result.solve_time_s
             status = result.status
             failed = ''
@@ -437,11 +469,54 @@ class SafetyFilter:
                                        self._k_saturation, gravity, self._driver, out_flags)
         self._observer.sent(torque + gravity, self._resting.breakaway)
         self.steps += 1
+        self.slow_steps += self._slow_now
         self.mode_counts[mode] += 1
         if key:
             self.reason_counts[key] += 1
         return FilterOutput(torque, mode, intervention, barrier_margin, out_flags[0],
-                            out_flags[1], out_flags[2], solve_time, status, reason)
+                            out_flags[1], out_flags[2], solve_time, status, reason,
+                            self._slow_now)
+
+    def _use_slow(self) -> None:
+        """Make the slow design's rows and authority those of this step."""
+        self._rows[:] = self._rows_slow
+        self._k_authority = self._k_authority_slow
+        self._slow_now = True
+
+    def _slow_passes(self, u_full: np.ndarray) -> bool:
+        """Whether the nominal meets the box and the slow design's bounds."""
+        if not _kernels.within_box(u_full, self._k_torque_limit):
+            return False
+        a_nom = self._nominal_acceleration(u_full)
+        return _kernels.within_bounds(a_nom, self._rows_slow[5], self._rows_slow[4])
+
+    def _less_change_of_two(self, main: Any, mass: np.ndarray, bias: np.ndarray,
+                            u_full: np.ndarray) -> Any:
+        """The state is in both sets and the main design's QP changed the nominal: solve
+        the slow design's too and keep whichever answer changes the nominal less in the
+        QP's own objective (switching to the slow rows when it is that one)."""
+        main_acceleration = np.array(main.acceleration)
+        slow = self._qp.solve(mass, bias, u_full, self._rows_slow[5], self._rows_slow[4],
+                              self._a_nom)
+        if not slow.solved:
+            return main
+        if main.solved and self._change(main_acceleration, mass, bias, u_full) <= \
+                self._change(slow.acceleration, mass, bias, u_full):
+            main.acceleration = main_acceleration
+            return main
+        self._use_slow()
+        slow.solve_time_s += main.solve_time_s
+        return slow
+
+    def _change(self, acceleration: np.ndarray, mass: np.ndarray, bias: np.ndarray,
+                u_full: np.ndarray) -> float:
+        """The QP's objective at ``acceleration``: the weighted change of torque or of
+        acceleration from the nominal."""
+        if self.objective == 'torque':
+            change = mass @ acceleration + bias - u_full
+            return float(np.sum(self.torque_weights * change * change))
+        change = acceleration - self._nominal_acceleration(u_full)
+        return float(np.sum(change * change / np.maximum(self.usable_authority, 1e-9) ** 2))
 
     def _nominal_feasible(self, u_full: np.ndarray) -> bool:
         """Whether the nominal (full torque) meets the box and the acceleration bounds.

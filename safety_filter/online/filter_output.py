@@ -28,6 +28,9 @@ class FilterOutput:
             met every constraint (it is then the QP's minimiser and is sent unchanged, no
             solve needed); ``'not run'`` when recovering or rejected.
         reason: why the step was not ``'filtered'``; empty when it was.
+        slow_set: the step kept the state in the slow design's set (certificates with a
+            slow design; docs/method.md, "The slow set"); the barrier margins are then that
+            design's.
     """
 
     torque: np.ndarray
@@ -40,3 +43,4 @@ class FilterOutput:
     solve_time_s: float
     solver_status: str
     reason: str
+    slow_set: bool = False
