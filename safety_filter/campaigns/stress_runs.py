@@ -78,13 +78,13 @@ class StressContext:
         self.tracking = tracking
         q0, v0, _ = tracking.reference(0.0)
         for _ in range(60):  # start inside S: slow the reference's start velocity if needed
-            if np.all(self.filter.constraint_bounds(q0, v0).smallest > 0.0):
+            if np.all(certificate.safe_set_margins(q0, v0) > 0.0):
                 break
             v0 = 0.5 * v0
         self.q0, self.v0 = q0, v0
 
     def barrier(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
-        return self.filter.constraint_bounds(q, v).smallest
+        return self.filter.certificate.safe_set_margins(q, v)
 
     def nominal(self, name: str) -> NominalPolicy:
         """The nominal controller ``name`` of the matrix (:func:`make_nominal`)."""

@@ -105,12 +105,13 @@ def certify_with_evidence(model: RobotModel, settings: CertifySettings | None = 
                           progress: ProgressCallback | None = None) -> CertificationOutcome:
     """Run every certification stage and keep the evidence (see the module docstring).
 
-    With ``settings.slow_box`` the main design is certified first, then the slow design for
-    its family, acceleration form and lookahead (:func:`_add_slow_design`).
+    With a slow box (``settings.slow_box_share``) the main design is certified first, then
+    the slow design for its family, acceleration form and lookahead
+    (:func:`_add_slow_design`).
     """
     settings = settings or CertifySettings()
-    if settings.slow_box <= 0.0:
-        return _certify_design(model, settings, progress)
+    if settings.slow_box_share <= 0.0:
+        return _certify_design(model, replace(settings, slow_box=0.0), progress)
     report = progress or (lambda _stage, _fraction: None)
     main = _certify_design(model, replace(settings, slow_box=0.0),
                            lambda stage, f: report(stage, 0.7 * f))
@@ -137,7 +138,7 @@ def _add_slow_design(model: RobotModel, settings: CertifySettings, main: Certifi
     form = replace(settings, slow_box=0.0, alpha1=None, families=(family,),
                    mean_over_hold=first.acceleration_hold_s is not None,
                    lookahead=first.lookahead_s is not None,
-                   velocity_headroom=1.0 - settings.slow_box,
+                   velocity_headroom=1.0 - settings.slow_box_share,
                    friction_error_box=tuple(float(x) for x in first.velocity_bound))
     slow = _certify_design(model, form, progress, model_error_records=False)
     seconds = {stage: main.stage_seconds.get(stage, 0.0) + slow.stage_seconds.get(stage, 0.0)

@@ -20,6 +20,9 @@ from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import InvalidValue
 
 LEMMA_SUFFIX = ':lemma'
+# The slow design's velocity boxes by default [share of the rated speeds]: on the 6-joint demo
+# arm a motion at half the rated speeds then stays inside it (docs/method.md, "The slow set").
+DEFAULT_SLOW_BOX = 0.55
 
 
 def split_family(name: str) -> tuple[str, bool]:
@@ -104,7 +107,8 @@ class CertifySettings:
             same arm whose velocity box is at most this share of the rated speeds, so that
             with the Coriolis torque of the smaller box freed it brakes harder; the filter's
             safe set is the union of the two (docs/method.md, "The slow set"). 0: none.
-            Not with ``delay_predicted``.
+            None (default): ``DEFAULT_SLOW_BOX``, or 0 with ``delay_predicted`` (the
+            filter predicts over the delay with one design only; ``slow_box_share``).
         friction_error_box: the velocity box at which the model-error bound counts the
             friction spreads [rad/s or m/s per joint]; None (default): the design's own box.
             The slow design takes the main design's, so that its range of the disturbance
@@ -141,7 +145,7 @@ class CertifySettings:
     margin_plants: int = 3
     mean_over_hold: bool | None = None
     lookahead: bool | None = False
-    slow_box: float = 0.0
+    slow_box: float | None = None
     friction_error_box: tuple[float, ...] | None = None
 
     def __post_init__(self) -> None:
@@ -172,10 +176,10 @@ class CertifySettings:
         if self.condition not in ('auto', *CONDITIONS):
             raise InvalidValue('condition', self.condition,
                                'one of auto, ' + ', '.join(CONDITIONS))
-        if not 0.0 <= self.slow_box <= self.top_velocity_fraction:
+        if self.slow_box is not None and not 0.0 <= self.slow_box <= self.top_velocity_fraction:
             raise InvalidValue('slow_box', self.slow_box,
                                'in [0, 1 - velocity_headroom] (0: no slow design)')
-        if self.slow_box > 0.0 and self.delay_predicted:
+        if self.slow_box and self.delay_predicted:
             raise InvalidValue('slow_box', self.slow_box,
                                '0 with delay_predicted (the filter predicts over the delay '
                                'with one design only)')
@@ -192,6 +196,14 @@ class CertifySettings:
         or ``mean_over_hold`` off)."""
         damped = bool(np.any(np.array(model.viscous_friction) > 0.0))
         return 1.0 / self.control_rate_hz if self.mean_over_hold is True and damped else 0.0
+
+    @property
+    def slow_box_share(self) -> float:
+        """``slow_box``, or its default: ``DEFAULT_SLOW_BOX`` with the delay as an upper
+        bound, 0 (no slow design) with the delay predicted."""
+        if self.slow_box is not None:
+            return self.slow_box
+        return 0.0 if self.delay_predicted else min(DEFAULT_SLOW_BOX, self.top_velocity_fraction)
 
     @property
     def top_velocity_fraction(self) -> float:

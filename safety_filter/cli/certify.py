@@ -14,6 +14,10 @@ from safety_filter.cli.progress_bar import ProgressBar
 from safety_filter.cli.robot_options import add_progress_arguments, add_robot_arguments, load_robot
 from safety_filter.errors import ExitCode, FileFormatError, InvalidValue
 
+# certify_settings.DEFAULT_SLOW_BOX, for the help without importing numpy (a test checks
+# that they agree).
+SLOW_BOX_SHOWN = 0.55
+
 if TYPE_CHECKING:
     from safety_filter.certification.certify import CertifySettings
     from safety_filter.core.certificate import Certificate
@@ -53,6 +57,7 @@ def certify_settings(args: argparse.Namespace) -> CertifySettings:
         mean_over_hold={'auto': None, 'start': False, 'mean': True}[args.acceleration_form],
         lookahead={'auto': None, 'on': True, 'off': False}[args.lookahead],
         delay_predicted=args.delay == 'fixed',
+        slow_box=args.slow_box,
         **extra)
 
 
@@ -184,6 +189,13 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         'off: for the measured (or predicted) state; auto: whichever '
                         'certifies the larger safe set (default: off; docs/method.md, '
                         '"Lookahead")')
+    method.add_argument('--slow-box', type=float, default=None, metavar='FRACTION',
+                        help='add a slow design: a second certified design whose velocity '
+                        'boxes are at most this share of the rated speeds and which, with the '
+                        'Coriolis torque of the smaller box freed, brakes harder; the safe set '
+                        'is then the union of the two, so slower motions may run closer to '
+                        'the limits. 0: none (default: %g, or 0 with --delay fixed; '
+                        'docs/method.md, "The slow set")' % SLOW_BOX_SHOWN)
     method.add_argument('--delay', choices=('up-to', 'fixed'), default='up-to',
                         help="how the limits file's declared delay (uncertainty: "
                         'delay_periods) is read: up-to, any delay up to it, covered as a '

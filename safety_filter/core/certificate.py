@@ -356,6 +356,29 @@ class Certificate:
                                       self.position_upper, self.gamma, self.alpha1,
                                       self.velocity_bound, self.velocity_beta)
 
+    def safe_set_margins(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """Per joint, the smallest barrier value at ``(q, v)`` (position, velocity and, where
+        the certificate has them, velocity-box barriers), batched over leading axes; the
+        state is in S where every joint's is >= 0. With a slow design S is the union of the
+        two designs' sets: each state gets the values of the design whose smallest value
+        over the joints is larger (the design whose set contains it, when one does)."""
+        from safety_filter.core.barriers import evaluate_barriers
+
+        q = np.asarray(q, dtype=float)
+        v = np.asarray(v, dtype=float)
+        margins = []
+        for design in (self, self.slow_design):
+            if design is None:
+                continue
+            margins.append(evaluate_barriers(
+                q, v, design.position_lower, design.position_upper, design.gamma,
+                design.beta, design.alpha1, design.alpha2, 0.0, design.velocity_bound,
+                design.velocity_beta).smallest)
+        if len(margins) == 1:
+            return margins[0]
+        slow_nearer = margins[1].min(axis=-1) > margins[0].min(axis=-1)
+        return np.where(slow_nearer[..., None], margins[1], margins[0])
+
     def recovery_time(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
         """Per joint, the time [s] within which the filter brings a joint outside S back into
         S from ``(q, v)``, whether the QP meets the bounds or the push-back acts

@@ -105,6 +105,7 @@ class FilterHealth:
     def reset_window(self) -> None:
         """Start a new report window."""
         self.counts = [0] * len(MODE_NAMES)
+        self.slow_set_steps = 0  # steps kept in a slow design's set (docs/method.md)
         self.reasons: Counter[str] = Counter()
         self.solve_times: list[float] = []
         self.intervention = 0.0
@@ -124,6 +125,7 @@ class FilterHealth:
     def record_step(self, now: float, code: int, reason: str, output: FilterOutput) -> None:
         """Count a published step at ``now`` (the steady clock [s]) of mode ``code``."""
         self.counts[code] += 1
+        self.slow_set_steps += bool(output.slow_set)
         if reason:
             self.reasons[reason] += 1
         if output.solve_time_s > 0.0:
@@ -234,6 +236,7 @@ class FilterHealth:
         values.append(('step_period.certified_hold_ms', format_number(hold_ms)))
         for name, count in zip(MODE_NAMES, counts):
             values.append((f'count.{name}', str(count)))
+        values.append(('count.slow_set', str(self.slow_set_steps)))
         values.append(('reasons', '; '.join(f'{reason} (x{count})' for reason, count
                                             in self.reasons.most_common(5)) or 'none'))
         values.append(('age.joint_state_ms', format_number(joint_state_age * 1e3)))

@@ -8,6 +8,8 @@ import json
 import math
 from typing import Any
 
+import numpy as np
+
 from safety_filter.certification.certify import CertificationOutcome
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.reports.certificate_plots import SUMMARY_PLOT
@@ -22,6 +24,7 @@ from safety_filter.reports.certificate_tables import (
     recovery_line,
     scale_line,
     seconds_line,
+    slow_design_rows,
     verdict_text,
 )
 from safety_filter.reports.html_kit import (
@@ -126,6 +129,32 @@ def certificate_page(outcome: CertificationOutcome, model: RobotModel,
                      'steps and keeps the one whose safe set is largest among those that '
                      'certify (docs/method.md, &ldquo;Which design, and how fast&rdquo;).</p>')
         parts.append('<ul>' + ''.join(f'<li>{esc(text)}</li>' for text in designs) + '</ul>')
+    slow_rows = slow_design_rows(outcome, model)
+    if slow_rows:
+        slow = cert.slow_design
+        share = float(np.max(np.asarray(slow.velocity_bound) / np.asarray(slow.velocity_limit)))
+        falsifier = slow.falsifier or {}
+        parts.append('<h2>Slow design</h2>')
+        parts.append(
+            f'<p>A second certified design whose velocity boxes are at most '
+            f'{100 * share:.0f}&nbsp;% of the rated speeds: with the Coriolis torque of the '
+            'smaller box freed it brakes harder. The safe set S is the union of its set and '
+            'the main one; at each step the filter keeps the state in a set that contains it, '
+            'whichever changes the nominal less (docs/method.md, &ldquo;The slow set&rdquo;). '
+            f'Falsifier on the slow design: {falsifier.get("states", 0)} states, '
+            f'{esc(str(falsifier.get("infeasible", "?")))} infeasible.</p>')
+        body = ''.join(
+            f'<tr><td>{esc(row["joint"])}</td>{_cell(row["authority"], 3)}'
+            f'{_cell(row["sampling_margin"], 3)}{_cell(row["gamma"], 3)}'
+            f'{_cell(row["certified_velocity"], 3)}<td>{row["velocity_percent"]:.0f}&nbsp;%</td>'
+            f'<td>{row["braking_percent"]:.0f}&nbsp;%</td>'
+            f'<td>{row["union_growth_percent"]:.0f}&nbsp;%</td>'
+            f'<td>{row["union_braking_percent"]:.0f}&nbsp;%</td></tr>' for row in slow_rows)
+        parts.append(
+            '<table><tr><th>joint</th><th>authority e</th><th>sampling margin</th>'
+            '<th>&gamma;</th><th>certified velocity</th><th>of rated</th>'
+            '<th>its S / braking set</th><th>union larger than the main S by</th>'
+            '<th>union / braking set at the larger authority</th></tr>' + body + '</table>')
     error_rows = model_error_rows(cert, model)
     if error_rows:
         parts.append('<h2>Model error the certificate covers</h2>')

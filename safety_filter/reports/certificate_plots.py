@@ -169,6 +169,23 @@ def plot_safe_set(outcome: CertificationOutcome, model: RobotModel, i: int, path
         axes.plot(qs, brake_hi, color='#7a3db8', linestyle='-.', linewidth=1.3,
                   label='braking curve at the usable authority')
         axes.plot(qs, brake_lo, color='#7a3db8', linestyle='-.', linewidth=1.3)
+        slow = cert.slow_design
+        if slow is not None:  # S is the union of the two designs' sets
+            positions = np.tile(0.5 * (np.asarray(cert.position_lower)
+                                       + np.asarray(cert.position_upper)), (len(qs), 1))
+            positions[:, i] = qs
+            slow_lo, slow_hi = slow.safe_velocity_interval(positions)
+            slow_lo, slow_hi = slow_lo[:, i], slow_hi[:, i]
+            axes.fill_between(qs, slow_lo, slow_hi, color='#8fbbe0', alpha=0.55)
+            axes.plot(qs, slow_hi, color='#1f4e79', linewidth=1.2, linestyle='--',
+                      label="edge of the slow design's set")
+            axes.plot(qs, slow_lo, color='#1f4e79', linewidth=1.2, linestyle='--')
+            slow_usable = max(float(slow.authority[i] - slow.sampling_margin[i]), 0.0)
+            axes.plot(qs, np.minimum(np.sqrt(2.0 * slow_usable * (upper - qs)), rated),
+                      color='#b83d7a', linestyle='-.', linewidth=1.1,
+                      label='braking curve at its usable authority')
+            axes.plot(qs, -np.minimum(np.sqrt(2.0 * slow_usable * (qs - lower)), rated),
+                      color='#b83d7a', linestyle='-.', linewidth=1.1)
     else:
         _no_gains(axes)
     axes.axhline(rated, color='#c05000', linestyle='--', linewidth=1.2,

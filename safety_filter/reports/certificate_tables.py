@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import textwrap
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -306,6 +307,9 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
         for text in designs:
             lines += textwrap.wrap(text, TABLE_WIDTH, initial_indent='  ',
                                    subsequent_indent='    ')
+    slow = format_slow_design_table(outcome, model)
+    if slow:
+        lines += ['', slow]
     model_error = format_model_error_table(cert, model)
     if model_error:
         lines += ['', model_error]
@@ -314,6 +318,80 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
         for k, reason in enumerate(cert.reasons, start=1):
             lines += textwrap.wrap(reason, TABLE_WIDTH, initial_indent=f'  {k}. ',
                                    subsequent_indent=' ' * (len(str(k)) + 4))
+    return '\n'.join(lines)
+
+
+def union_slice_areas(certificate: Any, samples: int = 4001) -> np.ndarray:
+    """Per joint, the area of S in the joint's (q, v) plane: with a slow design, of the
+    union of the two designs' slices (at each position the union of the two velocity
+    intervals, both of which contain zero inside the limits)."""
+    lower = np.asarray(certificate.position_lower, dtype=float)
+    upper = np.asarray(certificate.position_upper, dtype=float)
+    q = lower + np.linspace(0.0, 1.0, samples)[:, None] * (upper - lower)
+    low, high = certificate.safe_velocity_interval(q)
+    if certificate.slow_design is not None:
+        slow_low, slow_high = certificate.slow_design.safe_velocity_interval(q)
+        low, high = np.minimum(low, slow_low), np.maximum(high, slow_high)
+    return np.array([float(np.trapezoid(high[:, i] - low[:, i], q[:, i]))
+                     for i in range(q.shape[1])])
+
+
+def slow_design_rows(outcome: CertificationOutcome, model: RobotModel) -> list[dict[str, Any]]:
+    """Per joint, the slow design's numbers (empty without one): ``joint``, ``authority``,
+    ``sampling_margin``, ``usable_authority``, ``gamma``, ``certified_velocity``,
+    ``velocity_percent``, ``braking_percent`` (its own S over the braking set at its usable
+    authority), ``union_growth_percent`` (how much larger the union of the two sets is than
+    the main design's set) and ``union_braking_percent`` (the union over the braking set at
+    the larger of the two usable authorities)."""
+    cert = outcome.certificate
+    slow = cert.slow_design
+    if slow is None:
+        return []
+    own = joint_rows(replace(outcome, certificate=slow), model)
+    main = joint_rows(outcome, model)
+    union = union_slice_areas(cert)
+    rows = []
+    for i, row in enumerate(own):
+        r = float(model.position_upper[i] - model.position_lower[i])
+        usable = max(row['usable_authority'], main[i]['usable_authority'])
+        braking = braking_set_area(r, usable, row['rated_velocity'])
+        alone = safe_set_area(r, float(cert.gamma[i]), cert.alpha1, speed_bound(cert, i))
+        rows.append({key: row[key] for key in (
+            'joint', 'authority', 'sampling_margin', 'usable_authority', 'gamma',
+            'certified_velocity', 'velocity_percent', 'braking_percent')} | {
+            'union_growth_percent': 100.0 * (union[i] / alone - 1.0) if alone > 0 else 0.0,
+            'union_braking_percent': 100.0 * union[i] / braking if braking > 0 else 0.0})
+    return rows
+
+
+def format_slow_design_table(outcome: CertificationOutcome, model: RobotModel) -> str:
+    """The slow design as plain text (empty without one): per joint its authority,
+    margin, gamma, certified velocity, its own %brk, and what the union adds."""
+    rows = slow_design_rows(outcome, model)
+    if not rows:
+        return ''
+    slow = outcome.certificate.slow_design
+    share = np.asarray(slow.velocity_bound) / np.asarray(slow.velocity_limit)
+    width = min(max([5] + [len(row['joint']) for row in rows]), 20)
+    header = (f'{"joint":<{width}} {"e":>6} {"margin":>6} {"gamma":>6} {"v_cert":>6} '
+              f'{"%rat":>4} {"%brk":>4} {"S+":>5} {"%brkU":>5}')
+    lines = textwrap.wrap(f'slow design (velocity boxes up to {100 * share.max():.0f} % of '
+                          'the rated speeds): the safe set S is the union of its set and the '
+                          'main one', TABLE_WIDTH) + [header, '-' * len(header)]
+    for row in rows:
+        name = row['joint'] if len(row['joint']) <= width else row['joint'][:width - 1] + '~'
+        lines.append(
+            f'{name:<{width}} {_fmt(row["authority"]):>6} {_fmt(row["sampling_margin"]):>6} '
+            f'{_fmt(row["gamma"]):>6} {_fmt(row["certified_velocity"]):>6} '
+            f'{row["velocity_percent"]:>3.0f}% {row["braking_percent"]:>3.0f}% '
+            f'{row["union_growth_percent"]:>4.0f}% {row["union_braking_percent"]:>4.0f}%')
+    lines.append('-' * len(header))
+    falsifier = slow.falsifier or {}
+    lines += textwrap.wrap(
+        'S+: how much larger the union is than the main set, per joint; %brkU: the union '
+        'over the braking set at the larger usable authority of the two designs. Falsifier '
+        f'on the slow design: {falsifier.get("states", 0)} states, '
+        f'{falsifier.get("infeasible", "?")} infeasible.', TABLE_WIDTH)
     return '\n'.join(lines)
 
 

@@ -15,7 +15,6 @@ from pathlib import Path
 
 import numpy as np
 
-from safety_filter.core.barriers import evaluate_barriers
 from safety_filter.core.certificate import Certificate
 from safety_filter.core.limit_tolerance import count_broken_limits
 from safety_filter.core.robot_model import RobotModel
@@ -130,13 +129,9 @@ def broken_limits(violations: dict[str, np.ndarray]) -> int:
 
 
 def barrier_margins(certificate: Certificate, run: RunData) -> np.ndarray:
-    """Smallest of the certificate's barrier values ``hp, hn, bp, bn`` per joint along the
-    run's joint states, shape (T, n) (negative: outside the safe set S)."""
-    state = evaluate_barriers(
-        run.q, run.v, np.array(certificate.position_lower),
-        np.array(certificate.position_upper), np.array(certificate.gamma),
-        np.array(certificate.beta), certificate.alpha1, certificate.alpha2)
-    return state.smallest
+    """Smallest of the certificate's barrier values per joint along the run's joint states,
+    shape (T, n) (negative: outside the safe set S; ``Certificate.safe_set_margins``)."""
+    return certificate.safe_set_margins(run.q, run.v)
 
 
 def mode_counts(run: RunData) -> dict[str, int]:

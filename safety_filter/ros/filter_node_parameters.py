@@ -48,7 +48,7 @@ CERTIFICATE_PARAMETERS = (
     'created', 'certified', 'alpha1_kind', 'alpha1_scale', 'alpha2_kind', 'alpha2_scale',
     'payload_mass_range', 'payload_point', 'settings_json', 'falsifier_json', 'reasons',
     'certificate_id', 'velocity_beta', 'acceleration_bound', 'acceleration_hold_s',
-    'prediction_s', 'lookahead_s')
+    'prediction_s', 'lookahead_s', 'slow_design_json')
 MODEL_PARAMETERS = ('urdf_path', 'robot_description', 'robot_description_topic',
                     'robot_description_timeout_s', 'limits_path', 'gravity_convention',
                     'payload_mass', 'disturbance_observer')

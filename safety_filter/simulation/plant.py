@@ -407,8 +407,7 @@ def run_plant_loop(
         rng: the noise generator (default: seeded with 0).
         pushes: external torque impulses.
         barrier: ``barrier(q, v) -> smallest barrier value per joint`` (batched over rows),
-            evaluated on the true states, e.g. ``lambda q, v:
-            filt.constraint_bounds(q, v).smallest``.
+            evaluated on the true states, e.g. ``certificate.safe_set_margins``.
     """
     if not (control_rate_hz > 0.0 and duration_s > 0.0):
         raise InvalidValue('control rate and duration', (control_rate_hz, duration_s),

@@ -488,8 +488,8 @@ def test_fallback_when_solver_reports_failure(monkeypatch: pytest.MonkeyPatch) -
     assert stats['modes']['fallback'] == 30
     assert stats['reasons'] == {'solver status: maximum iterations reached': 30}
     filt.reset()
-    assert filt.statistics() == {'steps': 0, 'modes': {m.value: 0 for m in FilterMode},
-                                 'reasons': {}}
+    assert filt.statistics() == {'steps': 0, 'slow_steps': 0,
+                                 'modes': {m.value: 0 for m in FilterMode}, 'reasons': {}}
 
 
 def test_recovery_without_the_qp_pushes_back_as_hard_as_the_box_allows(

@@ -75,9 +75,12 @@ def files(arm: Any, tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]
 
 
 def _smaller_beta(certificate: Any) -> Any:
+    """The certificate with a smaller beta (its slow design's too, when it has one)."""
     beta = np.maximum(certificate.beta_star * 1.05, 0.4 * certificate.beta)
     assert np.all(beta < certificate.beta) and np.all(beta >= certificate.beta_star)
-    return replace(certificate, beta=beta)
+    slow = certificate.slow_design
+    return replace(certificate, beta=beta,
+                   slow_design=None if slow is None else _smaller_beta(slow))
 
 
 @pytest.fixture(scope='session')

@@ -174,10 +174,17 @@ def test_node_declares_every_certificate_entry(planar2: CertifiedArm) -> None:
     import dataclasses
 
     # every optional entry set (the demo arm's certificate bounds start-of-hold accelerations
-    # and plans at the measured state, without a lookahead)
-    complete = dataclasses.replace(planar2.certificate, acceleration_hold_s=0.001,
-                                   prediction_s=0.001, lookahead_s=0.001)
-    assert set(CERTIFICATE_PARAMETERS) == set(complete.to_parameters())
+    # and plans at the measured state, without a lookahead); a slow design needs the delay
+    # as an upper bound, so the predicted delay and the slow design are in two certificates
+    certificate = planar2.certificate
+    assert certificate.slow_design is not None, certificate.settings.get('notes')
+    timing = dict(acceleration_hold_s=0.001, lookahead_s=0.001)
+    predicted = dataclasses.replace(certificate, slow_design=None, prediction_s=0.001,
+                                    **timing)
+    slow = dataclasses.replace(certificate, **timing, slow_design=dataclasses.replace(
+        certificate.slow_design, **timing))
+    assert set(CERTIFICATE_PARAMETERS) == (set(predicted.to_parameters())
+                                           | set(slow.to_parameters()))
     assert len(CERTIFICATE_PARAMETERS) == len(set(CERTIFICATE_PARAMETERS))
 
 
