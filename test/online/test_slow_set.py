@@ -164,3 +164,26 @@ def test_a_slow_design_must_match_its_certificate(bench6):
         replace(certificate, slow_design=replace(slow, slow_design=slow))
     with pytest.raises(CertificateError, match='not certified'):
         replace(certificate, slow_design=replace(slow, certified=False, reasons=['x']))
+
+
+def test_safe_tracking_at_half_the_rated_speed_passes_unchanged_and_keeps_the_limits(bench6):
+    # The motion of docs/method.md ("The slow set"): sinusoids 10 % of the range inside every
+    # limit, peaking at half the rated speed, on the model; the main design alone changed
+    # the torque on most steps of it.
+    from safety_filter.simulation.command_sources import SafeTracking
+    from safety_filter.simulation.plant import run_closed_loop
+
+    model, certificate, _ = bench6
+    filt = SafetyFilter(model, certificate)
+    tracking = SafeTracking(model, filt.payload_mass, speed_fraction=0.5, inset=0.1, seed=2)
+    q0, v0, _ = tracking.reference(0.0)
+    assert np.min(certificate.safe_set_margins(q0, v0)) >= 0.0
+    log = run_closed_loop(model, filt.step, tracking, 3.0, certificate.control_rate_hz, q0, v0,
+                          payload_mass=filt.payload_mass)
+    limit = np.maximum(np.abs(log.nominal), certificate.effort_limit)
+    changed = np.any(np.abs(log.torque - log.nominal) > 1e-9 * limit, axis=1)
+    assert changed.mean() <= 0.05, changed.mean()
+    assert np.all(log.q >= certificate.position_lower) and np.all(
+        log.q <= certificate.position_upper)
+    assert np.all(np.abs(log.v) <= certificate.velocity_limit)
+    assert np.all(log.mode != FilterMode.RECOVERING.value)
