@@ -379,6 +379,19 @@ class Certificate:
         slow_nearer = margins[1].min(axis=-1) > margins[0].min(axis=-1)
         return np.where(slow_nearer[..., None], margins[1], margins[0])
 
+    def slice_areas(self, samples: int = 4001) -> np.ndarray:
+        """Per joint, the area of S in the joint's (q, v) plane; with a slow design, of the
+        union of the two designs' slices (at each position the union of the two velocity
+        intervals, both of which contain zero inside the limits)."""
+        lower, upper = np.asarray(self.position_lower), np.asarray(self.position_upper)
+        q = lower + np.linspace(0.0, 1.0, samples)[:, None] * (upper - lower)
+        low, high = self.safe_velocity_interval(q)
+        if self.slow_design is not None:
+            slow_low, slow_high = self.slow_design.safe_velocity_interval(q)
+            low, high = np.minimum(low, slow_low), np.maximum(high, slow_high)
+        return np.array([float(np.trapezoid(high[:, i] - low[:, i], q[:, i]))
+                         for i in range(self.n_joints)])
+
     def recovery_time(self, q: np.ndarray, v: np.ndarray) -> np.ndarray:
         """Per joint, the time [s] within which the filter brings a joint outside S back into
         S from ``(q, v)``, whether the QP meets the bounds or the push-back acts

@@ -321,21 +321,6 @@ def format_joint_table(outcome: CertificationOutcome, model: RobotModel) -> str:
     return '\n'.join(lines)
 
 
-def union_slice_areas(certificate: Any, samples: int = 4001) -> np.ndarray:
-    """Per joint, the area of S in the joint's (q, v) plane: with a slow design, of the
-    union of the two designs' slices (at each position the union of the two velocity
-    intervals, both of which contain zero inside the limits)."""
-    lower = np.asarray(certificate.position_lower, dtype=float)
-    upper = np.asarray(certificate.position_upper, dtype=float)
-    q = lower + np.linspace(0.0, 1.0, samples)[:, None] * (upper - lower)
-    low, high = certificate.safe_velocity_interval(q)
-    if certificate.slow_design is not None:
-        slow_low, slow_high = certificate.slow_design.safe_velocity_interval(q)
-        low, high = np.minimum(low, slow_low), np.maximum(high, slow_high)
-    return np.array([float(np.trapezoid(high[:, i] - low[:, i], q[:, i]))
-                     for i in range(q.shape[1])])
-
-
 def slow_design_rows(outcome: CertificationOutcome, model: RobotModel) -> list[dict[str, Any]]:
     """Per joint, the slow design's numbers (empty without one): ``joint``, ``authority``,
     ``sampling_margin``, ``usable_authority``, ``gamma``, ``certified_velocity``,
@@ -349,7 +334,7 @@ def slow_design_rows(outcome: CertificationOutcome, model: RobotModel) -> list[d
         return []
     own = joint_rows(replace(outcome, certificate=slow), model)
     main = joint_rows(outcome, model)
-    union = union_slice_areas(cert)
+    union = cert.slice_areas()
     rows = []
     for i, row in enumerate(own):
         r = float(model.position_upper[i] - model.position_lower[i])

@@ -9,15 +9,16 @@ infeasible state.
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from certify_fixtures import certified_demo_arm
 
-from safety_filter.certification.certify import CertifySettings, certify_with_evidence
+from safety_filter.certification.certify import MIN_SLOW_GROWTH, CertifySettings
 from safety_filter.certification.certify_settings import DEFAULT_SLOW_BOX
 from safety_filter.cli.certify import SLOW_BOX_SHOWN
 from safety_filter.errors import InvalidValue
-from safety_filter.simulation.demo_arms import load_demo_arm
 
 
 def test_the_default_slow_box_and_when_there_is_none() -> None:
@@ -32,9 +33,8 @@ def test_the_default_slow_box_and_when_there_is_none() -> None:
         CertifySettings(slow_box=-0.1)
 
 
-@pytest.mark.parametrize('arm', ['planar2', 'bench6'])
-def test_the_slow_design_is_certified_slower_and_brakes_harder(arm: str) -> None:
-    _, outcome = certified_demo_arm(arm)
+def test_the_slow_design_is_certified_slower_and_brakes_harder() -> None:
+    _, outcome = certified_demo_arm('bench6')
     main = outcome.certificate
     slow = main.slow_design
     assert slow is not None, main.settings.get('notes')
@@ -43,6 +43,9 @@ def test_the_slow_design_is_certified_slower_and_brakes_harder(arm: str) -> None
     assert np.all(share <= DEFAULT_SLOW_BOX + 1e-9)
     assert np.all(slow.usable_authority >= main.usable_authority * (1.0 - 1e-9))
     assert np.any(slow.usable_authority > main.usable_authority * 1.05)
+    # and the union enlarges some joint's slice of S by the share certification asks for
+    alone = replace(main, slow_design=None).slice_areas()
+    assert np.max(main.slice_areas() / alone) >= 1.0 + MIN_SLOW_GROWTH
     assert np.all(np.asarray(slow.settings['disturbance_constant'])
                   >= np.asarray(main.settings['disturbance_constant']) * (1.0 - 1e-9))
     # the slow design counts the friction spreads at the main design's box
@@ -53,15 +56,14 @@ def test_the_slow_design_is_certified_slower_and_brakes_harder(arm: str) -> None
 
 
 def test_a_slow_design_that_adds_nothing_is_left_out_with_the_reason() -> None:
-    # planar2's main boxes sit at the top fraction already: a slow box there is the same
-    # design and gives no joint more authority
-    model = load_demo_arm('planar2')
-    top = CertifySettings().top_velocity_fraction
-    outcome = certify_with_evidence(model, CertifySettings(slow_box=top,
-                                                           falsifier_states=2000))
+    # planar2's main boxes sit at the top fraction with 89 % of its braking sets: a slower
+    # box enlarges no joint's safe set by 1 %
+    _, outcome = certified_demo_arm('planar2')
     certificate = outcome.certificate
     assert certificate.certified
+    top = CertifySettings().top_velocity_fraction
     share = np.asarray(certificate.velocity_bound) / np.asarray(certificate.velocity_limit)
     assert np.all(share >= top - 1e-9), 'planar2 no longer certifies at the top boxes'
     assert certificate.slow_design is None
-    assert any('slow design left out' in note for note in certificate.settings['notes'])
+    notes = [note for note in certificate.settings['notes'] if 'slow design left out' in note]
+    assert notes and f'by {100 * MIN_SLOW_GROWTH:g} % or more' in notes[0]

@@ -176,13 +176,11 @@ def test_node_declares_every_certificate_entry(planar2: CertifiedArm) -> None:
     # every optional entry set (the demo arm's certificate bounds start-of-hold accelerations
     # and plans at the measured state, without a lookahead); a slow design needs the delay
     # as an upper bound, so the predicted delay and the slow design are in two certificates
-    certificate = planar2.certificate
-    assert certificate.slow_design is not None, certificate.settings.get('notes')
+    certificate = dataclasses.replace(planar2.certificate, slow_design=None)
     timing = dict(acceleration_hold_s=0.001, lookahead_s=0.001)
-    predicted = dataclasses.replace(certificate, slow_design=None, prediction_s=0.001,
-                                    **timing)
-    slow = dataclasses.replace(certificate, **timing, slow_design=dataclasses.replace(
-        certificate.slow_design, **timing))
+    predicted = dataclasses.replace(certificate, prediction_s=0.001, **timing)
+    plain = dataclasses.replace(certificate, **timing)  # (itself as its slow design)
+    slow = dataclasses.replace(plain, slow_design=plain)
     assert set(CERTIFICATE_PARAMETERS) == (set(predicted.to_parameters())
                                            | set(slow.to_parameters()))
     assert len(CERTIFICATE_PARAMETERS) == len(set(CERTIFICATE_PARAMETERS))
