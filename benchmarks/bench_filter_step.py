@@ -170,15 +170,23 @@ def bench_arm(name: str, steps: int, cvxpy_steps: int, seed: int) -> dict[str, A
 
 
 def bench_closed_loop(name: str, steps: int, observer: bool = True,
-                      predict: bool = False, lookahead: bool = False) -> dict[str, Any]:
+                      predict: bool = False, lookahead: bool = False,
+                      slow: bool = False) -> dict[str, Any]:
     """Step times along a closed-loop run (consecutive states, so the warm start helps):
     the model integrated with the held torque, started next to the limits and heading for
     them, with a nominal pushing outward at 3x the torque limit (as in test_filter).
     ``predict``: the certificate declares a one-period delay to predict over (``prediction_s``;
     the step then also evaluates the dynamics at the predicted state). ``lookahead``: the
     certificate plans a period ahead (``lookahead_s``; the step also evaluates the velocity
-    term ``dC v/dv``)."""
+    term ``dC v/dv``). ``slow``: the certificate carries a slow design (here the same gains
+    with 1.5 times gamma in a box of 0.6 times the velocity bound: the step evaluates both
+    designs' barriers, and solves both QPs where the state is in both sets and both change
+    the nominal; docs/method.md, "The slow set")."""
     model, certificate = demo_arm_and_certificate(name)
+    if slow:
+        certificate = replace(certificate, slow_design=replace(
+            certificate, gamma=1.5 * certificate.gamma,
+            velocity_bound=0.6 * certificate.velocity_bound))
     if predict:
         certificate = replace(certificate, prediction_s=1.0 / certificate.control_rate_hz)
     if lookahead:
@@ -247,17 +255,18 @@ def main(argv: list[str] | None = None) -> int:
     loop_steps = 300 if args.quick else 2000
     print(f'\nclosed loop, {loop_steps} steps per arm: the model driven by the filtered torque '
           'toward the limits (consecutive states: the warm start helps)')
-    print('observer: off, on, on with a one-period delay predicted (+delay), or on with a '
-          'lookahead of a period (+ahead)')
+    print('observer: off, on, on with a one-period delay predicted (+delay), on with a '
+          'lookahead of a period (+ahead), or on with a slow design (+slow)')
     print(f'{"arm":<8} {"n":>2} {"observer":>8} {"median":>8} {"p99":>8} {"max":>8}  modes')
-    variants = {'off': (False, False, False), 'on': (True, False, False),
-                '+delay': (True, True, False), '+ahead': (True, False, True)}
+    variants = {'off': (False, False, False, False), 'on': (True, False, False, False),
+                '+delay': (True, True, False, False), '+ahead': (True, False, True, False),
+                '+slow': (True, False, False, True)}
     for name in args.arms:
         rounds: dict[str, list[dict[str, Any]]] = {key: [] for key in variants}
         for _ in range(3):  # interleaved, so that load changes hit all alike
-            for key, (observer, predict, ahead) in variants.items():
+            for key, (observer, predict, ahead, slow) in variants.items():
                 rounds[key].append(bench_closed_loop(name, loop_steps // 3, observer, predict,
-                                                     ahead))
+                                                     ahead, slow))
         medians = {}
         for key, runs in rounds.items():
             medians[key] = float(np.median([r['median'] for r in runs]))
@@ -269,7 +278,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f'{"":<12}observer cost: median step {medians["on"] / medians["off"]:.2f}x '
               'the step without it; predicting the delay: '
               f'{medians["+delay"] / medians["on"]:.2f}x the step with the observer alone; '
-              f'the lookahead: {medians["+ahead"] / medians["on"]:.2f}x')
+              f'the lookahead: {medians["+ahead"] / medians["on"]:.2f}x; a slow design: '
+              f'{medians["+slow"] / medians["on"]:.2f}x')
     return 0
 
 
