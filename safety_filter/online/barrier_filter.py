@@ -24,7 +24,10 @@ call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dy
    the driver adds ``g(q)`` itself, so ``u_full = u_nom + g(q)`` here and the output is
    ``u* - g(q)``. The torque box ``|u| <= umax`` always applies to the full torque.
 3. **Barriers** at ``(q, v)`` with the certificate's gains give the acceleration bounds
-   ``An <= a <= Ap`` (tightened by the certificate's sampling margin).
+   ``An <= a <= Ap`` (tightened by the certificate's sampling margin). With a slow design
+   (docs/method.md, "The slow set") both designs' bounds are evaluated: the step keeps the
+   state in a design's set that contains it, and where both do, in the one whose answer
+   changes the nominal less.
 4. **Outside the safe set S** (some barrier negative) the same bounds ask for a return to S at
    the barrier rate. The QP meets them with any torque in the box; where it cannot, the
    constructive recovery ``a_i = clamp(a_nom_i, max(An_i, -e_i), min(Ap_i, e_i))`` pushes
@@ -273,7 +276,9 @@ class SafetyFilter:
 
     def constraint_bounds(self, q: np.ndarray, v: np.ndarray) -> BarrierState:
         """Barrier values and acceleration bounds at ``(q, v)`` with the certificate's gains
-        and sampling margin (docs/method.md); batches of shape (..., n) allowed."""
+        and sampling margin (docs/method.md); batches of shape (..., n) allowed. With a slow
+        design these are the main design's; whether a state is in S (the union) is
+        ``certificate.safe_set_margins``."""
         c = self.certificate
         return evaluate_barriers(np.asarray(q, dtype=float), np.asarray(v, dtype=float),
                                  c.position_lower, c.position_upper, c.gamma, c.beta,
