@@ -202,8 +202,11 @@ def certificate_page(outcome: CertificationOutcome, model: RobotModel,
             f'<figure><img src="{esc(files["safe_set"][i])}" alt="safe set of {esc(name)}">'
             '<figcaption>The safe set S (shaded) between its barrier edges, the position '
             'limits (black), the rated (orange dashed) and certified (green dotted) velocity '
-            'limits, and the falsifier&rsquo;s lowest-slack states projected on this joint '
-            '(colour: their slack).</figcaption></figure>')
+            'limits, the braking curve at the usable authority, and the falsifier&rsquo;s '
+            'lowest-slack states projected on this joint (colour: their slack).'
+            + (' With a slow design S also holds its set: its edge (dashed blue) and its '
+               'braking curve.' if cert.slow_design else '')
+            + '</figcaption></figure>')
     settings = cert.settings if isinstance(cert.settings, dict) else {}
     bounds = settings.get('bounds', {})
     certify_settings = settings.get('certify', {})

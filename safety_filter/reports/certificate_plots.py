@@ -171,9 +171,8 @@ def plot_safe_set(outcome: CertificationOutcome, model: RobotModel, i: int, path
         axes.plot(qs, brake_lo, color='#7a3db8', linestyle='-.', linewidth=1.3)
         slow = cert.slow_design
         if slow is not None:  # S is the union of the two designs' sets
-            positions = np.tile(0.5 * (np.asarray(cert.position_lower)
-                                       + np.asarray(cert.position_upper)), (len(qs), 1))
-            positions[:, i] = qs
+            positions = np.tile(np.asarray(cert.position_lower, dtype=float), (len(qs), 1))
+            positions[:, i] = qs  # (each joint's slice depends on its own position only)
             slow_lo, slow_hi = slow.safe_velocity_interval(positions)
             slow_lo, slow_hi = slow_lo[:, i], slow_hi[:, i]
             axes.fill_between(qs, slow_lo, slow_hi, color='#8fbbe0', alpha=0.55)
