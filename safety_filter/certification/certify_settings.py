@@ -176,9 +176,11 @@ class CertifySettings:
         if self.condition not in ('auto', *CONDITIONS):
             raise InvalidValue('condition', self.condition,
                                'one of auto, ' + ', '.join(CONDITIONS))
-        if self.slow_box is not None and not 0.0 <= self.slow_box <= self.top_velocity_fraction:
+        if self.slow_box is not None and self.slow_box != 0.0 and not (
+                1.0 / self.velocity_scales <= self.slow_box <= self.top_velocity_fraction):
             raise InvalidValue('slow_box', self.slow_box,
-                               'in [0, 1 - velocity_headroom] (0: no slow design)')
+                               '0 (no slow design) or in [1 / velocity_scales, '
+                               '1 - velocity_headroom]')
         if self.slow_box and self.delay_predicted:
             raise InvalidValue('slow_box', self.slow_box,
                                '0 with delay_predicted (the filter predicts over the delay '

@@ -37,6 +37,9 @@ def certify_settings(args: argparse.Namespace) -> CertifySettings:
     bounds = BoundSettings(samples=args.samples, inflation=args.inflation, seed=args.seed)
     if args.falsifier_states < 0:
         raise InvalidValue('--falsifier-states', args.falsifier_states, '>= 0')
+    if args.slow_box and args.delay == 'fixed':
+        raise InvalidValue('--slow-box', args.slow_box, '0 with --delay fixed (the filter '
+                           'predicts over the delay with one design only)')
     extra = {}
     if args.gamma_margin is not None:
         extra['gamma_margin'] = args.gamma_margin

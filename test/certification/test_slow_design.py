@@ -31,6 +31,8 @@ def test_the_default_slow_box_and_when_there_is_none() -> None:
         CertifySettings(slow_box=0.95)  # above 1 - velocity_headroom
     with pytest.raises(InvalidValue, match='slow_box'):
         CertifySettings(slow_box=-0.1)
+    with pytest.raises(InvalidValue, match='slow_box'):
+        CertifySettings(slow_box=0.01)  # below the slowest box the search tries
 
 
 def test_the_slow_design_is_certified_slower_and_brakes_harder() -> None:

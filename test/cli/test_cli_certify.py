@@ -187,6 +187,8 @@ def test_malformed_limits_file_exits_2(tmp_path, capsys) -> None:
     ['--lookahead', 'yes'],         # argparse: not a choice
     ['--beta-cap-share', '1.5'],    # settings: a share of the cap is at most 1
     ['--velocity-headroom', '-0.1'],  # settings: no box above the rated speed
+    ['--slow-box', '0.95'],         # settings: a slow box above the top box
+    ['--slow-box', '0.5', '--delay', 'fixed'],  # one design only with the delay predicted
 ])
 def test_bad_options_exit_2(tmp_path, capsys, options) -> None:
     code = main(['certify', '--demo', 'planar2', *options, '--output', str(tmp_path / 'x.yaml')])
@@ -272,3 +274,14 @@ def test_lookahead_reaches_the_settings(choice: str, expected: bool | None) -> N
     assert certify_settings(args).lookahead is expected
     default = build_parser().parse_args(['certify', '--demo', 'planar2'])
     assert certify_settings(default).lookahead is False
+
+
+@pytest.mark.parametrize('options, expected', [
+    ([], 0.55), (['--slow-box', '0.4'], 0.4), (['--slow-box', '0'], 0.0),
+    (['--delay', 'fixed'], 0.0)])
+def test_slow_box_reaches_the_settings(options: list[str], expected: float) -> None:
+    from safety_filter.cli.certify import certify_settings
+    from safety_filter.cli.main import build_parser
+
+    args = build_parser().parse_args(['certify', '--demo', 'planar2', *options])
+    assert certify_settings(args).slow_box_share == pytest.approx(expected)
