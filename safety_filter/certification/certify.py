@@ -16,7 +16,10 @@ and linear families with velocity barriers, the linear family with the velocity 
    above a floor that keeps the arm from freezing, below the sampled-data cap;
 
 then the design with the largest safe set that certifies is kept, and
-6. the falsifier (``falsify``), independent of all the above, checks it on states in S.
+6. the falsifier (``falsify``), independent of all the above, checks it on states in S;
+7. with a slow box, the same steps certify the slow design (velocity boxes of at most that
+   share of the rated speeds), which the certificate carries when it enlarges S
+   (docs/method.md, "The slow set").
 
 When a step fails, the reason names the joint, the limit and the shortfall.
 
@@ -132,9 +135,10 @@ def _add_slow_design(model: RobotModel, settings: CertifySettings, main: Certifi
     velocity boxes of at most ``slow_box`` of the rated speeds. One disturbance observer
     serves both designs and keeps its estimate in the main design's range; the slow design
     counts the friction spreads at the main design's box, so with its larger authority its
-    own range contains the main one (checked). A slow design that does not certify, gives
-    no joint more authority, or whose range does not contain the main one is left out, and
-    the main certificate's notes say why.
+    own range contains the main one (checked). A slow design that does not certify,
+    enlarges no joint's slice of S by ``MIN_SLOW_GROWTH`` or more, or whose range does not
+    contain the main one is left out, and the main certificate's notes say why. The main
+    certificate's record of the settings keeps the slow box asked for.
     """
     first = main.certificate
     family = first.alpha1.kind + ('' if first.has_velocity_barriers else LEMMA_SUFFIX)
@@ -167,7 +171,9 @@ def _add_slow_design(model: RobotModel, settings: CertifySettings, main: Certifi
     else:
         certificate = replace(first, slow_design=second)
     certificate = replace(certificate, settings={
-        **certificate.settings, 'stage_seconds': {k: round(v, 3) for k, v in seconds.items()}})
+        **certificate.settings, 'stage_seconds': {k: round(v, 3) for k, v in seconds.items()},
+        'certify': {**certificate.settings.get('certify', {}),
+                    'slow_box': settings.slow_box_share}})
     return CertificationOutcome(certificate, main.bounds, main.velocity_scale,
                                 main.authority_by_condition, seconds, main.falsifier)
 
