@@ -14,7 +14,8 @@ RK4 at 10 kHz, torque held and saturated by the driver, control at the certifica
 * ``braking clamp``: the uncertified per-joint speed clamp that drivers' software limits
   commonly apply (:class:`BrakingCurveClamp`): each joint's velocity is kept below
   ``min(rated speed, sqrt(2 e d))`` toward the limit ahead (``d`` its distance, ``e`` the
-  certificate's usable authority ``authority - sampling_margin``) by a per-joint
+  certificate's usable authority ``authority - sampling_margin``, with a slow design the
+  larger of the two designs') by a per-joint
   acceleration limit, turned into torque with the diagonal of the mass matrix plus gravity,
   then clipped to the torque box. It ignores the coupling between joints;
 * ``certified filter``: :class:`safety_filter.SafetyFilter` with the certificate of
@@ -56,7 +57,7 @@ import math
 import sys
 import tempfile
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -138,7 +139,9 @@ class BrakingCurveClamp:
         self.upper = np.array(model.position_upper, dtype=float)
         self.speed = np.array(model.velocity_limit, dtype=float)
         self.effort = np.array(model.effort_limit, dtype=float)
-        self.authority = np.array(certificate.authority - certificate.sampling_margin)
+        # the certificate's usable authority; with a slow design the larger of the two
+        # designs' per joint (the clamp gets what the filter knows)
+        self.authority = np.array(usable_authority(certificate))
         self.tau = time_constant_periods / certificate.control_rate_hz
         self.nan = np.full(model.n_joints, np.nan)
 
@@ -326,16 +329,33 @@ class Setup:
                                q0, v0, payload_mass=self.payload)
 
 
+def usable_authority(certificate: Certificate) -> np.ndarray:
+    """Per joint, the certificate's usable authority ``authority - sampling_margin``
+    [rad/s^2]; with a slow design, the larger of the two designs'."""
+    designs = [certificate] + ([certificate.slow_design] if certificate.slow_design else [])
+    return np.max([np.asarray(d.authority) - d.sampling_margin for d in designs], axis=0)
+
+
 def nearest_rest(setup: Setup) -> np.ndarray:
     """Per joint and side (lower, upper), the nearest a joint can come to its limit and stay
     at rest under the filter, as a share of the range (the others at mid-range).
 
     At rest the filter's bound toward a limit is what the barrier allows less the
     sampled-data margin; closer to the limit than where that reaches zero, the filter brakes
-    the joint before it gets there. The grid's step is 0.05 % of the range.
+    the joint before it gets there. With a slow design, the nearer of the two designs'. The
+    grid's step is 0.05 % of the range.
     """
     model = setup.model
-    probe = SafetyFilter(model, setup.certificate, payload_mass=setup.payload)
+    designs = [setup.certificate] + ([setup.certificate.slow_design]
+                                     if setup.certificate.slow_design else [])
+    found = [_nearest_rest(setup, SafetyFilter(model, replace(design, slow_design=None),
+                                               payload_mass=setup.payload))
+             for design in designs]
+    return np.nanmin(np.array(found), axis=0)
+
+
+def _nearest_rest(setup: Setup, probe: SafetyFilter) -> np.ndarray:
+    model = setup.model
     lower, upper = np.array(model.position_lower), np.array(model.position_upper)
     middle, span = 0.5 * (lower + upper), upper - lower
     shares = np.linspace(0.0, 0.5, 1001)
@@ -543,10 +563,12 @@ def main(argv: list[str] | None = None) -> int:
           f'run, {reach_duration:g} s per jog ({counts["jogs"]} per arm)')
     for setup in setups:
         c = setup.certificate
-        usable = c.authority - c.sampling_margin
+        usable = usable_authority(c)
+        slow = '' if c.slow_design is None else ' (slow design: ' + ' '.join(
+            f'{100 * f:.0f}%' for f in c.slow_design.velocity_bound / c.velocity_limit) + ')'
         print(f'{setup.arm}: certified velocity box '
               + ' '.join(f'{100 * f:.0f}%' for f in c.velocity_bound / c.velocity_limit)
-              + ' of rated; clamp authority [rad/s^2] '
+              + f' of rated{slow}; clamp authority [rad/s^2] '
               + ' '.join(f'{e:.2g}' for e in usable))
         print(f'{setup.arm}: nearest rest to the lower/upper limit the filter allows '
               '(share of the range) '
