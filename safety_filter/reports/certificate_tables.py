@@ -235,6 +235,13 @@ def design_lines(certificate: Any, model: RobotModel) -> list[str]:
         speeds = ', '.join(f'{100 * x:.0f}' for x in envelope)
         lines.append(f'{family}: {entry.get("outcome", "?")}'
                      + (f'; envelope % of rated: {speeds}' if speeds else ''))
+    slow = getattr(certificate, 'slow_design', None)
+    if slow is not None:
+        share = np.asarray(slow.velocity_bound) / np.asarray(slow.velocity_limit)
+        lines.append(f'slow design (velocity boxes up to {100 * share.max():.0f} % of rated): '
+                     'kept; the safe set is the union of the two (its table below)')
+    lines += [note for note in settings.get('notes') or []
+              if note.startswith('slow design left out')]
     limited = settings.get('velocity_box_limited_by') or []
     for name, reason in zip(certificate.joint_names, limited):
         if reason:
