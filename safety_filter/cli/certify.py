@@ -193,11 +193,11 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         'certifies the larger safe set (default: off; docs/method.md, '
                         '"Lookahead")')
     method.add_argument('--slow-box', type=float, default=None, metavar='FRACTION',
-                        help='add a slow design: a second certified design whose velocity '
-                        'boxes are at most this share of the rated speeds and which, with the '
-                        'Coriolis torque of the smaller box freed, brakes harder; the safe set '
-                        'is then the union of the two, so slower motions may run closer to '
-                        'the limits. 0: none (default: %g, or 0 with --delay fixed; '
+                        help='velocity boxes of the slow design, as a share of the rated '
+                        'speeds: a second certified design that, with the Coriolis torque of '
+                        'the smaller boxes freed, brakes harder; the safe set is the union of '
+                        'the two (kept when it enlarges it), so slower motions may run closer '
+                        'to the limits. 0: none (default: %g, or 0 with --delay fixed; '
                         'docs/method.md, "The slow set")' % SLOW_BOX_SHOWN)
     method.add_argument('--delay', choices=('up-to', 'fixed'), default='up-to',
                         help="how the limits file's declared delay (uncertainty: "
