@@ -335,7 +335,9 @@ class MonitorFrame:
             ('steps', f'{sum(totals.values())}   fallback {totals["fallback"]} '
              f'({episodes["fallback"]} episodes)   recovering {totals["recovering"]} '
              f'({episodes["recovering"]})   rejected {totals["rejected"]} '
-             f'({episodes["rejected"]})   stale {totals["stale"]} ({episodes["stale"]})'),
+             f'({episodes["rejected"]})   stale {totals["stale"]} ({episodes["stale"]})'
+             + (f'   in the slow set {state.slow_set_total}'
+                if state.slow_set_total is not None else '')),
             ('input age [ms]', f'joint_state {_num(js_age, 1)}   nominal '
              f'{_num(nominal_age, 1)}{hold}{invalid}'),
             ('status', f'step {_num(step) if math.isfinite(step) else "?"}   '

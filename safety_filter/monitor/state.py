@@ -145,6 +145,9 @@ class MonitorState:
         self.status_count = 0
         self.diagnostic_count = 0
         self.step_totals: Counter[str] = Counter()  # steps per mode, from the diagnostics
+        # steps the filter kept in its slow design's set (docs/method.md); None until a
+        # diagnostic reports the count (older nodes do not)
+        self.slow_set_total: int | None = None
         self.episodes: Counter[str] = Counter()  # episodes started, per mode (incl. stale)
         self.thin_episodes = 0
         self.mode: str | None = None
@@ -222,6 +225,9 @@ class MonitorState:
             count = snapshot.number(f'count.{mode}')
             if math.isfinite(count):
                 self.step_totals[mode] += int(count)
+        slow = snapshot.number('count.slow_set')
+        if math.isfinite(slow):
+            self.slow_set_total = (self.slow_set_total or 0) + int(slow)
         expected = self.expected_certificate_id
         found = snapshot.certificate_id
         if expected and found and found != expected:

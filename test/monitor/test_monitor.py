@@ -91,6 +91,8 @@ def diagnostic(t: float, level: int = 0, message: str = 'filtering', mode: str =
               'trigger': 'joint_state', 'certificate_id': certificate_id}
     for name in MODE_NAMES:
         values[f'count.{name}'] = str((counts or {}).get(name, 0))
+    if counts and 'slow_set' in counts:
+        values['count.slow_set'] = str(counts['slow_set'])
     return DiagnosticSnapshot(level, message, values, T0 + t, stamp_s=T0 + t - 100.0)
 
 
@@ -744,3 +746,18 @@ def test_monitor_follows_a_live_graph_and_logs_the_watchdog_trip(tmp_path: Path)
             _stop(process)
         for handle in logs.values():
             handle.close()
+
+
+def test_the_steps_line_counts_the_slow_set_when_the_node_reports_it() -> None:
+    from safety_filter.monitor.screen import MonitorFrame
+
+    state = MonitorState(thin_margin=0.05, limits=LIMITS)
+    state.add_diagnostic(diagnostic(0.0, counts={'filtered': 500}))
+    assert state.slow_set_total is None  # a node without the count (an older release)
+    text = '\n'.join(_record(120, 50, MonitorFrame(state, T0 + 0.1, rate_hz=4.0)))
+    assert 'slow set' not in text
+    state.add_diagnostic(diagnostic(0.5, counts={'filtered': 500, 'slow_set': 120}))
+    state.add_diagnostic(diagnostic(1.0, counts={'filtered': 500, 'slow_set': 30}))
+    assert state.slow_set_total == 150
+    text = '\n'.join(_record(120, 50, MonitorFrame(state, T0 + 1.1, rate_hz=4.0)))
+    assert 'in the slow set 150' in text
