@@ -397,7 +397,8 @@ class SafetyFilter:
                 # In both sets: the main design unless it changes the nominal and the slow
                 # one does not (or changes it less: both QPs are solved below).
                 self._both_sets = True
-                if not self._nominal_feasible(u_full) and self._slow_passes(u_full):
+                if not self._nominal_feasible(u_full) and self._nominal_feasible(
+                        u_full, self._rows_slow):
                     self._use_slow()
             elif worst_slow >= 0.0 or worst_slow > worst:
                 self._use_slow()  # only in the slow set, or outside both but nearer it
@@ -488,13 +489,6 @@ class SafetyFilter:
         self._k_authority = self._k_authority_slow
         self._slow_now = True
 
-    def _slow_passes(self, u_full: np.ndarray) -> bool:
-        """Whether the nominal meets the box and the slow design's bounds."""
-        if not _kernels.within_box(u_full, self._k_torque_limit):
-            return False
-        a_nom = self._nominal_acceleration(u_full)
-        return _kernels.within_bounds(a_nom, self._rows_slow[5], self._rows_slow[4])
-
     def _less_change_of_two(self, main: Any, mass: np.ndarray, bias: np.ndarray,
                             u_full: np.ndarray) -> Any:
         """The state is in both sets and the main design's QP changed the nominal: solve
@@ -523,16 +517,18 @@ class SafetyFilter:
         change = acceleration - self._nominal_acceleration(u_full)
         return float(np.sum(change * change / np.maximum(self.usable_authority, 1e-9) ** 2))
 
-    def _nominal_feasible(self, u_full: np.ndarray) -> bool:
-        """Whether the nominal (full torque) meets the box and the acceleration bounds.
+    def _nominal_feasible(self, u_full: np.ndarray, rows: np.ndarray | None = None) -> bool:
+        """Whether the nominal (full torque) meets the box and the acceleration bounds of
+        ``rows`` (default this step's; the slow design's: ``_rows_slow``).
 
         Checks the box first, which rules out far-off nominals without a linear solve. Sets
         ``_a_nom`` when it gets to compute it.
         """
         if not _kernels.within_box(u_full, self._k_torque_limit):
             return False
+        rows = self._rows if rows is None else rows
         a_nom = self._nominal_acceleration(u_full)
-        return _kernels.within_bounds(a_nom, self._accel_lower, self._accel_upper)
+        return _kernels.within_bounds(a_nom, rows[5], rows[4])
 
     def _nominal_acceleration(self, u_full: np.ndarray) -> np.ndarray:
         """``a_nom = M^-1 (u_nom - h)`` at the current state (cached per step)."""

@@ -342,16 +342,17 @@ def slow_design_rows(outcome: CertificationOutcome, model: RobotModel) -> list[d
     own = joint_rows(replace(outcome, certificate=slow), model)
     main = joint_rows(outcome, model)
     union = cert.slice_areas()
+    alone = replace(cert, slow_design=None).slice_areas()  # the same grid as the union's
     rows = []
     for i, row in enumerate(own):
         r = float(model.position_upper[i] - model.position_lower[i])
         usable = max(row['usable_authority'], main[i]['usable_authority'])
         braking = braking_set_area(r, usable, row['rated_velocity'])
-        alone = safe_set_area(r, float(cert.gamma[i]), cert.alpha1, speed_bound(cert, i))
         rows.append({key: row[key] for key in (
             'joint', 'authority', 'sampling_margin', 'usable_authority', 'gamma',
             'certified_velocity', 'velocity_percent', 'braking_percent')} | {
-            'union_growth_percent': 100.0 * (union[i] / alone - 1.0) if alone > 0 else 0.0,
+            'union_growth_percent': (100.0 * (union[i] / alone[i] - 1.0) if alone[i] > 0
+                                     else 0.0),
             'union_braking_percent': 100.0 * union[i] / braking if braking > 0 else 0.0})
     return rows
 
