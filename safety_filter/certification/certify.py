@@ -71,7 +71,7 @@ from safety_filter.certification.velocity_boxes import (
     search_with_margin,
 )
 from safety_filter.core.certificate import Certificate
-from safety_filter.core.class_k import ClassK
+from safety_filter.core.class_k import BRAKING_FAMILIES, ClassK
 from safety_filter.core.model_uncertainty import draw_plant, model_with_inertials, payload_error
 from safety_filter.core.robot_model import RobotModel
 
@@ -268,7 +268,7 @@ def _certify_design(model: RobotModel, settings: CertifySettings,
         accel_bound = None
         condition, scale = 'acceleration_authority', 0.0
         first = split_family(kinds[0])[0]
-        alpha1 = settings.alpha1 or ClassK(first, 1.0 if first != 'sqrt' else 0.01)
+        alpha1 = settings.alpha1 or ClassK(first, 0.01 if first in BRAKING_FAMILIES else 1.0)
 
     if design is None or reasons:
         gamma = np.where(gamma > 0, gamma, 0.0)

@@ -37,9 +37,10 @@ class CertifySettings:
     """Choices and margins of the certification (all recorded in the certificate).
 
     Attributes:
-        alpha1, alpha2: class-K families (alpha1: linear, atan, tanh, sqrt; alpha2: linear,
-            cubic, atan, tanh). ``alpha1 = None`` (the default) tries each of ``families``
-            and keeps the one whose safe set is largest among those that certify.
+        alpha1, alpha2: class-K families (alpha1: linear, atan, tanh, sqrt, parabola;
+            alpha2: linear, cubic, atan, tanh). ``alpha1 = None`` (the default) tries each
+            of ``families`` and keeps the one whose safe set is largest among those that
+            certify.
         families: the alpha1 families tried when ``alpha1`` is None; a family named with
             the suffix ``:lemma`` keeps the velocity box by the velocity lemma (no velocity
             barriers), the others by velocity barriers of their own.
@@ -117,7 +118,7 @@ class CertifySettings:
 
     alpha1: ClassK | None = None
     alpha2: ClassK = ClassK('linear')
-    families: tuple[str, ...] = ('sqrt', 'linear', 'linear' + LEMMA_SUFFIX)
+    families: tuple[str, ...] = ('parabola', 'sqrt', 'linear', 'linear' + LEMMA_SUFFIX)
     velocity_barrier: bool = True
     per_joint_envelopes: bool = True
     braking_slope_share: float = 0.1

@@ -12,7 +12,7 @@ import numpy as np
 from scipy.optimize import minimize
 
 from safety_filter.certification.certify_settings import CertifySettings
-from safety_filter.core.class_k import ClassK
+from safety_filter.core.class_k import BRAKING_FAMILIES, ClassK
 from safety_filter.core.model_uncertainty import DisturbanceBound
 
 BETA_MIN_MARGIN = 1.02  # beta may sit at the cap if that is still 2 % above beta*
@@ -134,16 +134,22 @@ def class_k_for_family(settings: CertifySettings, kind: str, usable: np.ndarray,
     ``eps`` from the hold period: the slope term ``gamma alpha1'(h) v`` of the bounds may
     drift by ``gamma alpha1'(0) e T = sqrt(e) e T / sqrt(2 eps)`` over a hold ``T`` at
     ``gamma ~ sqrt(e)``; ``eps = (sqrt(e) T / share)^2 / 2`` keeps that at ``share`` of the
-    authority (``docs/method.md``, the braking-curve barrier).
+    authority (``docs/method.md``, the braking-curve barrier). The term also drifts with the
+    motion, by ``gamma |alpha1''| v^2 T <= gamma^3 c alpha1'(0) T`` on the boundary of S
+    (``c = ClassK.boundary_curvature``: 4/27 for ``sqrt``, 1 for ``parabola``): the
+    ``parabola`` family takes the eps at which the two drifts together are those of
+    ``sqrt``, ``((1 + c) / (1 + 4/27))^2`` times its eps.
     """
     if settings.alpha1 is not None:
         return settings.alpha1
-    if kind != 'sqrt':
+    if kind not in BRAKING_FAMILIES:
         return ClassK(kind)
     hold = settings.gain_hold_s
     eps = float(np.max(0.5 * (np.sqrt(np.maximum(usable, 0.0)) * hold
                               / settings.braking_slope_share) ** 2))
-    return ClassK('sqrt', float(np.clip(eps, 1e-6, 0.1 * float(np.min(position_range)))))
+    reference = ClassK('sqrt').boundary_curvature()
+    eps *= ((1.0 + ClassK(kind).boundary_curvature()) / (1.0 + reference)) ** 2
+    return ClassK(kind, float(np.clip(eps, 1e-6, 0.1 * float(np.min(position_range)))))
 
 
 def velocity_barrier_rate(authority: np.ndarray, margin: np.ndarray, velocity_box: np.ndarray,

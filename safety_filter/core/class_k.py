@@ -11,6 +11,15 @@ The ``sqrt`` family ``alpha(x) = sqrt(2 (x + eps)) - sqrt(2 eps)`` (odd extensio
 ``alpha' alpha = 1 - sqrt(eps / (x + eps)) < 1``, so ``gamma* = sqrt(e)`` up to that factor
 and ``v <= gamma alpha(h)`` approaches ``v <= sqrt(2 e h)``; ``eps`` bounds its slope
 ``alpha'(0) = 1 / sqrt(2 eps)`` (``docs/method.md``, the braking-curve barrier).
+
+The ``parabola`` family enters the same parabola along its tangent through the origin:
+``alpha(x) = x / sqrt(2 eps)`` for ``0 <= x <= 2 eps``, ``sqrt(2 (x - eps))`` beyond (odd
+extension). It has the same slope bound ``alpha'(0) = 1 / sqrt(2 eps)`` and the same
+curvature bound ``|alpha''| <= (2 eps)^-1.5`` as ``sqrt``, and ``alpha' alpha <= 1``; of
+all functions with those two properties it is the largest at every ``x`` (``alpha <= x k``
+from the slope bound, ``alpha^2 <= alpha(x1)^2 + 2 (x - x1)`` from the product bound), so
+it gives up ``eps / sqrt(2 x)`` of the braking speed where ``sqrt`` gives up
+``sqrt(2 eps)`` everywhere (docs/method.md).
 """
 
 from __future__ import annotations
@@ -21,10 +30,12 @@ import numpy as np
 
 from safety_filter.errors import InvalidValue
 
-ALPHA_KINDS = ('linear', 'atan', 'tanh', 'cubic', 'sqrt')
+ALPHA_KINDS = ('linear', 'atan', 'tanh', 'cubic', 'sqrt', 'parabola')
 # concave on [0, inf): the gamma* formula applies
-ALPHA1_KINDS = ('linear', 'atan', 'tanh', 'sqrt')
+ALPHA1_KINDS = ('linear', 'atan', 'tanh', 'sqrt', 'parabola')
 ALPHA2_KINDS = ('linear', 'cubic', 'atan', 'tanh')
+# the families whose boundary approaches the braking parabola; their scale is eps
+BRAKING_FAMILIES = ('sqrt', 'parabola')
 
 
 @dataclass(frozen=True)
@@ -53,6 +64,10 @@ class ClassK:
             return s * np.tanh(x / s)
         if self.kind == 'sqrt':
             return np.sign(x) * (np.sqrt(2.0 * (np.abs(x) + s)) - np.sqrt(2.0 * s))
+        if self.kind == 'parabola':
+            size = np.abs(x)
+            return np.sign(x) * np.where(size <= 2.0 * s, size / np.sqrt(2.0 * s),
+                                         np.sqrt(2.0 * np.maximum(size - s, s)))
         return x ** 3
 
     def derivative(self, x: np.ndarray | float) -> np.ndarray:
@@ -67,6 +82,8 @@ class ClassK:
             return 1.0 - np.tanh(x / s) ** 2
         if self.kind == 'sqrt':
             return 1.0 / np.sqrt(2.0 * (np.abs(x) + s))
+        if self.kind == 'parabola':
+            return 1.0 / np.sqrt(2.0 * np.maximum(np.abs(x) - s, s))
         return 3.0 * x ** 2
 
     def second_derivative(self, x: np.ndarray | float) -> np.ndarray:
@@ -82,6 +99,10 @@ class ClassK:
             return -2.0 / s * t * (1.0 - t ** 2)
         if self.kind == 'sqrt':
             return -np.sign(x) * (2.0 * (np.abs(x) + s)) ** -1.5
+        if self.kind == 'parabola':
+            size = np.abs(x)
+            return np.where(size <= 2.0 * s, 0.0,
+                            -np.sign(x) * (2.0 * np.maximum(size - s, s)) ** -1.5)
         return 6.0 * x
 
     def max_value_times_slope(self, upper: float, samples: int = 4001) -> float:
@@ -94,6 +115,8 @@ class ClassK:
             return float(upper)
         if self.kind == 'sqrt':  # 1 - sqrt(eps / (x + eps)), increasing in x
             return 1.0 - float(np.sqrt(self.scale / (float(upper) + self.scale)))
+        if self.kind == 'parabola':  # x / (2 eps) on the tangent, 1 on the parabola
+            return min(float(upper) / (2.0 * self.scale), 1.0)
         grid = np.linspace(0.0, upper, samples)
         product = self.derivative(grid) * self.value(grid)
         k = int(np.argmax(product))
@@ -115,9 +138,22 @@ class ClassK:
         """``sup_{0 < x <= upper} alpha(x) / x``: the slope that the sampled-data cap uses."""
         if self.kind in ('linear', 'atan', 'tanh'):
             return 1.0  # concave through the origin with slope 1 there
-        if self.kind == 'sqrt':
+        if self.kind in ('sqrt', 'parabola'):
             return float(self.derivative(0.0))  # concave: the slope at 0, 1 / sqrt(2 eps)
         return float(upper) ** 2  # cubic: x^3 / x = x^2, largest at the upper end
+
+    def boundary_curvature(self) -> float:
+        """``max_{x > 0} |alpha''(x)| alpha(x)^2 / alpha'(0)`` for the braking families (0 for
+        the others): with ``v = gamma alpha(h)`` on the boundary of S, the slope term
+        ``gamma alpha'(h) v`` of the bounds moves with the motion at up to ``gamma^3`` times
+        this times ``alpha'(0)``. ``sqrt``: ``y0 (y - y0)^2 / y^3`` with ``y = sqrt(2 (x +
+        eps))``, largest at ``y = 3 y0``: 4/27. ``parabola``: ``sqrt(2 eps / (2 (x - eps)))``
+        past the tangent, largest where it starts: 1."""
+        if self.kind == 'sqrt':
+            return 4.0 / 27.0
+        if self.kind == 'parabola':
+            return 1.0
+        return 0.0
 
     def to_dict(self) -> dict[str, float | str]:
         """Plain form for files."""

@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 from numba import njit
 
-ALPHA_CODES = {'linear': 0, 'atan': 1, 'tanh': 2, 'cubic': 3, 'sqrt': 4}
+ALPHA_CODES = {'linear': 0, 'atan': 1, 'tanh': 2, 'cubic': 3, 'sqrt': 4, 'parabola': 5}
 
 # Flags returned by stage_inputs (bit per problem).
 NONFINITE_Q = 1
@@ -88,6 +88,13 @@ def _alpha(code: int, scale: float, x: float) -> float:
     if code == 4:
         root = math.sqrt(2.0 * (abs(x) + scale)) - math.sqrt(2.0 * scale)
         return root if x >= 0.0 else -root
+    if code == 5:
+        size = abs(x)
+        if size <= 2.0 * scale:
+            root = size / math.sqrt(2.0 * scale)
+        else:
+            root = math.sqrt(2.0 * (size - scale))
+        return root if x >= 0.0 else -root
     return x * x * x
 
 
@@ -103,6 +110,8 @@ def _alpha_slope(code: int, scale: float, x: float) -> float:
         return 1.0 - t * t
     if code == 4:
         return 1.0 / math.sqrt(2.0 * (abs(x) + scale))
+    if code == 5:
+        return 1.0 / math.sqrt(2.0 * max(abs(x) - scale, scale))
     return 3.0 * x * x
 
 

@@ -18,6 +18,7 @@ import numpy as np
 
 from safety_filter.certification.certify import CertificationOutcome
 from safety_filter.core.barriers import braking_set_area, safe_set_area
+from safety_filter.core.class_k import BRAKING_FAMILIES
 from safety_filter.core.robot_model import RobotModel
 
 TABLE_WIDTH = 100
@@ -225,7 +226,7 @@ def design_lines(certificate: Any, model: RobotModel) -> list[str]:
     lines = []
     for entry in tried:
         family = entry.get('alpha1', '?')
-        if entry.get('alpha1_scale') is not None and family.startswith('sqrt'):
+        if entry.get('alpha1_scale') is not None and family in BRAKING_FAMILIES:
             family += f' (eps {entry["alpha1_scale"]:.3g})'
         if entry.get('mean_over_hold'):
             family += ', mean acceleration over the hold'

@@ -235,6 +235,8 @@ def test_gamma_star_linear_closed_form(authority: float, position_range: float) 
     ('tanh', 2.0, 0.5),   # maximum at the upper end
     ('sqrt', 0.01, 3.0),  # increasing: maximum at the upper end, 1 - sqrt(eps / (r + eps))
     ('sqrt', 1e-4, 0.2),
+    ('parabola', 0.01, 3.0),   # 1 past the tangent (x >= 2 eps)
+    ('parabola', 0.2, 0.3),    # on the tangent: x / (2 eps) at the upper end
 ])
 def test_max_value_times_slope_against_dense_grid(kind: str, scale: float, upper: float) -> None:
     alpha = ClassK(kind, scale)
@@ -265,7 +267,9 @@ def _brute_beta_star(r: float, authority: float, gamma: float, delta: float, alp
     ``beta a2(bp) >= 2 delta + gamma a1'(hp) v - beta_v (speed + v)`` and
     ``beta a2(bn) >= 2 delta - gamma a1'(hn) v - beta_v (speed - v)``.
     """
-    hp = np.linspace(0.0, r, grid)[:, None]
+    # denser within 0.25 of either limit, where the braking families' needs peak
+    fine = np.linspace(0.0, min(r, 0.25), grid // 2)
+    hp = np.union1d(np.linspace(0.0, r, grid), np.concatenate([fine, r - fine]))[:, None]
     hn = r - hp
     s = np.linspace(0.0, 1.0, grid)[None, :]
     low = np.maximum(-gamma * alpha1.value(hn), -speed)
@@ -304,6 +308,8 @@ BETA_CASES = [
     (ClassK('linear'), ClassK('cubic'), 5.2, 4.26, 0.49, 0.7),
     (ClassK('tanh'), ClassK('cubic'), 3.0, 10.0, 0.5, 0.9),
     (ClassK('tanh', 0.5), ClassK('cubic'), 4.0, 8.0, 0.1, 0.8),
+    (ClassK('parabola', 0.01), ClassK('linear'), 5.8, 0.61, 0.28, 0.9),
+    (ClassK('parabola', 0.05), ClassK('linear'), 2.8, 10.5, 1.3, 0.9),
 ]
 
 
@@ -332,6 +338,8 @@ SPEED_CASES = [
     # A slow box and a large margin: at a limit, leaving it at full speed, the velocity
     # barrier's push and the position barrier's bound meet (the cross condition binds).
     (ClassK('sqrt', 0.0098), 5.8, 14.4, 6.6, 0.9, 0.075, 250.0),
+    (ClassK('parabola', 0.015), 5.8, 0.61, 0.28, 0.9, 0.53, 50.0),
+    (ClassK('parabola', 0.03), 4.0, 40.0, 3.0, 0.9, 0.3, 150.0),
 ]
 
 

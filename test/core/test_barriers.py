@@ -89,6 +89,85 @@ def test_sqrt_family_values_and_slopes() -> None:
     assert alpha.max_ratio_to_identity(3.0) == pytest.approx(1.0 / math.sqrt(2 * eps))
 
 
+def test_parabola_family_values_and_slopes() -> None:
+    """alpha(x) = x / sqrt(2 eps) up to 2 eps, sqrt(2 (x - eps)) beyond, odd: continuous
+    with a continuous slope at 2 eps; alpha' and alpha'' against central differences away
+    from the kink of alpha''; alpha' alpha = x / (2 eps) on the tangent and 1 beyond
+    (elementary calculus)."""
+    import numpy as np
+
+    eps = 0.02
+    alpha = ClassK('parabola', eps)
+    x = np.linspace(-3.0, 3.0, 2001)
+    assert float(alpha.value(0.0)) == 0.0
+    np.testing.assert_allclose(alpha.value(-x), -alpha.value(x), atol=1e-15)
+    joint = 2.0 * eps
+    assert float(alpha.value(joint)) == pytest.approx(math.sqrt(2 * eps), rel=1e-12)
+    assert float(alpha.value(joint + 1e-9)) == pytest.approx(math.sqrt(2 * eps), rel=1e-6)
+    assert float(alpha.derivative(joint + 1e-9)) == pytest.approx(
+        float(alpha.derivative(joint - 1e-9)), rel=1e-6)
+    step = 1e-6
+    inner = x[np.abs(np.abs(x) - joint) > 1e-3]
+    np.testing.assert_allclose(alpha.derivative(inner),
+                               (alpha.value(inner + step) - alpha.value(inner - step))
+                               / (2 * step), rtol=1e-6, atol=1e-9)
+    np.testing.assert_allclose(alpha.second_derivative(inner),
+                               (alpha.derivative(inner + step) - alpha.derivative(inner - step))
+                               / (2 * step), rtol=1e-5, atol=1e-6)
+    positive = x[x >= 0.0]
+    np.testing.assert_allclose(alpha.derivative(positive) * alpha.value(positive),
+                               np.minimum(positive / (2 * eps), 1.0), atol=1e-12)
+    assert alpha.max_ratio_to_identity(3.0) == pytest.approx(1.0 / math.sqrt(2 * eps))
+
+
+@pytest.mark.parametrize('eps', [0.02, 0.003])
+def test_parabola_is_the_largest_alpha_under_the_slope_and_braking_bounds(eps: float) -> None:
+    """Brute force: march ``alpha`` up on a fine grid, each step as far as both bounds allow
+    (``alpha' <= 1 / sqrt(2 eps)``, the sqrt family's slope at 0, and ``alpha' alpha <= 1``,
+    what gamma* = sqrt(e) needs). The marched function is the pointwise largest with both
+    properties; the parabola family matches it, and the sqrt family with the same slope
+    bound stays below it, by ``sqrt(2 eps) + sqrt(2 (x - eps)) - sqrt(2 (x + eps))`` past
+    the tangent (about ``sqrt(2 eps)``)."""
+    import numpy as np
+
+    x, dx = np.linspace(0.0, 2.0, 400_001, retstep=True)
+    marched = np.empty_like(x)
+    marched[0] = 0.0
+    k = 1.0 / math.sqrt(2.0 * eps)
+    for i in range(1, len(x)):  # explicit Euler on the tighter bound
+        a = marched[i - 1]
+        marched[i] = a + dx * (k if a * k <= 1.0 else 1.0 / a)
+    parabola = ClassK('parabola', eps).value(x)
+    np.testing.assert_allclose(parabola, marched, atol=1e-4)
+    sqrt_family = ClassK('sqrt', eps).value(x)
+    assert np.all(sqrt_family <= parabola + 1e-12)
+    assert float(parabola[-1] - sqrt_family[-1]) == pytest.approx(
+        math.sqrt(2 * eps) + math.sqrt(2 * (2.0 - eps)) - math.sqrt(2 * (2.0 + eps)), rel=1e-9)
+
+
+@pytest.mark.parametrize('kind', ['sqrt', 'parabola'])
+def test_boundary_curvature_against_a_dense_grid(kind: str) -> None:
+    """``max |alpha''| alpha^2 / alpha'(0)`` on a dense grid: 4/27 (sqrt), 1 (parabola)."""
+    import numpy as np
+
+    alpha = ClassK(kind, 0.004)
+    x = np.linspace(1e-9, 3.0, 3_000_001)
+    grid = float(np.max(np.abs(alpha.second_derivative(x)) * alpha.value(x) ** 2)
+                 / alpha.derivative(0.0))
+    assert alpha.boundary_curvature() == pytest.approx(grid, rel=1e-6)
+
+
+@pytest.mark.parametrize('r, gamma, eps', [(5.8, 0.5, 0.01), (2.0, 3.0, 0.003)])
+def test_parabola_safe_set_area_matches_its_closed_form(r: float, gamma: float,
+                                                        eps: float) -> None:
+    """One side: ``gamma (eps sqrt(2 eps) + ((2 (r - eps))^1.5 - (2 eps)^1.5) / 3)``
+    (the tangent's triangle, then the integral of sqrt(2 (x - eps))), twice."""
+    one_side = gamma * (eps * math.sqrt(2 * eps)
+                        + ((2 * (r - eps)) ** 1.5 - (2 * eps) ** 1.5) / 3.0)
+    assert safe_set_area(r, gamma, ClassK('parabola', eps), samples=400_001) == \
+        pytest.approx(2 * one_side, rel=1e-6)
+
+
 # ---------------------------------------------------------------------- recovery time
 def _least_deceleration_return(q0: float, v0: float, lower: float, upper: float, gamma: float,
                                beta: float, alpha1: ClassK, alpha2: ClassK, authority: float,

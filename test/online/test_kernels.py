@@ -30,7 +30,7 @@ def random_spd(rng: np.random.Generator, n: int) -> np.ndarray:
     return factor @ factor.T + 1e-3 * np.eye(n)
 
 
-@pytest.mark.parametrize('kind1', ['linear', 'atan', 'tanh', 'sqrt'])
+@pytest.mark.parametrize('kind1', ['linear', 'atan', 'tanh', 'sqrt', 'parabola'])
 @pytest.mark.parametrize('kind2', ['linear', 'cubic', 'atan', 'tanh'])
 @pytest.mark.parametrize('speed_rows', [False, True])
 def test_barrier_rows_match_evaluate_barriers(kind1: str, kind2: str, speed_rows: bool) -> None:
