@@ -108,6 +108,8 @@ def _row_sum_lp(rows: np.ndarray, room: np.ndarray, weights: np.ndarray,
         left = room - fixed
         if np.any(left < 0.0):
             return None
+        if held.all():  # every joint at its cap, and the caps fit (left >= 0 above)
+            break
         loaded = slope > 0.0
         if not loaded.any():
             return None  # nothing bounds t: no row uses the authority

@@ -182,6 +182,24 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
     assert np.sum(authority / weights) >= np.sum(reference.x[:n] / weights) * (1 - 1e-6)
 
 
+def test_row_sums_with_every_joint_at_its_cap() -> None:
+    """When every joint's share would pass its cap, the authority is the caps (the rows
+    hold there, checked directly: ``rows @ cap <= room``); with caps above the shares none
+    is held: ``t = min(room / rows w) = min(9 / 3, 8 / 4) = 2`` on both joints."""
+    mass = np.array([[2.0, 1.0], [1.0, 3.0]])
+    bias = np.array([1.0, 2.0])
+    umax = np.array([10.0, 10.0])
+    weights = np.array([1.0, 1.0])
+    cap = np.array([0.5, 0.8])
+    assert np.all(mass @ cap + bias <= umax)
+    np.testing.assert_allclose(authority_row_sums(mass, bias, umax, weights, cap), cap,
+                               rtol=1e-12)
+    found = authority_row_sums(mass, bias, umax, weights, np.array([3.0, 3.0]))
+    assert found is not None
+    assert float(np.min(found)) == pytest.approx(2.0, rel=1e-6)
+    assert np.all(mass @ found + bias <= umax + 1e-9)
+
+
 @pytest.mark.slow
 def test_authority_holds_for_the_true_dynamics(certified_arm) -> None:  # noqa: ANN001, F811
     """Every |a_i| <= e_i (all 2^n vertices) maps to a torque in the box at sampled states,
