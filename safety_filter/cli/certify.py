@@ -32,7 +32,7 @@ def certify_settings(args: argparse.Namespace) -> CertifySettings:
     """
     from safety_filter.certification.certify import CertifySettings
     from safety_filter.certification.dynamics_bounds import BoundSettings
-    from safety_filter.core.class_k import ClassK
+    from safety_filter.core.class_k import BRAKING_FAMILIES, ClassK
 
     bounds = BoundSettings(samples=args.samples, inflation=args.inflation, seed=args.seed)
     if args.falsifier_states < 0:
@@ -49,8 +49,15 @@ def certify_settings(args: argparse.Namespace) -> CertifySettings:
         extra['beta_cap_share'] = args.beta_cap_share
     if args.velocity_headroom is not None:
         extra['velocity_headroom'] = args.velocity_headroom
+    if args.alpha1 in BRAKING_FAMILIES and args.alpha1_scale is None:
+        # the braking families' eps follows from the authority and the hold period
+        extra['families'] = (args.alpha1,)
+        alpha1 = None
+    else:
+        alpha1 = None if args.alpha1 == 'auto' else ClassK(
+            args.alpha1, 1.0 if args.alpha1_scale is None else args.alpha1_scale)
     return CertifySettings(
-        alpha1=None if args.alpha1 == 'auto' else ClassK(args.alpha1, args.alpha1_scale),
+        alpha1=alpha1,
         alpha2=ClassK(args.alpha2, args.alpha2_scale),
         control_rate_hz=args.control_rate,
         sampling_factor=args.sampling_factor,
@@ -211,8 +218,11 @@ def add_certify_parser(commands: argparse._SubParsersAction) -> None:
                         help='class-K family of the velocity barrier (default: auto, the '
                         'design with the largest safe set that certifies; see '
                         'docs/method.md)')
-    method.add_argument('--alpha1-scale', type=float, default=1.0,
-                        help='bend of atan/tanh alpha1, eps of sqrt [rad or m] (default: 1)')
+    method.add_argument('--alpha1-scale', type=float, default=None,
+                        help='bend of atan/tanh alpha1, eps of sqrt and parabola [rad or m] '
+                        '(default: 1 for atan/tanh; for sqrt and parabola the eps that '
+                        'keeps the drift of their slope over a hold at a tenth of the '
+                        'authority, docs/method.md)')
     method.add_argument('--alpha2', choices=ALPHA2_KINDS, default='linear',
                         help='class-K family of the rate condition (default: linear)')
     method.add_argument('--alpha2-scale', type=float, default=1.0,

@@ -218,6 +218,24 @@ def test_permissiveness_options_reach_the_settings() -> None:
     assert (predicted.cap_share, predicted.gamma_share) == (0.2, 0.95)
 
 
+@pytest.mark.parametrize('family', ['sqrt', 'parabola'])
+def test_a_braking_family_without_a_scale_gets_the_automatic_eps(family: str) -> None:
+    """--alpha1 sqrt/parabola alone: certification picks eps (the family is the only one
+    tried); with --alpha1-scale the given eps; atan without a scale bends at 1."""
+    from safety_filter.cli.certify import certify_settings
+    from safety_filter.cli.main import build_parser
+    from safety_filter.core.class_k import ClassK
+
+    parser = build_parser()
+    automatic = certify_settings(parser.parse_args(['certify', '--alpha1', family]))
+    assert automatic.alpha1 is None and automatic.families == (family,)
+    given = certify_settings(parser.parse_args(['certify', '--alpha1', family,
+                                                '--alpha1-scale', '0.004']))
+    assert given.alpha1 == ClassK(family, 0.004)
+    bent = certify_settings(parser.parse_args(['certify', '--alpha1', 'atan']))
+    assert bent.alpha1 == ClassK('atan', 1.0)
+
+
 def test_the_delay_option_says_whether_the_filter_predicts_over_it() -> None:
     """--delay up-to (default): no prediction, the hold covers the delay too; --delay fixed:
     the filter predicts over the declared delay and the margin covers one hold."""
