@@ -122,7 +122,7 @@ class CertifySettings:
     velocity_barrier: bool = True
     per_joint_envelopes: bool = True
     braking_slope_share: float = 0.1
-    braking_distance_share: float = 0.1
+    braking_distance_share: float = 0.02
     acceleration_bound_factor: float = 1.5
     gamma_margin: float | None = None
     beta_margin: float = 1.2

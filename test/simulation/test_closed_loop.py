@@ -99,6 +99,8 @@ def test_filter_keeps_limits(arm: str, delay: str, slowest: bool, end: str,
     assert certificate.certified, certificate.reasons
     assert certificate.control_rate_hz == CONFIGURED_RATE_HZ
     assert bool(certificate.prediction_s) == (delay == 'predicted')
+    if delay == 'up-to':  # these loops cover the family the default certification keeps
+        assert certificate.alpha1.kind == 'parabola'
     rate, plant_delay = covered_loop(certificate, slowest)
     if slowest:
         assert rate == SLOW_RATE_HZ
