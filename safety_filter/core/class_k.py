@@ -18,8 +18,8 @@ extension). It has the same slope bound ``alpha'(0) = 1 / sqrt(2 eps)`` and the 
 curvature bound ``|alpha''| <= (2 eps)^-1.5`` as ``sqrt``, and ``alpha' alpha <= 1``; of
 all functions with those two properties it is the largest at every ``x`` (``alpha <= x k``
 from the slope bound, ``alpha^2 <= alpha(x1)^2 + 2 (x - x1)`` from the product bound), so
-it gives up ``eps / sqrt(2 x)`` of the braking speed where ``sqrt`` gives up
-``sqrt(2 eps)`` everywhere (docs/method.md).
+it gives up about ``eps / sqrt(2 x)`` of the braking speed where ``sqrt`` gives up about
+``sqrt(2 eps)`` (docs/method.md).
 """
 
 from __future__ import annotations
@@ -144,11 +144,11 @@ class ClassK:
 
     def boundary_curvature(self) -> float:
         """``max_{x > 0} |alpha''(x)| alpha(x)^2 / alpha'(0)`` for the braking families (0 for
-        the others): with ``v = gamma alpha(h)`` on the boundary of S, the slope term
-        ``gamma alpha'(h) v`` of the bounds moves with the motion at up to ``gamma^3`` times
-        this times ``alpha'(0)``. ``sqrt``: ``y0 (y - y0)^2 / y^3`` with ``y = sqrt(2 (x +
-        eps))``, largest at ``y = 3 y0``: 4/27. ``parabola``: ``sqrt(2 eps / (2 (x - eps)))``
-        past the tangent, largest where it starts: 1."""
+        the others, whose eps no rule sets): with ``v = gamma alpha(h)`` on the boundary of
+        S, the slope term ``gamma alpha'(h) v`` of the bounds moves with the motion at up to
+        ``gamma^3`` times this times ``alpha'(0)``. ``sqrt``: ``y0 (y - y0)^2 / y^3`` with
+        ``y = sqrt(2 (x + eps))``, largest at ``y = 3 y0``: 4/27. ``parabola``:
+        ``sqrt(2 eps / (2 (x - eps)))`` past the tangent, largest where it starts: 1."""
         if self.kind == 'sqrt':
             return 4.0 / 27.0
         if self.kind == 'parabola':
