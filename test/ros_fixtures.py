@@ -323,12 +323,19 @@ class Harness:
             'the filter node never published filtered_torque and status'
 
     # ---- services
-    def _call(self, client: Any, request: Any, timeout: float = 20.0) -> Any:
+    def _call(self, client: Any, request: Any, timeout: float = 20.0, attempts: int = 1
+              ) -> Any:
+        """One service call; a request that only reads (``attempts`` > 1) is sent again when
+        no answer comes: right after discovery DDS may drop the first response (the server's
+        reply writer not yet matched to this client although ``wait_for_service`` saw it)."""
         assert client.wait_for_service(timeout_sec=timeout), \
             f'service {client.srv_name} not available'
-        future = client.call_async(request)
-        assert wait_for(future.done, timeout), f'no answer from {client.srv_name}'
-        return future.result()
+        for _ in range(attempts):
+            future = client.call_async(request)
+            if wait_for(future.done, timeout):
+                return future.result()
+            client.remove_pending_request(future)
+        raise AssertionError(f'no answer from {client.srv_name} ({attempts} requests)')
 
     def change_state(self, transition: str) -> bool:
         request = ChangeState.Request()
@@ -336,7 +343,8 @@ class Harness:
         return bool(self._call(self.change_state_client, request).success)
 
     def get_state(self) -> str:
-        return str(self._call(self.get_state_client, GetState.Request()).current_state.label)
+        return str(self._call(self.get_state_client, GetState.Request(), timeout=10.0,
+                              attempts=3).current_state.label)
 
     def set_parameter(self, name: str, value: Any) -> Any:
         """Set one parameter through the node's set_parameters service; its result."""
@@ -348,7 +356,8 @@ class Harness:
         request = GetParameters.Request()
         request.names = [name]
         return parameter_value_to_python(
-            self._call(self.get_parameters_client, request).values[0])
+            self._call(self.get_parameters_client, request, timeout=10.0,
+                       attempts=3).values[0])
 
     def latest_diagnostic(self, since: float = 0.0) -> DiagnosticStatus | None:
         """The latest filter diagnostic status received after ``since`` (steady time)."""
