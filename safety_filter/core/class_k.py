@@ -138,7 +138,7 @@ class ClassK:
         """``sup_{0 < x <= upper} alpha(x) / x``: the slope that the sampled-data cap uses."""
         if self.kind in ('linear', 'atan', 'tanh'):
             return 1.0  # concave through the origin with slope 1 there
-        if self.kind in ('sqrt', 'parabola'):
+        if self.kind in BRAKING_FAMILIES:
             return float(self.derivative(0.0))  # concave: the slope at 0, 1 / sqrt(2 eps)
         return float(upper) ** 2  # cubic: x^3 / x = x^2, largest at the upper end
 
