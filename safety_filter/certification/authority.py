@@ -215,3 +215,11 @@ def useful_authority(model: RobotModel, settings: CertifySettings) -> np.ndarray
     damping and the coupling of light links), without enlarging S noticeably."""
     vmax = np.array(model.velocity_limit)
     return vmax ** 2 / (2.0 * settings.braking_distance_share * np.array(model.position_range))
+
+
+def margin_reserve(margin: np.ndarray, settings: CertifySettings) -> np.ndarray:
+    """What the margin-reserving row-sum authority sets aside before sharing out the rest
+    (docs/method.md, Certification, 2.): the sampled-data margin and the drift it covers
+    (the margin over its inflation), so that the usable authority ``e - margin`` exceeds
+    that drift and a joint outside S is brought back (``barriers.recovery_time_bound``)."""
+    return np.asarray(margin, dtype=float) * (1.0 + 1.0 / max(settings.margin_inflation, 1.0))

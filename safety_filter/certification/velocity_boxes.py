@@ -16,6 +16,7 @@ from safety_filter.certification.authority import (
     authority_problem,
     authority_row_sums,
     authority_torque_coupling,
+    margin_reserve,
     useful_authority,
 )
 from safety_filter.certification.certify_settings import CertifySettings, split_family
@@ -39,12 +40,21 @@ def design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifyS
     kind, rows = split_family(kind)
     rows = rows and settings.velocity_barrier
     fractions = np.broadcast_to(np.asarray(fractions, dtype=float), (model.n_joints,))
+    margin = np.broadcast_to(np.asarray(margin, dtype=float), (model.n_joints,))
     velocity_box = fractions * np.array(model.velocity_limit)
     disturbance, candidates = _authority_candidates(model, bounds, settings, velocity_box,
                                                     exact_model, rows)
+    trials = list(candidates.items())
+    if np.any(margin > 0.0) and 'acceleration_authority' in candidates:
+        # The same row-sum condition, its authority shared out with the margin already
+        # reserved (docs/method.md, Certification, 2.): a joint whose margin takes most of
+        # its authority then gets usable authority from the others.
+        trials.append(('acceleration_authority', _authority_with_margin_reserved(
+            model, bounds, settings, velocity_box, exact_model, rows, margin)))
     best: Design | None = None
+    chosen: np.ndarray | None = None
     r = np.array(model.position_range)
-    for condition, authority in candidates.items():
+    for condition, authority in trials:
         if authority is None:
             continue
         usable = authority - margin
@@ -65,7 +75,9 @@ def design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifyS
         if rows and settings.acceleration_bound_factor > 0.0:
             design.accel_bound = settings.acceleration_bound_factor * authority
         if best is None or design_score(model, design) > design_score(model, best):
-            best = design
+            best, chosen = design, authority
+    if best is not None and best.condition == 'acceleration_authority':
+        candidates = {**candidates, 'acceleration_authority': chosen}
     return best, candidates
 
 
@@ -100,6 +112,40 @@ def _authority_candidates(model: RobotModel, bounds: DynamicsBounds,
         candidates['torque_coupling'] = coupled
     bounds.authority_cache[key] = (disturbance, candidates)
     return disturbance, candidates
+
+
+def _authority_with_margin_reserved(model: RobotModel, bounds: DynamicsBounds,
+                                    settings: CertifySettings, velocity_box: np.ndarray,
+                                    exact_model: bool, rows: bool, margin: np.ndarray
+                                    ) -> np.ndarray | None:
+    """The row-sum authority ``e = reserve + s`` whose spare part ``s`` the linear program
+    shares out (its smallest share first) once ``reserve`` (:func:`margin_reserve`: the
+    margin and the drift it covers) is set aside: the rows hold
+    ``|M| (reserve + s) + bias <= umax``, solved for ``s``, and the cap on ``e`` becomes one
+    on ``s``. The plain program shares out ``e`` itself, which leaves a joint whose margin
+    is most of its authority almost nothing usable. Both are authorities of the same
+    condition; the design keeps the one with the larger safe set."""
+    key = ('margin reserved', velocity_box.tobytes(), margin.tobytes(), exact_model, rows,
+           repr(settings))
+    if key in bounds.authority_cache:
+        return bounds.authority_cache[key]
+    problem = authority_problem(model, bounds, settings, velocity_box, exact_model)
+    umax = np.array(model.effort_limit)
+    weights = umax / np.diag(bounds.mass_max)
+    reserve = margin_reserve(margin, settings)
+    cap = useful_authority(model, settings) - reserve if rows else None
+    authority = None
+    if cap is None or np.all(cap > 0.0):
+        samples = None
+        if problem.samples is not None:
+            mass, extra, bias = problem.samples
+            samples = (mass, extra, bias + mass @ reserve + extra @ reserve)
+        cuts = bounds.authority_cache.setdefault('margin reserved rows', set())
+        spare = authority_row_sums(problem.mass, problem.bias + problem.mass @ reserve, umax,
+                                   weights, cap, samples=samples, start_rows=cuts)
+        authority = None if spare is None else spare + reserve
+    bounds.authority_cache[key] = authority
+    return authority
 
 
 def design_for_scale(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,

@@ -40,6 +40,7 @@ from scipy.optimize import linprog
 from safety_filter.certification.authority import (
     authority_problem,
     authority_row_sums,
+    margin_reserve,
     useful_authority,
 )
 from safety_filter.certification.certify import CertifySettings, certify_with_evidence
@@ -148,16 +149,29 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
     weights = umax / np.diag(outcome.bounds.mass_max)
     # Designs with velocity barriers do not spend authority beyond what enlarges S.
     cap = useful_authority(model, CertifySettings()) if c.has_velocity_barriers else None
-    authority = authority_row_sums(problem.mass, problem.bias, umax, weights, cap,
-                                   samples=problem.samples)
-    assert authority is not None
-    np.testing.assert_allclose(authority, c.authority, rtol=1e-9)
-    assert np.all(authority > 0.0)
-    # Every sampled configuration's rows hold, as one linear program with all of them.
+    plain = authority_row_sums(problem.mass, problem.bias, umax, weights, cap,
+                               samples=problem.samples)
+    assert plain is not None
     n = len(umax)
     mass, extra, bias = problem.samples
     rows = (mass + extra).reshape(-1, n)
-    room = (umax - bias).reshape(-1)
+    # The certificate's authority is the plain program's, or the one that reserves the
+    # margin and shares out the spare (velocity_boxes, docs/method.md): the same program
+    # with each row's room and the cap less what the reserve takes.
+    reserve = np.zeros(n)
+    if not np.allclose(plain, c.authority, rtol=1e-9):
+        reserve = margin_reserve(np.array(c.sampling_margin), settings)
+    room = (umax - bias).reshape(-1) - rows @ reserve
+    if cap is not None:
+        cap = cap - reserve
+    shifted = (mass, extra, bias + (mass + extra) @ reserve)
+    spare = authority_row_sums(problem.mass, problem.bias + problem.mass @ reserve, umax,
+                               weights, cap, samples=shifted)
+    assert spare is not None
+    np.testing.assert_allclose(spare + reserve, c.authority, rtol=1e-9)
+    authority = spare
+    assert np.all(authority > 0.0)
+    # Every sampled configuration's rows hold, as one linear program with all of them.
     assert np.all(rows @ authority <= room + 1e-12 * np.max(umax))
     # ... and no row is above the row of separate maxima (it only removes conservatism).
     assert np.all(mass + extra <= problem.mass + 1e-6 * np.abs(problem.mass))
