@@ -47,6 +47,7 @@ from safety_filter.certification.certify import CertifySettings, certify_with_ev
 from safety_filter.certification.design_formulas import beta_star, gamma_star
 from safety_filter.certification.dynamics_bounds import BoundSettings, estimate_bounds
 from safety_filter.certification.falsifier import FalsifierResult, falsify
+from safety_filter.certification.velocity_boxes import _authority_with_margin_reserved
 from safety_filter.core.certificate import (
     PARAMETER_FILE_KEY,
     Certificate,
@@ -194,6 +195,43 @@ def test_authority_lp_against_highs(certified_arm) -> None:  # noqa: ANN001, F81
     assert float(np.min((authority / weights)[~held])) == pytest.approx(t_star, rel=1e-6)
     # Phase 2 only spends slack: the result is no worse than the phase-1 point anywhere.
     assert np.sum(authority / weights) >= np.sum(reference.x[:n] / weights) * (1 - 1e-6)
+
+
+@pytest.mark.slow
+def test_reserving_the_margin_shares_out_what_is_usable(certified_arm) -> None:  # noqa: ANN001, F811
+    """The margin-reserving authority (docs/method.md, Certification, 2.): a joint whose
+    margin is most of its plain authority gets more usable authority, every joint's usable
+    authority exceeds the drift its margin covers, and every sampled row still holds."""
+    model, outcome = certified_arm
+    c = outcome.certificate
+    settings = CertifySettings(delay_periods=int(c.settings['certify']['delay_periods']))
+    box = np.array(c.velocity_bound)
+    plain = authority_row_sums(*_row_sum_data(model, outcome.bounds, settings, box))
+    margin = 0.02 * plain
+    margin[0] = 0.9 * plain[0]  # the plain program would leave it a tenth usable
+    reserved = _authority_with_margin_reserved(model, outcome.bounds, settings, box, False,
+                                               True, margin)
+    assert reserved is not None
+    usable = reserved - margin
+    assert usable[0] > 2.0 * (plain[0] - margin[0])
+    assert np.all(usable > margin / settings.margin_inflation)
+    assert np.all(reserved <= useful_authority(model, settings) * (1.0 + 1e-9))
+    problem = authority_problem(model, outcome.bounds, settings, box)
+    mass, extra, bias = problem.samples
+    n = model.n_joints
+    rows = (mass + extra).reshape(-1, n)
+    room = (np.array(model.effort_limit) - bias).reshape(-1)
+    assert np.all(rows @ reserved <= room + 1e-9 * np.max(model.effort_limit))
+    np.testing.assert_allclose(margin_reserve(margin, settings), margin * (1.0 + 1.0 / 1.5))
+
+
+def _row_sum_data(model: RobotModel, bounds, settings: CertifySettings,  # noqa: ANN001
+                  box: np.ndarray) -> tuple:
+    """The plain row-sum program's arguments at a box, as certification passes them."""
+    problem = authority_problem(model, bounds, settings, box)
+    umax = np.array(model.effort_limit)
+    return (problem.mass, problem.bias, umax, umax / np.diag(bounds.mass_max),
+            useful_authority(model, settings), problem.samples)
 
 
 def test_row_sums_with_every_joint_at_its_cap() -> None:
