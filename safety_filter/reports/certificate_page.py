@@ -8,6 +8,8 @@ import json
 import math
 from typing import Any
 
+import numpy as np
+
 from safety_filter.certification.certify import CertificationOutcome
 from safety_filter.core.robot_model import RobotModel
 from safety_filter.reports.certificate_plots import SUMMARY_PLOT
@@ -22,7 +24,6 @@ from safety_filter.reports.certificate_tables import (
     recovery_line,
     scale_line,
     seconds_line,
-    slow_box_description,
     slow_design_rows,
     verdict_text,
 )
@@ -131,12 +132,13 @@ def certificate_page(outcome: CertificationOutcome, model: RobotModel,
     slow_rows = slow_design_rows(outcome, model)
     if slow_rows:
         slow = cert.slow_design
+        share = float(np.max(np.asarray(slow.velocity_bound) / np.asarray(slow.velocity_limit)))
         falsifier = slow.falsifier or {}
         parts.append('<h2>Slow design</h2>')
         parts.append(
-            f'<p>A second certified design whose velocity boxes are '
-            f'{esc(slow_box_description(cert))}: with the Coriolis torque of the '
-            'smaller boxes freed it brakes harder. The safe set S is the union of its set and '
+            f'<p>A second certified design whose velocity boxes are at most '
+            f'{100 * share:.0f}&nbsp;% of the rated speeds: with the Coriolis torque of the '
+            'smaller box freed it brakes harder. The safe set S is the union of its set and '
             'the main one; at each step the filter keeps the state in a set that contains it, '
             'whichever changes the nominal less (docs/method.md, &ldquo;The slow set&rdquo;). '
             f'Falsifier on the slow design: {falsifier.get("states", 0)} states, '

@@ -18,7 +18,6 @@ import numpy as np
 
 from safety_filter.certification.certify import CertificationOutcome
 from safety_filter.core.barriers import braking_set_area, safe_set_area
-from safety_filter.core.certificate import Certificate
 from safety_filter.core.class_k import BRAKING_FAMILIES
 from safety_filter.core.robot_model import RobotModel
 
@@ -239,7 +238,8 @@ def design_lines(certificate: Any, model: RobotModel) -> list[str]:
                      + (f'; envelope % of rated: {speeds}' if speeds else ''))
     slow = getattr(certificate, 'slow_design', None)
     if slow is not None:
-        lines.append(f'slow design (velocity boxes {slow_box_description(certificate)}): '
+        share = np.asarray(slow.velocity_bound) / np.asarray(slow.velocity_limit)
+        lines.append(f'slow design (velocity boxes up to {100 * share.max():.0f} % of rated): '
                      'kept; the safe set is the union of the two (its table below)')
     lines += [note for note in settings.get('notes') or []
               if note.startswith('slow design left out')]
@@ -358,24 +358,6 @@ def slow_design_rows(outcome: CertificationOutcome, model: RobotModel) -> list[d
     return rows
 
 
-def slow_box_description(certificate: Certificate) -> str:
-    """How fast the slow design's boxes are, e.g. ``'at most 55 % of the rated speeds
-    (tool_roll keeps its main box: its authority is at its cap)'``; empty without one."""
-    slow = certificate.slow_design
-    if slow is None:
-        return ''
-    share = np.asarray(slow.velocity_bound) / np.asarray(slow.velocity_limit)
-    recorded = slow.settings.get('certify', {}).get('held_box') or [None] * len(share)
-    held = np.array([x is not None for x in recorded], dtype=bool)
-    searched = share[~held] if (~held).any() else share
-    text = f'at most {100 * float(searched.max()):.0f} % of the rated speeds'
-    if held.any():
-        names = ', '.join(name for name, h in zip(certificate.joint_names, held) if h)
-        verb = 'keeps its' if held.sum() == 1 else 'keep their'
-        text += f' ({names} {verb} main box: authority at its cap)'
-    return text
-
-
 def format_slow_design_table(outcome: CertificationOutcome, model: RobotModel) -> str:
     """The slow design as plain text (empty without one): per joint its authority,
     margin, gamma, certified velocity, its own %brk, and what the union adds."""
@@ -383,13 +365,13 @@ def format_slow_design_table(outcome: CertificationOutcome, model: RobotModel) -
     if not rows:
         return ''
     slow = outcome.certificate.slow_design
+    share = np.asarray(slow.velocity_bound) / np.asarray(slow.velocity_limit)
     width = min(max([5] + [len(row['joint']) for row in rows]), 20)
     header = (f'{"joint":<{width}} {"e":>6} {"margin":>6} {"gamma":>6} {"v_cert":>6} '
               f'{"%rat":>4} {"%brk":>4} {"S+":>5} {"%brkU":>5}')
-    lines = textwrap.wrap('slow design (velocity boxes '
-                          f'{slow_box_description(outcome.certificate)}): the safe set S is '
-                          'the union of its set and the main one', TABLE_WIDTH)
-    lines += [header, '-' * len(header)]
+    lines = textwrap.wrap(f'slow design (velocity boxes up to {100 * share.max():.0f} % of '
+                          'the rated speeds): the safe set S is the union of its set and the '
+                          'main one', TABLE_WIDTH) + [header, '-' * len(header)]
     for row in rows:
         name = row['joint'] if len(row['joint']) <= width else row['joint'][:width - 1] + '~'
         lines.append(
