@@ -48,7 +48,6 @@ from safety_filter._version import __version__
 from safety_filter.certification.authority import (
     authority_row_sums,
     observer_time_constants,
-    useful_authority,
 )
 from safety_filter.certification.certify_settings import (
     LEMMA_SUFFIX,
@@ -147,8 +146,7 @@ def _add_slow_design(model: RobotModel, settings: CertifySettings, main: Certifi
                    mean_over_hold=first.acceleration_hold_s is not None,
                    lookahead=first.lookahead_s is not None,
                    velocity_headroom=1.0 - settings.slow_box_share,
-                   friction_error_box=tuple(float(x) for x in first.velocity_bound),
-                   held_box=_capped_joints_box(model, settings, first))
+                   friction_error_box=tuple(float(x) for x in first.velocity_bound))
     slow = _certify_design(model, form, progress, model_error_records=False)
     seconds = {stage: main.stage_seconds.get(stage, 0.0) + slow.stage_seconds.get(stage, 0.0)
                for stage in {*main.stage_seconds, *slow.stage_seconds}}
@@ -178,18 +176,6 @@ def _add_slow_design(model: RobotModel, settings: CertifySettings, main: Certifi
                     'slow_box': settings.slow_box_share}})
     return CertificationOutcome(certificate, main.bounds, main.velocity_scale,
                                 main.authority_by_condition, seconds, main.falsifier)
-
-
-def _capped_joints_box(model: RobotModel, settings: CertifySettings, main: Certificate
-                       ) -> tuple[float, ...]:
-    """The slow design's held box: the main box of each joint whose authority the main
-    design holds at its cap (``useful_authority``), NaN for the others. A slower box would
-    give such a joint no more authority, only a smaller slice of the slow set, and at its
-    slow box the slow set would bind a motion the main set lets through."""
-    capped = (np.asarray(main.authority) >= useful_authority(model, settings) * (1.0 - 1e-9)
-              ) & main.has_velocity_barriers  # without them the authority has no cap
-    return tuple(float(x) if hold else float('nan')
-                 for x, hold in zip(main.velocity_bound, capped))
 
 
 def _certify_design(model: RobotModel, settings: CertifySettings,

@@ -114,10 +114,6 @@ class CertifySettings:
             friction spreads [rad/s or m/s per joint]; None (default): the design's own box.
             The slow design takes the main design's, so that its range of the disturbance
             estimate contains the main design's (one observer serves both).
-        held_box: velocity box entries that every design keeps [rad/s or m/s per joint;
-            NaN: searched]; None (default): all searched. The slow design holds the joints
-            whose authority the main design already caps at their main box: slowing them
-            would give them nothing (docs/method.md, "The slow set").
     """
 
     alpha1: ClassK | None = None
@@ -152,7 +148,6 @@ class CertifySettings:
     lookahead: bool | None = False
     slow_box: float | None = None
     friction_error_box: tuple[float, ...] | None = None
-    held_box: tuple[float, ...] | None = None
 
     def __post_init__(self) -> None:
         kinds1, kinds2 = ', '.join(ALPHA1_KINDS), ', '.join(ALPHA2_KINDS)
@@ -191,9 +186,6 @@ class CertifySettings:
             raise InvalidValue('slow_box', self.slow_box,
                                '0 with delay_predicted (the filter predicts over the delay '
                                'with one design only)')
-        if self.held_box is not None and not all(np.isnan(x) or x > 0.0
-                                                  for x in self.held_box):
-            raise InvalidValue('held_box', list(self.held_box), 'entries > 0 or NaN')
         if not (np.isfinite(self.observer_periods) and self.observer_periods >= 2.0):
             raise InvalidValue('observer_periods', self.observer_periods, 'finite and >= 2')
         if not (np.isfinite(self.observer_noise_share) and self.observer_noise_share > 0.0):
@@ -286,6 +278,4 @@ class CertifySettings:
         plain['alpha1'] = None if self.alpha1 is None else self.alpha1.to_dict()
         plain['families'] = list(self.families)
         plain['alpha2'] = self.alpha2.to_dict()
-        if self.held_box is not None:  # JSON has no NaN: null marks a searched entry
-            plain['held_box'] = [None if np.isnan(x) else x for x in self.held_box]
         return plain

@@ -42,11 +42,6 @@ def design_for_box(model: RobotModel, bounds: DynamicsBounds, settings: CertifyS
     fractions = np.broadcast_to(np.asarray(fractions, dtype=float), (model.n_joints,))
     margin = np.broadcast_to(np.asarray(margin, dtype=float), (model.n_joints,))
     velocity_box = fractions * np.array(model.velocity_limit)
-    if settings.held_box is not None:
-        held = np.array(settings.held_box, dtype=float)
-        if held.shape != velocity_box.shape:
-            raise ValueError(f'held_box has {held.size} entries for {model.n_joints} joints')
-        velocity_box = np.where(np.isnan(held), velocity_box, held)
     disturbance, candidates = _authority_candidates(model, bounds, settings, velocity_box,
                                                     exact_model, rows)
     trials = list(candidates.items())

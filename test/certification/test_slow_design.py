@@ -15,7 +15,6 @@ import numpy as np
 import pytest
 from certify_fixtures import certified_demo_arm
 
-from safety_filter.certification.authority import useful_authority
 from safety_filter.certification.certify import MIN_SLOW_GROWTH, CertifySettings
 from safety_filter.certification.certify_settings import DEFAULT_SLOW_BOX
 from safety_filter.cli.certify import SLOW_BOX_SHOWN
@@ -34,30 +33,17 @@ def test_the_default_slow_box_and_when_there_is_none() -> None:
         CertifySettings(slow_box=-0.1)
     with pytest.raises(InvalidValue, match='slow_box'):
         CertifySettings(slow_box=0.01)  # below the slowest box the search tries
-    with pytest.raises(InvalidValue, match='held_box'):
-        CertifySettings(held_box=(1.0, 0.0))
-    assert CertifySettings(held_box=(1.0, float('nan'))).held_box[0] == 1.0
 
 
 def test_the_slow_design_is_certified_slower_and_brakes_harder() -> None:
-    model, outcome = certified_demo_arm('bench6')
+    _, outcome = certified_demo_arm('bench6')
     main = outcome.certificate
     slow = main.slow_design
     assert slow is not None, main.settings.get('notes')
     assert slow.certified and slow.falsifier['states'] > 0 and slow.falsifier['infeasible'] == 0
-    # A joint whose authority the main design caps keeps its main box (slowing it would
-    # give it no more authority); bench6's flange roll is one (52.8 rad/s^2 at the cap).
-    capped = np.asarray(main.authority) >= useful_authority(model, CertifySettings()) * (
-        1.0 - 1e-9)
-    assert capped.any() and not capped.all()
-    held = np.asarray(slow.settings['certify']['held_box'], dtype=float)
-    np.testing.assert_array_equal(np.isnan(held), ~capped)
-    np.testing.assert_allclose(np.asarray(slow.velocity_bound)[capped],
-                               np.asarray(main.velocity_bound)[capped])
     share = np.asarray(slow.velocity_bound) / np.asarray(slow.velocity_limit)
-    assert np.all(share[~capped] <= DEFAULT_SLOW_BOX + 1e-9)
-    assert np.all(slow.usable_authority[~capped]
-                  >= main.usable_authority[~capped] * (1.0 - 1e-9))
+    assert np.all(share <= DEFAULT_SLOW_BOX + 1e-9)
+    assert np.all(slow.usable_authority >= main.usable_authority * (1.0 - 1e-9))
     assert np.any(slow.usable_authority > main.usable_authority * 1.05)
     # and the union enlarges some joint's slice of S by the share certification asks for
     alone = replace(main, slow_design=None).slice_areas()
