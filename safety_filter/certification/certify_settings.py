@@ -22,7 +22,7 @@ from safety_filter.errors import InvalidValue
 LEMMA_SUFFIX = ':lemma'
 # The slow design's velocity boxes by default [share of the rated speeds]: on the 6-joint demo
 # arm a motion at half the rated speeds then stays inside it (docs/method.md, "The slow set").
-DEFAULT_SLOW_BOX = 0.55
+DEFAULT_SLOW_BOX = 0.6
 
 
 def split_family(name: str) -> tuple[str, bool]:

@@ -16,7 +16,7 @@ from safety_filter.errors import ExitCode, FileFormatError, InvalidValue
 
 # certify_settings.DEFAULT_SLOW_BOX, for the help without importing numpy (a test checks
 # that they agree).
-SLOW_BOX_SHOWN = 0.55
+SLOW_BOX_SHOWN = 0.6
 
 if TYPE_CHECKING:
     from safety_filter.certification.certify import CertifySettings

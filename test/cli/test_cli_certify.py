@@ -295,7 +295,7 @@ def test_lookahead_reaches_the_settings(choice: str, expected: bool | None) -> N
 
 
 @pytest.mark.parametrize('options, expected', [
-    ([], 0.55), (['--slow-box', '0.4'], 0.4), (['--slow-box', '0'], 0.0),
+    ([], 0.6), (['--slow-box', '0.4'], 0.4), (['--slow-box', '0'], 0.0),
     (['--delay', 'fixed'], 0.0)])
 def test_slow_box_reaches_the_settings(options: list[str], expected: float) -> None:
     from safety_filter.cli.certify import certify_settings

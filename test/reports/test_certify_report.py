@@ -232,14 +232,14 @@ def test_the_report_says_whether_the_slow_design_was_kept_and_why_not() -> None:
 
     model, outcome = certified_demo_arm('bench6')
     assert outcome.certificate.slow_design is not None
-    assert any(line.startswith('slow design (velocity boxes up to 55 %') and 'kept' in line
+    assert any(line.startswith('slow design (velocity boxes up to 60 %') and 'kept' in line
                for line in design_lines(outcome.certificate, model))
     rows = slow_design_rows(outcome, model)
     assert [row['joint'] for row in rows] == list(model.joint_names)
     # the union holds the main set, so it is never smaller; on bench6 the shoulder gains most
     assert all(row['union_growth_percent'] >= -1e-9 for row in rows)
     assert max(rows, key=lambda row: row['union_growth_percent'])['joint'] == 'shoulder_pitch'
-    assert 'slow design (velocity boxes up to 55 %' in format_joint_table(outcome, model)
+    assert 'slow design (velocity boxes up to 60 %' in format_joint_table(outcome, model)
     model, outcome = certified_demo_arm('planar2')
     assert outcome.certificate.slow_design is None
     lines = design_lines(outcome.certificate, model)
