@@ -20,8 +20,9 @@ from safety_filter.core.robot_model import RobotModel
 from safety_filter.errors import InvalidValue
 
 LEMMA_SUFFIX = ':lemma'
-# The slow design's velocity boxes by default [share of the rated speeds]: on the 6-joint demo
-# arm a motion at half the rated speeds then stays inside it (docs/method.md, "The slow set").
+# The slow design's velocity boxes by default [share of the rated speeds]: on both demo arms a
+# motion at half the rated speeds then passes through it unchanged (a joint cruises there up to
+# vS - delta / beta_v; docs/method.md, "The slow set").
 DEFAULT_SLOW_BOX = 0.6
 
 
