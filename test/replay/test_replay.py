@@ -181,8 +181,12 @@ def test_a_smaller_beta_gives_different_intervention_figures(
     figures = compare(trial, model, {'certified': certificate,
                                      'smaller beta': _smaller_beta(certificate)})
     a, b = figures['certified']['intervention'], figures['smaller beta']['intervention']
+    print(f"\nintervention mean {a['mean']:.4g} / {b['mean']:.4g}, p95 {a['p95']:.4g} / "
+          f"{b['p95']:.4g}, max {a['max']:.4g} / {b['max']:.4g} [N m] (certified / smaller beta)")
     assert a['mean'] != pytest.approx(b['mean'], rel=1e-3)
-    assert a['max'] != pytest.approx(b['max'], rel=1e-3)
+    # (not the max: on planar2's certificate both betas' largest interventions, 70.48 and
+    # 70.50 N m, came within 0.03 % of each other)
+    assert a['p95'] != pytest.approx(b['p95'], rel=1e-3)
     # A smaller beta lets the bounds close in sooner: the filter intervenes more.
     assert b['mean'] > a['mean']
 
