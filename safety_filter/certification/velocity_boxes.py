@@ -13,6 +13,7 @@ from collections.abc import Callable
 import numpy as np
 
 from safety_filter.certification.authority import (
+    RowSumProblem,
     authority_problem,
     authority_row_sums,
     authority_torque_coupling,
@@ -91,7 +92,7 @@ def _authority_candidates(model: RobotModel, bounds: DynamicsBounds,
     key = (velocity_box.tobytes(), exact_model, rows, repr(settings))
     if key in bounds.authority_cache:
         return bounds.authority_cache[key]
-    problem = authority_problem(model, bounds, settings, velocity_box, exact_model)
+    problem = _row_sum_problem(model, bounds, settings, velocity_box, exact_model)
     mass, bias, disturbance = problem.mass, problem.bias, problem.disturbance
     umax = np.array(model.effort_limit)
     weights = umax / np.diag(bounds.mass_max)
@@ -114,6 +115,17 @@ def _authority_candidates(model: RobotModel, bounds: DynamicsBounds,
     return disturbance, candidates
 
 
+def _row_sum_problem(model: RobotModel, bounds: DynamicsBounds, settings: CertifySettings,
+                     velocity_box: np.ndarray, exact_model: bool) -> RowSumProblem:
+    """:func:`authority_problem`, kept in ``bounds.authority_cache``: the plain and the
+    margin-reserving authority take the same rows at a box."""
+    key = ('row-sum problem', velocity_box.tobytes(), exact_model, repr(settings))
+    if key not in bounds.authority_cache:
+        bounds.authority_cache[key] = authority_problem(model, bounds, settings, velocity_box,
+                                                        exact_model)
+    return bounds.authority_cache[key]
+
+
 def _authority_with_margin_reserved(model: RobotModel, bounds: DynamicsBounds,
                                     settings: CertifySettings, velocity_box: np.ndarray,
                                     exact_model: bool, rows: bool, margin: np.ndarray
@@ -129,7 +141,7 @@ def _authority_with_margin_reserved(model: RobotModel, bounds: DynamicsBounds,
            repr(settings))
     if key in bounds.authority_cache:
         return bounds.authority_cache[key]
-    problem = authority_problem(model, bounds, settings, velocity_box, exact_model)
+    problem = _row_sum_problem(model, bounds, settings, velocity_box, exact_model)
     umax = np.array(model.effort_limit)
     weights = umax / np.diag(bounds.mass_max)
     reserve = margin_reserve(margin, settings)
