@@ -9,13 +9,15 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.optimize import minimize
 
 from safety_filter.certification.certify_settings import CertifySettings
 from safety_filter.core.class_k import BRAKING_FAMILIES, ClassK
 from safety_filter.core.model_uncertainty import DisturbanceBound
 
 BETA_MIN_MARGIN = 1.02  # beta may sit at the cap if that is still 2 % above beta*
+# beta*'s refinement: pattern searches from this many of the grid's best points, with this
+# stencil width, halving the step this many times.
+_REFINE_STARTS, _REFINE_STENCIL, _REFINE_ROUNDS = 5, 7, 24
 
 
 @dataclass
@@ -92,38 +94,48 @@ def slice_ratio(x: np.ndarray, t: np.ndarray, r: float, e_eff: float, gamma: flo
 
 
 def beta_star(position_range: float, effective_authority: float, gamma: float, margin: float,
-              alpha1: ClassK, alpha2: ClassK, grid: int = 401, speed_bound: float = np.inf,
+              alpha1: ClassK, alpha2: ClassK, grid: int = 201, speed_bound: float = np.inf,
               speed_beta: float = 0.0) -> tuple[float, float, float]:
     """``beta*`` for one joint: dense grid over its slice of S, then local refinement.
+
+    The refinement is a pattern search from the grid's best points: a 7 x 7 stencil around
+    each, recentred on its best value and halved, down to 2^-24 of a grid cell. It needs
+    no gradient, so the kinks of the ratio (a maximum of several bounds) do not stall it.
 
     Returns ``(beta*, hp, t)`` with the maximiser's coordinates (``inf`` when some state on
     the boundary cannot be made feasible by any beta: gamma is too large). ``speed_bound``
     and ``speed_beta`` describe the velocity barriers when S has them.
     """
     r = float(position_range)
-    xs = np.linspace(0.0, r, grid)
-    ts = np.linspace(0.0, 1.0, grid)
-    x, t = np.meshgrid(xs, ts, indexing='ij')
+    x, t = np.meshgrid(np.linspace(0.0, r, grid), np.linspace(0.0, 1.0, grid), indexing='ij')
     extra = (float(speed_bound), float(speed_beta))
     values = slice_ratio(x, t, r, effective_authority, gamma, margin, alpha1, alpha2, *extra)
     k = np.unravel_index(int(np.argmax(values)), values.shape)
     best = float(values[k])
     if not np.isfinite(best):
         return (float(best), float(x[k]), float(t[k]))
-    best_x, best_t = float(x[k]), float(t[k])
-    order = np.argsort(values, axis=None)[::-1][:3]
-    for flat in order:
-        i, j = np.unravel_index(int(flat), values.shape)
-
-        def negative(z: np.ndarray) -> float:
-            return -float(slice_ratio(np.array(z[0]), np.array(z[1]), r, effective_authority,
-                                       gamma, margin, alpha1, alpha2, *extra))
-
-        found = minimize(negative, np.array([x[i, j], t[i, j]]), method='L-BFGS-B',
-                         bounds=[(0.0, r), (0.0, 1.0)])
-        if np.isfinite(found.fun) and -found.fun > best:
-            best, best_x, best_t = -float(found.fun), float(found.x[0]), float(found.x[1])
-    return max(best, 0.0), best_x, best_t
+    order = np.argsort(values, axis=None)[::-1][:_REFINE_STARTS]
+    starts = np.arange(len(order))
+    at_x, at_t, at_value = x.ravel()[order], t.ravel()[order], values.ravel()[order]
+    step_x, step_t = r / (grid - 1), 1.0 / (grid - 1)
+    stencil = np.linspace(-1.0, 1.0, _REFINE_STENCIL)
+    for _ in range(_REFINE_ROUNDS):
+        near_x, near_t = np.broadcast_arrays(
+            np.clip(at_x[:, None, None] + step_x * stencil[None, :, None], 0.0, r),
+            np.clip(at_t[:, None, None] + step_t * stencil[None, None, :], 0.0, 1.0))
+        near = slice_ratio(near_x, near_t, r, effective_authority, gamma, margin, alpha1,
+                           alpha2, *extra).reshape(len(starts), -1)
+        near = np.where(np.isfinite(near), near, -np.inf)
+        pick = np.argmax(near, axis=1)
+        better = near[starts, pick] > at_value
+        at_x = np.where(better, near_x.reshape(len(starts), -1)[starts, pick], at_x)
+        at_t = np.where(better, near_t.reshape(len(starts), -1)[starts, pick], at_t)
+        at_value = np.where(better, near[starts, pick], at_value)
+        step_x, step_t = 0.5 * step_x, 0.5 * step_t
+    i = int(np.argmax(at_value))
+    if at_value[i] > best:
+        return max(float(at_value[i]), 0.0), float(at_x[i]), float(at_t[i])
+    return max(best, 0.0), float(x[k]), float(t[k])
 
 
 def class_k_for_family(settings: CertifySettings, kind: str, usable: np.ndarray,

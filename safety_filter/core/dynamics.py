@@ -240,7 +240,8 @@ def mass_matrix_batch(model: RobotModel, q: np.ndarray, *, payload_mass: float =
     q = _as_batch(q, n)
     if _resolve_backend(backend) == 'pinocchio':
         twin = _pinocchio_chain(model, payload_mass)
-        return _loop(twin.mass_matrix, [q], n, (n, n))
+        flat = np.ascontiguousarray(q.reshape(-1, n))
+        return twin.mass_matrix_batch(flat).reshape(q.shape + (n,))
     chain = _ChainArrays(model, payload_mass)
     columns = _rnea(chain, q[..., None, :], None, np.eye(n), with_gravity=False)
     # columns[..., j, :] is M e_j, i.e. column j; symmetrise away rounding.

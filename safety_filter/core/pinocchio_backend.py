@@ -54,10 +54,23 @@ class PinocchioChain:
         self.data_free = self.model_free.createData()
         self._zero = np.zeros(chain.n)
         self._unit = np.eye(chain.n)
+        # crba fills the upper triangle only; the lower one is mirrored from it.
+        self._lower = np.tril_indices(chain.n, -1)
 
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
-        upper = np.triu(self._pin.crba(self.model, self.data, q))
-        return upper + np.triu(upper, 1).T
+        mass = np.array(self._pin.crba(self.model, self.data, q))
+        mass[self._lower] = mass.T[self._lower]
+        return mass
+
+    def mass_matrix_batch(self, q: np.ndarray) -> np.ndarray:
+        """``M(q)`` for ``q`` of shape ``(m, n)`` -> ``(m, n, n)``."""
+        out = np.empty(q.shape + q.shape[-1:])
+        crba = self._pin.crba
+        for index, row in enumerate(q):
+            out[index] = crba(self.model, self.data, row)
+        rows, columns = self._lower
+        out[:, rows, columns] = out[:, columns, rows]
+        return out
 
     def gravity(self, q: np.ndarray) -> np.ndarray:
         return np.array(self._pin.computeGeneralizedGravity(self.model, self.data, q))
