@@ -65,7 +65,7 @@ from safety_filter.online import filter_options as _options
 from safety_filter.online import kernels as _kernels
 from safety_filter.online.constructive import push_back_harder
 from safety_filter.online.delay_prediction import DelayPrediction
-from safety_filter.online.disturbance_observer import DisturbanceObserver
+from safety_filter.online.disturbance_observer import DisturbanceObserver, narrow_by_lag
 from safety_filter.online.filter_output import FilterOutput
 from safety_filter.online.hold_command import hold_command, rejected_output
 from safety_filter.online.input_checks import PositionJumpCheck, valid_position
@@ -390,9 +390,14 @@ class SafetyFilter:
         self._a_nom = None
         self._slow_now = self._both_sets = False
         self._k_authority = self._k_authority_main
+        lag = self._lag_acceleration(mass)
+        if lag is not None:
+            narrow_by_lag(self._rows, lag, self._k_authority_main)
         if self._k_barrier_slow is not None:
             worst_slow, _ = _kernels.barrier_rows(q, v, *self._k_barrier_slow, self._rows_slow,
                                                   self._smallest_slow)
+            if lag is not None:
+                narrow_by_lag(self._rows_slow, lag, self._k_authority_slow)
             if worst_slow >= 0.0 and worst >= 0.0:
                 # In both sets: the main design unless it changes the nominal and the slow
                 # one does not (or changes it less: both QPs are solved below).
@@ -482,6 +487,16 @@ class SafetyFilter:
         return FilterOutput(torque, mode, intervention, barrier_margin, out_flags[0],
                             out_flags[1], out_flags[2], solve_time, status, reason,
                             self._slow_now)
+
+    def _lag_acceleration(self, mass: np.ndarray) -> np.ndarray | None:
+        """The acceleration by which the disturbance estimate trails a drifting model
+        error, ``M^-1 lag`` (None without an observer or a lag)."""
+        if not self._observing or not np.any(self._observer.lag):
+            return None
+        try:
+            return np.linalg.solve(mass, self._observer.lag)
+        except np.linalg.LinAlgError:
+            return None
 
     def _use_slow(self) -> None:
         """Make the slow design's rows and authority those of this step."""

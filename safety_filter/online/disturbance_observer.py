@@ -22,6 +22,7 @@ from safety_filter.online import kernels as _kernels
 from safety_filter.online.step_dynamics import StepDynamics
 
 MAX_OBSERVER_GAIN = 1.0 / 3.0  # the disturbance observer's largest update per step
+LAG_RATE_SPAN = 4.0  # the estimate's rate is low-passed over this many time constants
 
 
 class DisturbanceObserver:
@@ -59,6 +60,11 @@ class DisturbanceObserver:
         self._heavier = heavier
         self._parameters = disturbance_parameters
         self.disturbance = np.zeros(n)  # estimated torque beyond the model [N m]
+        # How far the estimate trails a disturbance that drifts at its recent rate [N m]:
+        # the low-pass's lag times its low-passed rate (docs/method.md, "Drift").
+        self.lag = np.zeros(n)
+        self._rate = np.zeros(n)  # low-passed rate of the estimate [N m/s]
+        self._before = np.empty(n)
         self.delay_s = self.delay_periods * self.control_period_s
         # full torques sent, oldest first; two more than the delay at the certified period
         self._sent = np.zeros((self.delay_periods + 2, n))
@@ -78,6 +84,8 @@ class DisturbanceObserver:
     def reset(self) -> None:
         """Forget the estimate and the history."""
         self.disturbance[:] = 0.0
+        self._rate[:] = 0.0
+        self.lag[:] = 0.0
         self.restart()
 
     def restart(self) -> None:
@@ -95,6 +103,8 @@ class DisturbanceObserver:
         """
         period = self.control_period_s if period_s is None else float(period_s)
         usable = self._valid and math.isfinite(period) and period > 0.0
+        self._before[:] = self.disturbance
+        updated = False
         if usable:
             # Over the period just ended, the torque sent ``whole`` steps before the last one
             # acted for the last ``1 - part`` of it and the one before for the first ``part``.
@@ -131,10 +141,18 @@ class DisturbanceObserver:
                 # estimate oscillate (the loop's poles stay inside the unit circle).
                 gain = np.minimum(period / (period + self.time_constants), MAX_OBSERVER_GAIN)
                 self.disturbance += gain * (measured - self.disturbance)
+                updated = True
         # Never beyond what a plant of the declared set can need at this state (so the
         # certified authority holds), and never beyond the torque box.
         limit = self.limit(q, v, bias)
         np.clip(self.disturbance, -limit, limit, out=self.disturbance)
+        if updated:
+            # A first-order low-pass trails a ramp of rate r by r T (1 - l) / l (its time
+            # constant when the gain is not capped); the filter narrows its bounds by it.
+            rate = (self.disturbance - self._before) / period
+            span = LAG_RATE_SPAN * self.time_constants
+            self._rate += period / (period + span) * (rate - self._rate)
+            np.multiply(self._rate, period * (1.0 - gain) / gain, out=self.lag)
         self._v[:] = v
         self._mass[:] = mass
         self._bias[:] = bias
@@ -188,3 +206,20 @@ class DisturbanceObserver:
             self._sent[-1] -= breakaway
         self._count += 1
         self._valid = True
+
+
+def narrow_by_lag(rows: np.ndarray, lag: np.ndarray, authority: np.ndarray) -> None:
+    """Narrow the acceleration bounds ``rows[4]`` (upper) and ``rows[5]`` (lower) in place
+    by the acceleration ``lag`` the estimate trails the model error by, each on the side it
+    pushes toward (docs/method.md, "Drift").
+
+    Only the side the lag pushes toward moves, and never past the lower bound (the upper
+    bound) nor beyond the authority ``e``: the interval stays inside the original and keeps
+    a point of ``[-e, e]`` wherever it had one, so the certificate's argument (any
+    acceleration within the bounds keeps the state in S; the clamp is feasible) still holds.
+    """
+    upper, lower = rows[4], rows[5]
+    floor = np.minimum(upper, np.maximum(lower, -authority))
+    np.maximum(upper - np.maximum(lag, 0.0), floor, out=upper)
+    ceiling = np.maximum(lower, np.minimum(upper, authority))
+    np.minimum(lower + np.maximum(-lag, 0.0), ceiling, out=lower)

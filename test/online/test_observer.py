@@ -18,7 +18,7 @@ from filter_fixtures import demo_arm_and_certificate
 from safety_filter import SafetyFilter
 from safety_filter.core.dynamics import Dynamics
 from safety_filter.core.model_uncertainty import model_with_inertials
-from safety_filter.online.disturbance_observer import DisturbanceObserver
+from safety_filter.online.disturbance_observer import DisturbanceObserver, narrow_by_lag
 from safety_filter.online.step_dynamics import StepDynamics
 from safety_filter.simulation.command_sources import BangBang, PDBeyondLimits
 from safety_filter.simulation.demo_arms import demo_arm_files
@@ -424,3 +424,59 @@ def test_a_reversal_does_not_read_as_twice_the_friction() -> None:
     observer.observe(np.zeros(1), v, mass, np.sign(v) * 1.0, period)
     assert abs(observer.disturbance[0]) < 1e-9, observer.disturbance
 
+
+
+def test_lag_is_the_time_constant_times_the_drift_rate() -> None:
+    """A torque the model misses that grows at a steady rate r: a first-order low-pass
+    trails a ramp by r T (1 - l) / l, its time constant times r when the gain l is not
+    capped (the steady-state error of a type-1 loop to a ramp; textbook control, e.g.
+    the velocity error constant). The observer's ``lag`` says so once its rate has
+    settled, the estimate trails the true torque by that much, and a constant torque
+    leaves no lag."""
+    period, tau, rate = 1e-3, 20e-3, 30.0
+    observer = _observer(0, period, n=1, time_constant_s=tau)
+    mass, zero = np.eye(1), np.zeros(1)
+    v = np.zeros(1)
+    for step in range(600):
+        observer.observe(zero, v, mass, zero.copy(), period)
+        observer.sent(zero)
+        disturbance = rate * step * period  # acts over the coming period
+        v = v + period * disturbance
+    true_now = rate * 599 * period  # what acted over the last period observed
+    gain = period / (period + tau)
+    expected = rate * period * (1.0 - gain) / gain
+    assert expected == pytest.approx(rate * tau)
+    assert true_now - observer.disturbance[0] == pytest.approx(expected, rel=0.05)
+    assert observer.lag[0] == pytest.approx(expected, rel=0.02)
+
+    steady = _observer(0, period, n=1, time_constant_s=tau)
+    v = np.zeros(1)
+    for _ in range(2000):
+        steady.observe(zero, v, mass, zero.copy(), period)
+        steady.sent(zero)
+        v = v + period * 5.0
+    assert steady.disturbance[0] == pytest.approx(5.0, rel=1e-6)
+    assert abs(steady.lag[0]) < 1e-6
+
+
+def test_narrowing_by_the_lag_keeps_a_feasible_point_inside_the_bounds() -> None:
+    """Random bounds, lags and authorities: the narrowed interval lies inside the original,
+    moves only on the side the lag pushes toward, by the lag where there is room, and keeps
+    a point of [-e, e] wherever the original had one (so the clamp stays feasible)."""
+    rng = np.random.default_rng(11)
+    rows = np.zeros((8, 5000))
+    upper, lower = rng.uniform(-3, 3, 5000), rng.uniform(-3, 3, 5000)
+    rows[4], rows[5] = upper, lower
+    lag = rng.normal(0.0, 1.0, 5000)
+    authority = rng.uniform(0.1, 2.0, 5000)
+    narrow_by_lag(rows, lag, authority)
+    new_upper, new_lower = rows[4], rows[5]
+    assert np.all(new_upper <= upper) and np.all(new_lower >= lower)
+    assert np.all(new_upper[lag <= 0] == upper[lag <= 0])
+    assert np.all(new_lower[lag >= 0] == lower[lag >= 0])
+    had = np.maximum(lower, -authority) <= np.minimum(upper, authority)
+    keeps = np.maximum(new_lower, -authority) <= np.minimum(new_upper, authority)
+    assert np.all(keeps[had])
+    room = had & (upper - lag >= np.maximum(lower, -authority)) & (lag > 0)
+    assert room.sum() > 500
+    np.testing.assert_allclose(new_upper[room], upper[room] - lag[room])
