@@ -76,6 +76,7 @@ from safety_filter.online.step_dynamics import StepDynamics, kernel_input
 
 GRAVITY_CONVENTIONS = _options.GRAVITY_CONVENTIONS
 CHECK_TOLERANCE = 1e-6  # relative tolerance of the answer check (times max(1, scale))
+LAG_CAP_SHARE = 1.0  # the narrowing by the lag at most this share of the design's margin
 
 
 class SafetyFilter:
@@ -212,6 +213,10 @@ class SafetyFilter:
         slow = certificate.slow_design
         self._k_barrier_slow = None if slow is None else _kernels.barrier_arguments(slow)
         self._k_authority_slow = None if slow is None else np.array(slow.usable_authority)
+        # The narrowing by the observer's lag goes at most as far as the design's margin.
+        self._lag_cap = np.array(certificate.sampling_margin, dtype=float) * LAG_CAP_SHARE
+        self._lag_cap_slow = (None if slow is None else
+                              np.array(slow.sampling_margin, dtype=float) * LAG_CAP_SHARE)
         self._rows_slow = np.empty((8, n))
         self._smallest_slow = np.empty(n)
         self._slow_now = False  # the slow design's rows are in _rows this step
@@ -303,6 +308,12 @@ class SafetyFilter:
         """The observer's estimate of the torque the model misses [N m], shape (n,)."""
         return self._observer.disturbance.copy()
 
+    @property
+    def disturbance_lag(self) -> np.ndarray:
+        """How far the estimate trails a drifting model error [N m], shape (n,): its time
+        constant times its low-passed rate; the step narrows its bounds by ``M^-1`` of it."""
+        return self._observer.lag.copy()
+
     def step(self, q: Any, v: Any, u_nom: Any, period_s: float | None = None) -> FilterOutput:
         """Filter one nominal torque at the measured state.
 
@@ -392,12 +403,15 @@ class SafetyFilter:
         self._k_authority = self._k_authority_main
         lag = self._lag_acceleration(mass)
         if lag is not None:
-            narrow_by_lag(self._rows, lag, self._k_authority_main)
+            narrow_by_lag(self._rows, np.clip(lag, -self._lag_cap, self._lag_cap),
+                          self._k_authority_main)
         if self._k_barrier_slow is not None:
             worst_slow, _ = _kernels.barrier_rows(q, v, *self._k_barrier_slow, self._rows_slow,
                                                   self._smallest_slow)
             if lag is not None:
-                narrow_by_lag(self._rows_slow, lag, self._k_authority_slow)
+                narrow_by_lag(self._rows_slow,
+                              np.clip(lag, -self._lag_cap_slow, self._lag_cap_slow),
+                              self._k_authority_slow)
             if worst_slow >= 0.0 and worst >= 0.0:
                 # In both sets: the main design unless it changes the nominal and the slow
                 # one does not (or changes it less: both QPs are solved below).

@@ -22,7 +22,7 @@ from safety_filter.online import kernels as _kernels
 from safety_filter.online.step_dynamics import StepDynamics
 
 MAX_OBSERVER_GAIN = 1.0 / 3.0  # the disturbance observer's largest update per step
-LAG_RATE_SPAN = 4.0  # the estimate's rate is low-passed over this many time constants
+LAG_RATE_SPAN = 16.0  # the estimate's rate is low-passed over this many time constants
 
 
 class DisturbanceObserver:

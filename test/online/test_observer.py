@@ -218,9 +218,12 @@ def test_observer_estimates_a_constant_torque_offset() -> None:
         out = filt.step(plant.q, plant.v, hold.gravity_torque(plant.q))
         plant.advance(np.array(out.torque) + offset, 1.0 / CONTROL_RATE_HZ)
     np.testing.assert_allclose(filt.disturbance_estimate, offset, rtol=0.01, atol=0.01)
-    # reset forgets the estimate
+    # the estimate has settled: it trails nothing (its rate has all but died out)
+    assert np.all(np.abs(filt.disturbance_lag) < 0.05 * np.abs(offset))
+    # reset forgets the estimate and its lag
     filt.reset()
     assert np.all(filt.disturbance_estimate == 0.0)
+    assert np.all(filt.disturbance_lag == 0.0)
 
 
 def test_observer_skips_samples_that_are_not_one_period_apart() -> None:
@@ -437,12 +440,13 @@ def test_lag_is_the_time_constant_times_the_drift_rate() -> None:
     observer = _observer(0, period, n=1, time_constant_s=tau)
     mass, zero = np.eye(1), np.zeros(1)
     v = np.zeros(1)
-    for step in range(600):
+    steps = 3000  # the rate settles over several of its spans (16 time constants)
+    for step in range(steps):
         observer.observe(zero, v, mass, zero.copy(), period)
         observer.sent(zero)
         disturbance = rate * step * period  # acts over the coming period
         v = v + period * disturbance
-    true_now = rate * 599 * period  # what acted over the last period observed
+    true_now = rate * (steps - 1) * period  # what acted over the last period observed
     gain = period / (period + tau)
     expected = rate * period * (1.0 - gain) / gain
     assert expected == pytest.approx(rate * tau)
@@ -451,7 +455,7 @@ def test_lag_is_the_time_constant_times_the_drift_rate() -> None:
 
     steady = _observer(0, period, n=1, time_constant_s=tau)
     v = np.zeros(1)
-    for _ in range(2000):
+    for _ in range(6000):
         steady.observe(zero, v, mass, zero.copy(), period)
         steady.sent(zero)
         v = v + period * 5.0
@@ -480,3 +484,26 @@ def test_narrowing_by_the_lag_keeps_a_feasible_point_inside_the_bounds() -> None
     room = had & (upper - lag >= np.maximum(lower, -authority)) & (lag > 0)
     assert room.sum() > 500
     np.testing.assert_allclose(new_upper[room], upper[room] - lag[room])
+
+
+def test_the_filter_narrows_by_the_lag_at_most_by_the_margin() -> None:
+    """At a state in S with the estimate trailing a drift: the upper acceleration bound
+    moves down by ``M^-1 lag`` where that is below the design's sampling margin and by the
+    margin where it is above (a noisy rate must not take the whole interval); the lower
+    bound stays."""
+    model, certificate = demo_arm_and_certificate('planar2')
+    filt = SafetyFilter(model, certificate, observer_time_constant_s=0.02)
+    q = 0.5 * (np.array(model.position_lower) + np.array(model.position_upper))
+    v = np.zeros(2)
+    hold = Dynamics(model, filt.payload_mass).gravity_torque(q)
+    filt.step(q, v, hold)
+    upper, lower = filt._accel_upper.copy(), filt._accel_lower.copy()
+    mass = filt.dynamics.mass_matrix(q)
+    margin = np.array(certificate.sampling_margin)
+    for wanted in (0.5 * margin, 3.0 * margin):
+        filt.reset()
+        filt._observer.lag[:] = mass @ wanted  # as if the estimate trailed by that much
+        filt.step(q, v, hold)
+        np.testing.assert_allclose(upper - filt._accel_upper, np.minimum(wanted, margin),
+                                   rtol=1e-9, atol=1e-12)
+        np.testing.assert_array_equal(filt._accel_lower, lower)
