@@ -24,7 +24,9 @@ call (no ROS imports here); its parts are in ``safety_filter.online``: ``step_dy
    the driver adds ``g(q)`` itself, so ``u_full = u_nom + g(q)`` here and the output is
    ``u* - g(q)``. The torque box ``|u| <= umax`` always applies to the full torque.
 3. **Barriers** at ``(q, v)`` with the certificate's gains give the acceleration bounds
-   ``An <= a <= Ap`` (tightened by the certificate's sampling margin). With a slow design
+   ``An <= a <= Ap`` (tightened by the certificate's sampling margin, and on one side by
+   the acceleration the observer's estimate trails a drifting model error by, at most that
+   margin again: docs/method.md, "Drift"). With a slow design
    (docs/method.md, "The slow set") both designs' bounds are evaluated: the step keeps the
    state in a design's set that contains it, and where both do, in the one whose answer
    changes the nominal less.

@@ -65,6 +65,9 @@ class DisturbanceObserver:
         self.lag = np.zeros(n)
         self._rate = np.zeros(n)  # low-passed rate of the estimate [N m/s]
         self._before = np.empty(n)
+        # every joint's rate over the slowest joint's span: a light joint's fast estimate
+        # reads stick-slip and coupling as rate, and its own lag is short anyway
+        self._slowest = float(np.max(time_constants)) if n else 0.0
         self.delay_s = self.delay_periods * self.control_period_s
         # full torques sent, oldest first; two more than the delay at the certified period
         self._sent = np.zeros((self.delay_periods + 2, n))
@@ -150,7 +153,7 @@ class DisturbanceObserver:
             # A first-order low-pass trails a ramp of rate r by r T (1 - l) / l (its time
             # constant when the gain is not capped); the filter narrows its bounds by it.
             rate = (self.disturbance - self._before) / period
-            span = LAG_RATE_SPAN * self.time_constants
+            span = LAG_RATE_SPAN * self._slowest
             self._rate += period / (period + span) * (rate - self._rate)
             np.multiply(self._rate, period * (1.0 - gain) / gain, out=self.lag)
         self._v[:] = v
