@@ -510,9 +510,10 @@ class SafetyFilter:
         if not self._observing or not np.any(self._observer.lag):
             return None
         try:
-            return np.linalg.solve(mass, self._observer.lag)
+            lag = np.linalg.solve(mass, self._observer.lag)
         except np.linalg.LinAlgError:
             return None
+        return lag if np.all(np.isfinite(lag)) else None  # never NaN into the bounds
 
     def _use_slow(self) -> None:
         """Make the slow design's rows and authority those of this step."""

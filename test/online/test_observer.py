@@ -507,3 +507,10 @@ def test_the_filter_narrows_by_the_lag_at_most_by_the_margin() -> None:
         np.testing.assert_allclose(upper - filt._accel_upper, np.minimum(wanted, margin),
                                    rtol=1e-9, atol=1e-12)
         np.testing.assert_array_equal(filt._accel_lower, lower)
+    # a lag that is not finite leaves the bounds as they are
+    filt.reset()
+    filt._observer.lag[:] = np.nan
+    out = filt.step(q, v, hold)
+    np.testing.assert_array_equal(filt._accel_upper, upper)
+    np.testing.assert_array_equal(filt._accel_lower, lower)
+    assert np.all(np.isfinite(out.torque))
